@@ -1,0 +1,643 @@
+"""Dispersion models: the complex refractive index N(λ) = n + iκ of a material.
+
+Every model is a small object holding named :class:`~fitting.params.Param` s and
+one vectorised method, :meth:`Dispersion.N`. The sign convention is the one of
+the time dependence exp(-iωt): κ >= 0 is loss, ε = N² = ε1 + iε2 with ε2 >= 0.
+
+Oscillator-type models (Lorentz, Drude, Tauc-Lorentz) add *susceptibilities*:
+``Oscillators(eps_inf, [Lorentz(...), Drude(...), TaucLorentz(...)])`` gives
+ε(E) = ε∞ + Σ χ_k(E). Each term is Kramers-Kronig consistent on its own, so any
+sum of them is too. Cauchy (with its optional Urbach tail) and Sellmeier are
+the usual transparent-region formulas; they are not KK-consistent outside it.
+
+Models are saved as ``{"kind": ..., "params": {...}}`` and rebuilt through a
+registry (:func:`model_from_dict`): nothing is pickled or executed.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import ClassVar, Iterable, Mapping
+
+import numpy as np
+
+from .errors import ParameterError, WavelengthRangeError
+from .params import Param, check_finite
+from .units import HC_EV_NM
+
+__all__ = [
+    "Dispersion", "Constant", "Cauchy", "Sellmeier", "Oscillators", "Lorentz", "Drude",
+    "TaucLorentz", "Tabulated", "Bruggeman", "Term", "model_from_dict", "MODEL_KINDS",
+    "check_wavelengths",
+]
+
+INF = math.inf
+
+
+def check_wavelengths(wavelength_nm, *, what: str = "wavelength_nm") -> np.ndarray:
+    """Return wavelengths as a float array; refuse empty, non-finite or non-positive values."""
+    wl = np.asarray(wavelength_nm, dtype=float)
+    if wl.size == 0:
+        raise ParameterError(what, "[]", "needs at least one wavelength")
+    if not np.all(np.isfinite(wl)):
+        raise ParameterError(what, "array with NaN/inf", "all wavelengths must be finite")
+    if np.any(wl <= 0):
+        raise ParameterError(what, float(wl.min()), "wavelengths must be positive (in nm)")
+    return wl
+
+
+def _spec(name, value, lo=-INF, hi=INF, unit="", doc="", vary=True) -> Param:
+    return Param(name, value, lo, hi, unit, doc, vary)
+
+
+class _HasParams:
+    """Shared parameter handling of models and oscillator terms."""
+
+    def _init_params(self, specs: Iterable[Param], values: Mapping[str, float]):
+        self.params: dict[str, Param] = {p.name: p for p in specs}
+        unknown = set(values) - set(self.params)
+        if unknown:
+            raise ParameterError(", ".join(sorted(unknown)), values[sorted(unknown)[0]],
+                                 f"unknown parameter of {type(self).__name__}; known: "
+                                 f"{', '.join(self.params)}")
+        for k, v in values.items():
+            self.set(k, v)
+
+    def set(self, name: str, value: float, *, widen: bool = False) -> None:
+        """Set a parameter's value (must lie within its bounds unless ``widen``)."""
+        p = self.params[name]
+        v = check_finite(name, value)
+        if widen:
+            p.min, p.max = min(p.min, v), max(p.max, v)
+        if not p.min <= v <= p.max:
+            raise ParameterError(name, v, f"must lie within [{p.min:g}, {p.max:g}]")
+        p.value = v
+
+    def values(self) -> dict[str, float]:
+        """Current parameter values, by local name."""
+        return {k: p.value for k, p in self.params.items()}
+
+    def _merged(self, overrides: Mapping[str, float] | None) -> dict[str, float]:
+        v = self.values()
+        if overrides:
+            for k, x in overrides.items():
+                if k in v:
+                    v[k] = check_finite(k, x)
+        return v
+
+
+class Dispersion(_HasParams):
+    """Base class of all dispersion models.
+
+    Subclasses set ``kind`` (the registry name) and ``label`` and implement
+    :meth:`_N` (or :meth:`_eps`). ``valid_nm`` is the wavelength range in which
+    the model is defined; outside it :meth:`N` raises
+    :class:`~fitting.errors.WavelengthRangeError`.
+    """
+
+    kind: ClassVar[str] = ""
+    label: ClassVar[str] = ""
+    valid_nm: tuple[float, float] = (0.0, INF)
+
+    def N(self, wavelength_nm, values: Mapping[str, float] | None = None) -> np.ndarray:
+        """Complex refractive index n + iκ at the given vacuum wavelengths (nm).
+
+        Parameters
+        ----------
+        wavelength_nm : array_like
+            Vacuum wavelengths in nm.
+        values : mapping, optional
+            Parameter values overriding the stored ones for this call only.
+
+        Returns
+        -------
+        ndarray of complex, same shape as ``wavelength_nm``.
+        """
+        wl = check_wavelengths(wavelength_nm)
+        self.check_range(wl)
+        return self.N_unchecked(wl, self._merged(values))
+
+    def N_unchecked(self, wl: np.ndarray, v: Mapping[str, float]) -> np.ndarray:
+        """:meth:`N` without input checks, for the fit engine's inner loop."""
+        return self._N(wl, v)
+
+    def epsilon(self, wavelength_nm, values=None) -> np.ndarray:
+        """Complex dielectric function ε = N²."""
+        return self.N(wavelength_nm, values) ** 2
+
+    def check_range(self, wl: np.ndarray) -> None:
+        lo, hi = self.valid_nm
+        wmin, wmax = float(np.min(wl)), float(np.max(wl))
+        # A relative slack of 1e-9 lets grids that end exactly on the limit through.
+        if wmin < lo * (1 - 1e-9) or wmax > hi * (1 + 1e-9):
+            raise WavelengthRangeError(self.describe(), lo, hi, wmin, wmax)
+
+    def describe(self) -> str:
+        return self.label or type(self).__name__
+
+    def _N(self, wl, v):
+        return _sqrt_eps(self._eps(wl, v))
+
+    def _eps(self, wl, v):  # pragma: no cover - every subclass defines _N or _eps
+        raise NotImplementedError
+
+    # -- persistence -----------------------------------------------------------------
+    def to_dict(self) -> dict:
+        return {"kind": self.kind, "params": {k: p.to_dict() for k, p in self.params.items()},
+                **self._shape_dict()}
+
+    def _shape_dict(self) -> dict:
+        """Construction options other than parameter values (e.g. number of terms)."""
+        return {}
+
+    def copy(self) -> "Dispersion":
+        return model_from_dict(self.to_dict())
+
+    def __repr__(self) -> str:
+        vals = ", ".join(f"{k}={p.value:g}" for k, p in self.params.items())
+        return f"{type(self).__name__}({vals})"
+
+
+def _sqrt_eps(eps: np.ndarray) -> np.ndarray:
+    """N = sqrt(ε) on the branch with κ >= 0 (and n >= 0 where κ = 0)."""
+    N = np.sqrt(np.asarray(eps, dtype=complex))
+    # numpy's principal sqrt already has Re >= 0; flip where that gives Im < 0
+    # (possible only for Re(ε) < 0 with Im(ε) = -0.0).
+    return np.where(N.imag < 0, -N, N)
+
+
+# ----------------------------------------------------------------------------------------
+class Constant(Dispersion):
+    """Wavelength-independent N = n + iκ (common practice for ambient media and quick looks)."""
+
+    kind, label = "constant", "Constant n, κ"
+
+    def __init__(self, n: float = 1.5, k: float = 0.0, **values):
+        self._init_params([
+            _spec("n", 1.5, 0.01, 20.0, "", "refractive index n"),
+            _spec("k", 0.0, 0.0, 20.0, "", "extinction coefficient κ", vary=False),
+        ], {"n": n, "k": k, **values})
+
+    def _N(self, wl, v):
+        return np.full(wl.shape, complex(v["n"], v["k"]))
+
+
+class Cauchy(Dispersion):
+    r"""Cauchy transparent-region dispersion with an optional Urbach absorption tail.
+
+    .. math::
+        n(λ) = A + B/λ^2 + C/λ^4 \quad (λ \text{ in µm}), \qquad
+        κ(E) = κ_0 \exp\big((E - E_{edge})/E_U\big), \quad E = hc/λ
+
+    The Urbach tail (Urbach 1953) describes the exponential absorption edge of
+    disordered films; ``E_edge`` is a reference energy (kept fixed by default,
+    since κ0 and E_edge are fully correlated). The combination is not
+    Kramers-Kronig consistent; use it in and near the transparent region only.
+
+    References
+    ----------
+    .. [1] A.-L. Cauchy, "Mémoire sur la dispersion de la lumière" (1836).
+    .. [2] F. Urbach, "The long-wavelength edge of photographic sensitivity and of
+           the electronic absorption of solids", Phys. Rev. 92, 1324 (1953).
+    """
+
+    kind, label = "cauchy", "Cauchy"
+
+    def __init__(self, A: float = 1.9, B: float = 0.02, C: float = 0.0, *, urbach: bool = False,
+                 **values):
+        self.urbach = bool(urbach)
+        specs = [
+            _spec("A", 1.9, 1.0, 4.0, "", "Cauchy constant term of n"),
+            _spec("B", 0.02, -0.05, 0.5, "µm²", "Cauchy 1/λ² coefficient"),
+            _spec("C", 0.0, -0.05, 0.05, "µm⁴", "Cauchy 1/λ⁴ coefficient", vary=False),
+        ]
+        if self.urbach:
+            specs += [
+                _spec("k0", 1e-3, 0.0, 5.0, "", "κ of the Urbach tail at E_edge"),
+                _spec("Eu", 0.2, 0.01, 2.0, "eV", "Urbach energy (edge steepness)"),
+                _spec("E_edge", 3.5, 0.5, 10.0, "eV", "reference energy of the tail",
+                      vary=False),
+            ]
+        self._init_params(specs, {"A": A, "B": B, "C": C, **values})
+
+    def _N(self, wl, v):
+        lu2 = (wl * 1e-3) ** 2
+        n = v["A"] + v["B"] / lu2 + v["C"] / (lu2 * lu2)
+        if not self.urbach:
+            return n + 0j
+        # The exponent is capped: past e^50 the film is opaque anyway, and inf would
+        # poison the transfer-matrix arithmetic.
+        x = np.minimum((HC_EV_NM / wl - v["E_edge"]) / v["Eu"], 50.0)
+        return n + 1j * (v["k0"] * np.exp(x))
+
+    def _shape_dict(self):
+        return {"urbach": self.urbach}
+
+
+class Sellmeier(Dispersion):
+    r"""Sellmeier dispersion with 1 to 3 terms.
+
+    .. math:: n^2(λ) = A + \sum_i \frac{B_i λ^2}{λ^2 - C_i} \quad (λ \text{ in µm}, C_i \text{ in µm}^2)
+
+    With A = 1 this is the form used by glass makers' datasheets and by
+    Malitson (1965) for fused silica.
+
+    References
+    ----------
+    .. [1] W. Sellmeier, Ann. Phys. Chem. 219, 272 (1871).
+    .. [2] I. H. Malitson, "Interspecimen comparison of the refractive index of fused
+           silica", J. Opt. Soc. Am. 55, 1205 (1965). :DOI:`10.1364/JOSA.55.001205`
+    """
+
+    kind, label = "sellmeier", "Sellmeier"
+
+    def __init__(self, terms: int = 1, *, valid_nm: tuple[float, float] = (0.0, INF),
+                 **values):
+        if terms not in (1, 2, 3):
+            raise ParameterError("terms", terms, "a Sellmeier model has 1, 2 or 3 terms")
+        self.terms = terms
+        self.valid_nm = (float(valid_nm[0]), float(valid_nm[1]))
+        specs = [_spec("A", 1.0, 0.5, 10.0, "", "constant term of n²", vary=False)]
+        defaults = [(1.5, 0.01), (0.3, 0.05), (1.0, 100.0)]
+        for i in range(terms):
+            b, c = defaults[i]
+            specs += [_spec(f"B{i + 1}", b, 0.0, 50.0, "", f"strength of term {i + 1}"),
+                      _spec(f"C{i + 1}", c, 0.0, 1e4, "µm²", f"resonance λ² of term {i + 1}")]
+        self._init_params(specs, values)
+
+    def _eps(self, wl, v):
+        l2 = (wl * 1e-3) ** 2
+        eps = np.full(wl.shape, v["A"], dtype=float)
+        for i in range(1, self.terms + 1):
+            eps = eps + v[f"B{i}"] * l2 / (l2 - v[f"C{i}"])
+        return eps + 0j
+
+    def _shape_dict(self):
+        d = {"terms": self.terms}
+        if self.valid_nm != (0.0, INF):
+            d["valid_nm"] = list(self.valid_nm)
+        return d
+
+
+# ----------------------------------------------------------------------------------------
+class Term(_HasParams):
+    """One susceptibility term χ(E) of an :class:`Oscillators` model (E in eV)."""
+
+    kind: ClassVar[str] = ""
+
+    def chi(self, E: np.ndarray, v: Mapping[str, float]) -> np.ndarray:  # pragma: no cover
+        raise NotImplementedError
+
+    def to_dict(self) -> dict:
+        return {"kind": self.kind, "params": {k: p.to_dict() for k, p in self.params.items()}}
+
+
+class Lorentz(Term):
+    r"""Lorentz oscillator, χ(E) = f E_0^2 / (E_0^2 - E^2 - iΓE).
+
+    ``f`` is the oscillator's contribution to the static dielectric constant.
+
+    References
+    ----------
+    .. [1] H. A. Lorentz, *The Theory of Electrons* (1909); see also M. Fox,
+           *Optical Properties of Solids*, 2nd ed., Oxford (2010), ch. 2.
+    """
+
+    kind = "lorentz"
+
+    def __init__(self, f: float = 1.0, E0: float = 5.0, gamma: float = 0.5, **values):
+        self._init_params([
+            _spec("f", 1.0, 0.0, 100.0, "", "oscillator strength (static ε contribution)"),
+            _spec("E0", 5.0, 0.01, 50.0, "eV", "resonance energy"),
+            _spec("gamma", 0.5, 0.0, 20.0, "eV", "broadening (damping)"),
+        ], {"f": f, "E0": E0, "gamma": gamma, **values})
+
+    def chi(self, E, v):
+        E0sq = v["E0"] ** 2
+        return v["f"] * E0sq / (E0sq - E * E - 1j * v["gamma"] * E)
+
+
+class Drude(Term):
+    r"""Drude free-carrier term, χ(E) = -E_p^2 / (E^2 + iΓE).
+
+    E_p is the (unscreened) plasma energy, Γ the carrier scattering rate in eV;
+    the usual model of transparent conducting oxides in the near infrared.
+
+    References
+    ----------
+    .. [1] P. Drude, Ann. Phys. 306, 566 (1900); H. Fujiwara, *Spectroscopic
+           Ellipsometry*, Wiley (2007), sec. 5.3.
+    """
+
+    kind = "drude"
+
+    def __init__(self, Ep: float = 1.0, gamma: float = 0.1, **values):
+        self._init_params([
+            _spec("Ep", 1.0, 0.0, 30.0, "eV", "plasma energy"),
+            _spec("gamma", 0.1, 1e-4, 10.0, "eV", "scattering rate (broadening)"),
+        ], {"Ep": Ep, "gamma": gamma, **values})
+
+    def chi(self, E, v):
+        return -(v["Ep"] ** 2) / (E * E + 1j * v["gamma"] * E)
+
+
+class TaucLorentz(Term):
+    r"""Tauc-Lorentz interband absorption of amorphous materials.
+
+    .. math::
+        ε_2(E) = \frac{A E_0 C (E - E_g)^2}{(E^2 - E_0^2)^2 + C^2 E^2} \frac{1}{E}
+        \quad (E > E_g), \qquad 0 \text{ otherwise},
+
+    with ε1 from the closed-form Kramers-Kronig integral of Jellison & Modine
+    (1996, with the erratum of the same year). The ε∞ of the original model is
+    the ``eps_inf`` of the :class:`Oscillators` model this term belongs to.
+    Requires C < 2 E0.
+
+    References
+    ----------
+    .. [1] G. E. Jellison Jr. and F. A. Modine, "Parameterization of the optical
+           functions of amorphous materials in the interband region", Appl. Phys.
+           Lett. 69, 371 (1996); erratum Appl. Phys. Lett. 69, 2137 (1996).
+           :DOI:`10.1063/1.118064`
+    """
+
+    kind = "tauc_lorentz"
+
+    def __init__(self, A: float = 100.0, E0: float = 4.5, C: float = 1.5, Eg: float = 3.0,
+                 **values):
+        self._init_params([
+            _spec("A", 100.0, 0.1, 1000.0, "eV", "transition amplitude"),
+            _spec("E0", 4.5, 0.5, 20.0, "eV", "peak transition energy"),
+            _spec("C", 1.5, 0.01, 20.0, "eV", "broadening"),
+            _spec("Eg", 3.0, 0.1, 10.0, "eV", "Tauc optical gap"),
+        ], {"A": A, "E0": E0, "C": C, "Eg": Eg, **values})
+
+    def chi(self, E, v):
+        return tauc_lorentz_chi(E, v["A"], v["E0"], v["C"], v["Eg"])
+
+
+def tauc_lorentz_chi(E, A, E0, C, Eg):
+    """Closed-form Tauc-Lorentz χ = (ε1 - ε∞) + iε2 (Jellison & Modine 1996, with erratum)."""
+    if not C < 2 * E0:
+        raise ParameterError("C", C, f"Tauc-Lorentz needs C < 2·E0 = {2 * E0:g} eV")
+    E = np.asarray(E, dtype=float)
+    E2 = E * E
+    a = math.sqrt(4 * E0 * E0 - C * C)                      # α
+    g2 = E0 * E0 - C * C / 2                                # γ²
+    z4 = (E2 - g2) ** 2 + a * a * C * C / 4                 # ζ⁴
+    a_ln = (Eg * Eg - E0 * E0) * E2 + Eg * Eg * C * C - E0 * E0 * (E0 * E0 + 3 * Eg * Eg)
+    a_atan = (E2 - E0 * E0) * (E0 * E0 + Eg * Eg) + Eg * Eg * C * C
+    # |E - Eg| -> tiny at E = Eg: the log terms' coefficients cancel there, the
+    # limit is finite.
+    dE = np.maximum(np.abs(E - Eg), 1e-12)
+    t1 = A * C * a_ln / (2 * np.pi * z4 * a * E0) * math.log(
+        (E0 * E0 + Eg * Eg + a * Eg) / (E0 * E0 + Eg * Eg - a * Eg))
+    t2 = -A * a_atan / (np.pi * z4 * E0) * (
+        np.pi - math.atan((2 * Eg + a) / C) + math.atan((a - 2 * Eg) / C))
+    t3 = 2 * A * E0 * Eg * (E2 - g2) / (np.pi * z4 * a) * (
+        np.pi + 2 * math.atan(2 * (g2 - Eg * Eg) / (a * C)))
+    t4 = -A * E0 * C * (E2 + Eg * Eg) / (np.pi * z4 * E) * np.log(dE / (E + Eg))
+    t5 = 2 * A * E0 * C * Eg / (np.pi * z4) * np.log(
+        dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
+    eps1 = t1 + t2 + t3 + t4 + t5
+    eps2 = np.where(E > Eg, A * E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
+                    0.0)
+    return eps1 + 1j * eps2
+
+
+TERM_KINDS: dict[str, type[Term]] = {c.kind: c for c in (Lorentz, Drude, TaucLorentz)}
+
+
+class Oscillators(Dispersion):
+    r"""ε∞ plus a sum of susceptibility terms: ε(E) = ε∞ + Σ χ_k(E).
+
+    Build Lorentz-oscillator, Drude (transparent conductor) and Tauc-Lorentz
+    films, or any combination, e.g.
+    ``Oscillators(eps_inf=1.0, terms=[TaucLorentz(), Drude()])``.
+    Term parameters are named ``o1_f``, ``o2_E0`` ... by position.
+    """
+
+    kind, label = "oscillators", "Oscillators (ε∞ + Lorentz / Drude / Tauc-Lorentz)"
+
+    def __init__(self, eps_inf: float = 1.0, terms: Iterable[Term] = (), **values):
+        self.terms = list(terms)
+        if not self.terms:
+            raise ParameterError("terms", "[]", "an oscillator model needs at least one term")
+        specs = [_spec("eps_inf", 1.0, 0.1, 30.0, "", "high-frequency dielectric constant ε∞")]
+        for i, t in enumerate(self.terms, start=1):
+            for p in t.params.values():
+                specs.append(p.copy(name=f"o{i}_{p.name}", doc=f"term {i} ({t.kind}): {p.doc}"))
+        self._init_params(specs, {"eps_inf": eps_inf, **values})
+
+    def _eps(self, wl, v):
+        E = HC_EV_NM / wl
+        eps = np.full(wl.shape, v["eps_inf"], dtype=complex)
+        for i, t in enumerate(self.terms, start=1):
+            pre = f"o{i}_"
+            eps = eps + t.chi(E, {k: v[pre + k] for k in t.params})
+        return eps
+
+    def components(self, wavelength_nm, values=None) -> list[np.ndarray]:
+        """Each term's χ(λ), for plotting the parts of a fitted model."""
+        wl = check_wavelengths(wavelength_nm)
+        v = self._merged(values)
+        E = HC_EV_NM / wl
+        return [t.chi(E, {k: v[f"o{i}_{k}"] for k in t.params})
+                for i, t in enumerate(self.terms, start=1)]
+
+    def _shape_dict(self):
+        return {"terms": [t.kind for t in self.terms]}
+
+
+def Lorentz_model(eps_inf=1.0, oscillators=((1.0, 5.0, 0.5),)) -> Oscillators:
+    """Convenience: ε∞ plus Lorentz oscillators given as (f, E0, gamma) triples."""
+    return Oscillators(eps_inf, [Lorentz(*o) for o in oscillators])
+
+
+# ----------------------------------------------------------------------------------------
+class Tabulated(Dispersion):
+    """Tabulated n, κ interpolated linearly in wavelength.
+
+    Refuses wavelengths outside the table (no extrapolation). The table is
+    saved inside recipes so that a recipe is self-contained.
+    """
+
+    kind, label = "tabulated", "Tabulated n, κ"
+
+    def __init__(self, wavelength_nm, n, k=None, *, name: str = "table"):
+        wl = check_wavelengths(wavelength_nm, what="table wavelength")
+        n = np.asarray(n, dtype=float)
+        k = np.zeros_like(n) if k is None else np.asarray(k, dtype=float)
+        if wl.ndim != 1 or wl.size < 2 or n.shape != wl.shape or k.shape != wl.shape:
+            raise ParameterError("table", f"{wl.size} rows",
+                                 "needs at least 2 rows of wavelength, n and κ of equal length")
+        if not (np.all(np.isfinite(n)) and np.all(np.isfinite(k))):
+            raise ParameterError("table", "NaN", "n and κ must be finite numbers")
+        if np.any(k < 0):
+            raise ParameterError("table κ", float(k.min()), "κ must not be negative")
+        order = np.argsort(wl)
+        self.wl, self.n, self.k = wl[order], n[order], k[order]
+        if np.any(np.diff(self.wl) <= 0):
+            raise ParameterError("table wavelength", "duplicates", "wavelengths must be distinct")
+        self.name = name
+        self.valid_nm = (float(self.wl[0]), float(self.wl[-1]))
+        self.params = {}
+
+    @classmethod
+    def from_file(cls, path) -> "Tabulated":
+        """Read a whitespace/comma/semicolon separated table: wavelength (nm), n, κ."""
+        from .errors import SpectrumFormatError  # local: only this path needs it
+        rows = []
+        with open(path, encoding="utf-8-sig", errors="replace") as fh:
+            for lineno, line in enumerate(fh, start=1):
+                s = line.strip()
+                if not s or s[0] in "#;%" or s[0].isalpha():
+                    continue
+                parts = s.replace(";", " ").replace(",", " ").replace("\t", " ").split()
+                try:
+                    vals = [float(x) for x in parts[:3]]
+                except ValueError:
+                    raise SpectrumFormatError(path, lineno, "not a number in n, κ table",
+                                              expected="wavelength n [κ]", found=s) from None
+                if len(vals) < 2:
+                    raise SpectrumFormatError(path, lineno, "too few columns",
+                                              expected="wavelength n [κ]", found=s)
+                rows.append(vals + [0.0] * (3 - len(vals)))
+        if len(rows) < 2:
+            raise SpectrumFormatError(path, None, "an n, κ table needs at least 2 data rows")
+        a = np.array(rows)
+        try:
+            return cls(a[:, 0], a[:, 1], a[:, 2], name=str(path))
+        except ParameterError as e:
+            raise SpectrumFormatError(path, None, str(e)) from None
+
+    def _N(self, wl, v):
+        return np.interp(wl, self.wl, self.n) + 1j * np.interp(wl, self.wl, self.k)
+
+    def describe(self):
+        return f"table {self.name}"
+
+    def to_dict(self):
+        return {"kind": self.kind, "name": self.name, "wavelength_nm": self.wl.tolist(),
+                "n": self.n.tolist(), "k": self.k.tolist()}
+
+
+class Bruggeman(Dispersion):
+    r"""Bruggeman effective-medium mixture of two materials.
+
+    Solves  f (ε_a - ε)/(ε_a + 2ε) + (1 - f)(ε_b - ε)/(ε_b + 2ε) = 0  for ε, with
+    ``fraction`` = f the volume fraction of the inclusion a in the host b; the
+    root with Im ε >= 0 (and Re ε > 0 for lossless media) is the physical one.
+    Used for surface roughness (film + voids, f ≈ 0.5) and porosity.
+    Parameters of the two parts are named ``host_...`` and ``incl_...``.
+
+    References
+    ----------
+    .. [1] D. A. G. Bruggeman, "Berechnung verschiedener physikalischer Konstanten von
+           heterogenen Substanzen", Ann. Phys. 416, 636 (1935).
+    .. [2] D. E. Aspnes, "Optical properties of thin films", Thin Solid Films 89, 249
+           (1982).
+    """
+
+    kind, label = "bruggeman", "Bruggeman mixture"
+
+    def __init__(self, host: Dispersion, inclusion: Dispersion | None = None,
+                 fraction: float = 0.5, **values):
+        self.host = host
+        self.inclusion = inclusion if inclusion is not None else Constant(1.0, 0.0)
+        specs = [_spec("fraction", 0.5, 0.0, 1.0, "", "volume fraction of the inclusion")]
+        for pre, m in (("host_", self.host), ("incl_", self.inclusion)):
+            specs += [p.copy(name=pre + p.name) for p in m.params.values()]
+        self._init_params(specs, {"fraction": fraction, **values})
+        self.valid_nm = (max(host.valid_nm[0], self.inclusion.valid_nm[0]),
+                         min(host.valid_nm[1], self.inclusion.valid_nm[1]))
+
+    def _eps(self, wl, v):
+        sub = lambda pre, m: {k: v[pre + k] for k in m.params}  # noqa: E731
+        ea = self.inclusion.N_unchecked(wl, sub("incl_", self.inclusion)) ** 2
+        eb = self.host.N_unchecked(wl, sub("host_", self.host)) ** 2
+        f = v["fraction"]
+        b = (3 * f - 1) * ea + (2 - 3 * f) * eb
+        root = np.sqrt(b * b + 8 * ea * eb)
+        e1, e2 = (b + root) / 4, (b - root) / 4
+        # Physical branch: larger Im ε (>= 0); for lossless parts, the positive root.
+        pick1 = (e1.imag > e2.imag + 1e-14) | ((np.abs(e1.imag - e2.imag) <= 1e-14)
+                                               & (e1.real >= e2.real))
+        return np.where(pick1, e1, e2)
+
+    def to_dict(self):
+        d = super().to_dict()
+        d["host"], d["inclusion"] = self.host.to_dict(), self.inclusion.to_dict()
+        return d
+
+
+# ----------------------------------------------------------------------------------------
+MODEL_KINDS: dict[str, type[Dispersion]] = {
+    c.kind: c for c in (Constant, Cauchy, Sellmeier, Oscillators, Tabulated, Bruggeman)}
+
+
+def _apply_saved_params(model: _HasParams, saved: Mapping, where: str) -> None:
+    from .errors import RecipeError
+    if not isinstance(saved, Mapping):
+        raise RecipeError(f"{where}.params", "must be an object of parameter entries")
+    for name, entry in saved.items():
+        if name not in model.params:
+            raise RecipeError(f"{where}.params.{name}",
+                              f"unknown parameter; known: {', '.join(model.params)}")
+        p = model.params[name]
+        if isinstance(entry, Mapping):
+            lo = entry.get("min", p.min)
+            hi = entry.get("max", p.max)
+            try:
+                new = Param(name, entry.get("value", p.value), -INF if lo is None else lo,
+                            INF if hi is None else hi, p.unit, p.doc,
+                            bool(entry.get("vary", p.vary)), entry.get("expr"))
+            except ParameterError as e:
+                raise RecipeError(f"{where}.params.{name}", e.reason) from None
+            model.params[name] = new
+        else:
+            try:
+                model.set(name, entry, widen=True)
+            except ParameterError as e:
+                raise RecipeError(f"{where}.params.{name}", e.reason) from None
+
+
+def model_from_dict(d: Mapping, *, where: str = "model") -> Dispersion:
+    """Rebuild a dispersion model from :meth:`Dispersion.to_dict` output.
+
+    Raises :class:`~fitting.errors.RecipeError` naming the field on any problem.
+    """
+    from .errors import RecipeError
+    if not isinstance(d, Mapping):
+        raise RecipeError(where, "must be an object with a 'kind'")
+    kind = d.get("kind")
+    if kind not in MODEL_KINDS:
+        raise RecipeError(f"{where}.kind", f"unknown model {kind!r}; choose one of "
+                                           f"{', '.join(MODEL_KINDS)}")
+    try:
+        if kind == "tabulated":
+            return Tabulated(d["wavelength_nm"], d["n"], d.get("k"), name=d.get("name", "table"))
+        if kind == "cauchy":
+            m = Cauchy(urbach=bool(d.get("urbach", False)))
+        elif kind == "sellmeier":
+            m = Sellmeier(int(d.get("terms", 1)), valid_nm=tuple(d.get("valid_nm", (0.0, INF))))
+        elif kind == "oscillators":
+            kinds = d.get("terms")
+            if not isinstance(kinds, list) or not kinds:
+                raise RecipeError(f"{where}.terms", "must be a non-empty list of term kinds")
+            bad = [k for k in kinds if k not in TERM_KINDS]
+            if bad:
+                raise RecipeError(f"{where}.terms", f"unknown term {bad[0]!r}; choose from "
+                                                    f"{', '.join(TERM_KINDS)}")
+            m = Oscillators(terms=[TERM_KINDS[k]() for k in kinds])
+        elif kind == "bruggeman":
+            m = Bruggeman(model_from_dict(d.get("host"), where=f"{where}.host"),
+                          model_from_dict(d.get("inclusion"), where=f"{where}.inclusion"))
+        else:
+            m = MODEL_KINDS[kind]()
+    except KeyError as e:
+        raise RecipeError(f"{where}.{e.args[0]}", "is missing") from None
+    except ParameterError as e:
+        raise RecipeError(f"{where}.{e.name}", e.reason) from None
+    _apply_saved_params(m, d.get("params", {}), where)
+    return m

@@ -1,0 +1,321 @@
+"""The sample as a layer stack: ambient | coherent films | thick substrate | exit medium.
+
+A :class:`Stack` is what a user builds and a recipe saves; :meth:`Stack.RT`
+computes front-side reflectance and transmittance over wavelength.
+:meth:`Stack.evaluator` returns a :class:`StackModel` bound to one wavelength
+grid and geometry, which is what fits call thousands of times: it caches every
+material's N(λ) between calls whose parameters did not change (the substrate
+and the ambient are computed once).
+
+Two effects of real samples and instruments are included as averages over
+quadrature nodes:
+
+* thickness non-uniformity: all film thicknesses scaled by (1 + s·x) with x
+  normally distributed (relative standard deviation s), 7-point Gauss-Hermite;
+* finite spectral bandwidth: a triangular slit function of the given FWHM,
+  7 nodes (common practice for grating monochromators).
+
+Global parameter names are ``{layer}_{param}``, e.g. ``film_thickness``,
+``film_A``, ``film_o1_E0``.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from typing import Mapping
+
+import numpy as np
+
+from .dispersion import Constant, Dispersion, check_wavelengths, model_from_dict
+from .errors import ParameterError, RecipeError
+from .optics import stack_RT
+from .params import Param, check_finite
+from .substrates import Substrate
+
+__all__ = ["Layer", "Stack", "StackModel", "POLARIZATIONS"]
+
+POLARIZATIONS = ("s", "p", "u")
+_NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9]*$")
+
+# 7-point Gauss-Hermite nodes/weights for E[f(x)], x ~ N(0, 1).
+_GH_X, _GH_W = np.polynomial.hermite_e.hermegauss(7)
+_GH_W = _GH_W / _GH_W.sum()
+# Triangular slit of unit FWHM sampled at 7 nodes on (-1, 1) FWHM, exact weights.
+_SLIT_U = np.linspace(-6 / 7, 6 / 7, 7)
+_SLIT_W = (1 - np.abs(_SLIT_U)) / np.sum(1 - np.abs(_SLIT_U))
+
+
+@dataclass
+class Layer:
+    """One coherent film: a name, a material and a thickness parameter (nm)."""
+
+    name: str
+    material: Dispersion
+    thickness: Param = field(default_factory=lambda: Param(
+        "thickness", 500.0, 0.0, 50000.0, "nm", "physical film thickness"))
+
+    def __post_init__(self):
+        if not _NAME_RE.match(self.name or ""):
+            raise ParameterError("layer name", self.name,
+                                 "must start with a letter and hold only letters and digits")
+        if isinstance(self.thickness, (int, float)):
+            d = check_finite(f"{self.name} thickness", self.thickness)
+            if d < 0:
+                raise ParameterError(f"{self.name}_thickness", d, "thickness must not be negative")
+            self.thickness = Param("thickness", d, 0.0, max(50000.0, 2 * d), "nm",
+                                   "physical film thickness")
+        if self.thickness.value < 0:
+            raise ParameterError(f"{self.name}_thickness", self.thickness.value,
+                                 "thickness must not be negative")
+
+    @property
+    def thickness_nm(self) -> float:
+        return self.thickness.value
+
+    def to_dict(self) -> dict:
+        return {"name": self.name, "material": self.material.to_dict(),
+                "thickness": self.thickness.to_dict()}
+
+
+@dataclass
+class Stack:
+    """ambient | layers (coherent, ambient side first) | substrate (incoherent) | exit.
+
+    Parameters
+    ----------
+    layers : list of Layer
+    substrate : Substrate
+    ambient, exit_medium : Dispersion
+        Default air (n = 1).
+    thickness_spread : float
+        Relative standard deviation of film thickness over the measured spot (0 = uniform).
+    bandwidth_nm : float
+        Spectral bandwidth (FWHM of a triangular slit) of the instrument, nm.
+    """
+
+    layers: list[Layer]
+    substrate: Substrate
+    ambient: Dispersion = field(default_factory=lambda: Constant(1.0))
+    exit_medium: Dispersion = field(default_factory=lambda: Constant(1.0))
+    thickness_spread: float = 0.0
+    bandwidth_nm: float = 0.0
+
+    def __post_init__(self):
+        self.layers = list(self.layers)
+        names = [layer.name for layer in self.layers]
+        dup = {n for n in names if names.count(n) > 1}
+        if dup:
+            raise ParameterError("layer name", sorted(dup)[0], "layer names must be unique")
+        for what in ("thickness_spread", "bandwidth_nm"):
+            v = check_finite(what, getattr(self, what))
+            if v < 0:
+                raise ParameterError(what, v, "must not be negative")
+            setattr(self, what, v)
+        if self.thickness_spread > 0.3:
+            raise ParameterError("thickness_spread", self.thickness_spread,
+                                 "a relative spread above 0.3 (30 %) is not a film")
+
+    # -- parameters -----------------------------------------------------------------
+    def parameters(self) -> dict[str, Param]:
+        """All film parameters by global name ``{layer}_{param}`` (live objects)."""
+        out: dict[str, Param] = {}
+        for layer in self.layers:
+            out[f"{layer.name}_thickness"] = layer.thickness
+            for k, p in layer.material.params.items():
+                out[f"{layer.name}_{k}"] = p
+        return out
+
+    def values(self) -> dict[str, float]:
+        return {k: p.value for k, p in self.parameters().items()}
+
+    def set_values(self, values: Mapping[str, float]) -> None:
+        """Write values (global names) into the stack's parameters, widening no bounds."""
+        params = self.parameters()
+        for k, v in values.items():
+            if k in params:
+                params[k].value = check_finite(k, v)
+
+    def layer(self, name: str) -> Layer:
+        for layer in self.layers:
+            if layer.name == name:
+                return layer
+        raise KeyError(name)
+
+    # -- optics ---------------------------------------------------------------------
+    def RT(self, wavelength_nm, *, angle_deg: float = 0.0, polarization: str = "u",
+           values: Mapping[str, float] | None = None):
+        """Front-side reflectance and transmittance.
+
+        Parameters
+        ----------
+        wavelength_nm : array_like of shape (W,)
+        angle_deg : float
+            Angle of incidence in the ambient, degrees (0 <= angle < 90).
+        polarization : {"s", "p", "u"}
+        values : mapping, optional
+            Global-name parameter values overriding the stored ones.
+
+        Returns
+        -------
+        R, T : ndarray of shape (W,)
+        """
+        return self.evaluator(wavelength_nm, angle_deg=angle_deg,
+                              polarization=polarization).RT(values)
+
+    def transmittance(self, wavelength_nm, **kw) -> np.ndarray:
+        return self.RT(wavelength_nm, **kw)[1]
+
+    def reflectance(self, wavelength_nm, **kw) -> np.ndarray:
+        return self.RT(wavelength_nm, **kw)[0]
+
+    def evaluator(self, wavelength_nm, *, angle_deg: float = 0.0,
+                  polarization: str = "u") -> "StackModel":
+        return StackModel(self, wavelength_nm, angle_deg=angle_deg, polarization=polarization)
+
+    # -- persistence ----------------------------------------------------------------
+    def to_dict(self) -> dict:
+        return {"ambient": self.ambient.to_dict(), "layers": [x.to_dict() for x in self.layers],
+                "substrate": self.substrate.to_dict(), "exit_medium": self.exit_medium.to_dict(),
+                "thickness_spread": self.thickness_spread, "bandwidth_nm": self.bandwidth_nm}
+
+    @classmethod
+    def from_dict(cls, d: Mapping, *, where: str = "stack") -> "Stack":
+        if not isinstance(d, Mapping):
+            raise RecipeError(where, "must be an object")
+        known = {"ambient", "layers", "substrate", "exit_medium", "thickness_spread",
+                 "bandwidth_nm"}
+        extra = set(d) - known
+        if extra:
+            raise RecipeError(f"{where}.{sorted(extra)[0]}", "unknown field")
+        if "substrate" not in d:
+            raise RecipeError(f"{where}.substrate", "is missing")
+        layers_in = d.get("layers", [])
+        if not isinstance(layers_in, list):
+            raise RecipeError(f"{where}.layers", "must be a list")
+        layers = []
+        for i, ld in enumerate(layers_in):
+            w = f"{where}.layers[{i}]"
+            if not isinstance(ld, Mapping) or "material" not in ld:
+                raise RecipeError(w, "must be an object with 'name', 'material', 'thickness'")
+            th = ld.get("thickness", {})
+            try:
+                if isinstance(th, Mapping):
+                    lo, hi = th.get("min", 0.0), th.get("max", 50000.0)
+                    tp = Param("thickness", th.get("value", 500.0), 0.0 if lo is None else lo,
+                               math.inf if hi is None else hi, "nm", "physical film thickness",
+                               bool(th.get("vary", True)), th.get("expr"))
+                    if tp.min < 0:
+                        raise ParameterError("thickness", tp.min, "lower bound must be >= 0")
+                else:
+                    tp = float(th)
+                layers.append(Layer(str(ld.get("name", f"film{i + 1}")),
+                                    model_from_dict(ld["material"], where=f"{w}.material"), tp))
+            except ParameterError as e:
+                raise RecipeError(f"{w}.thickness" if "thickness" in e.name else f"{w}.name",
+                                  e.reason) from None
+        try:
+            return cls(layers, Substrate.from_dict(d["substrate"], where=f"{where}.substrate"),
+                       model_from_dict(d.get("ambient", Constant(1.0).to_dict()),
+                                       where=f"{where}.ambient"),
+                       model_from_dict(d.get("exit_medium", Constant(1.0).to_dict()),
+                                       where=f"{where}.exit_medium"),
+                       d.get("thickness_spread", 0.0), d.get("bandwidth_nm", 0.0))
+        except ParameterError as e:
+            raise RecipeError(f"{where}.{e.name}", e.reason) from None
+
+
+class StackModel:
+    """A stack bound to a wavelength grid and geometry, for repeated evaluation.
+
+    Call :meth:`RT` with a mapping of global parameter values; anything not
+    given takes the stack's stored value. Material indices are cached per
+    layer and recomputed only when that layer's parameters change.
+    """
+
+    def __init__(self, stack: Stack, wavelength_nm, *, angle_deg: float = 0.0,
+                 polarization: str = "u"):
+        wl = check_wavelengths(wavelength_nm)
+        if wl.ndim != 1:
+            raise ParameterError("wavelength_nm", wl.shape, "must be a 1-D array")
+        angle = check_finite("angle_deg", angle_deg)
+        if not 0 <= angle < 90:
+            raise ParameterError("angle_deg", angle, "angle of incidence must be in [0, 90)")
+        if polarization not in POLARIZATIONS:
+            raise ParameterError("polarization", polarization, "must be 's', 'p' or 'u'")
+        self.stack, self.wavelength_nm = stack, wl
+        self.angle_rad, self.polarization = math.radians(angle), polarization
+        if stack.bandwidth_nm > 0:
+            nodes = wl[None, :] + stack.bandwidth_nm * _SLIT_U[:, None]
+            if np.any(nodes <= 0):
+                raise ParameterError("bandwidth_nm", stack.bandwidth_nm,
+                                     "is wider than the shortest wavelength")
+            self._wl = nodes.ravel()
+        else:
+            self._wl = wl
+        for m in [stack.ambient, stack.exit_medium, stack.substrate.material,
+                  *(layer.material for layer in stack.layers)]:
+            m.check_range(self._wl)
+        self._N_amb = stack.ambient.N(self._wl)
+        if angle and np.any(np.abs(self._N_amb.imag) > 0):
+            raise ParameterError("ambient", stack.ambient,
+                                 "must be lossless (κ = 0) for oblique incidence")
+        self._N_exit = stack.exit_medium.N(self._wl)
+        self._N_sub = stack.substrate.N(self._wl)
+        self._sub_d = stack.substrate.thickness_nm
+        self._names = [(layer, f"{layer.name}_", f"{layer.name}_thickness",
+                        tuple(layer.material.params)) for layer in stack.layers]
+        self._cache: list[tuple | None] = [None] * len(stack.layers)
+
+    def layer_values(self, values: Mapping[str, float] | None = None):
+        """Per-layer (thickness, local parameter dict), stored values overridden."""
+        values = values or {}
+        out = []
+        for layer, pre, tname, pnames in self._names:
+            d = values.get(tname, layer.thickness.value)
+            local = {k: values.get(pre + k, layer.material.params[k].value) for k in pnames}
+            out.append((d, local))
+        return out
+
+    def RT(self, values: Mapping[str, float] | None = None):
+        """(R, T) on the bound grid for the given global parameter values."""
+        Ns, ds = [], []
+        for i, (d, local) in enumerate(self.layer_values(values)):
+            if not d >= 0:  # also catches NaN
+                raise ParameterError(f"{self._names[i][2]}", d,
+                                     "thickness must be a non-negative number")
+            key = tuple(local.values())
+            hit = self._cache[i]
+            if hit is not None and hit[0] == key:
+                N = hit[1]
+            else:
+                for k, x in local.items():
+                    if not math.isfinite(x):
+                        raise ParameterError(self._names[i][1] + k, x, "must be finite")
+                N = self._names[i][0].material.N_unchecked(self._wl, local)
+                self._cache[i] = (key, N)
+            Ns.append(N)
+            ds.append(d)
+        spread = self.stack.thickness_spread
+        if spread > 0:
+            R = T = 0.0
+            for x, w in zip(_GH_X, _GH_W):
+                Ri, Ti = self._rt(Ns, [d * (1 + spread * x) for d in ds])
+                R, T = R + w * Ri, T + w * Ti
+        else:
+            R, T = self._rt(Ns, ds)
+        if self._wl is not self.wavelength_nm:
+            shape = (_SLIT_W.size, self.wavelength_nm.size)
+            R = _SLIT_W @ R.reshape(shape)
+            T = _SLIT_W @ T.reshape(shape)
+        return R, T
+
+    def _rt(self, Ns, ds):
+        return stack_RT(self._wl, self._N_amb, Ns, ds, self._N_sub, self._sub_d, self._N_exit,
+                        angle_rad=self.angle_rad, polarization=self.polarization)
+
+    def N_layers(self, values: Mapping[str, float] | None = None) -> list[np.ndarray]:
+        """Each film's N on the bound grid (no bandwidth nodes)."""
+        return [layer.material.N(self.wavelength_nm, local)
+                for (layer, *_), (_, local) in zip(self._names, self.layer_values(values))]
