@@ -1,0 +1,102 @@
+"""Atomic file writes: a reader sees either the old file or the whole new one.
+
+Every save in Pellucid (recipes, projects, exports, batch summaries) goes through
+these helpers so that a crash, a full disk or a killed process never leaves a
+half-written file behind. The method is the usual POSIX one: write a temporary
+file in the *same directory* (so the rename cannot cross file systems), flush and
+``fsync`` it, then ``os.replace`` it over the target, which is atomic on POSIX and
+on Windows (NTFS) alike. On POSIX the directory is fsynced too, so the rename
+itself survives a power cut (common practice; see the ``rename(2)`` and
+``fsync(2)`` manual pages).
+
+Functions
+---------
+atomic_write_bytes(path, data)
+atomic_write_text(path, text, *, encoding="utf-8")
+atomic_write_json(path, obj, *, indent=2)
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+
+__all__ = ["atomic_write_bytes", "atomic_write_text", "atomic_write_json"]
+
+
+def _fsync_dir(directory: Path) -> None:
+    # Makes the rename durable; not possible (nor needed) on Windows.
+    if os.name != "posix":
+        return
+    try:
+        fd = os.open(directory, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def atomic_write_bytes(path, data: bytes) -> Path:
+    """Write ``data`` to ``path`` atomically and return the path.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Target file. Its directory must exist.
+    data : bytes
+        The complete new content.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path`` as a Path.
+
+    Notes
+    -----
+    The temporary file is named ``.<name>.<random>.tmp`` in the target's
+    directory and is removed if anything fails before the rename. An existing
+    target keeps its permission bits.
+    """
+    path = Path(path)
+    directory = path.parent if str(path.parent) else Path(".")
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=directory)
+    tmp = Path(tmp_name)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        try:
+            os.chmod(tmp, path.stat().st_mode & 0o7777)
+        except FileNotFoundError:
+            # mkstemp creates 0600; a new file gets the usual umask-based mode.
+            umask = os.umask(0)
+            os.umask(umask)
+            os.chmod(tmp, 0o666 & ~umask)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    _fsync_dir(directory)
+    return path
+
+
+def atomic_write_text(path, text: str, *, encoding: str = "utf-8") -> Path:
+    """Write ``text`` to ``path`` atomically (UTF-8 by default, ``\\n`` line ends kept)."""
+    return atomic_write_bytes(path, text.encode(encoding))
+
+
+def atomic_write_json(path, obj, *, indent: int | None = 2) -> Path:
+    """Serialise ``obj`` as JSON and write it atomically.
+
+    NaN and infinity are refused (``allow_nan=False``) because they are not JSON
+    and other tools would fail to read the file; convert them to ``None`` first.
+    """
+    text = json.dumps(obj, indent=indent, ensure_ascii=False, allow_nan=False)
+    return atomic_write_text(path, text + "\n")
