@@ -1,0 +1,622 @@
+"""Recipes: one saved fitting setup, applied unchanged to one spectrum or thousands.
+
+A recipe holds everything needed to turn a spectrum file into a result: the
+layer stack with its start values, bounds and ties, how to read the file, which
+part of the spectrum to fit, how to fit, optional specification limits, and
+which exports to write. It is plain JSON: readable, diffable, and free of code
+(models are rebuilt through the registry in :mod:`fitting.dispersion`; nothing
+is pickled or evaluated).
+
+File format ``pellucid-recipe``, version 1
+------------------------------------------
+::
+
+    {
+      "format": "pellucid-recipe",          # required, exactly this string
+      "version": 1,                         # required; 0 is upgraded on load
+      "name": "ITO on glass, line 3",       # free text
+      "notes": "",                          # free text
+      "stack": { ... },                     # Stack.to_dict(): ambient, layers,
+                                            #   substrate, exit_medium,
+                                            #   thickness_spread, bandwidth_nm
+      "reader": { ... },                    # ReaderOptions.to_dict() ({} = defaults)
+      "fit": {
+        "range_nm": [400.0, 1100.0],        # fit window; null = open end
+        "masks_nm": [[655.0, 657.0]],       # windows left out (lamp switch-over ...)
+        "options": { ... }                  # FitOptions.to_dict(): method, nuisance flags
+      },
+      "limits": {                           # optional specification limits
+        "film_thickness": {"target": 500, "tol": 25},   # nm, pass if |x - target| <= tol
+        "film_n@633": {"min": 1.95, "max": 2.05},       # either bound may be left out
+        "band_gap": {"min": 3.2},                       # eV
+        "redchi": {"max": 5}
+      },
+      "outputs": {
+        "exports": ["nk", "curves", "json", "report", "plots"],
+                                            # per-spectrum files: n/κ tables, measured
+                                            #   vs fitted curves, full JSON result, text
+                                            #   report, figures (default: all)
+        "plot_formats": ["png"]             # png, svg and/or pdf
+      }
+    }
+
+Each parameter in the stack is ``{"value", "min", "max", "vary"}`` plus an
+optional ``"expr"``: an lmfit constraint tying it to other parameters by their
+global names (``film2_thickness = "2 * film1_thickness"``). Ties are checked
+on load: only parameter names of the stack, numbers, ``+ - * / **``,
+parentheses and the functions ``sqrt exp log log10 sin cos tan abs`` (and the
+constant ``pi``) are accepted; anything else refuses the whole file with the
+field named.
+
+Limit keys are result quantities:
+
+* ``{layer}_thickness`` (nm),
+* ``{layer}_n@{wavelength}`` and ``{layer}_k@{wavelength}`` (wavelength in nm,
+  interpolated on the fitted n, κ),
+* ``band_gap`` (eV, Tauc gap), ``redchi`` (reduced χ²),
+* any other global parameter name of the stack (``film_A``, ``film_o1_E0``).
+
+A limit is either ``{"target": x, "tol": t}`` (t > 0) or ``{"min": a, "max": b}``
+with at least one of the two.
+
+Version 0 (earlier layout, upgraded automatically by :func:`upgrade`): no
+``reader``, ``limits`` or ``outputs`` sections; each layer had a flat
+``"thickness_nm": 500`` with optional ``"thickness_range_nm": [lo, hi]`` and
+``"fit_thickness": true``; the fit window was a top-level ``"range_nm"`` and
+the method a top-level ``"method"``.
+
+Loading validates everything and raises :class:`~fitting.errors.RecipeError`
+naming the field (``stack.layers[0].material.kind``) and the problem; unknown
+format versions are refused. Saving is atomic. :func:`recipe_hash` is the
+SHA-256 of the canonical JSON (sorted keys, no whitespace) and is written into
+every result as provenance; the batch runner's ``--resume`` compares it.
+"""
+
+from __future__ import annotations
+
+import ast
+import hashlib
+import importlib
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+from .atomic import atomic_write_text
+from .errors import PellucidError, RecipeError
+from .stack import Stack
+
+__all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", "recipe_hash",
+           "canonical_json", "upgrade", "validate_expression", "FORMAT", "VERSION",
+           "EXPORT_CHOICES", "PLOT_FORMATS", "STANDARD_WAVELENGTHS_NM"]
+
+FORMAT = "pellucid-recipe"
+VERSION = 1
+
+#: Per-spectrum exports a recipe may ask for: n/κ tables, measured-vs-fitted curves,
+#: the full JSON result, the text report and the figures (see fitting.export).
+EXPORT_CHOICES = ("nk", "curves", "json", "report", "plots")
+PLOT_FORMATS = ("png", "svg", "pdf")
+#: Wavelengths at which every batch summary row reports n and κ.
+STANDARD_WAVELENGTHS_NM = (550, 633, 1000)
+
+#: Functions a tie expression may call; all exist in lmfit's expression interpreter.
+TIE_FUNCTIONS = frozenset({"sqrt", "exp", "log", "log10", "sin", "cos", "tan", "abs"})
+TIE_CONSTANTS = frozenset({"pi"})
+_MAX_EXPR_LEN = 500
+
+_LAYER = r"[A-Za-z][A-Za-z0-9]*"
+_NK_RE = re.compile(rf"^(?P<layer>{_LAYER})_(?P<q>[nk])@(?P<wl>\d+(?:\.\d+)?)$")
+_THICK_RE = re.compile(rf"^(?P<layer>{_LAYER})_thickness$")
+
+
+# ---------------------------------------------------------------------------------
+# Tie expressions
+def validate_expression(expr, names, *, field_name: str = "expr") -> str:
+    """Check an lmfit tie expression without evaluating it.
+
+    Parameters
+    ----------
+    expr : str
+        The expression, e.g. ``"2 * film1_thickness"``.
+    names : collection of str
+        Parameter names the expression may refer to.
+    field_name : str
+        Field named in the error.
+
+    Returns
+    -------
+    str
+        ``expr`` unchanged.
+
+    Raises
+    ------
+    RecipeError
+        If it is not a string, does not parse, or holds anything but parameter
+        names, numbers, ``+ - * / **``, parentheses and :data:`TIE_FUNCTIONS`.
+    """
+    if not isinstance(expr, str) or not expr.strip():
+        raise RecipeError(field_name, "must be a non-empty text expression")
+    if len(expr) > _MAX_EXPR_LEN:
+        raise RecipeError(field_name, f"is longer than {_MAX_EXPR_LEN} characters")
+    try:
+        tree = ast.parse(expr.strip(), mode="eval")
+    except SyntaxError:
+        raise RecipeError(field_name, f"{expr!r} is not a valid arithmetic expression") from None
+    allowed_ops = (ast.Add, ast.Sub, ast.Mult, ast.Div, ast.Pow, ast.UAdd, ast.USub)
+    names = names if hasattr(names, "__contains__") else set(names)
+
+    def refuse(what):
+        raise RecipeError(field_name, f"{expr!r}: {what} is not allowed; a tie may use only "
+                                      f"parameter names, numbers, + - * / ** ( ) and "
+                                      f"{', '.join(sorted(TIE_FUNCTIONS))}")
+
+    def check(node):
+        if isinstance(node, ast.Expression):
+            check(node.body)
+        elif isinstance(node, ast.BinOp):
+            if not isinstance(node.op, allowed_ops):
+                refuse(f"operator {type(node.op).__name__}")
+            check(node.left)
+            check(node.right)
+        elif isinstance(node, ast.UnaryOp):
+            if not isinstance(node.op, allowed_ops):
+                refuse(f"operator {type(node.op).__name__}")
+            check(node.operand)
+        elif isinstance(node, ast.Constant):
+            if isinstance(node.value, bool) or not isinstance(node.value, (int, float)):
+                refuse(f"the literal {node.value!r}")
+        elif isinstance(node, ast.Name):
+            if node.id.startswith("_"):
+                refuse(f"the name {node.id!r}")
+            if node.id not in names and node.id not in TIE_CONSTANTS:
+                if node.id in TIE_FUNCTIONS:
+                    refuse(f"{node.id!r} without a call")
+                raise RecipeError(field_name, f"{expr!r} refers to {node.id!r}, which is not a "
+                                              f"parameter of this stack; known: "
+                                              f"{', '.join(sorted(names)) or '(none)'}")
+        elif isinstance(node, ast.Call):
+            if not isinstance(node.func, ast.Name) or node.func.id not in TIE_FUNCTIONS:
+                refuse("this function call")
+            if node.keywords or len(node.args) != 1:
+                refuse(f"calling {node.func.id} with other than one argument")
+            check(node.args[0])
+        else:
+            refuse(type(node).__name__.lower())
+
+    check(tree)
+    return expr
+
+
+def _walk_exprs(obj, where):
+    """Yield (field path, expression) for every "expr" entry in a nested dict."""
+    if isinstance(obj, Mapping):
+        for k, v in obj.items():
+            w = f"{where}.{k}"
+            if k == "expr" and v is not None:
+                yield w, v
+            else:
+                yield from _walk_exprs(v, w)
+    elif isinstance(obj, list):
+        for i, v in enumerate(obj):
+            yield from _walk_exprs(v, f"{where}[{i}]")
+
+
+# ---------------------------------------------------------------------------------
+# Limits
+@dataclass(frozen=True)
+class Limit:
+    """A specification limit on one result quantity.
+
+    Either ``target`` with ``tol`` (pass if ``|x - target| <= tol``) or
+    ``min`` and/or ``max`` (inclusive).
+    """
+
+    target: float | None = None
+    tol: float | None = None
+    min: float | None = None
+    max: float | None = None
+
+    @property
+    def bounds(self) -> tuple[float, float]:
+        if self.target is not None:
+            return self.target - self.tol, self.target + self.tol
+        return (-math.inf if self.min is None else self.min,
+                math.inf if self.max is None else self.max)
+
+    def check(self, value) -> str:
+        """``"pass"``, ``"fail"`` or ``"n/a"`` (value missing or not a number)."""
+        try:
+            v = float(value)
+        except (TypeError, ValueError):
+            return "n/a"
+        if not math.isfinite(v):
+            return "n/a"
+        lo, hi = self.bounds
+        return "pass" if lo <= v <= hi else "fail"
+
+    def describe(self) -> str:
+        if self.target is not None:
+            return f"{self.target:g} ± {self.tol:g}"
+        lo, hi = self.min, self.max
+        if lo is not None and hi is not None:
+            return f"{lo:g} to {hi:g}"
+        return f">= {lo:g}" if lo is not None else f"<= {hi:g}"
+
+    def to_dict(self) -> dict:
+        if self.target is not None:
+            return {"target": self.target, "tol": self.tol}
+        return {k: v for k, v in (("min", self.min), ("max", self.max)) if v is not None}
+
+    @classmethod
+    def from_dict(cls, d, *, where: str = "limit") -> "Limit":
+        if not isinstance(d, Mapping):
+            raise RecipeError(where, 'must be an object like {"target": 500, "tol": 25} '
+                                     'or {"min": 480, "max": 520}')
+        extra = set(d) - {"target", "tol", "min", "max"}
+        if extra:
+            raise RecipeError(f"{where}.{sorted(extra)[0]}",
+                              "unknown field; use target/tol or min/max")
+        vals = {}
+        for k, v in d.items():
+            if v is None:
+                continue
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                raise RecipeError(f"{where}.{k}", f"must be a finite number, got {v!r}")
+            vals[k] = float(v)
+        if "target" in vals or "tol" in vals:
+            if "min" in vals or "max" in vals:
+                raise RecipeError(where, "give either target/tol or min/max, not both")
+            if "target" not in vals or "tol" not in vals:
+                raise RecipeError(where, "target and tol must be given together")
+            if vals["tol"] <= 0:
+                raise RecipeError(f"{where}.tol", f"must be positive, got {vals['tol']:g}")
+            return cls(target=vals["target"], tol=vals["tol"])
+        if not vals:
+            raise RecipeError(where, "needs target/tol or at least one of min/max")
+        if "min" in vals and "max" in vals and vals["min"] >= vals["max"]:
+            raise RecipeError(where, f"min ({vals['min']:g}) must be smaller than "
+                                     f"max ({vals['max']:g})")
+        return cls(min=vals.get("min"), max=vals.get("max"))
+
+
+def _check_limit_key(key: str, stack: Stack, where: str) -> None:
+    layers = [layer.name for layer in stack.layers]
+    if key in ("band_gap", "redchi") or key in stack.parameters():
+        return
+    m = _NK_RE.match(key) or _THICK_RE.match(key)
+    if m:
+        if m.group("layer") not in layers:
+            raise RecipeError(where, f"no layer named {m.group('layer')!r} in the stack; "
+                                     f"layers: {', '.join(layers) or '(none)'}")
+        if "wl" in m.groupdict() and not float(m.group("wl")) > 0:
+            raise RecipeError(where, "the wavelength after '@' must be positive (nm)")
+        return
+    raise RecipeError(where, "unknown quantity; use {layer}_thickness, {layer}_n@633, "
+                             "{layer}_k@550, band_gap, redchi or a parameter name")
+
+
+# ---------------------------------------------------------------------------------
+# Sections owned by other modules (reader, fit engine, exports), resolved lazily so
+# recipes load before those modules exist and nothing here imports them at start-up.
+def _optional(module: str, name: str):
+    try:
+        mod = importlib.import_module(f"fitting.{module}")
+    except ModuleNotFoundError as e:
+        if e.name == f"fitting.{module}":
+            return None
+        raise
+    return getattr(mod, name, None)
+
+
+def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
+    """Validate a section through its owner's ``from_dict`` and return its canonical dict."""
+    if d is None:
+        d = {}
+    if not isinstance(d, Mapping) and hasattr(d, "to_dict"):
+        d = d.to_dict()
+    if not isinstance(d, Mapping):
+        raise RecipeError(where, "must be an object")
+    cls = _optional(module, cls_name)
+    if cls is None or not hasattr(cls, "from_dict"):
+        return json.loads(json.dumps(dict(d)))
+    try:
+        obj = cls.from_dict(dict(d))
+    except RecipeError as e:
+        f = e.field if e.field.startswith(where) else f"{where}.{e.field}"
+        raise RecipeError(f, e.problem) from None
+    except (PellucidError, ValueError, TypeError, KeyError) as e:
+        raise RecipeError(where, str(e)) from None
+    return obj.to_dict()
+
+
+def _range_pair(v, where):
+    if v is None:
+        return (None, None)
+    if not isinstance(v, (list, tuple)) or len(v) != 2:
+        raise RecipeError(where, "must be [start_nm, stop_nm] (null for an open end)")
+    out = []
+    for i, x in enumerate(v):
+        if x is None:
+            out.append(None)
+            continue
+        if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x) \
+                or x <= 0:
+            raise RecipeError(f"{where}[{i}]", f"must be a positive wavelength in nm, got {x!r}")
+        out.append(float(x))
+    if out[0] is not None and out[1] is not None and out[0] >= out[1]:
+        raise RecipeError(where, f"start ({out[0]:g} nm) must be below stop ({out[1]:g} nm)")
+    return tuple(out)
+
+
+# ---------------------------------------------------------------------------------
+@dataclass
+class Recipe:
+    """A saved fitting setup.
+
+    Parameters
+    ----------
+    stack : Stack
+        Layers with start values, bounds, fixed flags and ties.
+    name, notes : str
+    reader : dict or ReaderOptions
+        How spectrum files are read; stored as ``ReaderOptions.to_dict()``.
+    fit_options : dict or FitOptions
+        How fits run; stored as ``FitOptions.to_dict()``.
+    range_nm : (float or None, float or None)
+        Fit window; None is an open end.
+    masks_nm : list of (float, float)
+        Windows excluded from the fit.
+    limits : dict of str -> Limit
+        Specification limits by quantity key (see the module docstring).
+    exports : tuple of str
+        Per-spectrum exports to write.
+    plot_formats : tuple of str
+        Image formats of exported plots (``"png"``, ``"svg"``).
+    """
+
+    stack: Stack
+    name: str = ""
+    notes: str = ""
+    reader: Any = field(default_factory=dict)
+    fit_options: Any = field(default_factory=dict)
+    range_nm: tuple = (None, None)
+    masks_nm: list = field(default_factory=list)
+    limits: dict = field(default_factory=dict)
+    exports: tuple = EXPORT_CHOICES
+    plot_formats: tuple = ("png",)
+
+    def __post_init__(self):
+        if not isinstance(self.stack, Stack):
+            raise RecipeError("stack", "must be a Stack")
+        for what in ("name", "notes"):
+            if not isinstance(getattr(self, what), str):
+                raise RecipeError(what, "must be text")
+        self.reader = _normalise_section(self.reader, "reader", "ReaderOptions", "reader")
+        self.fit_options = _normalise_section(self.fit_options, "fit", "FitOptions",
+                                              "fit.options")
+        self.range_nm = _range_pair(self.range_nm, "fit.range_nm")
+        if not isinstance(self.masks_nm, (list, tuple)):
+            raise RecipeError("fit.masks_nm", "must be a list of [start_nm, stop_nm] pairs")
+        masks = []
+        for i, m in enumerate(self.masks_nm):
+            lo, hi = _range_pair(m, f"fit.masks_nm[{i}]")
+            if lo is None or hi is None:
+                raise RecipeError(f"fit.masks_nm[{i}]", "both ends must be given")
+            masks.append((lo, hi))
+        self.masks_nm = masks
+        if not isinstance(self.limits, Mapping):
+            raise RecipeError("limits", "must be an object of quantity: limit")
+        limits = {}
+        for key, lim in self.limits.items():
+            where = f"limits.{key}"
+            _check_limit_key(str(key), self.stack, where)
+            limits[str(key)] = lim if isinstance(lim, Limit) else Limit.from_dict(lim,
+                                                                                   where=where)
+        self.limits = limits
+        self.exports = self._choices(self.exports, EXPORT_CHOICES, "outputs.exports")
+        self.plot_formats = self._choices(self.plot_formats, PLOT_FORMATS, "outputs.plot_formats")
+        names = set(self.stack.parameters())
+        for w, expr in _walk_exprs(self.stack.to_dict(), "stack"):
+            validate_expression(expr, names, field_name=w)
+
+    @staticmethod
+    def _choices(values, allowed, where) -> tuple:
+        if isinstance(values, str) or not isinstance(values, (list, tuple)):
+            raise RecipeError(where, f"must be a list drawn from {', '.join(allowed)}")
+        for i, v in enumerate(values):
+            if v not in allowed:
+                raise RecipeError(f"{where}[{i}]", f"unknown choice {v!r}; choose from "
+                                                   f"{', '.join(allowed)}")
+        return tuple(dict.fromkeys(values))
+
+    # -- objects for the other parts -------------------------------------------------
+    def new_stack(self) -> Stack:
+        """A fresh copy of the stack (fits change parameter values in place)."""
+        return Stack.from_dict(self.stack.to_dict())
+
+    def reader_options(self):
+        """``ReaderOptions`` built from the ``reader`` section (None if no reader module)."""
+        cls = _optional("reader", "ReaderOptions")
+        return None if cls is None else cls.from_dict(dict(self.reader))
+
+    def make_fit_options(self):
+        """``FitOptions`` built from ``fit.options`` (None if no fit engine module)."""
+        cls = _optional("fit", "FitOptions")
+        return None if cls is None else cls.from_dict(dict(self.fit_options))
+
+    def prepare(self, spectrum):
+        """Apply the fit window and masks to a spectrum (a new Spectrum is returned)."""
+        out = spectrum
+        if self.range_nm != (None, None):
+            out = out.cropped(*self.range_nm)
+        if self.masks_nm:
+            out = out.masked_windows(self.masks_nm)
+        return out
+
+    # -- persistence ---------------------------------------------------------------
+    def to_dict(self) -> dict:
+        return {"format": FORMAT, "version": VERSION, "name": self.name, "notes": self.notes,
+                "stack": self.stack.to_dict(), "reader": dict(self.reader),
+                "fit": {"range_nm": list(self.range_nm),
+                        "masks_nm": [list(m) for m in self.masks_nm],
+                        "options": dict(self.fit_options)},
+                "limits": {k: v.to_dict() for k, v in self.limits.items()},
+                "outputs": {"exports": list(self.exports),
+                            "plot_formats": list(self.plot_formats)}}
+
+    @classmethod
+    def from_dict(cls, d, *, path=None) -> "Recipe":
+        return recipe_from_dict(d, path=path)
+
+    def hash(self) -> str:
+        return recipe_hash(self)
+
+
+# ---------------------------------------------------------------------------------
+def upgrade(d: Mapping, *, path=None) -> dict:
+    """Bring a recipe dict of an older format version to the current one.
+
+    Version 0 -> 1: flat layer ``thickness_nm`` (+ ``thickness_range_nm``,
+    ``fit_thickness``) becomes a thickness parameter; top-level ``range_nm`` and
+    ``method`` move into ``fit``; empty ``reader``, ``limits`` and ``outputs``
+    sections are added. The input is not modified.
+    """
+    if not isinstance(d, Mapping):
+        raise RecipeError("(file)", "must be a JSON object", path=path)
+    if d.get("format") != FORMAT:
+        raise RecipeError("format", f"expected {FORMAT!r}, found {d.get('format')!r}; "
+                                    f"this is not a Pellucid recipe", path=path)
+    version = d.get("version")
+    if isinstance(version, bool) or not isinstance(version, int):
+        raise RecipeError("version", f"must be a whole number, found {version!r}", path=path)
+    if version > VERSION:
+        raise RecipeError("version", f"version {version} is newer than this Pellucid "
+                                     f"understands (up to {VERSION}); update Pellucid",
+                          path=path)
+    if version < 0:
+        raise RecipeError("version", f"unknown version {version}", path=path)
+    d = json.loads(json.dumps(d))          # a deep copy; input stays untouched
+    if version == 0:
+        d = _upgrade_0_to_1(d, path)
+    return d
+
+
+def _upgrade_0_to_1(d: dict, path) -> dict:
+    stack = d.get("stack")
+    if not isinstance(stack, dict):
+        raise RecipeError("stack", "must be an object", path=path)
+    for i, layer in enumerate(stack.get("layers", []) or []):
+        if not isinstance(layer, dict) or "thickness_nm" not in layer:
+            continue
+        d_nm = layer.pop("thickness_nm")
+        lo, hi = layer.pop("thickness_range_nm", [0.0, None]) or [0.0, None]
+        layer["thickness"] = {"value": d_nm, "min": lo, "max": hi,
+                              "vary": bool(layer.pop("fit_thickness", True))}
+    fit = {"range_nm": d.pop("range_nm", [None, None]), "masks_nm": d.pop("masks_nm", []),
+           "options": {}}
+    if "method" in d:
+        fit["options"]["method"] = d.pop("method")
+    d.update(version=1, fit=fit)
+    d.setdefault("reader", {})
+    d.setdefault("limits", {})
+    d.setdefault("outputs", {})
+    return d
+
+
+def recipe_from_dict(d: Mapping, *, path=None) -> Recipe:
+    """Validate a recipe dict (any supported version) and build a :class:`Recipe`."""
+    d = upgrade(d, path=path)
+    known = {"format", "version", "name", "notes", "stack", "reader", "fit", "limits",
+             "outputs"}
+    extra = set(d) - known
+    try:
+        if extra:
+            raise RecipeError(sorted(extra)[0], "unknown field")
+        if "stack" not in d:
+            raise RecipeError("stack", "is missing")
+        # Ties are checked for syntax before anything else touches the data.
+        for w, expr in _walk_exprs(d["stack"], "stack"):
+            validate_expression(expr, _ANY_NAME, field_name=w)
+        stack = Stack.from_dict(d["stack"], where="stack")
+        fit = d.get("fit", {})
+        if not isinstance(fit, Mapping):
+            raise RecipeError("fit", "must be an object")
+        extra = set(fit) - {"range_nm", "masks_nm", "options"}
+        if extra:
+            raise RecipeError(f"fit.{sorted(extra)[0]}", "unknown field")
+        outputs = d.get("outputs", {})
+        if not isinstance(outputs, Mapping):
+            raise RecipeError("outputs", "must be an object")
+        extra = set(outputs) - {"exports", "plot_formats"}
+        if extra:
+            raise RecipeError(f"outputs.{sorted(extra)[0]}", "unknown field")
+        defaults = Recipe.__dataclass_fields__
+        return Recipe(stack, name=d.get("name", ""), notes=d.get("notes", ""),
+                      reader=d.get("reader", {}), fit_options=fit.get("options", {}),
+                      range_nm=fit.get("range_nm", (None, None)),
+                      masks_nm=fit.get("masks_nm", []), limits=d.get("limits", {}),
+                      exports=outputs.get("exports", defaults["exports"].default),
+                      plot_formats=outputs.get("plot_formats",
+                                               defaults["plot_formats"].default))
+    except RecipeError as e:
+        if path is not None and e.path is None:
+            raise RecipeError(e.field, e.problem, path=path) from None
+        raise
+
+
+class _AnyName:
+    """Name set that admits every identifier (syntax-only check before the stack exists)."""
+
+    def __contains__(self, name):
+        return True
+
+    def __iter__(self):
+        return iter(())
+
+
+_ANY_NAME = _AnyName()
+
+
+def canonical_json(obj) -> str:
+    """Sorted keys, no whitespace, ASCII only: the same recipe always gives the same bytes."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=True,
+                      allow_nan=False)
+
+
+def recipe_hash(recipe) -> str:
+    """Hex SHA-256 of a recipe's canonical JSON (a :class:`Recipe` or its dict)."""
+    d = recipe.to_dict() if isinstance(recipe, Recipe) else recipe_from_dict(recipe).to_dict()
+    return hashlib.sha256(canonical_json(d).encode("ascii")).hexdigest()
+
+
+def load_recipe(path) -> Recipe:
+    """Read and validate a recipe file.
+
+    Raises
+    ------
+    RecipeError
+        If the file is missing, not JSON, of an unknown version or invalid; the
+        message names the file, the field and the problem.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise RecipeError("(file)", "file not found", path=path) from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise RecipeError("(file)", f"cannot be read: {e}", path=path) from None
+    try:
+        d = json.loads(text)
+    except json.JSONDecodeError as e:
+        raise RecipeError("(file)", f"not valid JSON at line {e.lineno}, column {e.colno}: "
+                                    f"{e.msg}", path=path) from None
+    return recipe_from_dict(d, path=path)
+
+
+def save_recipe(recipe: Recipe, path) -> Path:
+    """Write a recipe as indented JSON, atomically. Returns the path."""
+    text = json.dumps(recipe.to_dict(), indent=2, ensure_ascii=False, allow_nan=False)
+    return atomic_write_text(Path(path), text + "\n")

@@ -1,0 +1,233 @@
+"""Recipes and projects (fitting/recipe.py, fitting/project.py): format, validation, upgrade."""
+
+import copy
+import json
+
+import numpy as np
+import pytest
+
+from fitting.dispersion import Cauchy, Oscillators, TaucLorentz
+from fitting.errors import RecipeError
+from fitting.project import Project, load_project, save_project
+from fitting.recipe import (Limit, Recipe, load_recipe, recipe_from_dict, recipe_hash,
+                            save_recipe, upgrade, validate_expression)
+from fitting.stack import Layer, Stack
+from fitting.substrates import library_substrate
+
+
+def make_recipe(**kw):
+    stack = Stack([Layer("film", Cauchy(A=2.0, B=0.02), 480.0),
+                   Layer("cap", Oscillators(2.5, [TaucLorentz()]), 60.0)],
+                  library_substrate("fused_silica", 1.0))
+    kw.setdefault("limits", {"film_thickness": {"target": 500, "tol": 25},
+                             "film_n@633": {"min": 1.9, "max": 2.1}, "redchi": {"max": 5}})
+    return Recipe(stack, name="test recipe", notes="line 3", range_nm=(400, 1000),
+                  masks_nm=[(655, 657)], plot_formats=("png", "svg"), **kw)
+
+
+def test_save_load_round_trip_is_identical(tmp_path):
+    r = make_recipe()
+    path = save_recipe(r, tmp_path / "r.json")
+    d = json.loads(path.read_text(encoding="utf-8"))
+    assert d["format"] == "pellucid-recipe" and d["version"] == 1
+    r2 = load_recipe(path)
+    assert r2.to_dict() == r.to_dict()
+    assert recipe_hash(r2) == recipe_hash(r) == recipe_hash(d)
+    assert r2.limits["film_thickness"] == Limit(target=500.0, tol=25.0)
+    assert r2.range_nm == (400.0, 1000.0) and r2.masks_nm == [(655.0, 657.0)]
+    # Same optics from the reloaded stack.
+    wl = np.linspace(400, 1000, 50)
+    np.testing.assert_array_equal(r.stack.RT(wl)[1], r2.stack.RT(wl)[1])
+    assert [p.name for p in tmp_path.iterdir()] == ["r.json"]     # no temp files left
+
+
+def test_hash_is_canonical_and_sensitive():
+    r = make_recipe()
+    d = r.to_dict()
+    shuffled = json.loads(json.dumps(dict(reversed(list(d.items())))))
+    assert recipe_hash(shuffled) == recipe_hash(r)
+    d["stack"]["layers"][0]["thickness"]["value"] = 481.0
+    assert recipe_hash(d) != recipe_hash(r)
+    assert len(recipe_hash(r)) == 64
+
+
+def test_new_stack_is_an_independent_copy():
+    r = make_recipe()
+    s = r.new_stack()
+    s.set_values({"film_thickness": 123.0})
+    assert r.stack.values()["film_thickness"] == 480.0
+
+
+def test_prepare_applies_range_and_masks():
+    from fitting.spectrum import Spectrum
+    wl = np.arange(300.0, 1101.0, 1.0)
+    sp = Spectrum(wl, np.full(wl.size, 0.9))
+    out = make_recipe().prepare(sp)
+    assert out.wavelength_nm[0] == 400 and out.wavelength_nm[-1] == 1000
+    assert not out.used[(out.wavelength_nm >= 655) & (out.wavelength_nm <= 657)].any()
+    assert out.used.sum() == out.wavelength_nm.size - 3
+
+
+def _bad(d, path, value):
+    d = copy.deepcopy(d)
+    node = d
+    for k in path[:-1]:
+        node = node[k]
+    node[path[-1]] = value
+    return d
+
+
+@pytest.mark.parametrize("path,value,field,match", [
+    (("version",), 7, "version", "newer"),
+    (("version",), "1", "version", "whole number"),
+    (("format",), "something-else", "format", "not a Pellucid recipe"),
+    (("stack", "layers", 0, "material", "kind"), "plasma", "stack.layers[0].material.kind",
+     "unknown model"),
+    (("stack", "layers", 0, "thickness", "value"), "thick", "stack.layers[0].thickness",
+     "not a number"),
+    (("stack", "layers", 0, "thickness", "min"), 900.0, "stack.layers[0].thickness",
+     "within its bounds"),
+    (("stack", "layers", 0, "material", "params", "A", "max"), 0.5,
+     "stack.layers[0].material.params.A", "lower bound"),
+    (("stack", "substrate", "thickness_mm"), -1, "stack.substrate.thickness_mm", "positive"),
+    (("fit", "range_nm"), [1000, 400], "fit.range_nm", "below stop"),
+    (("fit", "range_nm"), "400-1000", "fit.range_nm", r"\[start_nm, stop_nm\]"),
+    (("fit", "masks_nm"), [[500, None]], "fit.masks_nm[0]", "both ends"),
+    (("limits", "film_thickness"), {"target": 500}, "limits.film_thickness", "together"),
+    (("limits", "film_thickness"), {"target": 500, "tol": -1}, "limits.film_thickness.tol",
+     "positive"),
+    (("limits", "film_thickness"), {"min": 510, "max": 490}, "limits.film_thickness",
+     "smaller"),
+    (("limits", "film_thickness"), {"min": "low"}, "limits.film_thickness.min",
+     "finite number"),
+    (("limits", "ghost_thickness"), {"max": 5}, "limits.ghost_thickness", "no layer"),
+    (("limits", "colour"), {"max": 5}, "limits.colour", "unknown quantity"),
+    (("outputs", "plot_formats"), ["gif"], "outputs.plot_formats[0]", "unknown choice"),
+    (("outputs", "exports"), "nk", "outputs.exports", "must be a list"),
+    (("surprise",), 1, "surprise", "unknown field"),
+])
+def test_invalid_recipes_name_the_field(tmp_path, path, value, field, match):
+    d = _bad(make_recipe().to_dict(), path, value)
+    f = tmp_path / "bad.json"
+    f.write_text(json.dumps(d), encoding="utf-8")
+    with pytest.raises(RecipeError, match=match) as ei:
+        load_recipe(f)
+    assert ei.value.field == field
+    assert str(f) in str(ei.value)
+
+
+@pytest.mark.parametrize("expr", [
+    "__import__('os')",
+    "__import__('os').system('echo hacked')",
+    "film_B.__class__",
+    "(lambda: 1)()",
+    "film_B if 1 else 2",
+    "[film_B]",
+    "'text'",
+    "open('x')",
+    "film_B; film_B",
+    "film_B < 2",
+    "sqrt(film_B, 2)",
+    "True * film_B",
+])
+def test_malicious_or_non_arithmetic_ties_are_refused(expr):
+    d = make_recipe().to_dict()
+    d["stack"]["layers"][0]["material"]["params"]["A"]["expr"] = expr
+    with pytest.raises(RecipeError) as ei:
+        recipe_from_dict(d)
+    assert ei.value.field == "stack.layers[0].material.params.A.expr"
+
+
+def test_tie_naming_an_unknown_parameter_is_refused():
+    d = make_recipe().to_dict()
+    d["stack"]["layers"][1]["thickness"]["expr"] = "0.1 * flim_thickness"
+    with pytest.raises(RecipeError, match="flim_thickness.*not a parameter") as ei:
+        recipe_from_dict(d)
+    assert ei.value.field == "stack.layers[1].thickness.expr"
+
+
+def test_arithmetic_ties_are_kept():
+    d = make_recipe().to_dict()
+    expr = "0.1 * film_thickness + sqrt(abs(film_B)) ** 2 - pi / 1e3"
+    d["stack"]["layers"][1]["thickness"]["expr"] = expr
+    r = recipe_from_dict(d)
+    assert r.stack.parameters()["cap_thickness"].expr == expr
+    assert validate_expression("-(film_A)", {"film_A"}) == "-(film_A)"
+
+
+def test_version_0_is_upgraded():
+    v0 = {"format": "pellucid-recipe", "version": 0, "name": "old",
+          "stack": {"substrate": {"library": "fused_silica", "thickness_mm": 1.0},
+                    "layers": [{"name": "film", "material": {"kind": "cauchy"},
+                                "thickness_nm": 450.0, "thickness_range_nm": [100, 900],
+                                "fit_thickness": False}]},
+          "range_nm": [350, 1050]}
+    frozen = copy.deepcopy(v0)
+    d1 = upgrade(v0)
+    assert v0 == frozen                                  # input untouched
+    assert d1["version"] == 1 and d1["reader"] == {} and d1["limits"] == {}
+    r = recipe_from_dict(v0)
+    th = r.stack.layers[0].thickness
+    assert (th.value, th.min, th.max, th.vary) == (450.0, 100.0, 900.0, False)
+    assert r.range_nm == (350.0, 1050.0)
+    assert r.to_dict()["version"] == 1
+
+
+def test_load_errors_for_missing_and_broken_files(tmp_path):
+    with pytest.raises(RecipeError, match="file not found"):
+        load_recipe(tmp_path / "nope.json")
+    f = tmp_path / "broken.json"
+    f.write_text('{"format": "pellucid-recipe",\n "version": 1,,}', encoding="utf-8")
+    with pytest.raises(RecipeError, match="line 2"):
+        load_recipe(f)
+
+
+def test_limit_check():
+    assert Limit(target=500, tol=25).check(524.9) == "pass"
+    assert Limit(target=500, tol=25).check(475.0) == "pass"
+    assert Limit(target=500, tol=25).check(526) == "fail"
+    assert Limit(min=1.9).check(1.85) == "fail"
+    assert Limit(max=5).check(float("nan")) == "n/a"
+    assert Limit(max=5).check(None) == "n/a"
+
+
+def test_project_round_trip_and_change_detection(tmp_path):
+    spectra = tmp_path / "spectra"
+    spectra.mkdir()
+    a, b = spectra / "a.csv", spectra / "b.csv"
+    a.write_text("wavelength_nm,T\n500,0.9\n")
+    b.write_text("wavelength_nm,T\n500,0.8\n")
+    proj = Project(make_recipe(), name="week 12")
+    proj.add_spectrum(a)
+    proj.add_spectrum(b)
+    proj.add_spectrum(a)                                    # same path: replaced, not doubled
+    proj.results.append({"file": str(a), "status": "ok", "film_thickness": 498.7})
+    path = save_project(proj, tmp_path / "p.pellucid.json")
+    raw = json.loads(path.read_text())
+    assert raw["format"] == "pellucid-project"
+    assert sorted(s["path"] for s in raw["spectra"]) == ["spectra/a.csv", "spectra/b.csv"]
+    back = load_project(path)
+    assert back.recipe.to_dict() == proj.recipe.to_dict()
+    assert {r.path for r in back.spectra} == {a.resolve(), b.resolve()}
+    assert back.results == proj.results and back.check_spectra() == []
+    b.write_text("wavelength_nm,T\n500,0.7\n")
+    a.unlink()
+    problems = back.check_spectra()
+    assert len(problems) == 2
+    assert any("not found" in p for p in problems) and any("changed" in p for p in problems)
+
+
+def test_project_errors_name_the_field(tmp_path):
+    d = Project(make_recipe()).to_dict()
+    d["recipe"]["stack"]["layers"][0]["material"]["kind"] = "plasma"
+    f = tmp_path / "p.json"
+    f.write_text(json.dumps(d))
+    with pytest.raises(RecipeError) as ei:
+        load_project(f)
+    assert ei.value.field == "recipe.stack.layers[0].material.kind"
+    d = Project(make_recipe()).to_dict()
+    d["spectra"] = [{"path": "x.csv", "sha256": "zz"}]
+    f.write_text(json.dumps(d))
+    with pytest.raises(RecipeError, match="hex") as ei:
+        load_project(f)
+    assert ei.value.field == "spectra[0].sha256"
