@@ -115,7 +115,20 @@ class Dispersion(_HasParams):
         """
         wl = check_wavelengths(wavelength_nm)
         self.check_range(wl)
-        return self.N_unchecked(wl, self._merged(values))
+        v = self._merged(values)
+        # A pole on a requested wavelength (undamped Lorentz at E0, Sellmeier at
+        # λ² = C) gives inf/NaN: say so instead of passing NaN on to a fit.
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            N = self.N_unchecked(wl, v)
+        bad = ~np.isfinite(N)
+        if np.any(bad):
+            at = float(np.atleast_1d(wl)[np.atleast_1d(bad)][0])
+            raise ParameterError(
+                self.describe(), v,
+                f"these parameters give a non-finite refractive index at {at:g} nm "
+                f"(a resonance without damping sits on a requested wavelength); move the "
+                f"resonance, add broadening or leave that wavelength out")
+        return N
 
     def N_unchecked(self, wl: np.ndarray, v: Mapping[str, float]) -> np.ndarray:
         """:meth:`N` without input checks, for the fit engine's inner loop."""
@@ -288,6 +301,10 @@ class Term(_HasParams):
     def chi(self, E: np.ndarray, v: Mapping[str, float]) -> np.ndarray:  # pragma: no cover
         raise NotImplementedError
 
+    @staticmethod
+    def check(v: Mapping[str, float]) -> None:
+        """Raise :class:`ParameterError` for parameter sets outside the term's domain."""
+
     def to_dict(self) -> dict:
         return {"kind": self.kind, "params": {k: p.to_dict() for k, p in self.params.items()}}
 
@@ -371,6 +388,13 @@ class TaucLorentz(Term):
             _spec("C", 1.5, 0.01, 20.0, "eV", "broadening"),
             _spec("Eg", 3.0, 0.1, 10.0, "eV", "Tauc optical gap"),
         ], {"A": A, "E0": E0, "C": C, "Eg": Eg, **values})
+        self.check(self.values())
+
+    @staticmethod
+    def check(v: Mapping[str, float]) -> None:
+        """Refuse parameter sets outside the model's domain (C < 2·E0)."""
+        if not v["C"] < 2 * v["E0"]:
+            raise ParameterError("C", v["C"], f"Tauc-Lorentz needs C < 2·E0 = {2 * v['E0']:g} eV")
 
     def chi(self, E, v):
         return tauc_lorentz_chi(E, v["A"], v["E0"], v["C"], v["Eg"])
@@ -434,8 +458,21 @@ class Oscillators(Dispersion):
         eps = np.full(wl.shape, v["eps_inf"], dtype=complex)
         for i, t in enumerate(self.terms, start=1):
             pre = f"o{i}_"
-            eps = eps + t.chi(E, {k: v[pre + k] for k in t.params})
+            try:
+                eps = eps + t.chi(E, {k: v[pre + k] for k in t.params})
+            except ParameterError as e:  # name the parameter as the user sees it
+                raise ParameterError(pre + e.name, e.value, e.reason) from None
         return eps
+
+    def check_params(self, values: Mapping[str, float] | None = None) -> None:
+        """Raise :class:`ParameterError` if a term's parameters are outside its domain."""
+        v = self._merged(values)
+        for i, t in enumerate(self.terms, start=1):
+            pre = f"o{i}_"
+            try:
+                t.check({k: v[pre + k] for k in t.params})
+            except ParameterError as e:
+                raise ParameterError(pre + e.name, e.value, e.reason) from None
 
     def components(self, wavelength_nm, values=None) -> list[np.ndarray]:
         """Each term's χ(λ), for plotting the parts of a fitted model."""
@@ -640,4 +677,9 @@ def model_from_dict(d: Mapping, *, where: str = "model") -> Dispersion:
     except ParameterError as e:
         raise RecipeError(f"{where}.{e.name}", e.reason) from None
     _apply_saved_params(m, d.get("params", {}), where)
+    if isinstance(m, Oscillators):
+        try:
+            m.check_params()
+        except ParameterError as e:
+            raise RecipeError(f"{where}.params.{e.name}", e.reason) from None
     return m
