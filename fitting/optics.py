@@ -29,10 +29,12 @@ References
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 __all__ = ["cos_theta", "interface_rt", "coherent_rt", "power_t_factor", "substrate_RT",
-           "stack_RT"]
+           "stack_RT", "OuterMedia", "outer_media", "films_RT"]
 
 # exp(-2·Im δ) below e^-70 is zero at double precision for our purposes; capping
 # keeps exp() of opaque layers from underflowing into 0/0.
@@ -159,24 +161,166 @@ def stack_RT(wavelength_nm, N_ambient, N_films, d_films_nm, N_sub, sub_d_nm, N_e
     Returns
     -------
     R, T : ndarray of float, shape (W,)
+
+    Notes
+    -----
+    The same as ``films_RT(outer_media(...), N_films, d_films_nm)``; callers
+    that evaluate one geometry many times (fits) should bind
+    :func:`outer_media` once and call :func:`films_RT`.
     """
+    outer = outer_media(wavelength_nm, N_ambient, N_sub, sub_d_nm, N_exit,
+                        angle_rad=angle_rad, polarization=polarization)
+    return films_RT(outer, N_films, d_films_nm)
+
+
+# -- the fast path: fixed outer media bound once, films evaluated per call -------------------
+
+def _abs2(z):
+    """|z|² in real arithmetic (no square root, unlike abs(z)**2)."""
+    return np.square(z.real) + np.square(z.imag)
+
+
+@dataclass(frozen=True, eq=False)
+class OuterMedia:
+    """Ambient, substrate and exit medium on one grid: the part of a stack a fit never changes.
+
+    Built by :func:`outer_media`. Arrays carry a leading polarisation axis P
+    (1 for "s" or "p", 2 for unpolarised light at oblique incidence: s, p).
+    Admittances are Y = N cos θ (s) and Y = cos θ / N (p), so that every
+    interface has r = (Y_i - Y_f)/(Y_i + Y_f) and t-factor 1 + r in both
+    polarisations (Macleod 2010, sec. 2.4; the p form is Byrnes' r_p divided
+    by N_i N_f, its t_p is (1 + r) N_i/N_f, whose product telescopes to N_0/N_s).
+    """
+
+    ik2: np.ndarray          # (W,) 2i·2π/λ: i·2δ = ik2 · d · N cos θ
+    normal: bool             # normal incidence: cos θ = 1 in every medium
+    inv2: np.ndarray | float  # (n0 sin θ0)², 0.0 at normal incidence
+    pols: tuple
+    Y_amb: np.ndarray        # (P, W) complex
+    Y_sub: np.ndarray        # (P, W) complex
+    t_scale: np.ndarray      # (P, W) T_f = t_scale · Π|1 + r_i|² · Π|e^{2iδ}| / |Π den|²
+    back: tuple | None       # (R_b τ², g R_b τ², τ T_b), each (P, W); None: semi-infinite
+
+
+def outer_media(wavelength_nm, N_ambient, N_sub, sub_d_nm, N_exit, *, angle_rad: float = 0.0,
+                polarization: str = "u") -> OuterMedia:
+    """Precompute everything about ambient, substrate and exit medium for :func:`films_RT`.
+
+    Arguments as in :func:`stack_RT`. The substrate terms of the incoherent sum
+    (R_b, T_b, τ) are fixed here, and so is the ratio g = T_f'/T_f of the film
+    stack's transmittances seen from the substrate and from the ambient. By
+    reciprocity the amplitude ratio is t'/t = det M = N_s cos θ_s/(N_0 cos θ_0)
+    for any film stack, absorbing or not (the 2x2 interface matrices have
+    determinant Y_f/Y_i, the phase matrices 1; Born & Wolf 1999, sec. 1.6), so
+    g depends on the outer media only and the reverse transmittance needs no
+    second pass through the films.
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
     if polarization == "u" and angle_rad == 0.0:
         polarization = "s"  # identical powers at normal incidence
-    if polarization == "u":
-        Rs, Ts = stack_RT(wavelength_nm, N_ambient, N_films, d_films_nm, N_sub, sub_d_nm,
-                          N_exit, angle_rad=angle_rad, polarization="s")
-        Rp, Tp = stack_RT(wavelength_nm, N_ambient, N_films, d_films_nm, N_sub, sub_d_nm,
-                          N_exit, angle_rad=angle_rad, polarization="p")
-        return (Rs + Rp) / 2, (Ts + Tp) / 2
-    inv = (N_ambient * np.sin(angle_rad)).real if angle_rad else 0.0
-    media = [N_ambient, *N_films]
-    c_front = [cos_theta(N, inv) for N in media]
-    c_sub = cos_theta(N_sub, inv)
-    if sub_d_nm is None or not np.isfinite(sub_d_nm):
-        r, t = coherent_rt(polarization, media + [N_sub], c_front + [c_sub], d_films_nm,
-                           wavelength_nm)
-        T = np.abs(t) ** 2 * power_t_factor(polarization, N_ambient, N_sub, c_front[0], c_sub)
-        return np.abs(r) ** 2, T
-    c_exit = cos_theta(N_exit, inv)
-    return substrate_RT(polarization, media, c_front, d_films_nm, N_sub, c_sub, sub_d_nm,
-                        N_exit, c_exit, wavelength_nm)
+    pols = ("s", "p") if polarization == "u" else (polarization,)
+    N0, Ns, Ne = (np.broadcast_to(np.asarray(N, dtype=complex), wl.shape)
+                  for N in (N_ambient, N_sub, N_exit))
+    inv = (N0 * np.sin(angle_rad)).real if angle_rad else 0.0
+    c0, cs = cos_theta(N0, inv), cos_theta(Ns, inv)
+    finite = sub_d_nm is not None and bool(np.isfinite(sub_d_nm))
+    Y_amb, Y_sub, t_scale, back = [], [], [], []
+    for pol in pols:
+        Y_amb.append(N0 * c0 if pol == "s" else c0 / N0)
+        Y_sub.append(Ns * cs if pol == "s" else cs / Ns)
+        pf = power_t_factor(pol, N0, Ns, c0, cs)
+        t_scale.append(pf if pol == "s" else pf * _abs2(N0 / Ns))
+        if finite:
+            ce = cos_theta(Ne, inv)
+            rb, tb = interface_rt(pol, Ns, Ne, cs, ce)
+            Rb = _abs2(rb)
+            Tb = _abs2(tb) * power_t_factor(pol, Ns, Ne, cs, ce)
+            tau = np.exp(-4 * np.pi * sub_d_nm * (Ns * cs).imag / wl)
+            g = _abs2(Ns * cs / (N0 * c0)) * power_t_factor(pol, Ns, N0, cs, c0) / pf
+            back.append((Rb * tau * tau, g * Rb * tau * tau, tau * Tb))
+    return OuterMedia(
+        ik2=4j * np.pi / wl, normal=not angle_rad, inv2=inv * inv, pols=pols,
+        Y_amb=np.array(Y_amb), Y_sub=np.array(Y_sub), t_scale=np.array(t_scale),
+        back=tuple(np.array(x) for x in zip(*back)) if finite else None)
+
+
+def films_RT(outer: OuterMedia, N_films, d_films_nm):
+    """R and T of coherent films between the bound outer media (see :func:`stack_RT`).
+
+    Parameters
+    ----------
+    outer : OuterMedia
+        From :func:`outer_media` on the same grid.
+    N_films : sequence of ndarray of complex, shape (W,)
+        Film indices, ambient side first; κ >= 0.
+    d_films_nm : sequence of float or ndarray broadcasting against (W,)
+
+    Returns
+    -------
+    R, T : ndarray of float, shape (W,)
+
+    Notes
+    -----
+    All interfaces and phase factors are computed at once over (layer,
+    wavelength); only the Airy recursion itself runs layer by layer, twice:
+    from the substrate towards the ambient for r and t, and the other way for
+    the reflectance r' seen from inside the substrate. The incoherent sum is
+    Harbecke's (1986): T = T_f τ T_b/(1 - R_f' R_b τ²) and
+    R = R_f + T_f T_f' R_b τ²/(1 - R_f' R_b τ²), with T_f' = g T_f.
+    """
+    L = len(N_films)
+    if L:
+        N = np.array(N_films, dtype=complex)                  # (L, W)
+        if outer.normal:
+            q = N                                              # cos θ = 1
+            Yf = [N if pol == "s" else 1 / N for pol in outer.pols]
+        else:
+            N2 = N * N
+            # N cos θ = sqrt(N² - n0² sin² θ0); numpy's principal root has
+            # Im >= 0 for κ >= 0, the forward (decaying) branch of cos_theta.
+            q = np.sqrt(N2 - outer.inv2)
+            Yf = [q if pol == "s" else q / N2 for pol in outer.pols]
+        Y = np.concatenate([outer.Y_amb[:, None], np.array(Yf), outer.Y_sub[:, None]], axis=1)
+        try:
+            d = np.array(d_films_nm, dtype=float).reshape(L, -1)
+        except ValueError:  # a mix of scalars and arrays
+            d = np.array([np.broadcast_to(np.asarray(x, float), outer.ik2.shape)
+                          for x in d_films_nm])
+        arg = (outer.ik2 * d) * q                              # i·2δ, (L, W)
+        # Opaque layers: cap the single-pass loss at e^-70 so nothing underflows to 0/0.
+        np.maximum(arg.real, -2 * _MAX_IM_PHASE, out=arg.real)
+        E2 = np.exp(arg)
+        loss = np.exp(arg.real.sum(axis=0))                    # Π |e^{2iδ}|
+    else:
+        Y = np.stack([outer.Y_amb, outer.Y_sub], axis=1)
+    a, b = Y[:, :-1], Y[:, 1:]
+    r_if = (a - b) / (a + b)                                   # (P, L+1, W)
+    t2 = _abs2(1 + r_if).prod(axis=1)
+
+    r, D = r_if[:, L], None
+    for k in range(L - 1, -1, -1):
+        x = r * E2[k]
+        den = 1 + r_if[:, k] * x
+        r = (r_if[:, k] + x) / den
+        D = den if D is None else D * den
+    Rf = _abs2(r)
+    Tf = outer.t_scale * t2
+    if L:
+        Tf = Tf * loss / _abs2(D)
+
+    if outer.back is None:
+        R, T = Rf, Tf
+    else:
+        # From the substrate side the interfaces change sign: r_{f,i} = -r_{i,f}.
+        # Carrying s = -r' keeps the same step, and |r'| = |s|.
+        s = r_if[:, 0]
+        for k in range(L):
+            x = s * E2[k]
+            s = (r_if[:, k + 1] + x) / (1 + r_if[:, k + 1] * x)
+        Rb_tau2, gRb_tau2, tau_Tb = outer.back
+        den = 1 - _abs2(s) * Rb_tau2
+        T = Tf * tau_Tb / den
+        R = Rf + Tf * Tf * gRb_tau2 / den
+    if len(outer.pols) == 2:
+        return (R[0] + R[1]) / 2, (T[0] + T[1]) / 2
+    return R[0], T[0]

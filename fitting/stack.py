@@ -32,7 +32,7 @@ import numpy as np
 
 from .dispersion import Constant, Dispersion, check_wavelengths, model_from_dict
 from .errors import ParameterError, RecipeError
-from .optics import stack_RT
+from .optics import films_RT, outer_media
 from .params import Param, check_finite
 from .substrates import Substrate
 
@@ -281,6 +281,9 @@ class StackModel:
         self._N_exit = stack.exit_medium.N(self._wl)
         self._N_sub = stack.substrate.N(self._wl)
         self._sub_d = stack.substrate.thickness_nm
+        # Ambient, substrate and back side never change during a fit: bind them once.
+        self._outer = outer_media(self._wl, self._N_amb, self._N_sub, self._sub_d, self._N_exit,
+                                  angle_rad=self.angle_rad, polarization=polarization)
         self._names = [(layer, f"{layer.name}_", f"{layer.name}_thickness",
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
@@ -340,8 +343,7 @@ class StackModel:
         return R, T
 
     def _rt(self, Ns, ds):
-        return stack_RT(self._wl, self._N_amb, Ns, ds, self._N_sub, self._sub_d, self._N_exit,
-                        angle_rad=self.angle_rad, polarization=self.polarization)
+        return films_RT(self._outer, Ns, ds)
 
     def N_layers(self, values: Mapping[str, float] | None = None) -> list[np.ndarray]:
         """Each film's N on the bound grid (no bandwidth nodes)."""
