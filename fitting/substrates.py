@@ -182,6 +182,6 @@ class Substrate:
 def library_substrate(key: str, thickness_mm: float = 1.0, **kw) -> Substrate:
     """A substrate from :data:`SUBSTRATE_LIBRARY` by key, e.g. ``"fused_silica"``."""
     if key not in SUBSTRATE_LIBRARY:
-        raise ParameterError("substrate", key,
+        raise ParameterError("substrate library", key,
                              f"not in the library; choose one of {', '.join(SUBSTRATE_LIBRARY)}")
     return Substrate(SUBSTRATE_LIBRARY[key](), thickness_mm, library=key, **kw)
