@@ -1,0 +1,1594 @@
+"""Reading and writing spectra stored as delimited text tables.
+
+Spectrometer exports differ in everything but content: the column separator
+(comma, semicolon, tab, spaces), the decimal mark (``450.5`` or ``450,5``),
+thousands separators, text encodings (UTF-8, UTF-16, Latin-1), header and
+metadata blocks, abscissa units (nm, µm, Å, cm⁻¹, eV), the ordinate (T or R,
+fraction or percent, absorbance), sort order and the odd blank or broken row.
+This module finds all of that out from the file, says what it found
+(:func:`sniff`, :func:`preview`) and returns one normalised
+:class:`~fitting.spectrum.Spectrum`: ascending wavelengths in nm and values as
+a fraction. Everything it decides can be overridden with :class:`ReaderOptions`,
+which recipes store as JSON.
+
+Unreadable input raises :class:`~fitting.errors.SpectrumFormatError` naming the
+file, the line, what was expected and what was found; problems that do not stop
+reading (dropped rows, values above 100 % ...) go into ``Spectrum.warnings``.
+
+Parsing is two-stage: the dialect is sniffed from the first lines in Python,
+then the data block is parsed in one vectorised call (:func:`numpy.loadtxt`).
+Only files the fast path refuses (missing values, comments or quotes inside the
+data, thousands separators) take the exact line-by-line path, which is also the
+one that reports errors.
+"""
+
+from __future__ import annotations
+
+import codecs
+import csv
+import hashlib
+import io
+import math
+import os
+import re
+import tempfile
+import time
+import unicodedata
+import warnings as _warnings
+from dataclasses import asdict, dataclass, fields, replace
+from pathlib import Path
+
+import numpy as np
+
+from .errors import ParameterError, RecipeError, SpectrumFormatError
+from .reference import MIN_POINTS, estimate_noise
+from .spectrum import Spectrum
+
+__all__ = [
+    "Dialect", "Preview", "ReaderOptions", "read_spectrum", "parse_spectrum", "sniff",
+    "preview", "write_spectrum", "to_nm", "from_nm", "bench_read",
+    "HC_EV_NM", "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
+]
+
+#: h c / e in eV nm, from the exact SI values of h, c and e (CODATA 2018):
+#: E[eV] = HC_EV_NM / wavelength[nm] = 1239.841984... / wavelength[nm].
+HC_EV_NM = 6.62607015e-34 * 299792458.0 / 1.602176634e-19 * 1e9
+
+#: Abscissa units understood everywhere ("um" is µm, "A" is Å).
+X_UNITS = ("nm", "um", "A", "cm-1", "eV")
+#: Ordinate kinds. "counts" is a raw detector signal, kept as read, for
+#: :func:`~fitting.reference.reference_correct`.
+Y_KINDS = ("T_fraction", "T_percent", "absorbance", "R_fraction", "R_percent", "counts")
+#: Column separators; " " means any run of spaces or tabs.
+DELIMITERS = ("\t", ";", ",", " ")
+DECIMALS = (".", ",")
+ENCODINGS = ("utf-8", "utf-8-sig", "utf-16-le", "utf-16-be", "latin-1", "cp1252")
+#: How metadata lines look: "Key: value", "Key=value", "# Key: value",
+#: "Key<delimiter>value", or no metadata block at all.
+METADATA_STYLES = ("colon", "equals", "comment", "delimited", "none")
+X_ORDERS = ("ascending", "descending", "unsorted")
+NEWLINES = ("\n", "\r\n", "\r")
+
+_DELIMITER_NAMES = {"\t": "tab", ";": "';'", ",": "','", " ": "spaces"}
+_DELIMITER_ALIASES = {"tab": "\t", "\\t": "\t", "semicolon": ";", "comma": ",",
+                      "space": " ", "spaces": " ", "whitespace": " "}
+_ENCODING_ALIASES = {"utf8": "utf-8", "utf-8": "utf-8", "utf-8-sig": "utf-8-sig",
+                     "utf-16-le": "utf-16-le", "utf-16le": "utf-16-le",
+                     "utf-16-be": "utf-16-be", "utf-16be": "utf-16-be",
+                     "latin-1": "latin-1", "latin1": "latin-1", "iso-8859-1": "latin-1",
+                     "cp1252": "cp1252", "windows-1252": "cp1252"}
+
+#: Lines scanned to sniff the dialect; grown if the header is longer.
+_SNIFF_LINES = 400
+#: A line this long is not a row of a spectrum table.
+_MAX_LINE = 100_000
+
+
+# --------------------------------------------------------------------------- units
+
+def to_nm(x, unit: str) -> np.ndarray:
+    """Convert abscissa values in ``unit`` (one of :data:`X_UNITS`) to wavelength in nm.
+
+    Wavenumber: lambda[nm] = 1e7 / nu[cm^-1]; photon energy:
+    lambda[nm] = HC_EV_NM / E[eV] (CODATA 2018). Vacuum wavelengths throughout.
+    """
+    x = np.asarray(x, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if unit == "nm":
+            return x.copy()
+        if unit == "um":
+            return x * 1e3
+        if unit == "A":
+            return x * 0.1
+        if unit == "cm-1":
+            return 1e7 / x
+        if unit == "eV":
+            return HC_EV_NM / x
+    raise ParameterError("x_unit", unit, f"must be one of {X_UNITS}")
+
+
+def from_nm(wavelength_nm, unit: str) -> np.ndarray:
+    """Inverse of :func:`to_nm`: wavelength in nm to abscissa values in ``unit``."""
+    wl = np.asarray(wavelength_nm, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if unit == "nm":
+            return wl.copy()
+        if unit == "um":
+            return wl * 1e-3
+        if unit == "A":
+            return wl * 10.0
+        if unit == "cm-1":
+            return 1e7 / wl
+        if unit == "eV":
+            return HC_EV_NM / wl
+    raise ParameterError("x_unit", unit, f"must be one of {X_UNITS}")
+
+
+def _to_fraction(y: np.ndarray, kind: str) -> np.ndarray:
+    with np.errstate(over="ignore", invalid="ignore"):
+        if kind in ("T_percent", "R_percent"):
+            return y / 100.0
+        if kind == "absorbance":        # A = -log10(T)
+            return np.power(10.0, -y)
+    return y.copy()
+
+
+def _from_fraction(v: np.ndarray, kind: str) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if kind in ("T_percent", "R_percent"):
+            return v * 100.0
+        if kind == "absorbance":
+            return -np.log10(v)
+    return v.copy()
+
+
+def _norm_text(s: str) -> str:
+    """Lower-case, compatibility-normalised text (µ -> μ, Å sign -> Å, ⁻¹ -> -1)."""
+    s = unicodedata.normalize("NFKC", s).lower()
+    return s.replace("\u2212", "-").replace("\u2011", "-").replace("\u2010", "-").strip()
+
+
+_UNIT_WORDS = {
+    "nm": "nm", "nanometer": "nm", "nanometers": "nm", "nanometre": "nm", "nanometres": "nm",
+    "μm": "um", "um": "um", "micron": "um", "microns": "um", "micrometer": "um",
+    "micrometers": "um", "micrometre": "um", "micrometres": "um", "mum": "um",
+    "å": "A", "angstrom": "A", "angstroms": "A", "ångström": "A", "ångströms": "A",
+    "angstroem": "A",
+    "cm-1": "cm-1", "1/cm": "cm-1", "/cm": "cm-1", "wavenumber": "cm-1", "wavenumbers": "cm-1",
+    "ev": "eV", "electronvolt": "eV", "electronvolts": "eV", "electron volt": "eV",
+    "electron volts": "eV",
+}
+_CM1 = re.compile(r"cm\s*(\^|\*\*)?\s*\(?\s*-\s*1\s*\)?", re.ASCII)
+_BRACKETED = re.compile(r"[(\[{]([^)\]}]*)[)\]}]")
+_X_NAME_WORDS = ("wavelength", "wave length", "lambda", "λ", "wavenumber", "wave number",
+                 "energy", "photon energy")
+
+
+def _unit_word(s: str) -> str | None:
+    s = _CM1.sub("cm-1", _norm_text(s)).strip(" .")
+    return _UNIT_WORDS.get(s)
+
+
+def _abscissa_label(label: str) -> tuple[bool, str | None]:
+    """(looks like an abscissa, unit or None) for a column name or metadata value."""
+    s = _CM1.sub("cm-1", _norm_text(label))
+    if not s:
+        return False, None
+    name = _BRACKETED.sub(" ", s).strip()
+    parts = [m.group(1) for m in _BRACKETED.finditer(s)]
+    if "/" in name:                      # "Energy/eV", "lambda / nm" (but not "1/cm")
+        head, _, tail = name.rpartition("/")
+        if head.strip() and head.strip() not in ("1", ""):
+            parts.append(tail)
+            name = head.strip()
+    m = re.search(r"\bin\s+(\S+)$", name)
+    if m:                                # "wavelength in nm"
+        parts.append(m.group(1))
+        name = name[:m.start()].strip()
+    named = name in ("x", "wl", "lam") or any(w in name for w in _X_NAME_WORDS)
+    unit = None
+    for part in parts:
+        unit = _unit_word(part)
+        if unit is None and part.strip() == "a" and named:
+            unit = "A"                   # "Wavelength (A)": Å, only beside a wavelength name
+        if unit:
+            break
+    if unit is None:
+        unit = _unit_word(name)          # bare "nm", "NANOMETERS", "1/CM"
+        if unit is not None:
+            return True, unit
+    if unit is None and named:
+        if "wavenumber" in name or "wave number" in name:
+            unit = "cm-1"
+        elif "energy" in name:
+            unit = "eV"
+    return named or unit is not None, unit
+
+
+_T_WORDS = {"t", "tr", "trans", "transmittance", "transmission", "transmittances",
+            "transmissivity", "transmittivity", "tt"}
+_R_WORDS = {"r", "refl", "reflectance", "reflection", "reflectivity", "reflectances", "rr"}
+_A_WORDS = {"a", "abs", "absorbance", "od", "absorbances", "extinction"}
+_COUNT_WORDS = {"counts", "count", "signal", "intensity", "cts", "raw", "adu"}
+
+
+def _ordinate_label(label: str) -> tuple[str, str | None] | None:
+    """Ordinate kind a column name or metadata value states, or None.
+
+    Returns ``(what, scale)`` with ``what`` in {"T", "R", "absorbance", "counts"}
+    and ``scale`` "percent", "fraction" or None (not stated).
+    """
+    s = _norm_text(label)
+    if not s:
+        return None
+    percent = "%" in s or "percent" in s
+    words = re.findall(r"[a-z]+", s.replace("a.u.", " "), re.ASCII)
+    bare = re.findall(r"[a-z]+", _BRACKETED.sub(" ", s).replace("a.u.", " "), re.ASCII)
+    scale = "percent" if percent else ("fraction" if "fraction" in words else None)
+    if "optical density" in s or any(w in _A_WORDS - {"a"} for w in bare) or bare == ["a"]:
+        return "absorbance", None
+    if any(w in _R_WORDS for w in bare):
+        return "R", scale
+    if any(w in _T_WORDS for w in bare):
+        return "T", scale
+    if any(w in _COUNT_WORDS for w in words):
+        return "counts", None
+    if bare == [] and percent:           # a bare "%" column
+        return "T", "percent"
+    return None
+
+
+def _kind_from(what: str, scale: str | None) -> str | None:
+    if what in ("absorbance", "counts"):
+        return what
+    if scale is None:
+        return None
+    return f"{what}_{'percent' if scale == 'percent' else 'fraction'}"
+
+
+# --------------------------------------------------------------------------- dialect
+
+@dataclass(frozen=True)
+class Dialect:
+    """How a spectrum table is laid out in a text file.
+
+    :func:`sniff` reports the dialect of a file; :func:`write_spectrum` writes
+    one. The fields above ``header_lines`` describe the format and are used by
+    both; ``header_lines`` and below are what sniffing found in one file and are
+    ignored when writing.
+
+    Parameters
+    ----------
+    delimiter : {"\\t", ";", ",", " "}
+        Column separator; " " means any run of spaces or tabs.
+    decimal : {".", ","}
+        Decimal mark.
+    thousands : {"", ",", "."}
+        Thousands separator ("" for none); the one that is not the decimal mark.
+    encoding : str
+        One of :data:`ENCODINGS`. UTF-16 files carry a byte-order mark.
+    newline : {"\\n", "\\r\\n", "\\r"}
+    x_unit : str
+        Abscissa unit, one of :data:`X_UNITS`.
+    y_kind : str
+        Ordinate, one of :data:`Y_KINDS`.
+    columns : tuple of str or None
+        Column names on the header line; ``()`` for a file without one. When
+        writing, ``None`` writes names made from the units, e.g.
+        ``("Wavelength (nm)", "T (%)")``.
+    metadata_style : str
+        One of :data:`METADATA_STYLES`.
+    x_order : {"ascending", "descending", "unsorted"}
+        Order of the abscissa column as stored in the file.
+    header_lines : int
+        Lines before the first data row.
+    n_columns : int
+        Columns in the data rows.
+    x_column, y_column : int
+        0-based columns read as abscissa and ordinate.
+    x_unit_from, y_kind_from : str
+        Where the unit and kind came from: "header" (column name), "metadata",
+        "values" (inferred from the numbers) or "option" (given by the user).
+    n_rows : int
+        Data rows read (before dropping rows without a number).
+    """
+
+    delimiter: str = "\t"
+    decimal: str = "."
+    thousands: str = ""
+    encoding: str = "utf-8"
+    newline: str = "\n"
+    x_unit: str = "nm"
+    y_kind: str = "T_percent"
+    columns: tuple | None = None
+    metadata_style: str = "colon"
+    x_order: str = "ascending"
+    header_lines: int = 0
+    n_columns: int = 2
+    x_column: int = 0
+    y_column: int = 1
+    x_unit_from: str = ""
+    y_kind_from: str = ""
+    n_rows: int = 0
+
+    def __post_init__(self):
+        def check(name, allowed):
+            value = getattr(self, name)
+            if value not in allowed:
+                raise ParameterError(f"dialect.{name}", value, f"must be one of {allowed}")
+        check("delimiter", DELIMITERS)
+        check("decimal", DECIMALS)
+        check("thousands", ("", ",", "."))
+        check("encoding", ENCODINGS)
+        check("newline", NEWLINES)
+        check("x_unit", X_UNITS)
+        check("y_kind", Y_KINDS)
+        check("metadata_style", METADATA_STYLES)
+        check("x_order", X_ORDERS)
+        if self.decimal == self.delimiter:
+            raise ParameterError("dialect.decimal", self.decimal,
+                                 "cannot also be the column delimiter")
+        if self.thousands == self.decimal:
+            raise ParameterError("dialect.thousands", self.thousands,
+                                 "cannot also be the decimal mark")
+        if self.columns is not None:
+            object.__setattr__(self, "columns", tuple(str(c) for c in self.columns))
+
+    def to_dict(self) -> dict:
+        """Plain, JSON-ready dict of all fields."""
+        d = asdict(self)
+        d["columns"] = None if self.columns is None else list(self.columns)
+        return d
+
+    def describe(self) -> str:
+        """One line a technician can read, e.g. for an import preview."""
+        thou = f", thousands {self.thousands!r}" if self.thousands else ""
+        return (f"columns separated by {_DELIMITER_NAMES[self.delimiter]}, decimal "
+                f"{self.decimal!r}{thou}, {self.encoding}; abscissa column {self.x_column} in "
+                f"{self.x_unit} ({self.x_unit_from or 'given'}), ordinate column "
+                f"{self.y_column} as {self.y_kind} ({self.y_kind_from or 'given'}); "
+                f"data from line {self.header_lines + 1}, {self.n_rows} rows")
+
+
+@dataclass(frozen=True)
+class Preview:
+    """The first lines of a file and what the reader makes of them.
+
+    ``dialect`` is None when the file cannot be read as it stands; ``problem``
+    then says why, so an import dialog can show the lines next to the message
+    and let the user set :class:`ReaderOptions`.
+    """
+
+    path: str
+    lines: tuple
+    dialect: Dialect | None
+    problem: str = ""
+
+
+# --------------------------------------------------------------------------- options
+
+_Y_KIND_ALIASES = {"auto": "auto", "t": "T_fraction", "t_fraction": "T_fraction",
+                   "t_percent": "T_percent", "%t": "T_percent", "absorbance": "absorbance",
+                   "a": "absorbance", "r": "R_fraction", "r_fraction": "R_fraction",
+                   "r_percent": "R_percent", "%r": "R_percent", "counts": "counts"}
+
+
+@dataclass(frozen=True)
+class ReaderOptions:
+    """Everything the reader would otherwise detect, plus range, mask and noise.
+
+    Every field defaults to automatic detection; recipes save the options with
+    :meth:`to_dict` and load them with :meth:`from_dict`.
+
+    Parameters
+    ----------
+    x_column, y_column : int, str or None
+        Abscissa and ordinate column, by 0-based index or by header name
+        (case-insensitive); None detects them.
+    x_unit : str
+        "auto" or one of :data:`X_UNITS` (aliases such as "µm", "Å", "1/cm" are
+        accepted and stored in canonical form).
+    y_kind : str
+        "auto" or one of :data:`Y_KINDS`.
+    delimiter : str
+        "auto" or one of :data:`DELIMITERS` (or "tab", "semicolon", "comma",
+        "whitespace").
+    decimal : str
+        "auto", "." or ",".
+    encoding : str
+        "auto" or one of :data:`ENCODINGS`.
+    range_nm : (float, float) or None
+        Keep only ``lo <= wavelength <= hi`` (nm).
+    mask_windows_nm : tuple of (float, float)
+        Wavelength windows (nm) excluded from fits, e.g. a detector change-over.
+    sigma : None, "estimate" or float
+        Noise of each point: none, estimated with
+        :func:`~fitting.reference.estimate_noise`, or one value for all points
+        as a fraction (0.002 = 0.2 %T).
+    name : str
+        Display name; defaults to the file stem.
+    """
+
+    x_column: int | str | None = None
+    y_column: int | str | None = None
+    x_unit: str = "auto"
+    y_kind: str = "auto"
+    delimiter: str = "auto"
+    decimal: str = "auto"
+    encoding: str = "auto"
+    range_nm: tuple | None = None
+    mask_windows_nm: tuple = ()
+    sigma: float | str | None = None
+    name: str = ""
+
+    def __post_init__(self):
+        set_ = lambda k, v: object.__setattr__(self, k, v)  # noqa: E731
+        for key in ("x_column", "y_column"):
+            v = getattr(self, key)
+            if isinstance(v, bool) or not (v is None or isinstance(v, (int, str))):
+                raise RecipeError(key, f"must be a column index, a column name or None, "
+                                       f"got {v!r}")
+            if isinstance(v, int) and v < 0:
+                raise RecipeError(key, f"column index must be 0 or more, got {v}")
+            if isinstance(v, str) and not v.strip():
+                raise RecipeError(key, "column name is empty")
+        if (self.x_column is not None and self.x_column == self.y_column):
+            raise RecipeError("y_column", f"is the same column as x_column ({self.x_column!r})")
+        if not isinstance(self.x_unit, str):
+            raise RecipeError("x_unit", f"must be a string, got {self.x_unit!r}")
+        if self.x_unit != "auto":
+            unit = self.x_unit if self.x_unit in X_UNITS else _unit_word(self.x_unit)
+            if unit is None:
+                raise RecipeError("x_unit", f"unknown unit {self.x_unit!r}; use 'auto' or one "
+                                            f"of {X_UNITS}")
+            set_("x_unit", unit)
+        kind = self.y_kind if self.y_kind in Y_KINDS else \
+            _Y_KIND_ALIASES.get(str(self.y_kind).lower())
+        if kind is None:
+            raise RecipeError("y_kind", f"unknown ordinate {self.y_kind!r}; use 'auto' or one "
+                                        f"of {Y_KINDS}")
+        set_("y_kind", kind)
+        delim = _DELIMITER_ALIASES.get(self.delimiter, self.delimiter) \
+            if isinstance(self.delimiter, str) else self.delimiter
+        if delim != "auto" and delim not in DELIMITERS:
+            raise RecipeError("delimiter", f"must be 'auto', 'tab', ';', ',' or 'whitespace', "
+                                           f"got {self.delimiter!r}")
+        set_("delimiter", delim)
+        if self.decimal not in ("auto", *DECIMALS):
+            raise RecipeError("decimal", f"must be 'auto', '.' or ',', got {self.decimal!r}")
+        if self.decimal != "auto" and self.decimal == self.delimiter:
+            raise RecipeError("decimal", f"{self.decimal!r} cannot be both decimal mark and "
+                                         f"delimiter")
+        if self.encoding != "auto":
+            enc = _ENCODING_ALIASES.get(str(self.encoding).lower())
+            if enc is None:
+                raise RecipeError("encoding", f"unsupported encoding {self.encoding!r}; use "
+                                              f"'auto' or one of {ENCODINGS}")
+            set_("encoding", enc)
+        if self.range_nm is not None:
+            set_("range_nm", _window("range_nm", self.range_nm))
+        try:
+            windows = tuple(_window("mask_windows_nm", w) for w in self.mask_windows_nm)
+        except TypeError:
+            raise RecipeError("mask_windows_nm", f"must be a list of (start, stop) pairs in "
+                                                 f"nm, got {self.mask_windows_nm!r}") from None
+        set_("mask_windows_nm", windows)
+        s = self.sigma
+        if s is not None and s != "estimate":
+            if isinstance(s, bool) or not isinstance(s, (int, float)) \
+                    or not math.isfinite(s) or s <= 0:
+                raise RecipeError("sigma", f"must be None, 'estimate' or a positive number "
+                                           f"(fraction, 0.002 = 0.2 %), got {s!r}")
+            set_("sigma", float(s))
+        if not isinstance(self.name, str):
+            raise RecipeError("name", f"must be a string, got {self.name!r}")
+
+    def to_dict(self) -> dict:
+        """JSON-ready dict (tuples become lists)."""
+        d = asdict(self)
+        d["range_nm"] = None if self.range_nm is None else list(self.range_nm)
+        d["mask_windows_nm"] = [list(w) for w in self.mask_windows_nm]
+        return d
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ReaderOptions":
+        """Options from :meth:`to_dict` output; unknown keys are refused.
+
+        Raises
+        ------
+        RecipeError
+            Naming the first unknown key or invalid value.
+        """
+        if not isinstance(data, dict):
+            raise RecipeError("reader", f"must be a JSON object, got {type(data).__name__}")
+        known = {f.name for f in fields(cls)}
+        for key in data:
+            if key not in known:
+                raise RecipeError(key, f"unknown reader option; known options are "
+                                       f"{', '.join(sorted(known))}")
+        kw = dict(data)
+        if isinstance(kw.get("range_nm"), list):
+            kw["range_nm"] = tuple(kw["range_nm"])
+        if isinstance(kw.get("mask_windows_nm"), list):
+            kw["mask_windows_nm"] = tuple(tuple(w) if isinstance(w, list) else w
+                                          for w in kw["mask_windows_nm"])
+        return cls(**kw)
+
+
+def _window(field_name: str, pair) -> tuple[float, float]:
+    try:
+        lo, hi = pair
+        lo, hi = float(lo), float(hi)
+    except (TypeError, ValueError):
+        raise RecipeError(field_name, f"must be a (start, stop) pair in nm, got {pair!r}") \
+            from None
+    if not (math.isfinite(lo) and math.isfinite(hi)) or lo >= hi:
+        raise RecipeError(field_name, f"start must be below stop and both finite, got {pair!r}")
+    return lo, hi
+
+
+# --------------------------------------------------------------------------- decoding
+
+_CONTROL = re.compile(r"[\x00-\x08\x0e-\x1f\x7f]")
+
+
+def _fail(path, line, reason, expected="", found=""):
+    return SpectrumFormatError(path, line, reason, expected=expected, found=found)
+
+
+def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
+    """Bytes to text with normalised newlines, and the encoding's name."""
+    if not raw.strip():
+        raise _fail(path, 1, "the file is empty", expected="a table of wavelength and T or R "
+                    "values")
+    used = encoding
+    try:
+        if encoding != "auto":
+            body = raw
+            boms = {"utf-8-sig": codecs.BOM_UTF8, "utf-16-le": codecs.BOM_UTF16_LE,
+                    "utf-16-be": codecs.BOM_UTF16_BE, "utf-8": codecs.BOM_UTF8}
+            bom = boms.get(encoding)
+            if bom and body.startswith(bom):
+                body = body[len(bom):]
+            text = body.decode("utf-8" if encoding == "utf-8-sig" else encoding)
+        elif raw.startswith(codecs.BOM_UTF8):
+            used, text = "utf-8-sig", raw[3:].decode("utf-8")
+        elif raw.startswith(codecs.BOM_UTF16_LE):
+            used, text = "utf-16-le", raw[2:].decode("utf-16-le")
+        elif raw.startswith(codecs.BOM_UTF16_BE):
+            used, text = "utf-16-be", raw[2:].decode("utf-16-be")
+        elif b"\x00" in raw[:4096]:
+            head = raw[:4096]
+            even, odd = head[0::2], head[1::2]
+            if odd and odd.count(0) > 0.3 * len(odd) and even.count(0) < 0.05 * len(even):
+                used, text = "utf-16-le", raw.decode("utf-16-le")
+            elif even and even.count(0) > 0.3 * len(even) and odd.count(0) < 0.05 * len(odd):
+                used, text = "utf-16-be", raw.decode("utf-16-be")
+            else:
+                at = raw.index(b"\x00")
+                raise _fail(path, raw[:at].count(b"\n") + 1, "this is a binary file, not a "
+                            "text table", expected="text", found=f"byte 0x00 at offset {at}")
+        else:
+            try:
+                used, text = "utf-8", raw.decode("utf-8")
+            except UnicodeDecodeError:
+                # Windows exports: cp1252 is Latin-1 plus printable 0x80-0x9F.
+                if re.search(rb"[\x80-\x9f]", raw):
+                    try:
+                        used, text = "cp1252", raw.decode("cp1252")
+                    except UnicodeDecodeError:
+                        used, text = "latin-1", raw.decode("latin-1")
+                else:
+                    used, text = "latin-1", raw.decode("latin-1")
+    except UnicodeDecodeError as exc:
+        width = 2 if used.startswith("utf-16") else 1
+        line = raw[:exc.start].count(b"\n" if width == 1 else b"\n\x00") + 1
+        raise _fail(path, line, f"the file cannot be decoded as {used}",
+                    expected=f"{used} text (or set the encoding)",
+                    found=repr(raw[exc.start:exc.start + 4])) from None
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    text = text.replace("\r\n", "\n").replace("\r", "\n").rstrip("\x1a")  # DOS end-of-file
+    bad = _CONTROL.search(text)
+    if bad:
+        line = text.count("\n", 0, bad.start()) + 1
+        raise _fail(path, line, "this is a binary or corrupted file, not a text table",
+                    expected="printable text", found=f"control character U+{ord(bad.group()):04X}")
+    return text, used
+
+
+def _newline_of(raw: bytes, encoding: str) -> str:
+    head = raw[:8192]
+    if encoding.startswith("utf-16"):
+        head = head.replace(b"\x00", b"")
+    if b"\r\n" in head:
+        return "\r\n"
+    if b"\r" in head:
+        return "\r"
+    return "\n"
+
+
+# --------------------------------------------------------------------------- tokens
+
+_MISSING = frozenset({"", "nan", "+nan", "-nan", "na", "n/a", "n.a.", "-", "--", "---", "----",
+                      "null", "none", "?", "*", "#n/a", "#value!", "#div/0!", "#num!"})
+_INF = {"inf": math.inf, "+inf": math.inf, "-inf": -math.inf, "infinity": math.inf,
+        "+infinity": math.inf, "-infinity": -math.inf}
+_COMMENT = re.compile(r"(#|//|!|%(?=\s|%|$))")
+
+
+class _Numbers:
+    """Strict number syntax of one decimal mark, with optional thousands groups."""
+
+    def __init__(self, decimal: str):
+        d = re.escape(decimal)
+        t = re.escape("," if decimal == "." else ".")
+        self.decimal = decimal
+        self.thousands = "," if decimal == "." else "."
+        self.plain = re.compile(rf"[+-]?(?:\d+(?:{d}\d*)?|{d}\d+)(?:[eE][+-]?\d+)?\Z", re.ASCII)
+        self.grouped = re.compile(rf"[+-]?[1-9]\d{{0,2}}(?:{t}\d{{3}})+(?:{d}\d*)?\Z", re.ASCII)
+        self.seen_thousands = False
+
+    def parse(self, token: str) -> float | None:
+        """float; NaN for a missing-value marker; None for text."""
+        tok = token.strip().strip('"').strip()
+        if self.plain.match(tok):
+            return float(tok.replace(",", ".") if self.decimal == "," else tok)
+        low = tok.lower()
+        if low in _MISSING:
+            return math.nan
+        if low in _INF:
+            return _INF[low]
+        if self.grouped.match(tok):
+            self.seen_thousands = True
+            tok = tok.replace(self.thousands, "")
+            return float(tok.replace(",", ".") if self.decimal == "," else tok)
+        return None
+
+
+def _split(line: str, delimiter: str) -> list[str]:
+    if delimiter == " ":
+        parts = line.split()
+    elif '"' in line:
+        try:
+            parts = next(csv.reader([line], delimiter=delimiter, quotechar='"',
+                                    skipinitialspace=True))
+        except (csv.Error, StopIteration):
+            parts = line.split(delimiter)
+    else:
+        parts = line.split(delimiter)
+    parts = [p.strip() for p in parts]
+    while parts and parts[-1] == "":         # "450;87;" has two columns
+        parts.pop()
+    return parts
+
+
+def _is_comment(stripped: str) -> bool:
+    return bool(_COMMENT.match(stripped))
+
+
+# Row kinds while sniffing.
+_BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT = range(6)
+
+
+def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
+    """(kind, number of fields) of one line under a candidate dialect."""
+    s = line.strip()
+    if not s:
+        return _BLANK, 0
+    if _is_comment(s):
+        return _COMMENT_ROW, 0
+    if len(s) > _MAX_LINE:
+        return _TEXT, 0
+    toks = _split(s, delimiter)
+    n_num = n_missing = 0
+    for tok in toks:
+        v = numbers.parse(tok)
+        if v is None:
+            return (_TEXT if len(toks) > 1 or n_num == 0 else _SINGLE), len(toks)
+        if v != v:
+            n_missing += 1
+        else:
+            n_num += 1
+    if n_num >= 2:
+        return _DATA, len(toks)
+    if n_num == 1 and len(toks) == 1:
+        return _SINGLE, 1
+    return _GAP, len(toks)
+
+
+# --------------------------------------------------------------------------- sniffing
+
+@dataclass
+class _Layout:
+    """What sniffing the head of a file found (internal)."""
+
+    delimiter: str
+    decimal: str
+    start: int                  # index of the first data line
+    names: tuple                # column names ("" where unnamed), () without header
+    n_columns: int
+    sample: np.ndarray          # first data rows, shape (rows, n_columns), NaN = not a number
+    metadata: dict
+    comments: list
+    metadata_style: str
+    header_line: int | None     # 1-based line of the column names
+    thousands_seen: bool
+
+
+def _head_lines(text: str, n: int) -> tuple[list[str], bool]:
+    """The first ``n`` lines and whether they are all the text holds."""
+    lines, pos = [], 0
+    while len(lines) < n:
+        end = text.find("\n", pos)
+        if end < 0:
+            lines.append(text[pos:])
+            return lines, True
+        lines.append(text[pos:end])
+        pos = end + 1
+    return lines, pos >= len(text)
+
+
+def _choose_dialect(lines, options, path):
+    """Score each (delimiter, decimal) by how many lines parse as numeric rows."""
+    delims = DELIMITERS if options.delimiter == "auto" else (options.delimiter,)
+    decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
+    best, best_key = None, None
+    for pri, delim in enumerate(delims):
+        for dec in decs:
+            if dec == delim:
+                continue
+            numbers = _Numbers(dec)
+            kinds = [_row_kind(line, delim, numbers) for line in lines]
+            n_data = sum(1 for k, _ in kinds if k == _DATA)
+            if n_data == 0:
+                continue
+            # A comma inside numbers argues for the decimal comma, its absence for
+            # the point; the explicit separators outrank "any whitespace".
+            commas = any("," in tok for line, (k, _) in zip(lines, kinds) if k == _DATA
+                         for tok in _split(line.strip(), delim))
+            key = (n_data, (dec == ",") == commas, -pri)
+            if best_key is None or key > best_key:
+                best, best_key = (delim, dec, kinds, numbers), key
+    return best
+
+
+#: "100 ms", "2.5 nm": a metadata value with a unit, never a column name.
+_QUANTITY_VALUE = re.compile(r"[+-]?\d+(?:[.,]\d+)?\s*[^\W\d_]", re.ASCII)
+_KV = re.compile(r"\s*([^\W\d][^:=]{0,80}?)\s*([:=])\s*(.*?)\s*\Z", re.S)
+_SECTION = re.compile(r"\s*\[[^\]]{0,200}\]\s*\Z")
+
+
+def _key_value(s: str):
+    if len(s) > 4096:
+        return None
+    m = _KV.match(s)
+    if not m:
+        return None
+    return m.group(1).strip(), m.group(3), ("colon" if m.group(2) == ":" else "equals")
+
+
+def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
+    n = _SNIFF_LINES
+    while True:
+        lines, complete = _head_lines(text, n)
+        if not complete:
+            lines = lines[:-1] if len(lines) > 1 else lines
+        choice = _choose_dialect(lines, options, path)
+        start = None
+        if choice is not None:
+            delim, dec, kinds, numbers = choice
+            start = _first_run(kinds, complete)
+        if start is not None or complete:
+            break
+        n *= 8
+    first_content = next((i for i, line in enumerate(lines) if line.strip()), 0)
+    if choice is None:
+        single = _find_single(lines, options)
+        if single is not None:
+            raise _fail(path, single + 1, "only one numeric column was found",
+                        expected="two columns (wavelength and T or R) separated by tab, ';', "
+                                 "',' or spaces", found=lines[single].strip()[:80])
+        raise _fail(path, first_content + 1, "no rows of two or more numbers were found",
+                    expected="rows like '450.5<tab>87.2' or '450,5;87,2'",
+                    found=lines[first_content].strip()[:80])
+    if start is None:
+        data_rows = [i for i, (k, _) in enumerate(kinds) if k == _DATA]
+        raise _fail(path, data_rows[0] + 1, f"only {len(data_rows)} data rows were found, at "
+                    f"least {MIN_POINTS} are needed", expected=f"{MIN_POINTS} or more rows of "
+                    "numbers", found=lines[data_rows[0]].strip()[:80])
+    counts = [nf for (k, nf) in kinds[start:start + 200] if k == _DATA]
+    n_columns = max(set(counts), key=counts.count)
+    rows = [line for line, (k, _) in zip(lines[start:], kinds[start:]) if k in (_DATA, _GAP)]
+    sample = np.full((min(len(rows), 500), n_columns), np.nan)
+    for r, line in enumerate(rows[:500]):
+        for c, tok in enumerate(_split(line.strip(), delim)[:n_columns]):
+            v = numbers.parse(tok)
+            sample[r, c] = math.nan if v is None else v
+    names, header_line, metadata, comments, style = _preamble(
+        lines[:start], delim, numbers, n_columns)
+    return _Layout(delim, dec, start, names, n_columns, sample, metadata, comments, style,
+                   header_line, numbers.seen_thousands)
+
+
+def _first_run(kinds, complete: bool) -> int | None:
+    """First data row followed by 3 more data or gap rows (or by the end of the file)."""
+    content = [(i, k) for i, (k, _) in enumerate(kinds) if k not in (_BLANK, _COMMENT_ROW)]
+    for j, (i, k) in enumerate(content):
+        if k != _DATA:
+            continue
+        follow = content[j + 1:j + 4]
+        if all(kk in (_DATA, _GAP) for _, kk in follow) and (len(follow) == 3 or not complete):
+            return i
+        if len(follow) < 3 and complete and all(kk in (_DATA, _GAP) for _, kk in follow):
+            n_data = sum(1 for _, kk in content[j:] if kk == _DATA)
+            return i if n_data >= MIN_POINTS else None
+    return None
+
+
+def _find_single(lines, options) -> int | None:
+    decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
+    for dec in decs:
+        numbers = _Numbers(dec)
+        hits = [i for i, line in enumerate(lines) if _row_kind(line, " ", numbers)[0] == _SINGLE]
+        if len(hits) >= 2:
+            return hits[0]
+    return None
+
+
+def _preamble(lines, delim, numbers, n_columns):
+    """Column names, their line, metadata, comments and metadata style."""
+    metadata: dict = {}
+    comments: list = []
+    styles: list = []
+    content = [i for i, line in enumerate(lines)
+               if line.strip() and not _is_comment(line.strip())]
+    names, header_idx, units_idx = (), None, None
+    if content:
+        last = content[-1]
+        toks = _header_tokens(lines[last], delim, n_columns)
+        if toks is not None and sum(numbers.parse(t) is None for t in toks if t) > 0 \
+                and not any(_QUANTITY_VALUE.match(t) for t in toks[1:]):
+            header_idx = last
+            names = toks
+            if len(content) > 1:
+                above = _header_tokens(lines[content[-2]], delim, n_columns)
+                if above is not None and all(t == "" or _unit_word(t) or "%" in t
+                                             or _ordinate_label(t) is None and len(t) < 12
+                                             for t in toks) \
+                        and any(_unit_word(t) or "%" in t for t in toks) \
+                        and sum(numbers.parse(t) is None for t in above if t) > 0:
+                    # Two header lines: names above, units below.
+                    units_idx, header_idx = last, content[-2]
+                    names = tuple(f"{a} [{u}]" if u else a for a, u in zip(above, toks))
+    for i, line in enumerate(lines):
+        s = line.strip()
+        if not s or i in (header_idx, units_idx):
+            continue
+        if _is_comment(s):
+            body = _COMMENT.sub("", s, count=1).lstrip("#").strip()
+            kv = _key_value(body)
+            if kv:
+                _add(metadata, kv[0], kv[1])
+                styles.append("comment")
+            elif body:
+                comments.append(body)
+            continue
+        kv = _key_value(s)
+        toks = _split(s, delim)
+        if kv and (len(toks) < 2 or delim == " "):
+            _add(metadata, kv[0], kv[1])
+            styles.append(kv[2])
+        elif len(toks) >= 2 and numbers.parse(toks[0]) is None and delim != " ":
+            _add(metadata, toks[0].strip('"'), delim.join(t.strip('"') for t in toks[1:]))
+            styles.append("delimited")
+        elif kv:
+            _add(metadata, kv[0], kv[1])
+            styles.append(kv[2])
+        else:
+            comments.append(s)
+    style = max(set(styles), key=styles.count) if styles else "none"
+    return names, (None if header_idx is None else header_idx + 1), metadata, comments, style
+
+
+def _add(metadata: dict, key: str, value: str):
+    key = key or "?"
+    k, n = key, 2
+    while k in metadata:
+        k, n = f"{key} ({n})", n + 1
+    metadata[k] = value
+
+
+def _header_tokens(line: str, delim: str, n_columns: int):
+    """Column names of a header line, padded to ``n_columns``, or None."""
+    s = line.strip()
+    if len(s) > 4096:
+        return None
+    toks = _split(s, delim)
+    if delim == " " and len(toks) != n_columns:
+        # "Wavelength (nm)  T (%)": names with spaces, split on wide gaps or
+        # keep bracketed units with the word before them.
+        wide = [t for t in re.split(r"\s{2,}|\t", s) if t]
+        if len(wide) == n_columns:
+            toks = wide
+        else:
+            merged: list = []
+            for t in toks:
+                if merged and (t[0] in "([{" or merged[-1][-1] in "/"):
+                    merged[-1] += " " + t
+                else:
+                    merged.append(t)
+            toks = merged
+    toks = [t.strip().strip('"').strip() for t in toks]
+    if len(toks) < 2 and n_columns >= 2:
+        return None
+    if len(toks) > n_columns:
+        if any(toks[n_columns:]):
+            return None
+        toks = toks[:n_columns]
+    return tuple(toks) + ("",) * (n_columns - len(toks))
+
+
+# --------------------------------------------------------------------------- data block
+
+def _line_offsets(text: str, start: int) -> int:
+    pos = 0
+    for _ in range(start):
+        pos = text.index("\n", pos) + 1
+    return pos
+
+
+def _data_block(text: str, layout: _Layout) -> tuple[str, list]:
+    """The data lines (as one string) and the footer lines after them."""
+    begin = _line_offsets(text, layout.start)
+    block = text[begin:]
+    footer: list = []
+    sect = re.search(r"\n[ \t]*\[[^\]\n]{0,200}\][ \t]*(?=\n|\Z)", block)
+    if sect:
+        footer = block[sect.start() + 1:].split("\n")
+        block = block[:sect.start()]
+    numbers = _Numbers(layout.decimal)
+    # Trailing lines that are plainly not data (text, key: value, comments).
+    tail: list = []
+    while block:
+        cut = block.rfind("\n")
+        last = block[cut + 1:]
+        s = last.strip()
+        if s and not (_is_comment(s) or (s[0].isalpha() or s[0] in "[*=_")
+                      and numbers.parse(_split(s, layout.delimiter)[0]) is None):
+            break
+        tail.append(last)
+        if cut < 0:
+            block = ""
+            break
+        block = block[:cut]
+    footer = [t for t in reversed(tail) if t.strip()] + [t for t in footer if t.strip()]
+    return block, footer
+
+
+def _parse_fast(block: str, layout: _Layout, cols: tuple) -> np.ndarray | None:
+    """The whole block in one :func:`numpy.loadtxt` call, or None if it needs care."""
+    if '"' in block:
+        return None
+    if layout.decimal == ",":
+        if "." in block:
+            return None                      # thousands groups
+        block = block.replace(",", ".")
+    elif "," in block and layout.delimiter != ",":
+        return None
+    try:
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore")
+            arr = np.loadtxt(io.StringIO(block), dtype=float, comments=None, ndmin=2,
+                             delimiter=None if layout.delimiter == " " else layout.delimiter,
+                             usecols=cols)
+    except (ValueError, IndexError, OverflowError):
+        return None
+    if arr.shape[0] != block.count("\n") + 1:   # loadtxt skipped blank lines
+        return None
+    return arr
+
+
+def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path):
+    """Line by line, exact: missing values, comments, quotes and thousands groups."""
+    numbers = _Numbers(layout.decimal)
+    out, line_no = [], []
+    for i, line in enumerate(block.split("\n")):
+        s = line.strip()
+        if not s or _is_comment(s):
+            continue
+        if len(s) > _MAX_LINE:
+            raise _fail(path, first_line + i, "line is too long for a row of a spectrum table",
+                        expected=f"at most {_MAX_LINE} characters", found=s[:40] + "...")
+        toks = _split(s, layout.delimiter)
+        row = []
+        for c in cols:
+            if c >= len(toks):
+                row.append(math.nan)
+                continue
+            v = numbers.parse(toks[c])
+            if v is None:
+                name = layout.names[c] if c < len(layout.names) and layout.names[c] else ""
+                label = f"column {c}" + (f" ({name!r})" if name else "")
+                raise _fail(path, first_line + i, f"{label} holds text where a number is "
+                            f"expected", expected=f"a number with decimal mark "
+                            f"{layout.decimal!r}, columns separated by "
+                            f"{_DELIMITER_NAMES[layout.delimiter]}", found=toks[c][:60])
+            row.append(v)
+        out.append(row)
+        line_no.append(first_line + i)
+    arr = np.array(out, dtype=float).reshape(-1, len(cols))
+    return arr, np.array(line_no, dtype=np.int64), numbers.seen_thousands
+
+
+# --------------------------------------------------------------------------- columns
+
+def _resolve_column(spec, names, n_columns, which, path, header_line):
+    if isinstance(spec, int):
+        if spec >= n_columns:
+            raise _fail(path, header_line, f"{which} column {spec} does not exist",
+                        expected=f"an index from 0 to {n_columns - 1}", found=str(spec))
+        return spec
+    if not any(names):
+        raise _fail(path, header_line, f"{which} column {spec!r} was given by name, but the file "
+                    "has no column names", expected="a column index (0, 1, ...)", found=spec)
+    want = _norm_text(spec)
+    normed = [_norm_text(n) for n in names]
+    if want in normed:
+        return normed.index(want)
+    hits = [i for i, n in enumerate(normed) if want in n]
+    if len(hits) == 1:
+        return hits[0]
+    raise _fail(path, header_line, f"no single {which} column is named {spec!r}",
+                expected="one of " + ", ".join(repr(n) for n in names if n), found=spec)
+
+
+def _is_index(col: np.ndarray) -> bool:
+    c = col[np.isfinite(col)]
+    return (c.size >= 3 and np.all(c == np.round(c)) and c[0] in (0.0, 1.0)
+            and np.all(np.diff(c) == 1.0))
+
+
+def _looks_like_abscissa(col: np.ndarray) -> bool:
+    c = col[np.isfinite(col)]
+    if c.size < 3 or c.size < 0.9 * col.size or np.any(c <= 0) or _is_index(c):
+        return False
+    d = np.sign(np.diff(c))
+    d = d[d != 0]
+    return d.size > 0 and abs(d.sum()) >= 0.9 * d.size
+
+
+def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int, int]:
+    names, n = layout.names or ("",) * layout.n_columns, layout.n_columns
+    x = y = None
+    if options.x_column is not None:
+        x = _resolve_column(options.x_column, names, n, "x", path, layout.header_line)
+    if options.y_column is not None:
+        y = _resolve_column(options.y_column, names, n, "y", path, layout.header_line)
+    if x is not None and x == y:
+        raise _fail(path, layout.header_line, "x and y columns are the same column",
+                    expected="two different columns", found=str(x))
+    free = [i for i in range(n) if i not in (x, y)]
+    if x is None:
+        x = next((i for i in free if _abscissa_label(names[i])[0]), None)
+        if x is None:
+            x = next((i for i in free if _looks_like_abscissa(layout.sample[:, i])), None)
+        if x is None:
+            x = next((i for i in free if not _is_index(layout.sample[:, i])), free[0])
+        free.remove(x)
+    if y is None:
+        if not free:
+            raise _fail(path, layout.start + 1, "only one column is left for the values",
+                        expected="a second numeric column", found=f"{n} column(s)")
+        usable = [i for i in free if np.isfinite(layout.sample[:, i]).mean() >= 0.5]
+        y = next((i for i in usable if _ordinate_label(names[i]) is not None), None)
+        if y is None:
+            y = next((i for i in usable if not _is_index(layout.sample[:, i])),
+                     usable[0] if usable else free[0])
+    return x, y
+
+
+# --------------------------------------------------------------------------- inference
+
+_X_KEYS = {"xunits", "xunit", "xaxis", "xaxisunit", "xaxisunits", "abscissa", "abscissaunit",
+           "abscissaunits", "wavelengthunit", "wavelengthunits", "xlabel", "unitsx", "xdim"}
+_Y_KEYS = {"yunits", "yunit", "yaxis", "yaxisunit", "yaxisunits", "ordinate", "ordinateunit",
+           "ordinateunits", "ylabel", "datatype", "mode", "measurementmode", "quantity",
+           "unitsy", "ymode", "measurement", "datamode"}
+
+
+def _meta_lookup(metadata: dict, keys) -> list:
+    return [v for k, v in metadata.items() if re.sub(r"[^a-z]", "", k.lower()) in keys]
+
+
+def _uniform(v: np.ndarray) -> bool:
+    d = np.diff(v)
+    return d.size >= 2 and abs(d.mean()) > 0 and float(np.std(d) / abs(d.mean())) < 0.02
+
+
+def _infer_x_unit(x: np.ndarray, name: str, metadata: dict, notes: list) -> tuple[str, str]:
+    unit = _abscissa_label(name)[1] if name else None
+    if unit:
+        return unit, "header"
+    for value in _meta_lookup(metadata, _X_KEYS):
+        unit = _abscissa_label(value)[1]
+        if unit:
+            return unit, "metadata"
+    pos = x[np.isfinite(x) & (x > 0)]
+    hi = float(pos.max()) if pos.size else 0.0
+    s = np.sort(pos)
+    if hi <= 30:
+        if _uniform(1.0 / s) and not _uniform(s):
+            notes.append(f"abscissa values up to {hi:g} read as photon energy in eV (the grid "
+                         "is even in 1/E, as after conversion from nm); set x_unit if they "
+                         "are µm")
+            return "eV", "values"
+        notes.append(f"abscissa values up to {hi:g} read as µm; photon energy in eV is also "
+                     "possible: name the column (e.g. 'Energy (eV)') or set x_unit")
+        return "um", "values"
+    if hi <= 6000:
+        if hi > 3500:
+            notes.append(f"abscissa values up to {hi:g} read as nm; if they are wavenumbers, "
+                         "set x_unit='cm-1'")
+        return "nm", "values"
+    notes.append(f"abscissa values up to {hi:g} read as wavenumbers in cm⁻¹; if they are "
+                 "Å, set x_unit='A'")
+    return "cm-1", "values"
+
+
+def _infer_y_kind(y: np.ndarray, lines: np.ndarray, name: str, metadata: dict, path,
+                  notes: list) -> tuple[str, str]:
+    what, scale, origin = None, None, "values"
+    stated = _ordinate_label(name) if name else None
+    if stated:
+        (what, scale), origin = stated, "header"
+    if what is None or (scale is None and what in ("T", "R")):
+        for value in _meta_lookup(metadata, _Y_KEYS):
+            found = _ordinate_label(value)
+            if found:
+                if what is None:
+                    what, origin = found[0], "metadata"
+                if found[0] == what and scale is None and found[1]:
+                    scale, origin = found[1], "metadata"
+                break
+    what = what or "T"
+    kind = _kind_from(what, scale)
+    if kind:
+        return kind, origin
+    finite = np.isfinite(y)
+    top = float(y[finite].max()) if finite.any() else 0.0
+    if top <= 1.5:
+        if top < 0.2:
+            notes.append(f"all values are below {top:.3g} and were read as a fraction; if "
+                         f"they are percent, set y_kind='{what}_percent'")
+        return f"{what}_fraction", origin
+    if top <= 150:
+        return f"{what}_percent", origin
+    at = int(np.flatnonzero(finite & (y == top))[0])
+    raise _fail(path, int(lines[at]), f"values up to {top:g} are neither a fraction (0-1) nor "
+                "percent (0-100) of T or R; for a raw detector signal read the file with "
+                "y_kind='counts' and apply reference_correct()",
+                expected="transmittance or reflectance", found=f"{top:g}")
+
+
+def _order_of(x: np.ndarray) -> str:
+    d = np.diff(x)
+    if np.all(d >= 0):
+        return "ascending"
+    if np.all(d <= 0):
+        return "descending"
+    return "unsorted"
+
+
+# --------------------------------------------------------------------------- reading
+
+@dataclass
+class _Parsed:
+    dialect: Dialect
+    wavelength_nm: np.ndarray
+    values: np.ndarray
+    line_no: np.ndarray
+    metadata: dict
+    warnings: list
+
+
+def _source_bytes(source) -> tuple[bytes, str]:
+    """(content, path label) of a path, bytes or text."""
+    if isinstance(source, (bytes, bytearray, memoryview)):
+        return bytes(source), "<bytes>"
+    if isinstance(source, str) and ("\n" in source or "\r" in source
+                                    or not os.path.isfile(source)):
+        return source.encode("utf-8"), "<text>"
+    path = os.fspath(source)
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(), str(path)
+    except OSError as exc:
+        raise _fail(path, None, f"cannot read the file ({exc.strerror or exc})") from exc
+
+
+def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
+    text, encoding = _decode(raw, options.encoding, path)
+    layout = _layout(text, options, path)
+    _refuse_compressed_jcamp(text, layout, path)
+    xc, yc = _choose_columns(layout, options, path)
+    block, footer = _data_block(text, layout)
+    first_line = layout.start + 1
+    table = _parse_fast(block, layout, (xc, yc))
+    thousands_seen = layout.thousands_seen
+    if table is not None:
+        line_no = first_line + np.arange(table.shape[0])
+    else:
+        table, line_no, seen = _parse_slow(block, layout, (xc, yc), first_line, path)
+        thousands_seen = thousands_seen or seen
+    x, y = table[:, 0], table[:, 1]
+    n_rows = x.size
+    warn: list = []
+    names = layout.names or ("",) * layout.n_columns
+
+    keep = np.isfinite(x)
+    if options.x_unit != "auto":
+        x_unit, x_from = options.x_unit, "option"
+    else:
+        x_unit, x_from = _infer_x_unit(x[keep], names[xc], layout.metadata, warn)
+    bad_x = keep & (x <= 0)
+    if bad_x.any():
+        at = int(np.flatnonzero(bad_x)[0])
+        raise _fail(path, int(line_no[at]), "the abscissa must be positive",
+                    expected=f"a wavelength, wavenumber or energy above 0 ({x_unit})",
+                    found=f"{x[at]:g}")
+    order = _order_of(x[keep])
+    if options.y_kind != "auto":
+        y_kind, y_from = options.y_kind, "option"
+    else:
+        y_kind, y_from = _infer_y_kind(y[keep], line_no[keep], names[yc], layout.metadata,
+                                       path, warn)
+    wl = to_nm(x, x_unit)
+    val = _to_fraction(y, y_kind)
+    ok = np.isfinite(wl) & np.isfinite(val)
+    dropped = int(n_rows - ok.sum())
+    if dropped:
+        first = int(line_no[np.flatnonzero(~ok)[0]])
+        warn.insert(0, f"{dropped} row(s) without a usable number in the wavelength or value "
+                       f"column were dropped (first at line {first})")
+    wl, val, lines_ok = wl[ok], val[ok], line_no[ok]
+    if wl.size < MIN_POINTS:
+        at = int(lines_ok[0]) if lines_ok.size else first_line
+        raise _fail(path, at, f"only {wl.size} usable data points, at least {MIN_POINTS} are "
+                    "needed", expected=f"{MIN_POINTS} or more rows with a wavelength and a value",
+                    found=f"{wl.size} point(s)")
+    if order == "unsorted":
+        warn.append("the wavelengths were not in order and have been sorted")
+    idx = np.argsort(wl, kind="stable")
+    wl, val = wl[idx], val[idx]
+    uniq, inverse, counts = np.unique(wl, return_inverse=True, return_counts=True)
+    if uniq.size < wl.size:
+        n_dup = int(wl.size - uniq.size)
+        warn.append(f"{n_dup} repeated wavelength(s) found; the values at each were averaged")
+        val = np.bincount(inverse, weights=val) / counts
+        wl = uniq
+        if wl.size < MIN_POINTS:
+            raise _fail(path, first_line, f"only {wl.size} distinct wavelengths, at least "
+                        f"{MIN_POINTS} are needed", expected="distinct wavelengths",
+                        found=f"{wl.size}")
+    if y_kind != "counts":
+        _flag_range(wl, val, warn)
+
+    dialect = Dialect(
+        delimiter=layout.delimiter, decimal=layout.decimal,
+        thousands=("," if layout.decimal == "." else ".") if thousands_seen else "",
+        encoding=encoding, newline=_newline_of(raw, encoding), x_unit=x_unit, y_kind=y_kind,
+        columns=layout.names, metadata_style=layout.metadata_style, x_order=order,
+        header_lines=layout.start, n_columns=layout.n_columns, x_column=xc, y_column=yc,
+        x_unit_from=x_from, y_kind_from=y_from, n_rows=int(n_rows))
+    metadata = {"header": layout.metadata}
+    if layout.comments:
+        metadata["comments"] = layout.comments
+    if footer:
+        metadata["footer"] = footer
+    metadata["reader"] = dict(dialect.to_dict(), dropped_rows=dropped,
+                              data_lines=[int(line_no[0]), int(line_no[-1])] if n_rows else [])
+    metadata["ordinate"] = "counts" if y_kind == "counts" else "fraction"
+    return _Parsed(dialect, wl, val, lines_ok, metadata, warn)
+
+
+def _refuse_compressed_jcamp(text: str, layout: _Layout, path):
+    """JCAMP-DX (X++(Y..Y)) rows hold one x and many y values: refuse, do not misread."""
+    for key, value in layout.metadata.items():
+        if re.sub(r"[^a-z]", "", key.lower()) == "xydata" and "++" in value:
+            m = re.search(r"^.*XYDATA.*$", text, re.M | re.I)
+            line = text.count("\n", 0, m.start()) + 1 if m else None
+            raise _fail(path, line, "compressed JCAMP-DX data (X++(Y..Y)) is not supported",
+                        expected="a two-column table, e.g. JCAMP-DX (XY..XY) or CSV",
+                        found=value[:40])
+
+
+def _flag_range(wl: np.ndarray, val: np.ndarray, warn: list):
+    low, high = val < 0, val > 1
+    if low.any():
+        i = int(np.argmin(val))
+        warn.append(f"{int(low.sum())} value(s) below 0 % kept (lowest {100 * val[i]:.3g} % at "
+                    f"{wl[i]:.6g} nm); slightly negative values are normal noise near 0 %, "
+                    "large ones point to a dark-signal problem")
+    if high.any():
+        i = int(np.argmax(val))
+        warn.append(f"{int(high.sum())} value(s) above 100 % kept (highest {100 * val[i]:.4g} % "
+                    f"at {wl[i]:.6g} nm); values slightly above 100 % are normal noise, large "
+                    "ones point to a 100 % line (baseline) problem")
+
+
+def _finish(parsed: _Parsed, options: ReaderOptions, raw: bytes, path: str,
+            name: str) -> Spectrum:
+    spec = Spectrum(wavelength_nm=parsed.wavelength_nm, values=parsed.values,
+                    quantity="R" if parsed.dialect.y_kind.startswith("R") else "T",
+                    name=options.name or name, source=path,
+                    sha256=hashlib.sha256(raw).hexdigest(), metadata=parsed.metadata,
+                    warnings=tuple(parsed.warnings))
+    if options.sigma == "estimate":
+        spec = replace(spec, sigma=estimate_noise(spec))
+    elif options.sigma is not None:
+        spec = replace(spec, sigma=np.full(len(spec), float(options.sigma)))
+    if options.range_nm is not None:
+        lo, hi = options.range_nm
+        spec = spec.cropped(lo, hi)
+        if len(spec) < MIN_POINTS:
+            raise _fail(path, None, f"the range {lo:g}-{hi:g} nm keeps only {len(spec)} points",
+                        expected=f"a range with at least {MIN_POINTS} points within "
+                                 f"{parsed.wavelength_nm[0]:g}-{parsed.wavelength_nm[-1]:g} nm",
+                        found=f"{len(spec)} point(s)")
+    if options.mask_windows_nm:
+        spec = spec.masked_windows(options.mask_windows_nm)
+    return spec
+
+
+def read_spectrum(path, *, options: ReaderOptions | None = None) -> Spectrum:
+    """Read one spectrum file into a :class:`~fitting.spectrum.Spectrum`.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A delimited text file (see the module docstring for what is detected).
+    options : ReaderOptions, optional
+        Overrides for anything detected, plus range, mask and noise settings.
+
+    Returns
+    -------
+    Spectrum
+        Ascending wavelengths in nm, values as a fraction (raw signal for
+        ``y_kind="counts"``), ``quantity`` "T" or "R", provenance (path and
+        SHA-256 of the bytes), ``metadata`` with the keys "header" (key/value
+        lines), "comments", "footer", "reader" (the :class:`Dialect` found, as a
+        dict) and "ordinate" ("fraction" or "counts"), and ``warnings``.
+
+    Raises
+    ------
+    SpectrumFormatError
+        The file cannot be read: empty, binary, undecodable, a single column,
+        text in a numeric column, fewer than 5 points, values that are neither
+        fraction nor percent, a non-positive abscissa, or unknown column names.
+        The message names the file and line, what was expected and found.
+
+    Examples
+    --------
+    >>> s = read_spectrum("film_A.csv")                         # doctest: +SKIP
+    >>> s = read_spectrum("film_A.csv", options=ReaderOptions(
+    ...     x_unit="um", range_nm=(350, 2500), sigma="estimate"))  # doctest: +SKIP
+    """
+    options = options or ReaderOptions()
+    raw, label = _source_bytes(Path(path) if isinstance(path, str) else path)
+    parsed = _parse(raw, options, label)
+    return _finish(parsed, options, raw, label, Path(label).stem)
+
+
+def parse_spectrum(content: str | bytes, *, options: ReaderOptions | None = None,
+                   source: str = "<text>", name: str = "") -> Spectrum:
+    """Like :func:`read_spectrum`, for file content already in memory (pasted data).
+
+    ``source`` is the label used in error messages and ``Spectrum.source``.
+    """
+    options = options or ReaderOptions()
+    raw = content.encode("utf-8") if isinstance(content, str) else bytes(content)
+    parsed = _parse(raw, options, source)
+    return _finish(parsed, options, raw, source, name)
+
+
+def sniff(source, *, options: ReaderOptions | None = None) -> Dialect:
+    """The :class:`Dialect` of a file, or of text or bytes already in memory.
+
+    ``source`` is a path (``str`` without a line break naming an existing file,
+    or ``os.PathLike``), ``bytes``, or text. The whole file is parsed, so the
+    detected units and ordinate kind are what :func:`read_spectrum` will use.
+
+    Raises
+    ------
+    SpectrumFormatError
+        As :func:`read_spectrum`.
+    """
+    raw, label = _source_bytes(source)
+    return _parse(raw, options or ReaderOptions(), label).dialect
+
+
+def preview(path, n_lines: int = 20, *, options: ReaderOptions | None = None) -> Preview:
+    """First ``n_lines`` lines of a file plus the dialect the reader detects.
+
+    For an import dialog: if the file cannot be read as it stands, the lines
+    are still returned, with ``dialect=None`` and the reason in ``problem``.
+
+    Raises
+    ------
+    SpectrumFormatError
+        Only if the file cannot be opened or is not text at all (empty,
+        binary, undecodable).
+    """
+    options = options or ReaderOptions()
+    raw, label = _source_bytes(Path(path) if isinstance(path, str) else path)
+    text, _ = _decode(raw, options.encoding, label)
+    lines, _ = _head_lines(text, max(int(n_lines), 0))
+    try:
+        dialect = _parse(raw, options, label).dialect
+        problem = ""
+    except SpectrumFormatError as exc:
+        dialect, problem = None, str(exc)
+    return Preview(path=label, lines=tuple(lines[:n_lines]), dialect=dialect, problem=problem)
+
+
+# --------------------------------------------------------------------------- writing
+
+_X_COLUMN_NAMES = {"nm": "Wavelength (nm)", "um": "Wavelength (µm)", "A": "Wavelength (Å)",
+                   "cm-1": "Wavenumber (cm-1)", "eV": "Energy (eV)"}
+_Y_COLUMN_NAMES = {"T_fraction": "T", "T_percent": "T (%)", "absorbance": "Absorbance",
+                   "R_fraction": "R", "R_percent": "R (%)", "counts": "Signal (counts)"}
+_X_UNIT_WORDS = {"nm": "NANOMETERS", "um": "MICROMETERS", "A": "ANGSTROMS", "cm-1": "1/CM",
+                 "eV": "ELECTRONVOLTS"}
+_Y_UNIT_WORDS = {"T_fraction": "TRANSMITTANCE (fraction)", "T_percent": "%T",
+                 "absorbance": "ABSORBANCE", "R_fraction": "REFLECTANCE (fraction)",
+                 "R_percent": "%R", "counts": "COUNTS"}
+
+
+def _format_numbers(values: np.ndarray, dialect: Dialect, precision: int) -> list:
+    if dialect.thousands:
+        text = [f"{v:,.6f}" if math.isfinite(v) else str(v) for v in values.tolist()]
+        if dialect.decimal == ",":
+            text = [t.translate({44: 46, 46: 44}) for t in text]
+    else:
+        fmt = f"{{:.{precision}g}}".format
+        text = [fmt(v) for v in values.tolist()]
+        if dialect.decimal == ",":
+            text = [t.replace(".", ",") for t in text]
+    if dialect.delimiter != " ":
+        text = [f'"{t}"' if dialect.delimiter in t else t for t in text]
+    return text
+
+
+def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
+                   precision: int = 10) -> Path:
+    """Write a spectrum as a text table in the given :class:`Dialect`, atomically.
+
+    The file is written to a temporary file in the same folder and renamed over
+    ``path``, so a crash never leaves half a file.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    spectrum : Spectrum
+    dialect : Dialect, optional
+        Delimiter, decimal mark, thousands separator, encoding, newline,
+        abscissa unit, ordinate kind, column names, metadata style and row
+        order. Default: tab-separated UTF-8, nm and T in percent, with a
+        "Key: value" metadata block.
+    precision : int
+        Significant digits (without a thousands separator; with one, six
+        decimals are written).
+
+    Metadata written: ``spectrum.metadata["header"]`` items and other string or
+    number entries of ``spectrum.metadata``, then "XUnits" and "YUnits" lines,
+    and ``metadata["comments"]`` as ``#`` lines, unless the style is "none".
+
+    Raises
+    ------
+    ParameterError
+        If the ordinate kind does not fit the spectrum (R data as T, absorbance
+        of R), the "delimited" style is asked for with whitespace or without a
+        header line, or the text cannot be encoded.
+    """
+    d = dialect or Dialect()
+    if not isinstance(spectrum, Spectrum):
+        raise TypeError(f"spectrum must be a Spectrum, got {type(spectrum).__name__}")
+    quantity = "R" if d.y_kind.startswith("R") else "T"
+    if d.y_kind != "counts" and quantity != spectrum.quantity:
+        raise ParameterError("dialect.y_kind", d.y_kind,
+                             f"does not fit a spectrum of quantity {spectrum.quantity!r}")
+    names = d.columns if d.columns is not None else (_X_COLUMN_NAMES[d.x_unit],
+                                                     _Y_COLUMN_NAMES[d.y_kind])
+    if d.metadata_style == "delimited" and (d.delimiter == " " or not names):
+        raise ParameterError("dialect.metadata_style", "delimited",
+                             "needs a column header line and a delimiter other than spaces")
+    x = from_nm(spectrum.wavelength_nm, d.x_unit)
+    y = _from_fraction(spectrum.values, d.y_kind)
+    order = np.argsort(x, kind="stable")
+    if d.x_order == "descending":
+        order = order[::-1]
+    x, y = x[order], y[order]
+
+    out: list = []
+    if d.metadata_style != "none":
+        items = dict(spectrum.metadata.get("header", {}) or {})
+        for k, v in spectrum.metadata.items():
+            if k not in ("header", "comments", "footer", "reader", "ordinate") and \
+                    isinstance(v, (str, int, float)) and not isinstance(v, bool):
+                items.setdefault(str(k), v)
+        items = {k: v for k, v in items.items()
+                 if re.sub(r"[^a-z]", "", str(k).lower()) not in ("xunits", "yunits")}
+        items["XUnits"] = _X_UNIT_WORDS[d.x_unit]
+        items["YUnits"] = _Y_UNIT_WORDS[d.y_kind]
+        for c in spectrum.metadata.get("comments", []) or []:
+            out.append("# " + " ".join(str(c).split()))
+        for k, v in items.items():
+            k = " ".join(str(k).split()).replace(":", "_").replace("=", "_") or "?"
+            v = " ".join(str(v).split())
+            out.append({"colon": f"{k}: {v}", "equals": f"{k}={v}",
+                        "comment": f"# {k}: {v}",
+                        "delimited": f"{k}{d.delimiter}{v}"}[d.metadata_style])
+    if names:
+        # Two spaces keep names such as "T (%)" one column in a whitespace table.
+        out.append(("  " if d.delimiter == " " else d.delimiter).join(names))
+    xs = _format_numbers(x, d, precision)
+    ys = _format_numbers(y, d, precision)
+    out.extend(a + d.delimiter + b for a, b in zip(xs, ys))
+    text = d.newline.join(out) + d.newline
+    try:
+        if d.encoding == "utf-16-le":
+            data = codecs.BOM_UTF16_LE + text.encode("utf-16-le")
+        elif d.encoding == "utf-16-be":
+            data = codecs.BOM_UTF16_BE + text.encode("utf-16-be")
+        else:
+            data = text.encode(d.encoding)
+    except UnicodeEncodeError as exc:
+        raise ParameterError("dialect.encoding", d.encoding,
+                             f"cannot encode {exc.object[exc.start:exc.end]!r}; use utf-8") \
+            from None
+    return _atomic_write(Path(path), data)
+
+
+def _atomic_write(path: Path, data: bytes) -> Path:
+    folder = path.parent if str(path.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        mode = path.stat().st_mode & 0o777 if path.exists() else 0o644
+        os.chmod(tmp, mode)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    return path
+
+
+# --------------------------------------------------------------------------- benchmark
+
+def bench_read(size_mb: float = 20.0, *, folder=None, dialect: Dialect | None = None) -> dict:
+    """Time :func:`read_spectrum` on a synthetic file of about ``size_mb`` MB.
+
+    For ``python -m fitting.bench``; returns ``{"bytes", "points", "seconds",
+    "seconds_per_mb"}``. The file is written to ``folder`` (a temporary folder
+    if None) and removed afterwards.
+    """
+    n = max(int(size_mb * 1e6 / 26), MIN_POINTS)
+    wl = np.linspace(190.0, 3300.0, n)
+    t = 0.5 + 0.4 * np.cos(wl / 37.0)
+    spec = Spectrum(wl, t)
+    with tempfile.TemporaryDirectory(dir=folder) as tmp:
+        path = Path(tmp) / "bench.txt"
+        write_spectrum(path, spec, dialect=dialect or Dialect(metadata_style="none"))
+        size = path.stat().st_size
+        t0 = time.perf_counter()
+        out = read_spectrum(path)
+        seconds = time.perf_counter() - t0
+    return {"bytes": size, "points": len(out), "seconds": seconds,
+            "seconds_per_mb": seconds / (size / 1e6)}
