@@ -77,6 +77,7 @@ from __future__ import annotations
 import ast
 import hashlib
 import importlib
+import inspect
 import json
 import math
 import re
@@ -323,9 +324,14 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
     if cls is None or not hasattr(cls, "from_dict"):
         return json.loads(json.dumps(dict(d)))
     try:
-        obj = cls.from_dict(dict(d))
+        if "where" in inspect.signature(cls.from_dict).parameters:
+            obj = cls.from_dict(dict(d), where=where)
+        else:
+            obj = cls.from_dict(dict(d))
     except RecipeError as e:
-        f = e.field if e.field.startswith(where) else f"{where}.{e.field}"
+        f = e.field
+        if not (f == where.split(".")[0] or f.startswith(where)):
+            f = f"{where}.{f}"
         raise RecipeError(f, e.problem) from None
     except (PellucidError, ValueError, TypeError, KeyError) as e:
         raise RecipeError(where, str(e)) from None
@@ -397,6 +403,18 @@ class Recipe:
         self.reader = _normalise_section(self.reader, "reader", "ReaderOptions", "reader")
         self.fit_options = _normalise_section(self.fit_options, "fit", "FitOptions",
                                               "fit.options")
+        # The fit window lives in one place, fit.range_nm / fit.masks_nm; values given
+        # inside the fit options are moved there.
+        opt_range = self.fit_options.pop("fit_range_nm", None)
+        opt_masks = self.fit_options.pop("mask_windows_nm", None) or []
+        if opt_range is not None:
+            if tuple(self.range_nm) not in ((None, None), tuple(opt_range)):
+                raise RecipeError("fit.options.fit_range_nm",
+                                  "conflicts with fit.range_nm; give the fit window once")
+            self.range_nm = opt_range
+        if opt_masks:
+            self.masks_nm = list(self.masks_nm) + [m for m in opt_masks
+                                                   if list(m) not in map(list, self.masks_nm)]
         self.range_nm = _range_pair(self.range_nm, "fit.range_nm")
         if not isinstance(self.masks_nm, (list, tuple)):
             raise RecipeError("fit.masks_nm", "must be a list of [start_nm, stop_nm] pairs")
@@ -442,19 +460,25 @@ class Recipe:
         cls = _optional("reader", "ReaderOptions")
         return None if cls is None else cls.from_dict(dict(self.reader))
 
-    def make_fit_options(self):
-        """``FitOptions`` built from ``fit.options`` (None if no fit engine module)."""
-        cls = _optional("fit", "FitOptions")
-        return None if cls is None else cls.from_dict(dict(self.fit_options))
+    def make_fit_options(self, spectrum=None):
+        """``FitOptions`` from ``fit.options`` plus the fit window and masks.
 
-    def prepare(self, spectrum):
-        """Apply the fit window and masks to a spectrum (a new Spectrum is returned)."""
-        out = spectrum
-        if self.range_nm != (None, None):
-            out = out.cropped(*self.range_nm)
+        An open end of ``range_nm`` is closed with the spectrum's first or last
+        wavelength. Returns None if the fit engine module is not installed.
+        """
+        cls = _optional("fit", "FitOptions")
+        if cls is None:
+            return None
+        d = dict(self.fit_options)
+        lo, hi = self.range_nm
+        if spectrum is not None and len(spectrum):
+            lo = float(spectrum.wavelength_nm[0]) if lo is None else lo
+            hi = float(spectrum.wavelength_nm[-1]) if hi is None else hi
+        if lo is not None and hi is not None:
+            d["fit_range_nm"] = [lo, hi]
         if self.masks_nm:
-            out = out.masked_windows(self.masks_nm)
-        return out
+            d["mask_windows_nm"] = [list(m) for m in self.masks_nm]
+        return cls.from_dict(d)
 
     # -- persistence ---------------------------------------------------------------
     def to_dict(self) -> dict:

@@ -58,14 +58,21 @@ def test_new_stack_is_an_independent_copy():
     assert r.stack.values()["film_thickness"] == 480.0
 
 
-def test_prepare_applies_range_and_masks():
+def test_fit_window_goes_into_fit_options():
     from fitting.spectrum import Spectrum
+    fit = pytest.importorskip("fitting.fit")
+    opts = make_recipe(fit_options={"method": "least_squares"}).make_fit_options()
+    assert isinstance(opts, fit.FitOptions) and opts.method == "least_squares"
+    assert opts.fit_range_nm == (400.0, 1000.0) and opts.mask_windows_nm == ((655.0, 657.0),)
+    # An open end is closed with the spectrum's own first/last wavelength.
+    r = Recipe(make_recipe().stack, range_nm=(450, None))
     wl = np.arange(300.0, 1101.0, 1.0)
-    sp = Spectrum(wl, np.full(wl.size, 0.9))
-    out = make_recipe().prepare(sp)
-    assert out.wavelength_nm[0] == 400 and out.wavelength_nm[-1] == 1000
-    assert not out.used[(out.wavelength_nm >= 655) & (out.wavelength_nm <= 657)].any()
-    assert out.used.sum() == out.wavelength_nm.size - 3
+    assert r.make_fit_options(Spectrum(wl, np.full(wl.size, 0.9))).fit_range_nm == (450, 1100)
+    # A window given inside the fit options moves to fit.range_nm (one place only).
+    r = Recipe(make_recipe().stack, fit_options={"fit_range_nm": [500, 900]})
+    assert r.range_nm == (500.0, 900.0) and "fit_range_nm" not in r.to_dict()["fit"]["options"]
+    with pytest.raises(RecipeError, match="give the fit window once"):
+        Recipe(make_recipe().stack, range_nm=(400, 800), fit_options={"fit_range_nm": [500, 900]})
 
 
 def _bad(d, path, value):
@@ -105,6 +112,10 @@ def _bad(d, path, value):
     (("outputs", "plot_formats"), ["gif"], "outputs.plot_formats[0]", "unknown choice"),
     (("outputs", "exports"), "nk", "outputs.exports", "must be a list"),
     (("surprise",), 1, "surprise", "unknown field"),
+    (("fit", "options", "method"), "guess", "fit.options.method", "choose one of"),
+    (("fit", "options", "warp"), 9, "fit.options.warp", "unknown fit option"),
+    (("reader", "x_unit"), 17, "reader.x_unit", "must be a string"),
+    (("reader", "colour"), "red", "reader.colour", "unknown reader option"),
 ])
 def test_invalid_recipes_name_the_field(tmp_path, path, value, field, match):
     d = _bad(make_recipe().to_dict(), path, value)
