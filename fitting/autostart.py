@@ -1,0 +1,441 @@
+"""Automatic start of a fit: a fringe seed, then a global scan over film thickness.
+
+A transmission spectrum of a film has many local χ² minima in thickness, one
+per interference order. A local minimiser started from a default thickness
+lands in whichever basin is nearest. The automatic start avoids that:
+
+1. **Seed.** If the spectrum shows fringes, their extrema give the film index
+   in the transparent region and a rough thickness. The envelope method of
+   :mod:`fitting.envelope` (Swanepoel 1983) is used when it is available and
+   succeeds; otherwise :func:`fringe_seed` does the simplest version of the same
+   thing (extrema spacing for the thickness, the quarter-wave extrema against
+   the bare substrate for n).
+2. **Scan.** χ² is evaluated on a grid of thicknesses finer than one fringe
+   order: the step Δd keeps the phase 4πnΔd/λ_min below π/4. The dispersion
+   parameters stay at their start, except for the film's index level, tried at
+   three values around the seed. Scale and offset, if fitted, are solved in
+   closed form at every grid point (they enter the model linearly). The scan is
+   vectorised over thicknesses and runs on a subsample of the data that still
+   resolves the densest fringes.
+3. **Basins.** The lowest local minima of the scanned χ²(d) are the starts the
+   fit engine polishes with a local least-squares minimiser.
+
+References
+----------
+.. [1] R. Swanepoel, "Determination of the thickness and optical constants of
+       amorphous silicon", J. Phys. E 16, 1214 (1983). :DOI:`10.1088/0022-3735/16/12/023`
+.. [2] J. C. Manifacier, J. Gasiot and J. P. Fillard, "A simple method for the
+       determination of the optical constants n, k and the thickness of a weakly
+       absorbing thin film", J. Phys. E 9, 1002 (1976).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.signal import find_peaks
+
+from .dispersion import Cauchy, Constant, Oscillators, Sellmeier
+from .optics import films_RT, outer_media
+
+__all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
+           "apply_seed", "scan_thickness", "ScanResult", "pick_basins", "scan_range"]
+
+# Largest number of thickness grid points of one scan; beyond it the step grows
+# (a 50 µm film on a UV grid would otherwise need ~10⁴ points).
+_MAX_SCAN_POINTS = 6000
+# Index levels tried at each thickness, relative to the seed: ±6 % covers the
+# error of a rough seed while keeping the grid cheap (common practice).
+_N_LEVELS = (-0.06, 0.0, 0.06)
+
+
+@dataclass
+class Seed:
+    """What the fringes say before any fit."""
+
+    has_fringes: bool
+    thickness_nm: float | None = None
+    n_ref: float | None = None
+    wl_ref: float | None = None
+    n_points: tuple = ()              # (wavelength_nm array, n array) at extrema
+    source: str = "none"              # "envelope", "fringes" or "none"
+    message: str = ""
+    n_extrema: int = 0
+    fringe_range_nm: tuple | None = None   # wavelengths spanned by the extrema
+
+
+    def to_dict(self) -> dict:
+        return {"has_fringes": self.has_fringes, "thickness_nm": self.thickness_nm,
+                "n_ref": self.n_ref, "wl_ref": self.wl_ref, "source": self.source,
+                "message": self.message, "n_extrema": self.n_extrema,
+                "fringe_range_nm": None if self.fringe_range_nm is None
+                else list(self.fringe_range_nm)}
+
+
+def _noise(y: np.ndarray) -> float:
+    # Second differences remove a smooth signal; var(y[i-1] - 2y[i] + y[i+1]) = 6σ².
+    if y.size < 5:
+        return 0.0
+    d2 = y[:-2] - 2 * y[1:-1] + y[2:]
+    return float(1.4826 * np.median(np.abs(d2)) / math.sqrt(6))
+
+
+def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.ndarray) -> Seed:
+    """Thickness and index of a film from the extrema of its fringes.
+
+    Thickness from the number of extrema k between the first and last one,
+    2 n d (1/λ_first - 1/λ_last) = k/2 (adjacent extrema are half an order apart).
+    Index from the quarter-wave extrema against the bare substrate (Swanepoel
+    1983, eq. 24 with α = 0): M = 2s/T_m - (s² + 1)/2, n² = M ± sqrt(M² - s²),
+    the + root where the film index exceeds the substrate's (minima below the
+    bare-substrate line), the - root otherwise.
+    """
+    if wl.size < 12:
+        return Seed(False, message="too few points to look for fringes")
+    noise = _noise(y)
+    prom = max(5 * noise, 0.003)
+    imax, _ = find_peaks(y, prominence=prom)
+    imin, _ = find_peaks(-y, prominence=prom)
+    ext = np.sort(np.concatenate([imax, imin]))
+    if ext.size < 3:
+        return Seed(False, message=f"no interference fringes found ({ext.size} extrema)",
+                    n_extrema=int(ext.size))
+    s = np.asarray(substrate_n, dtype=float)
+    n_ref = wl_ref = None
+    n_points: tuple = ()
+    if quantity == "T":
+        Ts = 2 * s / (s * s + 1)
+        # Use the long-wavelength half of the extrema, where films absorb least.
+        half = wl[ext].min() + 0.5 * (wl[ext].max() - wl[ext].min())
+        mx = imax[wl[imax] >= half] if np.any(wl[imax] >= half) else imax
+        mn = imin[wl[imin] >= half] if np.any(wl[imin] >= half) else imin
+        dev_max = np.mean(np.abs(y[mx] - Ts[mx])) if mx.size else 0.0
+        dev_min = np.mean(np.abs(y[mn] - Ts[mn])) if mn.size else 0.0
+        qw, high = (mn, True) if dev_min >= dev_max else (mx, False)
+        if qw.size:
+            ss, Tm = s[qw], np.clip(y[qw], 1e-3, 0.999)
+            M = np.maximum(2 * ss / Tm - (ss * ss + 1) / 2, ss)
+            root = np.sqrt(np.maximum(M * M - ss * ss, 0.0))
+            n = np.sqrt(M + root) if high else np.sqrt(np.maximum(M - root, 1.0))
+            n_points = (wl[qw], n)
+            n_ref, wl_ref = float(np.median(n)), float(np.median(wl[qw]))
+    n_use = n_ref if n_ref else 2.0
+    lam = wl[ext]
+    k = ext.size - 1
+    d = k / (4 * n_use * (1 / lam[0] - 1 / lam[-1]))
+    return Seed(True, float(d), n_ref, wl_ref, n_points, "fringes",
+                f"{ext.size} fringe extrema between {lam[0]:.0f} and {lam[-1]:.0f} nm",
+                int(ext.size), (float(lam[0]), float(lam[-1])))
+
+
+def envelope_seed(wl, y, quantity, substrate_n) -> Seed | None:
+    """Seed from :func:`fitting.envelope.swanepoel_envelope` if that module is present.
+
+    Returns None when the module is missing or the envelope method fails, so
+    the caller falls back to :func:`fringe_seed`.
+    """
+    if quantity != "T":
+        return None
+    try:
+        from .envelope import swanepoel_envelope
+    except ImportError:
+        return None
+    try:
+        env = swanepoel_envelope(wl, y, substrate_n)
+    except Exception:  # a seed is optional: any failure means "use the fallback"
+        return None
+    if not getattr(env, "ok", False) or not env.thickness_nm or not np.isfinite(env.thickness_nm):
+        return None
+    lam = np.asarray(getattr(env, "wavelength_nm", ()), dtype=float)
+    n = np.asarray(getattr(env, "n", ()), dtype=float)
+    good = np.isfinite(lam) & np.isfinite(n) & (n > 1.0)
+    lam, n = lam[good], n[good]
+    if n.size == 0:
+        return None
+    long = lam >= np.median(lam)
+    return Seed(True, float(env.thickness_nm), float(np.median(n[long])),
+                float(np.median(lam[long])), (lam, n), "envelope",
+                str(getattr(env, "message", "")), int(lam.size),
+                (float(lam.min()), float(lam.max())))
+
+
+# -- the film's index level ------------------------------------------------------------
+def n_level_param(material) -> str | None:
+    """The parameter that shifts a material's index up and down, if it is free."""
+    if isinstance(material, Cauchy):
+        cand = "A"
+    elif isinstance(material, Constant):
+        cand = "n"
+    elif isinstance(material, Oscillators):
+        cand = "eps_inf"
+    elif isinstance(material, Sellmeier):
+        cand = "B1"
+    else:
+        return None
+    p = material.params.get(cand)
+    if p is None or not p.vary or p.expr:
+        return None
+    return cand
+
+
+def _n_at(material, wl_ref: float, local: dict) -> float:
+    try:
+        return float(material.N_unchecked(np.array([wl_ref]), local)[0].real)
+    except Exception:  # impossible parameter combination while bracketing
+        return float("nan")
+
+
+def set_n_level(material, local: dict, name: str, target_n: float, wl_ref: float) -> float:
+    """Value of ``name`` that gives n(wl_ref) = target_n (bisection within the bounds)."""
+    p = material.params[name]
+    lo = p.min if math.isfinite(p.min) else local[name] - 10 * max(abs(local[name]), 1.0)
+    hi = p.max if math.isfinite(p.max) else local[name] + 10 * max(abs(local[name]), 1.0)
+    f = lambda x: _n_at(material, wl_ref, {**local, name: x}) - target_n  # noqa: E731
+    flo, fhi = f(lo), f(hi)
+    if not (np.isfinite(flo) and np.isfinite(fhi)) or flo * fhi > 0:
+        # Target outside what the bounds allow: take the closer end.
+        return lo if abs(flo if np.isfinite(flo) else np.inf) < abs(
+            fhi if np.isfinite(fhi) else np.inf) else hi
+    for _ in range(40):
+        mid = 0.5 * (lo + hi)
+        fm = f(mid)
+        if not np.isfinite(fm):
+            break
+        if fm * flo > 0:
+            lo, flo = mid, fm
+        else:
+            hi = mid
+    return 0.5 * (lo + hi)
+
+
+#: Parameters that shape n(λ) besides the level, tried in the seed fit (kind -> names).
+_SHAPE_PARAMS = {"cauchy": ("B",), "sellmeier": ("C1",), "constant": (),
+                 "oscillators": ("o1_A", "o1_f", "o1_Ep")}
+
+
+def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
+    """Start values of a film's material from a seed (a copy of ``local``, updated).
+
+    With n at three or more extrema spanning a useful range, the index level
+    and one shape parameter (Cauchy B, the first oscillator's strength ...) are
+    fitted to those n values by bounded least squares; otherwise only the level
+    is set so that n(λ_ref) matches the seed.
+    """
+    from scipy.optimize import least_squares
+
+    out = dict(local)
+    if not seed.n_ref:
+        return out
+    free = set(material.params) if free is None else set(free)
+    level = n_level_param(material)
+    if level is None or level not in free:
+        return out
+    out[level] = set_n_level(material, out, level, seed.n_ref, seed.wl_ref)
+    lam, n = seed.n_points if seed.n_points else ((), ())
+    lam, n = np.asarray(lam, float), np.asarray(n, float)
+    names = [level] + [k for k in _SHAPE_PARAMS.get(material.kind, ())
+                       if k in material.params and k in free and material.params[k].vary
+                       and not material.params[k].expr][:1]
+    if len(names) < 2 or n.size < 3 or lam.max() / lam.min() < 1.3:
+        return out
+    lo = np.array([material.params[k].min for k in names])
+    hi = np.array([material.params[k].max for k in names])
+    x0 = np.clip([out[k] for k in names], lo, hi)
+
+    def f(x):
+        try:
+            with np.errstate(all="ignore"):
+                r = material.N_unchecked(lam, {**out, **dict(zip(names, x))}).real - n
+        except Exception:  # impossible combination while searching
+            return np.full(n.size, 10.0)
+        return np.where(np.isfinite(r), r, 10.0)
+
+    try:
+        sol = least_squares(f, x0, bounds=(lo, hi), x_scale="jac", max_nfev=200)
+    except ValueError:
+        return out
+    if np.sqrt(np.mean(sol.fun ** 2)) < np.sqrt(np.mean(f(x0) ** 2)):
+        out.update({k: float(v) for k, v in zip(names, sol.x)})
+    return out
+
+
+# -- the scan ----------------------------------------------------------------------------
+@dataclass
+class ScanResult:
+    """χ² over the thickness grid (rows: index levels) and the level values."""
+
+    thickness_nm: np.ndarray
+    chisqr: np.ndarray                      # shape (levels, K)
+    levels: list = field(default_factory=list)   # dicts of local material values per level
+
+    @property
+    def profile(self) -> np.ndarray:
+        return self.chisqr.min(axis=0)
+
+
+def scan_range(seed: Seed, bounds: tuple[float, float], n_mid: float, wl_max: float,
+               user: tuple[float, float] | None = None) -> tuple[float, float]:
+    """Thickness range of the scan: user choice, else from the seed and the layer bounds."""
+    lo_b, hi_b = bounds
+    if user is not None:
+        lo, hi = float(user[0]), float(user[1])
+    elif seed.has_fringes and seed.thickness_nm:
+        lo, hi = 5.0, 2.0 * seed.thickness_nm + 50.0
+    else:
+        # No fringes: the film is thinner than about a quarter wave at λ_max
+        # (or its index matches the substrate). Scan a generous margin above.
+        lo, hi = 5.0, max(wl_max / (2 * max(n_mid, 1.0)), 1000.0)
+    lo, hi = max(lo, lo_b), min(hi, hi_b)
+    if hi <= lo:
+        lo, hi = lo_b, min(hi_b, max(lo_b * 2, lo_b + 1000.0))
+    return lo, hi
+
+
+def _subsample(wl: np.ndarray, n_hi: float, d_max: float) -> np.ndarray:
+    """Indices of a subsample with at least 5 points per fringe at thickness d_max.
+
+    Fringes are periodic in 1/λ with period 1/(2nd), i.e. λ²/(2nd) in λ: the
+    subsample is denser at short wavelengths, where fringes are closest.
+    """
+    W = wl.size
+    if W < 64:
+        return np.arange(W)
+    need = wl * wl / (10 * n_hi * max(d_max, 1.0))     # wanted spacing at each λ
+    idx, last = [0], wl[0]
+    for i in range(1, W):
+        if wl[i] - last >= need[i] * 0.999:
+            idx.append(i)
+            last = wl[i]
+    if len(idx) < 48:         # thin films: keep enough points for a smooth χ²
+        return np.unique(np.linspace(0, W - 1, min(W, 48)).astype(int))
+    return np.asarray(idx)
+
+
+def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
+                   level_name: str | None, n_ref: float, wl_ref: float, fit_scale: bool,
+                   fit_offset: bool, check=None, chunk: int = 256,
+                   wl_range: tuple | None = None) -> ScanResult:
+    """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
+
+    Parameters
+    ----------
+    parts : list of Part
+        Parts whose scanned film shares this thickness (their χ² add).
+    layer_index : int
+        Index of the scanned film in each part's stack.
+    local_start : list of dict
+        Each part's local parameter values at the start.
+    d_grid : ndarray of shape (K,)
+    level_name : str or None
+        Parameter of the film's material setting its index level; None: one level.
+    n_ref, wl_ref : float
+        Index level at the seed and the wavelength it refers to.
+    fit_scale, fit_offset : bool
+        Solve scale and offset in closed form at every grid point.
+    check : callable or None
+        Called between chunks; may raise to abort.
+    wl_range : (float, float) or None
+        Wavelengths the scan looks at (the fringe region); None: all used points.
+    """
+    mat0 = parts[0].stack.layers[layer_index].material
+    pre = parts[0].stack.layers[layer_index].name + "_"
+    base_local = {k: local_start[0][pre + k] for k in mat0.params}
+    levels = [base_local]
+    if level_name is not None:
+        levels = [{**base_local, level_name: set_n_level(mat0, base_local, level_name,
+                                                        n_ref * (1 + dl), wl_ref)}
+                  for dl in _N_LEVELS]
+    chi = np.zeros((len(levels), d_grid.size))
+    for part, start in zip(parts, local_start):
+        st = part.stack
+        n_hi = 1.15 * n_ref * (1 + max(_N_LEVELS))
+        sel = np.arange(part.wl.size)
+        if wl_range is not None:
+            inside = np.flatnonzero((part.wl >= wl_range[0]) & (part.wl <= wl_range[1]))
+            if inside.size >= 24:
+                sel = inside
+        idx = sel[_subsample(part.wl[sel], n_hi, float(d_grid.max()))]
+        wl, y, w = part.wl[idx], part.y[idx], 1.0 / part.sigma[idx] ** 2
+        W = wl.size
+        N_amb, N_sub, N_exit = st.ambient.N(wl), st.substrate.N(wl), st.exit_medium.N(wl)
+        Ns, ds = [], []
+        for layer in st.layers:
+            p = layer.name + "_"
+            Ns.append(layer.material.N_unchecked(wl, {k: start[p + k]
+                                                      for k in layer.material.params}))
+            ds.append(start[p + "thickness"])
+        angle = math.radians(start.get("angle_deg", part.angle_deg))
+        scale0, offset0 = start.get("scale", 1.0), start.get("offset", 0.0)
+        mat = st.layers[layer_index].material
+        # Vectorised over thickness: the grid is tiled k times, so one films_RT call
+        # evaluates k thicknesses at once (outer media bound once per chunk size).
+        k = max(1, min(chunk, d_grid.size, 200000 // max(W, 1)))
+        outer = {}
+        for li, lv in enumerate(levels):
+            Ns[layer_index] = mat.N_unchecked(wl, lv)
+            for a in range(0, d_grid.size, k):
+                if check is not None:
+                    check()
+                dk = d_grid[a:a + k]
+                kk = dk.size
+                if kk not in outer:
+                    outer[kk] = outer_media(np.tile(wl, kk), np.tile(N_amb, kk),
+                                            np.tile(N_sub, kk), st.substrate.thickness_nm,
+                                            np.tile(N_exit, kk), angle_rad=angle,
+                                            polarization=part.polarization)
+                Nt = [np.tile(N, kk) for N in Ns]
+                dd = [np.full(kk * W, x) for x in ds]
+                dd[layer_index] = np.repeat(dk, W)
+                with np.errstate(all="ignore"):
+                    R, T = films_RT(outer[kk], Nt, dd)
+                m = (T if part.quantity == "T" else R).reshape(kk, W)
+                chi[li, a:a + kk] += _profiled_chi2(m, y, w, fit_scale, fit_offset,
+                                                    scale0, offset0)
+    chi[~np.isfinite(chi)] = np.inf
+    return ScanResult(d_grid, chi, levels)
+
+
+def _profiled_chi2(m, y, w, fit_scale, fit_offset, s0, o0):
+    """χ² of each row of ``m`` with scale s and offset o solved by weighted linear LSQ."""
+    if fit_scale and fit_offset:
+        Sw, Sm, Smm = w.sum(), m @ w, (m * m) @ w
+        Sy, Smy = y @ w, (m * y) @ w
+        det = Sw * Smm - Sm * Sm
+        s = np.where(det > 0, (Sw * Smy - Sm * Sy) / np.where(det > 0, det, 1), s0)
+        s = np.clip(s, 0.7, 1.3)
+        o = np.clip((Sy - s * Sm) / Sw, -0.2, 0.2)
+    elif fit_scale:
+        s = np.clip(((m * (y - o0)) @ w) / np.maximum((m * m) @ w, 1e-300), 0.7, 1.3)
+        o = o0
+    elif fit_offset:
+        s = s0
+        o = np.clip(((y - s0 * m) @ w) / w.sum(), -0.2, 0.2)
+    else:
+        s, o = s0, o0
+    s = np.reshape(s, (-1, 1)) if np.ndim(s) else s
+    o = np.reshape(o, (-1, 1)) if np.ndim(o) else o
+    r = y - s * m - o
+    return (r * r) @ w
+
+
+def pick_basins(scan: ScanResult, n_max: int = 3) -> list[tuple[float, dict, float]]:
+    """The ``n_max`` lowest local minima of the scanned χ²(d): (d, level values, χ²)."""
+    prof = scan.profile
+    K = prof.size
+    if K == 0:
+        return []
+    if K < 3:
+        i = int(np.argmin(prof))
+        lv = scan.levels[int(np.argmin(scan.chisqr[:, i]))]
+        return [(float(scan.thickness_nm[i]), lv, float(prof[i]))]
+    left = np.r_[np.inf, prof[:-1]]
+    right = np.r_[prof[1:], np.inf]
+    mins = np.flatnonzero((prof <= left) & (prof <= right) & np.isfinite(prof))
+    mins = mins[np.argsort(prof[mins])][:n_max]
+    out = []
+    for i in mins:
+        lv = scan.levels[int(np.argmin(scan.chisqr[:, i]))]
+        out.append((float(scan.thickness_nm[i]), lv, float(prof[i])))
+    return out

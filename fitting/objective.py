@@ -1,0 +1,339 @@
+"""The weighted least-squares objective of a fit: used points, weights, nuisance terms.
+
+A fit compares one or more measured spectra with the model of a layer stack.
+Each spectrum with its stack is a :class:`Part`: the points that take part
+(mask, fit range and excluded windows applied), their 1σ weights and a
+:class:`~fitting.stack.StackModel` bound to exactly those wavelengths, so the
+inner loop never re-validates or re-interpolates anything.
+
+The residual of one part is
+
+    r_i = (y_i - s·M_i(p) - o) / σ_i,
+
+with M the modelled T or R, s the 100 % line scale and o the baseline offset
+(both fixed at 1 and 0 unless fitted). :class:`Objective` concatenates the
+parts, counts evaluations, remembers the best point seen, and enforces the
+evaluation budget, the time limit and the user's stop request through lmfit's
+``iter_cb`` (a True return ends the minimiser cleanly).
+
+References
+----------
+.. [1] P. R. Bevington and D. K. Robinson, *Data Reduction and Error Analysis for
+       the Physical Sciences*, 3rd ed., McGraw-Hill (2003), ch. 8 (weighted χ²).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import lmfit
+import numpy as np
+
+from .errors import FitError, PellucidError
+from .result import FitProgress
+from .stack import Stack, StackModel
+
+__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "robust_sigma"]
+
+#: Noise assumed when a spectrum carries no σ: 0.2 % T, typical of a double-beam
+#: UV-Vis-NIR spectrometer over most of its range (common practice).
+DEFAULT_SIGMA = 0.002
+
+# Bounds of the nuisance parameters (common practice: a 100 % line off by more
+# than 30 % or a baseline off by 0.2 is a measurement problem, not a fit parameter).
+_NUISANCE = {
+    "scale": (1.0, 0.7, 1.3, "", "100 % line scale of the measured spectrum"),
+    "offset": (0.0, -0.2, 0.2, "", "baseline offset of the measured spectrum"),
+    "angle_deg": (0.0, 0.0, 80.0, "deg", "angle of incidence"),
+    "thickness_spread": (0.0, 0.0, 0.3, "", "relative thickness non-uniformity (1σ)"),
+}
+_NAME_TOKEN = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+
+
+def robust_sigma(residual: np.ndarray) -> float:
+    """1σ noise from residuals by the median absolute deviation (1.4826·MAD).
+
+    References
+    ----------
+    .. [1] P. J. Rousseeuw and C. Croux, "Alternatives to the median absolute
+           deviation", J. Am. Stat. Assoc. 88, 1273 (1993).
+    """
+    r = np.asarray(residual, dtype=float)
+    r = r[np.isfinite(r)]
+    if r.size < 3:
+        return DEFAULT_SIGMA
+    return float(1.4826 * np.median(np.abs(r - np.median(r))))
+
+
+@dataclass
+class Part:
+    """One measured spectrum and the stack that models it, bound to its used points."""
+
+    index: int
+    spectrum: object               # fitting.spectrum.Spectrum
+    stack: Stack                   # a private copy; the fit writes values into it
+    used: np.ndarray               # bool, over the spectrum's full grid
+    in_range: np.ndarray           # bool: inside the fit range (masked windows included)
+    wl: np.ndarray                 # used wavelengths
+    y: np.ndarray                  # used measured values
+    sigma: np.ndarray              # used 1σ
+    sigma_given: bool
+    model: StackModel
+    quantity: str
+    angle_deg: float
+    polarization: str
+    # lmfit name -> local name ("film_A", "scale", ...); filled by Objective
+    names: list = field(default_factory=list)
+
+    def evaluate(self, local: dict, model: StackModel | None = None) -> np.ndarray:
+        """Modelled quantity (scale and offset applied) for local parameter values."""
+        sm = self.model if model is None else model
+        if "angle_deg" in local and abs(sm.angle_rad - math.radians(local["angle_deg"])) > 1e-15:
+            # The geometry is bound into the model: a new angle needs a new binding.
+            sm = StackModel(self.stack, sm.wavelength_nm, angle_deg=local["angle_deg"],
+                            polarization=self.polarization)
+            if model is None:
+                self.model = sm
+        if "thickness_spread" in local:
+            self.stack.thickness_spread = local["thickness_spread"]
+        R, T = sm.RT(local)
+        m = T if self.quantity == "T" else R
+        return local.get("scale", 1.0) * m + local.get("offset", 0.0)
+
+
+def build_part(index: int, spectrum, stack: Stack, options) -> Part:
+    """Select the used points of ``spectrum`` and bind a private copy of ``stack`` to them.
+
+    Raises
+    ------
+    FitError
+        If no usable point remains, or the stack cannot be evaluated there.
+    """
+    stack = Stack.from_dict(stack.to_dict())
+    wl = spectrum.wavelength_nm
+    name = spectrum.name or f"spectrum {index + 1}"
+    if wl.size == 0:
+        raise FitError(f"{name}: the spectrum holds no data points")
+    in_range = np.ones(wl.shape, dtype=bool)
+    if options.fit_range_nm is not None:
+        lo, hi = options.fit_range_nm
+        in_range = (wl >= lo) & (wl <= hi)
+        if not in_range.any():
+            raise FitError(f"{name}: no data point lies in the fit range {lo:g}-{hi:g} nm "
+                           f"(the data cover {wl[0]:g}-{wl[-1]:g} nm); widen the fit range")
+    used = in_range & spectrum.used & np.isfinite(spectrum.values)
+    for lo, hi in options.mask_windows_nm:
+        used &= ~((wl >= lo) & (wl <= hi))
+    sigma_given = spectrum.sigma is not None
+    if sigma_given:
+        used &= np.isfinite(spectrum.sigma) & (spectrum.sigma > 0)
+    if not used.any():
+        raise FitError(f"{name}: no usable data points remain after the mask, the fit range "
+                       f"and the excluded windows; check the fit range and the mask")
+    sig = spectrum.sigma[used] if sigma_given else np.full(int(used.sum()), DEFAULT_SIGMA)
+    try:
+        model = StackModel(stack, wl[used], angle_deg=options.angle_deg,
+                           polarization=options.polarization)
+    except PellucidError as e:
+        raise FitError(f"{name}: the stack cannot be computed on the data: {e}") from e
+    return Part(index, spectrum, stack, used, in_range, wl[used], spectrum.values[used], sig,
+                sigma_given, model, spectrum.quantity, options.angle_deg, options.polarization)
+
+
+class _Stop(Exception):
+    """Raised inside the engine when the budget, the time limit or the user ends a fit."""
+
+
+class Objective:
+    """Residual over all parts, with lmfit parameters, budget and best-point tracking.
+
+    Parameters
+    ----------
+    parts : list of Part
+    options : FitOptions
+    shared : set of str or None
+        Local parameter names shared by all parts (None: single part, no prefixes).
+        A name not shared is prefixed per part: ``p2_film_thickness``.
+    progress : callable(FitProgress) or None
+    stop : threading.Event or None
+    """
+
+    def __init__(self, parts: list[Part], options, *, shared=None, progress=None,
+                 stop: threading.Event | None = None):
+        self.parts, self.options = parts, options
+        self.progress_cb: Callable | None = progress
+        self.stop_event = stop
+        self.t0 = time.perf_counter()
+        self.deadline = self.t0 + float(options.time_limit_s)
+        self.max_nfev = int(options.max_nfev)
+        self.nfev = 0
+        self.best_chisqr = math.inf
+        self.best_values: dict | None = None
+        self.stop_reason = ""
+        self.stage, self._frac = "start", (0.0, 0.05)
+        self._stage_nfev0, self._stage_expect = 0, 1
+        self._last_report = 0.0
+        self.params = self._make_params(shared)
+        self.ndata = sum(p.y.size for p in parts)
+        self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
+        if not self.var_names:
+            raise FitError("no parameter is free to vary: tick 'fit' for at least one "
+                           "thickness or material parameter")
+        if self.ndata <= len(self.var_names):
+            raise FitError(f"{self.ndata} usable data points cannot determine "
+                           f"{len(self.var_names)} free parameters; widen the fit range or "
+                           f"fix some parameters")
+
+    # -- parameters -----------------------------------------------------------------
+    def _make_params(self, shared) -> lmfit.Parameters:
+        params = lmfit.Parameters()
+        opts = self.options
+        multi = shared is not None and len(self.parts) > 1
+        pending_expr = []
+        for part in self.parts:
+            local_params = dict(part.stack.parameters())
+            for key, flag in (("scale", opts.fit_scale), ("offset", opts.fit_offset),
+                              ("angle_deg", opts.fit_angle), ("thickness_spread",
+                                                              opts.fit_spread)):
+                if flag:
+                    value, lo, hi = _NUISANCE[key][:3]
+                    if key == "angle_deg":
+                        value = min(max(part.angle_deg, lo), hi)
+                    elif key == "thickness_spread":
+                        value = min(max(part.stack.thickness_spread, 0.002), hi)
+                    local_params[key] = (value, lo, hi)
+            local_names = set(local_params)
+
+            def gname(local, _part=part):
+                if not multi or local in shared:
+                    return local
+                return f"p{_part.index + 1}_{local}"
+
+            for local, p in local_params.items():
+                g = gname(local)
+                part.names.append((g, local))
+                if g in params:
+                    continue
+                if isinstance(p, tuple):
+                    params.add(g, value=p[0], min=p[1], max=p[2], vary=True)
+                else:
+                    params.add(g, value=p.value, min=p.min, max=p.max, vary=p.vary)
+                    if p.expr:
+                        # Rename the names the tie refers to the way this part's names are.
+                        expr = _NAME_TOKEN.sub(
+                            lambda m: gname(m.group(0)) if m.group(0) in local_names
+                            else m.group(0), p.expr)
+                        pending_expr.append((g, expr))
+        for g, expr in pending_expr:
+            try:
+                params[g].set(expr=expr)
+                params.update_constraints()
+            except Exception as e:  # lmfit raises NameError/SyntaxError for a bad tie
+                raise FitError(f"parameter {g!r}: the tie expression {expr!r} cannot be "
+                               f"evaluated ({e}); it may name only parameters of this fit, "
+                               f"numbers and arithmetic") from None
+        return params
+
+    def local_values(self, part: Part, values) -> dict:
+        """Local parameter values of one part from an lmfit Parameters or a plain dict."""
+        if isinstance(values, lmfit.Parameters):
+            return {loc: values[g].value for g, loc in part.names}
+        return {loc: values[g] for g, loc in part.names}
+
+    # -- residual -------------------------------------------------------------------
+    def part_residual(self, part: Part, local: dict) -> np.ndarray:
+        try:
+            with np.errstate(all="ignore"):
+                r = (part.y - part.evaluate(local)) / part.sigma
+        except PellucidError:
+            # An impossible combination (e.g. Tauc-Lorentz C >= 2 E0) on the way:
+            # a large, flat residual steers the minimiser back.
+            return np.full(part.y.size, 1e3)
+        if not np.all(np.isfinite(r)):
+            r = np.where(np.isfinite(r), r, 1e3)
+        return r
+
+    def residual(self, params) -> np.ndarray:
+        """Concatenated weighted residuals (the function lmfit minimises)."""
+        out = [self.part_residual(p, self.local_values(p, params)) for p in self.parts]
+        r = out[0] if len(out) == 1 else np.concatenate(out)
+        self.nfev += 1
+        chi2 = float(r @ r)
+        if chi2 < self.best_chisqr:
+            self.best_chisqr = chi2
+            self.best_values = params.valuesdict() if isinstance(params, lmfit.Parameters) \
+                else dict(params)
+        return r
+
+    def chisqr_of(self, values: dict) -> float:
+        r = np.concatenate([self.part_residual(p, self.local_values(p, values))
+                            for p in self.parts])
+        return float(r @ r)
+
+    # -- budget, stop and progress --------------------------------------------------
+    def should_stop(self) -> bool:
+        if self.stop_reason:
+            return True
+        if self.stop_event is not None and self.stop_event.is_set():
+            self.stop_reason = "stopped on request"
+        elif time.perf_counter() > self.deadline:
+            self.stop_reason = (f"time limit of {self.options.time_limit_s:g} s reached; "
+                                f"raise the time limit or give a better start")
+        elif self.nfev >= self.max_nfev:
+            self.stop_reason = (f"evaluation budget of {self.max_nfev} model evaluations "
+                                f"used up; raise max_nfev or give a better start")
+        return bool(self.stop_reason)
+
+    def iter_cb(self, params, it, resid, *args, **kws) -> bool:
+        """lmfit iteration callback: report progress, return True to abort."""
+        self.report()
+        return self.should_stop()
+
+    def check(self) -> None:
+        """Between stages: raise :class:`_Stop` if the fit must end."""
+        if self.should_stop():
+            raise _Stop(self.stop_reason)
+
+    def remaining_nfev(self) -> int:
+        return max(self.max_nfev - self.nfev, 1)
+
+    def set_stage(self, stage: str, frac_lo: float, frac_hi: float, expect_nfev: int = 100,
+                  message: str = "") -> None:
+        self.stage, self._frac = stage, (frac_lo, frac_hi)
+        self._stage_nfev0, self._stage_expect = self.nfev, max(expect_nfev, 1)
+        self.report(force=True, message=message)
+
+    def report(self, *, force: bool = False, message: str = "") -> None:
+        if self.progress_cb is None:
+            return
+        now = time.perf_counter()
+        if not force and now - self._last_report < 0.05:
+            return
+        self._last_report = now
+        lo, hi = self._frac
+        done = min(1.0, (self.nfev - self._stage_nfev0) / self._stage_expect)
+        self.progress_cb(FitProgress(self.stage, lo + (hi - lo) * done, self.nfev,
+                                     self.best_chisqr, message))
+
+    @property
+    def elapsed(self) -> float:
+        return time.perf_counter() - self.t0
+
+    def minimize(self, method: str, values: dict | None = None, **kws):
+        """Run one lmfit minimiser from ``values`` (default: the current parameters)."""
+        params = self.params.copy()
+        if values:
+            for k, v in values.items():
+                if k in params and params[k].vary and not params[k].expr:
+                    p = params[k]
+                    params[k].value = float(min(max(v, p.min), p.max))
+            params.update_constraints()
+        mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
+                               max_nfev=self.remaining_nfev(), scale_covar=True)
+        with np.errstate(all="ignore"):
+            return mini.minimize(method=method, **kws)
