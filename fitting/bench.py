@@ -1,0 +1,521 @@
+"""Speed of the stack engine, the fit and the batch runner: ``python -m fitting.bench``.
+
+One run measures, on this machine:
+
+1. **forward** -- one evaluation of T (and R) through :class:`~fitting.stack.StackModel`
+   bound to the grid, with parameters changing between calls as in a fit (the film's
+   N is recomputed, the substrate is cached), for air | film | 1 mm fused silica | air
+   at normal incidence, a 3-film stack, and 45° unpolarised light; each against the
+   reference library ``tmm`` (``tmm.inc_tmm`` per wavelength, its intended use) on the
+   same stack in the same run, with the largest |ΔT| between the two;
+2. **fit** -- complete fits from the automatic start (thickness + Cauchy + Urbach) of
+   synthetic spectra with 0.2 % noise, over several noise seeds;
+3. **batch** -- synthetic spectra through the real ``pellucid batch`` command on all
+   cores: spectra per second, peak memory of the process tree, and how the wall time
+   grows with the number of spectra;
+4. **scaling** -- cost against the number of wavelengths and of layers, with the
+   log-log slopes (1 = linear).
+
+Every time is a median over many calls after warm-up calls (``time.perf_counter``).
+Results are printed as a table and written to JSON (``--out``, default
+``bench_results.json``) with a description of the machine. ``--quick`` runs tiny
+sizes in a few seconds (the smoke test uses it), ``--skip-batch`` leaves out the
+subprocess part, ``--repeat N`` sets the number of timed calls per forward
+measurement.
+
+Numbers depend on the BLAS/NumPy build: on machines that set
+``OPENBLAS_CORETYPE``/``OPENBLAS_L2_SIZE`` the JSON records both.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from .atomic import atomic_write_json
+from .dispersion import Cauchy
+from .stack import Layer, Stack
+from .substrates import library_substrate
+
+__all__ = ["run_benchmark", "machine_info", "time_calls", "main", "AGREEMENT_TOL"]
+
+#: Largest |ΔT| against tmm accepted as agreement (double precision leaves ~1e-15).
+AGREEMENT_TOL = 1e-9
+
+_WL_RANGE_NM = (300.0, 1100.0)
+_FULL = dict(forward_sizes=(1000, 5000), scaling_sizes=(500, 1000, 2000, 5000, 10000, 20000),
+             scaling_layers=(1, 2, 5, 10, 20), tmm_repeat=3, fit_points=1000, fit_seeds=5,
+             batch_counts=(50, 100, 200), repeat=200)
+_QUICK = dict(forward_sizes=(40, 80), scaling_sizes=(50, 100, 200), scaling_layers=(1, 2, 4),
+              tmm_repeat=1, fit_points=150, fit_seeds=1, batch_counts=(2, 4), repeat=15)
+
+
+# -- machine and timing ---------------------------------------------------------------------
+
+def _cpu_model() -> str:
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8") as fh:
+            for line in fh:
+                if line.lower().startswith("model name"):
+                    return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or "unknown"
+
+
+def _blas_info():
+    try:
+        import threadpoolctl
+    except ImportError:
+        try:  # the build configuration numpy reports (no runtime thread info)
+            cfg = np.show_config(mode="dicts")
+            return {"source": "numpy.show_config",
+                    "blas": cfg.get("Build Dependencies", {}).get("blas", {}),
+                    "lapack": cfg.get("Build Dependencies", {}).get("lapack", {})}
+        except Exception as exc:  # noqa: BLE001 - informational only
+            return {"source": "unavailable", "reason": str(exc)}
+    return {"source": "threadpoolctl", "pools": threadpoolctl.threadpool_info()}
+
+
+def machine_info() -> dict:
+    """Platform, CPU, cores, library versions, BLAS and the environment that steers it."""
+    import scipy
+
+    try:
+        usable = len(os.sched_getaffinity(0))
+    except AttributeError:
+        usable = os.cpu_count()
+    try:
+        import tmm
+        tmm_version = getattr(tmm, "__version__", "installed")
+    except ImportError:
+        tmm_version = None
+    return {
+        "platform": platform.platform(), "python": platform.python_version(),
+        "cpu_model": _cpu_model(), "cpu_count": os.cpu_count(), "cpus_usable": usable,
+        "numpy": np.__version__, "scipy": scipy.__version__, "tmm": tmm_version,
+        "blas": _blas_info(),
+        "env": {k: os.environ.get(k) for k in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE",
+                                               "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
+                                               "MKL_NUM_THREADS")},
+    }
+
+
+def time_calls(fn, repeat: int, *, warmup: int = 3) -> dict:
+    """Median (and spread) of ``repeat`` timed calls of ``fn()`` after ``warmup`` calls."""
+    for _ in range(warmup):
+        fn()
+    t = np.empty(repeat)
+    for i in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        t[i] = time.perf_counter() - t0
+    q1, med, q3 = np.percentile(t, [25, 50, 75])
+    return {"median_s": float(med), "iqr_s": float(q3 - q1), "min_s": float(t.min()),
+            "n": int(repeat)}
+
+
+def _loglog_slope(x, y) -> float:
+    """Slope of log y against log x (1 = cost proportional to size)."""
+    return float(np.polyfit(np.log(x), np.log(y), 1)[0])
+
+
+# -- the synthetic samples ------------------------------------------------------------------
+
+def _film(i: int = 0) -> Cauchy:
+    """Invented Cauchy + Urbach films (no real material): indices 1.7-2.3, weak tail."""
+    return Cauchy(2.05 - 0.15 * (i % 3), 0.02 + 0.005 * (i % 2), urbach=True,
+                  k0=0.004, Eu=0.25)
+
+
+def demo_stack(n_films: int = 1) -> Stack:
+    """air | n_films Cauchy + Urbach films | 1 mm fused silica (incoherent) | air."""
+    layers = [Layer(f"film{i + 1}", _film(i), 600.0 - 40.0 * (i % 5)) for i in range(n_films)]
+    return Stack(layers, library_substrate("fused_silica", 1.0))
+
+
+def _fit_values(stack: Stack, n: int, rng) -> list[dict]:
+    """Parameter sets as a fit visits them: every thickness and n level moves a little."""
+    base = stack.values()
+    out = []
+    for _ in range(n):
+        v = dict(base)
+        for layer in stack.layers:
+            v[f"{layer.name}_thickness"] *= 1 + 1e-3 * rng.standard_normal()
+            v[f"{layer.name}_A"] += 1e-3 * rng.standard_normal()
+        out.append(v)
+    return out
+
+
+def _time_model(stack: Stack, wl, angle_deg: float, pol: str, repeat: int) -> dict:
+    model = stack.evaluator(wl, angle_deg=angle_deg, polarization=pol)
+    values = _fit_values(stack, 64, np.random.default_rng(1))
+    state = {"i": 0}
+
+    def call():
+        state["i"] += 1
+        model.RT(values[state["i"] % len(values)])
+
+    return time_calls(call, repeat, warmup=5)
+
+
+def tmm_RT(stack: Stack, wavelength_nm, angle_deg: float = 0.0, pol: str = "u"):
+    """R, T of ``stack`` from ``tmm.inc_tmm`` called per wavelength (the reference)."""
+    import tmm
+
+    wl = np.asarray(wavelength_nm, dtype=float)
+    films = [layer.material.N(wl) for layer in stack.layers]
+    N_amb, N_sub, N_exit = stack.ambient.N(wl), stack.substrate.N(wl), stack.exit_medium.N(wl)
+    d_list = [np.inf, *(layer.thickness_nm for layer in stack.layers),
+              stack.substrate.thickness_nm, np.inf]
+    c_list = ["i", *("c" for _ in films), "i", "i"]
+    # At normal incidence s and p carry the same power: one call, as a user would.
+    pols = ("s", "p") if pol == "u" and angle_deg != 0 else ("s" if pol == "u" else pol,)
+    th0 = math.radians(angle_deg)
+    R, T = np.zeros(wl.size), np.zeros(wl.size)
+    for i, lam in enumerate(wl):
+        n_list = [N_amb[i], *(N[i] for N in films), N_sub[i], N_exit[i]]
+        for p in pols:
+            out = tmm.inc_tmm(p, n_list, d_list, c_list, th0, lam)
+            R[i] += out["R"] / len(pols)
+            T[i] += out["T"] / len(pols)
+    return R, T
+
+
+def bench_forward(sizes, repeat: int, tmm_repeat: int) -> list[dict]:
+    """Forward-model cases of the issue, each against tmm on the same stack."""
+    try:
+        import tmm  # noqa: F401
+        have_tmm = True
+    except ImportError:
+        have_tmm = False
+    cases = [("1 film, normal", 1, 0.0, "u"), ("3 films, normal", 3, 0.0, "u"),
+             ("1 film, 45° unpolarised", 1, 45.0, "u")]
+    rows = []
+    for label, n_films, angle, pol in cases:
+        stack = demo_stack(n_films)
+        for W in sizes:
+            wl = np.linspace(*_WL_RANGE_NM, W)
+            row = {"case": label, "films": n_films, "angle_deg": angle, "polarization": pol,
+                   "wavelengths": W, "pellucid": _time_model(stack, wl, angle, pol, repeat)}
+            if have_tmm:
+                R, T = stack.RT(wl, angle_deg=angle, polarization=pol)
+                ref = {}
+
+                def reference():
+                    ref["RT"] = tmm_RT(stack, wl, angle, pol)
+
+                row["tmm"] = time_calls(reference, tmm_repeat, warmup=0)
+                dT = float(np.max(np.abs(T - ref["RT"][1])))
+                dR = float(np.max(np.abs(R - ref["RT"][0])))
+                row.update(max_abs_dT=dT, max_abs_dR=dR, agree=bool(dT < AGREEMENT_TOL),
+                           speedup=row["tmm"]["median_s"] / row["pellucid"]["median_s"])
+            else:
+                row["note"] = "tmm is not installed: no reference timing or agreement check"
+            rows.append(row)
+    return rows
+
+
+def bench_scaling(sizes, layers, repeat: int) -> dict:
+    """Median call time against wavelengths (1 film) and layers (1000 wavelengths)."""
+    by_w = [{"wavelengths": W, **_time_model(demo_stack(1), np.linspace(*_WL_RANGE_NM, W),
+                                             0.0, "u", repeat)} for W in sizes]
+    W_layers = 1000 if max(sizes) >= 1000 else max(sizes)
+    wl = np.linspace(*_WL_RANGE_NM, W_layers)
+    by_l = [{"layers": L, **_time_model(demo_stack(L), wl, 0.0, "u", repeat)} for L in layers]
+    tw = [r["median_s"] for r in by_w]
+    tl = [r["median_s"] for r in by_l]
+    half = len(sizes) // 2
+    per_layer, fixed = np.polyfit(layers, tl, 1)
+    return {
+        "wavelengths": by_w, "layers": by_l, "layers_at_wavelengths": W_layers,
+        "slope_loglog_wavelengths": _loglog_slope(sizes, tw),
+        "slope_loglog_wavelengths_upper": _loglog_slope(sizes[half:], tw[half:]),
+        "slope_loglog_layers": _loglog_slope(layers, tl),
+        "per_layer_s": float(per_layer), "fixed_s": float(fixed),
+        "per_wavelength_s_at_max": tw[-1] / sizes[-1],
+    }
+
+
+# -- one complete fit --------------------------------------------------------------------
+
+def _fit_start_stack() -> Stack:
+    """What a user starts from: a Cauchy + Urbach film at its default values."""
+    return Stack([Layer("film", Cauchy(urbach=True))], library_substrate("fused_silica", 1.0))
+
+
+def bench_fit(n_points: int, seeds: int) -> dict:
+    """Complete fits from the automatic start of noisy synthetic spectra."""
+    try:
+        from .fit import FitOptions, fit_spectrum
+        from .spectrum import Spectrum
+    except ImportError as exc:
+        return {"skipped": f"fit engine not available ({exc})"}
+    truth = Stack([Layer("film", Cauchy(2.1, 0.025, urbach=True, k0=0.003, Eu=0.22), 735.0)],
+                  library_substrate("fused_silica", 1.0))
+    wl = np.linspace(*_WL_RANGE_NM, n_points)
+    T_true = truth.transmittance(wl)
+    runs = []
+    options = FitOptions(method="auto")
+    # Warm-up: imports, caches and lazy module loads are not part of a fit's cost.
+    fit_spectrum(Spectrum(wl, T_true, quantity="T"), _fit_start_stack(), options)
+    for seed in range(seeds):
+        rng = np.random.default_rng(100 + seed)
+        y = T_true + 0.002 * rng.standard_normal(n_points)
+        spec = Spectrum(wl, y, quantity="T", name=f"synthetic seed {seed}")
+        t0 = time.perf_counter()
+        res = fit_spectrum(spec, _fit_start_stack(), options)
+        wall = time.perf_counter() - t0
+        d = res.params["film_thickness"].value if "film_thickness" in res.params else math.nan
+        runs.append({"seed": seed, "wall_s": wall, "elapsed_s": float(res.elapsed_s),
+                     "nfev": int(res.nfev), "success": bool(res.success),
+                     "thickness_nm": float(d), "thickness_error_nm": float(d - 735.0)})
+    walls = [r["wall_s"] for r in runs]
+    return {"points": n_points, "noise": 0.002, "seeds": seeds, "true_thickness_nm": 735.0,
+            "median_wall_s": float(np.median(walls)),
+            "median_nfev": float(np.median([r["nfev"] for r in runs])),
+            "median_s_per_evaluation": float(np.median([r["wall_s"] / max(r["nfev"], 1)
+                                                        for r in runs])),
+            "successes": sum(r["success"] for r in runs), "runs": runs}
+
+
+# -- the batch command -----------------------------------------------------------------------
+
+def _pellucid_command() -> list[str]:
+    exe = shutil.which("pellucid")
+    return [exe] if exe else [sys.executable, "-m", "fitting.cli"]
+
+
+def _tree_rss(proc) -> int:
+    """Resident memory of a process and all its descendants, bytes (0 once gone)."""
+    import psutil
+
+    total = 0
+    try:
+        members = [proc, *proc.children(recursive=True)]
+    except psutil.Error:
+        return 0
+    for p in members:
+        try:
+            total += p.memory_info().rss
+        except psutil.Error:
+            pass
+    return total
+
+
+def _run_sampled(cmd, cwd) -> dict:
+    """Run ``cmd``, sampling the RSS of its process tree every 20 ms."""
+    import psutil
+
+    t0 = time.perf_counter()
+    popen = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             stdin=subprocess.DEVNULL)
+    proc = psutil.Process(popen.pid)
+    peak = 0
+    while popen.poll() is None:
+        peak = max(peak, _tree_rss(proc))
+        time.sleep(0.02)
+    wall = time.perf_counter() - t0
+    out, err = popen.communicate()
+    return {"wall_s": wall, "returncode": popen.returncode, "peak_tree_rss_bytes": peak,
+            "stdout_tail": out.decode(errors="replace")[-400:],
+            "stderr_tail": err.decode(errors="replace")[-800:]}
+
+
+def _write_spectra(folder: Path, count: int, n_points: int) -> list[Path]:
+    """Synthetic T spectra (thickness varies as over a coated batch) as two-column CSV."""
+    rng = np.random.default_rng(7)
+    wl = np.linspace(*_WL_RANGE_NM, n_points)
+    try:
+        from .reader import write_spectrum
+    except ImportError:
+        write_spectrum = None
+    paths = []
+    for i in range(count):
+        st = Stack([Layer("film", Cauchy(2.1, 0.025, urbach=True, k0=0.003, Eu=0.22),
+                          700.0 + 0.4 * i)], library_substrate("fused_silica", 1.0))
+        y = st.transmittance(wl) + 0.002 * rng.standard_normal(n_points)
+        path = folder / f"sample_{i:04d}.csv"
+        if write_spectrum is not None:
+            from .spectrum import Spectrum
+            write_spectrum(path, Spectrum(wl, y, quantity="T", name=path.stem))
+        else:
+            np.savetxt(path, np.column_stack([wl, y]), delimiter=",",
+                       header="wavelength_nm,T", comments="", fmt="%.6f")
+        paths.append(path)
+    return paths
+
+
+def _write_recipe(path: Path):
+    from .recipe import Recipe, save_recipe
+
+    save_recipe(Recipe(_fit_start_stack(), name="benchmark film on fused silica"), path)
+
+
+def bench_batch(counts, jobs: int, n_points: int) -> dict:
+    """Spectra through ``pellucid batch`` in a subprocess: throughput, memory, linearity."""
+    try:
+        from . import recipe  # noqa: F401
+        from .batch import iter_batch  # noqa: F401
+    except ImportError as exc:
+        return {"skipped": f"batch runner or recipes not available ({exc})"}
+    try:
+        import psutil  # noqa: F401
+    except ImportError:
+        return {"skipped": "psutil is not installed (needed to sample memory)"}
+    cmd = _pellucid_command()
+    probe = subprocess.run([*cmd, "batch", "--help"], capture_output=True, text=True)
+    if probe.returncode != 0:
+        return {"skipped": "the 'pellucid batch' command is not available yet",
+                "detail": (probe.stderr or probe.stdout)[-300:]}
+    runs = []
+    with tempfile.TemporaryDirectory(prefix="pellucid-bench-") as tmp:
+        tmp = Path(tmp)
+        recipe_path = tmp / "recipe.json"
+        _write_recipe(recipe_path)
+        (tmp / "spectra").mkdir()
+        all_paths = _write_spectra(tmp / "spectra", max(counts), n_points)
+        for n in counts:
+            src = tmp / f"in_{n}"
+            src.mkdir()
+            for p in all_paths[:n]:
+                os.link(p, src / p.name)
+            out = tmp / f"out_{n}"
+            run = _run_sampled([*cmd, "batch", str(recipe_path), str(src), "--out", str(out),
+                                "--jobs", str(jobs)], tmp)
+            run.update(spectra=n, spectra_per_s=n / run["wall_s"])
+            runs.append(run)
+            if run["returncode"] != 0:
+                break
+    ok = [r for r in runs if r["returncode"] == 0]
+    result = {"jobs": jobs, "points": n_points, "command": " ".join([*cmd, "batch"]),
+              "runs": runs}
+    if len(ok) == len(counts):
+        n = np.array([r["spectra"] for r in ok], float)
+        t = np.array([r["wall_s"] for r in ok])
+        slope, intercept = np.polyfit(n, t, 1)
+        result.update(
+            spectra_per_s=ok[-1]["spectra_per_s"],
+            peak_tree_rss_mb=max(r["peak_tree_rss_bytes"] for r in ok) / 2 ** 20,
+            seconds_per_spectrum_slope=float(slope), startup_s=float(intercept),
+            per_spectrum_ratio_last_first=float((t[-1] / n[-1]) / (t[0] / n[0])),
+            slope_loglog=_loglog_slope(n, t))
+    else:
+        result["failed"] = "a batch run returned a non-zero exit code; see runs[-1]"
+    return result
+
+
+# -- driver ----------------------------------------------------------------------------------
+
+def run_benchmark(*, quick: bool = False, skip_batch: bool = False,
+                  repeat: int | None = None) -> dict:
+    """Run every part and return the JSON-ready results."""
+    cfg = dict(_QUICK if quick else _FULL)
+    if repeat is not None:
+        cfg["repeat"] = int(repeat)
+    t0 = time.perf_counter()
+    out = {"pellucid_bench": 1, "quick": quick, "machine": machine_info(),
+           "settings": {k: list(v) if isinstance(v, tuple) else v for k, v in cfg.items()},
+           "agreement_tol": AGREEMENT_TOL}
+    out["forward"] = bench_forward(cfg["forward_sizes"], cfg["repeat"], cfg["tmm_repeat"])
+    out["scaling"] = bench_scaling(cfg["scaling_sizes"], cfg["scaling_layers"], cfg["repeat"])
+    out["fit"] = bench_fit(cfg["fit_points"], cfg["fit_seeds"])
+    if skip_batch:
+        out["batch"] = {"skipped": "--skip-batch"}
+    else:
+        out["batch"] = bench_batch(cfg["batch_counts"], out["machine"]["cpus_usable"] or 1,
+                                   cfg["fit_points"])
+    out["all_agree"] = all(r.get("agree", True) for r in out["forward"])
+    out["total_s"] = time.perf_counter() - t0
+    return out
+
+
+def _us(s: float) -> str:
+    return f"{s * 1e6:10.1f}"
+
+
+def format_report(res: dict) -> str:
+    """The human-readable table of a :func:`run_benchmark` result."""
+    m = res["machine"]
+    lines = [f"Pellucid benchmark on {m['cpu_model']} ({m['cpus_usable']} cores), "
+             f"numpy {m['numpy']}, scipy {m['scipy']}, python {m['python']}", ""]
+    lines.append("Forward model (median per call, parameters changing as in a fit)")
+    lines.append(f"{'case':26s}{'W':>7s}{'pellucid µs':>13s}{'tmm ms':>11s}{'speed-up':>10s}"
+                 f"{'max|ΔT|':>11s}")
+    for r in res["forward"]:
+        tm = r.get("tmm")
+        lines.append(f"{r['case']:26s}{r['wavelengths']:7d}{_us(r['pellucid']['median_s'])}   "
+                     + (f"{tm['median_s'] * 1e3:10.1f}{r['speedup']:9.0f}x{r['max_abs_dT']:11.1e}"
+                        if tm else "   (no tmm)"))
+    sc = res["scaling"]
+    lines += ["", "Cost against wavelengths (1 film)"]
+    lines += [f"  W = {r['wavelengths']:6d}  {_us(r['median_s'])} µs" for r in sc["wavelengths"]]
+    lines.append(f"  log-log slope {sc['slope_loglog_wavelengths']:.2f} "
+                 f"(upper half {sc['slope_loglog_wavelengths_upper']:.2f}; 1 = linear)")
+    lines += ["", f"Cost against layers ({sc['layers_at_wavelengths']} wavelengths)"]
+    lines += [f"  L = {r['layers']:3d}  {_us(r['median_s'])} µs" for r in sc["layers"]]
+    lines.append(f"  log-log slope {sc['slope_loglog_layers']:.2f}; linear fit "
+                 f"{sc['per_layer_s'] * 1e6:.1f} µs per layer + {sc['fixed_s'] * 1e6:.1f} µs")
+    f = res["fit"]
+    lines += ["", "Complete fit from the automatic start"]
+    if "skipped" in f:
+        lines.append(f"  skipped: {f['skipped']}")
+    else:
+        lines.append(f"  {f['points']} points, noise {f['noise'] * 100:.1f} %, {f['seeds']} seeds: "
+                     f"median {f['median_wall_s']:.3f} s, {f['median_nfev']:.0f} evaluations, "
+                     f"{f['median_s_per_evaluation'] * 1e6:.0f} µs per evaluation, "
+                     f"{f['successes']}/{f['seeds']} converged")
+    b = res["batch"]
+    lines += ["", "Batch (pellucid batch subprocess)"]
+    if "skipped" in b:
+        lines.append(f"  skipped: {b['skipped']}")
+    elif "failed" in b:
+        lines.append(f"  failed: {b['failed']}")
+    else:
+        for r in b["runs"]:
+            lines.append(f"  {r['spectra']:5d} spectra  {r['wall_s']:8.2f} s  "
+                         f"{r['spectra_per_s']:6.1f} spectra/s  "
+                         f"peak RSS {r['peak_tree_rss_bytes'] / 2 ** 20:7.0f} MB")
+        lines.append(f"  {b['jobs']} jobs: {b['spectra_per_s']:.1f} spectra/s; "
+                     f"{b['seconds_per_spectrum_slope']:.3f} s per spectrum + "
+                     f"{b['startup_s']:.2f} s; per-spectrum time "
+                     f"{b['runs'][-1]['spectra']} vs {b['runs'][0]['spectra']}: "
+                     f"{b['per_spectrum_ratio_last_first']:.2f}")
+    lines += ["", f"agreement with tmm (max |ΔT| < {res['agreement_tol']:g}): "
+                  f"{'yes' if res['all_agree'] else 'NO'}; total {res['total_s']:.1f} s"]
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m fitting.bench",
+                                     description="Measure the speed of Pellucid on this machine.")
+    parser.add_argument("--out", default="bench_results.json",
+                        help="JSON file to write (default: bench_results.json)")
+    parser.add_argument("--quick", action="store_true", help="tiny sizes, a few seconds")
+    parser.add_argument("--skip-batch", action="store_true",
+                        help="leave out the 'pellucid batch' subprocess runs")
+    parser.add_argument("--repeat", type=int, default=None, metavar="N",
+                        help="timed calls per forward-model measurement")
+    args = parser.parse_args(argv)
+    if args.repeat is not None and args.repeat < 1:
+        parser.error("--repeat must be at least 1")
+    res = run_benchmark(quick=args.quick, skip_batch=args.skip_batch, repeat=args.repeat)
+    print(format_report(res))
+    path = atomic_write_json(args.out, json.loads(json.dumps(res, default=str)))
+    print(f"results written to {path}")
+    return 0 if res["all_agree"] else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,95 @@
+"""Smoke test of ``python -m fitting.bench`` in its quick mode (structure, not speed).
+
+No timing is asserted anywhere (speed is measured by the benchmark itself). The
+agreement check is exercised both ways: the engine against the independent
+reference ``tmm`` (S. J. Byrnes, arXiv:1603.02720), and a reference shifted
+by 1e-6 that the check must reject.
+"""
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from fitting import bench
+from fitting.dispersion import Constant
+from fitting.stack import Stack
+from fitting.substrates import Substrate
+
+tmm = pytest.importorskip("tmm")
+
+
+@pytest.fixture(scope="module")
+def quick_run(tmp_path_factory):
+    out = tmp_path_factory.mktemp("bench") / "results.json"
+    code = bench.main(["--quick", "--skip-batch", "--out", str(out)])
+    return code, json.loads(out.read_text(encoding="utf-8"))
+
+
+def test_quick_run_writes_the_documented_json(quick_run):
+    code, res = quick_run
+    assert code == 0
+    assert res["quick"] is True
+    m = res["machine"]
+    for key in ("platform", "cpu_model", "cpu_count", "numpy", "scipy", "blas", "env"):
+        assert key in m
+    assert "OPENBLAS_CORETYPE" in m["env"]
+    assert res["batch"] == {"skipped": "--skip-batch"}
+    assert res["settings"]["repeat"] == bench._QUICK["repeat"]
+
+
+def test_forward_rows_cover_every_case_and_agree_with_tmm(quick_run):
+    _, res = quick_run
+    rows = res["forward"]
+    sizes = bench._QUICK["forward_sizes"]
+    cases = {(r["films"], r["angle_deg"]) for r in rows}
+    assert cases == {(1, 0.0), (3, 0.0), (1, 45.0)}
+    assert sorted({r["wavelengths"] for r in rows}) == list(sizes)
+    for r in rows:
+        assert r["pellucid"]["median_s"] > 0 and r["pellucid"]["n"] == bench._QUICK["repeat"]
+        assert r["tmm"]["median_s"] > 0
+        assert r["speedup"] == pytest.approx(r["tmm"]["median_s"] / r["pellucid"]["median_s"])
+        assert r["max_abs_dT"] < bench.AGREEMENT_TOL and r["agree"] is True
+    assert res["all_agree"] is True
+
+
+def test_scaling_reports_slopes_over_the_requested_sizes(quick_run):
+    _, res = quick_run
+    sc = res["scaling"]
+    assert [r["wavelengths"] for r in sc["wavelengths"]] == list(bench._QUICK["scaling_sizes"])
+    assert [r["layers"] for r in sc["layers"]] == list(bench._QUICK["scaling_layers"])
+    for key in ("slope_loglog_wavelengths", "slope_loglog_layers", "per_layer_s"):
+        assert math.isfinite(sc[key])
+
+
+def test_fit_section_is_measured_or_says_why_not(quick_run):
+    _, res = quick_run
+    f = res["fit"]
+    if "skipped" in f:
+        assert "fit engine" in f["skipped"]
+    else:
+        assert len(f["runs"]) == f["seeds"] == bench._QUICK["fit_seeds"]
+        assert f["median_wall_s"] > 0 and f["median_nfev"] > 0
+
+
+def test_agreement_check_rejects_a_disagreeing_reference(monkeypatch):
+    real = bench.tmm_RT
+
+    def shifted(*args, **kw):
+        R, T = real(*args, **kw)
+        return R, T + 1e-6
+
+    monkeypatch.setattr(bench, "tmm_RT", shifted)
+    rows = bench.bench_forward((12,), repeat=2, tmm_repeat=1)
+    assert all(r["agree"] is False for r in rows)
+    assert all(r["max_abs_dT"] == pytest.approx(1e-6, rel=1e-3) for r in rows)
+
+
+def test_reference_wrapper_gives_the_bare_slab_transmittance():
+    # Lossless incoherent slab with both faces: T = 2s/(s² + 1) = 0.923077 for s = 1.5
+    # (Swanepoel 1983, J. Phys. E 16, 1214, eq. 3), here through tmm.inc_tmm.
+    st = Stack([], Substrate(Constant(1.5), 1.0))
+    R, T = bench.tmm_RT(st, np.array([500.0, 700.0]))
+    assert T == pytest.approx(2 * 1.5 / (1.5 ** 2 + 1), abs=1e-12)
+    assert R + T == pytest.approx(1.0, abs=1e-12)
