@@ -172,11 +172,15 @@ class Dispersion(_HasParams):
 
 
 def _sqrt_eps(eps: np.ndarray) -> np.ndarray:
-    """N = sqrt(ε) on the branch with κ >= 0 (and n >= 0 where κ = 0)."""
-    N = np.sqrt(np.asarray(eps, dtype=complex))
-    # numpy's principal sqrt already has Re >= 0; flip where that gives Im < 0
-    # (possible only for Re(ε) < 0 with Im(ε) = -0.0).
-    return np.where(N.imag < 0, -N, N)
+    """N = sqrt(ε) on the branch with κ >= 0 and n >= 0.
+
+    Passive media have Im ε >= 0. A slightly negative Im ε can still come out of
+    rounding (a Bruggeman root is ε_host - 3e-15j at f = 0); it is set to +0 before
+    the principal square root, which then gives n >= 0 and κ >= 0. (Flipping the
+    sign of N instead turned such a film's n = 2.42 into n = -2.42.)
+    """
+    eps = np.asarray(eps, dtype=complex)
+    return np.sqrt(eps.real + 1j * np.where(eps.imag > 0, eps.imag, 0.0))
 
 
 # ----------------------------------------------------------------------------------------
