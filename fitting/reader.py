@@ -40,19 +40,17 @@ from pathlib import Path
 
 import numpy as np
 
+from .atomic import atomic_write_bytes
 from .errors import ParameterError, RecipeError, SpectrumFormatError
-from .reference import MIN_POINTS, estimate_noise
+from .reference import MIN_POINTS, estimate_noise, reference_correct
 from .spectrum import Spectrum
+from .units import ev_to_nm, nm_to_ev, nm_to_wavenumber, wavenumber_to_nm
 
 __all__ = [
     "Dialect", "Preview", "ReaderOptions", "read_spectrum", "parse_spectrum", "sniff",
-    "preview", "write_spectrum", "to_nm", "from_nm", "bench_read",
-    "HC_EV_NM", "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
+    "preview", "write_spectrum", "reference_correct", "estimate_noise", "to_nm", "from_nm",
+    "bench_read", "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
 ]
-
-#: h c / e in eV nm, from the exact SI values of h, c and e (CODATA 2018):
-#: E[eV] = HC_EV_NM / wavelength[nm] = 1239.841984... / wavelength[nm].
-HC_EV_NM = 6.62607015e-34 * 299792458.0 / 1.602176634e-19 * 1e9
 
 #: Abscissa units understood everywhere ("um" is µm, "A" is Å).
 X_UNITS = ("nm", "um", "A", "cm-1", "eV")
@@ -90,7 +88,8 @@ def to_nm(x, unit: str) -> np.ndarray:
     """Convert abscissa values in ``unit`` (one of :data:`X_UNITS`) to wavelength in nm.
 
     Wavenumber: lambda[nm] = 1e7 / nu[cm^-1]; photon energy:
-    lambda[nm] = HC_EV_NM / E[eV] (CODATA 2018). Vacuum wavelengths throughout.
+    lambda[nm] = hc / E with hc = :data:`fitting.units.HC_EV_NM` eV nm (CODATA 2018).
+    Vacuum wavelengths throughout.
     """
     x = np.asarray(x, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -101,9 +100,9 @@ def to_nm(x, unit: str) -> np.ndarray:
         if unit == "A":
             return x * 0.1
         if unit == "cm-1":
-            return 1e7 / x
+            return wavenumber_to_nm(x)
         if unit == "eV":
-            return HC_EV_NM / x
+            return ev_to_nm(x)
     raise ParameterError("x_unit", unit, f"must be one of {X_UNITS}")
 
 
@@ -118,9 +117,9 @@ def from_nm(wavelength_nm, unit: str) -> np.ndarray:
         if unit == "A":
             return wl * 10.0
         if unit == "cm-1":
-            return 1e7 / wl
+            return nm_to_wavenumber(wl)
         if unit == "eV":
-            return HC_EV_NM / wl
+            return nm_to_ev(wl)
     raise ParameterError("x_unit", unit, f"must be one of {X_UNITS}")
 
 
@@ -667,8 +666,9 @@ def _is_comment(stripped: str) -> bool:
     return bool(_COMMENT.match(stripped))
 
 
-# Row kinds while sniffing.
-_BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT = range(6)
+# Row kinds while sniffing. _BROKEN: starts with a number but holds text, i.e. a
+# damaged data row (it belongs to the data block and is reported when parsed).
+_BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT, _BROKEN = range(7)
 
 
 def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
@@ -685,7 +685,9 @@ def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
     for tok in toks:
         v = numbers.parse(tok)
         if v is None:
-            return (_TEXT if len(toks) > 1 or n_num == 0 else _SINGLE), len(toks)
+            if len(toks) > 1 and numbers.parse(toks[0]) is not None:
+                return _BROKEN, len(toks)
+            return _TEXT, len(toks)
         if v != v:
             n_missing += 1
         else:
@@ -814,15 +816,21 @@ def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
 def _first_run(kinds, complete: bool) -> int | None:
     """First data row followed by 3 more data or gap rows (or by the end of the file)."""
     content = [(i, k) for i, (k, _) in enumerate(kinds) if k not in (_BLANK, _COMMENT_ROW)]
+    rowlike = (_DATA, _GAP, _BROKEN)
     for j, (i, k) in enumerate(content):
         if k != _DATA:
             continue
         follow = content[j + 1:j + 4]
-        if all(kk in (_DATA, _GAP) for _, kk in follow) and (len(follow) == 3 or not complete):
-            return i
-        if len(follow) < 3 and complete and all(kk in (_DATA, _GAP) for _, kk in follow):
+        if not all(kk in rowlike for _, kk in follow):
+            continue
+        if len(follow) < 3 and complete:
             n_data = sum(1 for _, kk in content[j:] if kk == _DATA)
-            return i if n_data >= MIN_POINTS else None
+            if n_data < MIN_POINTS:
+                return None
+        # A damaged first row belongs to the data and must be reported, not skipped.
+        while j > 0 and content[j - 1][1] == _BROKEN:
+            j -= 1
+        return content[j][0]
     return None
 
 
@@ -847,17 +855,14 @@ def _preamble(lines, delim, numbers, n_columns):
     if content:
         last = content[-1]
         toks = _header_tokens(lines[last], delim, n_columns)
-        if toks is not None and sum(numbers.parse(t) is None for t in toks if t) > 0 \
+        if toks is not None and numbers.parse(toks[0]) is None \
                 and not any(_QUANTITY_VALUE.match(t) for t in toks[1:]):
             header_idx = last
             names = toks
             if len(content) > 1:
                 above = _header_tokens(lines[content[-2]], delim, n_columns)
-                if above is not None and all(t == "" or _unit_word(t) or "%" in t
-                                             or _ordinate_label(t) is None and len(t) < 12
-                                             for t in toks) \
-                        and any(_unit_word(t) or "%" in t for t in toks) \
-                        and sum(numbers.parse(t) is None for t in above if t) > 0:
+                if above is not None and all(_is_unit_cell(t) for t in toks) \
+                        and numbers.parse(above[0]) is None:
                     # Two header lines: names above, units below.
                     units_idx, header_idx = last, content[-2]
                     names = tuple(f"{a} [{u}]" if u else a for a, u in zip(above, toks))
@@ -889,6 +894,15 @@ def _preamble(lines, delim, numbers, n_columns):
             comments.append(s)
     style = max(set(styles), key=styles.count) if styles else "none"
     return names, (None if header_idx is None else header_idx + 1), metadata, comments, style
+
+
+_UNIT_CELLS = {"", "%", "%t", "%r", "a.u.", "au", "arb. u.", "-", "1", "counts", "cts", "abs"}
+
+
+def _is_unit_cell(token: str) -> bool:
+    """A cell of a units row under the column names: "nm", "[%]", "(a.u.)"."""
+    t = token.strip().strip("()[]{} ")
+    return _unit_word(t) is not None or _norm_text(t) in _UNIT_CELLS
 
 
 def _add(metadata: dict, key: str, value: str):
@@ -1051,7 +1065,7 @@ def _is_index(col: np.ndarray) -> bool:
 
 def _looks_like_abscissa(col: np.ndarray) -> bool:
     c = col[np.isfinite(col)]
-    if c.size < 3 or c.size < 0.9 * col.size or np.any(c <= 0) or _is_index(c):
+    if c.size < 3 or c.size < 0.9 * col.size or _is_index(c):
         return False
     d = np.sign(np.diff(c))
     d = d[d != 0]
@@ -1070,7 +1084,8 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
                     expected="two different columns", found=str(x))
     free = [i for i in range(n) if i not in (x, y)]
     if x is None:
-        x = next((i for i in free if _abscissa_label(names[i])[0]), None)
+        x = next((i for i in free if _abscissa_label(names[i])[0]
+                  and _ordinate_label(names[i]) is None), None)
         if x is None:
             x = next((i for i in free if _looks_like_abscissa(layout.sample[:, i])), None)
         if x is None:
@@ -1547,27 +1562,7 @@ def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
         raise ParameterError("dialect.encoding", d.encoding,
                              f"cannot encode {exc.object[exc.start:exc.end]!r}; use utf-8") \
             from None
-    return _atomic_write(Path(path), data)
-
-
-def _atomic_write(path: Path, data: bytes) -> Path:
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        mode = path.stat().st_mode & 0o777 if path.exists() else 0o644
-        os.chmod(tmp, mode)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    return path
+    return atomic_write_bytes(path, data)
 
 
 # --------------------------------------------------------------------------- benchmark

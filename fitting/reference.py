@@ -172,7 +172,7 @@ def _mad(a: np.ndarray) -> float:
     return float(np.median(np.abs(a - np.median(a))))
 
 
-def estimate_noise(spectrum, *, window: int | None = 151) -> np.ndarray:
+def estimate_noise(spectrum, *, window: int | None = 201) -> np.ndarray:
     """Estimate the 1-sigma noise of each point from the spectrum itself.
 
     The second difference ``d2[i] = y[i-1] - 2 y[i] + y[i+1]`` removes a locally
@@ -188,7 +188,7 @@ def estimate_noise(spectrum, *, window: int | None = 151) -> np.ndarray:
         The spectrum (its ``values``) or the values themselves.
     window : int or None, optional
         Number of second differences in the sliding window of the local
-        estimate (default 151), so that noise that grows towards the ends of
+        estimate (default 201), so that noise that grows towards the ends of
         a detector's range is followed. ``None``, or a spectrum shorter than
         two windows, gives one global value for all points.
 
@@ -240,9 +240,9 @@ def estimate_noise(spectrum, *, window: int | None = 151) -> np.ndarray:
     floor = max(0.25 * global_sigma, _SIGMA_FLOOR)
     if window is None or d2.size < 2 * window:
         return np.full(y.size, max(global_sigma, floor))
-    centre = median_filter(d2, size=window, mode="nearest")
-    local = factor * median_filter(np.abs(d2 - centre), size=window, mode="nearest")
+    centre = median_filter(d2, size=window, mode="reflect")
+    local = factor * median_filter(np.abs(d2 - centre), size=window, mode="reflect")
     # A running median of |d2| jumps between neighbouring order statistics; the
     # mean over one more window makes the weights it feeds smooth.
-    local = uniform_filter1d(local, size=window, mode="nearest")
+    local = uniform_filter1d(local, size=window, mode="reflect")
     return np.maximum(np.pad(local, 1, mode="edge"), floor)

@@ -1,0 +1,489 @@
+"""Tests for fitting/reader.py: dialects, encodings, units, ordinates, errors, speed path.
+
+Reference values: hc from the exact SI constants as tabulated by scipy.constants
+(CODATA 2018); lambda = 1e7 / nu (definition of the wavenumber, 1 cm = 1e7 nm);
+A = -log10 T (definition of decadic absorbance, IUPAC Gold Book). Everything else
+is checked against values computed by hand in the test.
+"""
+
+from __future__ import annotations
+
+import codecs
+import json
+import os
+
+import numpy as np
+import pytest
+import scipy.constants as sc
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from fitting.errors import ParameterError, PellucidError, RecipeError, SpectrumFormatError
+from fitting.reader import (
+    Dialect, ReaderOptions, from_nm, parse_spectrum, preview, read_spectrum, sniff, to_nm,
+    write_spectrum,
+)
+from fitting.spectrum import Spectrum
+from fitting.units import HC_EV_NM
+
+
+def smooth_spectrum(n=301, lo=300.0, hi=1100.0, quantity="T", **kw):
+    wl = np.linspace(lo, hi, n)
+    return Spectrum(wl, 0.55 + 0.35 * np.cos(wl / 23.0), quantity=quantity, **kw)
+
+
+def table(rows, delim=";", head=""):
+    return head + "\n".join(delim.join(str(v) for v in r) for r in rows) + "\n"
+
+
+# --------------------------------------------------------------------- round trips
+
+ROUND_TRIP = [
+    Dialect(),
+    Dialect(delimiter=";", decimal=",", encoding="latin-1", x_unit="um"),
+    Dialect(delimiter=",", x_unit="cm-1", y_kind="absorbance", encoding="utf-16-le",
+            metadata_style="equals"),
+    Dialect(delimiter=" ", decimal=",", x_unit="eV", y_kind="T_fraction",
+            encoding="utf-8-sig", metadata_style="comment", x_order="descending"),
+    Dialect(delimiter="\t", thousands=",", x_unit="A", newline="\r\n", encoding="utf-16-be"),
+    Dialect(delimiter=";", decimal=",", thousands=".", x_unit="A", encoding="cp1252"),
+    Dialect(delimiter=",", thousands=",", x_order="descending"),          # quoted "1,234.5"
+    Dialect(delimiter=" ", y_kind="T_fraction", metadata_style="none", newline="\r"),
+    Dialect(delimiter=";", metadata_style="delimited", x_unit="eV"),
+    Dialect(delimiter="\t", columns=(), metadata_style="colon", x_unit="um"),  # units from meta
+    Dialect(delimiter="\t", decimal=",", columns=("lambda/nm", "Transmission %")),
+]
+
+
+@pytest.mark.parametrize("dialect", ROUND_TRIP, ids=lambda d: d.describe()[:60])
+def test_round_trip_every_dialect(tmp_path, dialect):
+    header = {"Sample": "F-12 (anneal 2)", "Operator": "Kim"}
+    if dialect.encoding != "latin-1":
+        header["Note"] = "2 h – 300 °C"              # en dash: cp1252, not Latin-1
+    spec = smooth_spectrum(metadata={"header": header})
+    path = write_spectrum(tmp_path / "s.txt", spec, dialect=dialect)
+    back = read_spectrum(path)
+    rtol = 1e-6 if dialect.thousands else 1e-8          # six decimals with thousands groups
+    np.testing.assert_allclose(back.wavelength_nm, spec.wavelength_nm, rtol=rtol)
+    np.testing.assert_allclose(back.values, spec.values, rtol=0, atol=1e-6)
+    assert back.quantity == "T"
+    assert back.warnings == ()
+    got = sniff(path)
+    for name in ("delimiter", "decimal", "thousands", "encoding", "newline", "x_unit",
+                 "y_kind", "metadata_style", "x_order"):
+        assert getattr(got, name) == getattr(dialect, name), name
+    assert got.x_unit_from == ("metadata" if dialect.columns == () else "header")
+    if dialect.metadata_style != "none":
+        assert back.metadata["header"]["Sample"] == "F-12 (anneal 2)"
+        assert back.metadata["header"]["Operator"] == "Kim"
+        assert back.metadata["header"].get("Note", "") == header.get("Note", "")
+    assert back.sha256 and back.source == str(path) and back.name == "s"
+
+
+@pytest.mark.parametrize("kind", ["R_fraction", "R_percent"])
+def test_reflectance_round_trip(tmp_path, kind):
+    spec = smooth_spectrum(quantity="R")
+    back = read_spectrum(write_spectrum(tmp_path / "r.csv", spec,
+                                        dialect=Dialect(delimiter=",", y_kind=kind)))
+    assert back.quantity == "R"
+    np.testing.assert_allclose(back.values, spec.values, atol=1e-9)
+
+
+def test_writer_refuses_mislabelled_quantity_and_unencodable_text(tmp_path):
+    with pytest.raises(ParameterError, match="quantity 'R'"):
+        write_spectrum(tmp_path / "x.txt", smooth_spectrum(quantity="R"),
+                       dialect=Dialect(y_kind="T_percent"))
+    spec = smooth_spectrum(metadata={"header": {"Note": "λ/4 stack"}})
+    target = tmp_path / "keep.txt"
+    target.write_text("old content")
+    with pytest.raises(ParameterError, match="cannot encode 'λ'"):
+        write_spectrum(target, spec, dialect=Dialect(encoding="latin-1"))
+    assert target.read_text() == "old content"          # nothing lost on failure
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["keep.txt"]  # no temp left
+
+
+# --------------------------------------------------------------------- units
+
+def test_unit_conversions_against_codata():
+    # CODATA 2018 (exact SI h, c, e) via scipy.constants: hc = 1239.841984 eV nm.
+    hc = sc.h * sc.c / sc.e * 1e9
+    assert HC_EV_NM == pytest.approx(hc, rel=1e-8)
+    wl = np.array([250.0, 500.0, 1000.0, 2500.0])
+    np.testing.assert_allclose(from_nm(wl, "eV"), hc / wl, rtol=1e-8)
+    np.testing.assert_allclose(from_nm(wl, "cm-1"), [40000.0, 20000.0, 10000.0, 4000.0])
+    np.testing.assert_allclose(from_nm(wl, "um"), wl / 1000)
+    np.testing.assert_allclose(from_nm(wl, "A"), wl * 10)
+    for unit in ("nm", "um", "A", "cm-1", "eV"):
+        np.testing.assert_allclose(to_nm(from_nm(wl, unit), unit), wl, rtol=1e-12)
+    with pytest.raises(ParameterError):
+        to_nm(wl, "furlong")
+
+
+@pytest.mark.parametrize("label, unit, values", [
+    ("Wavelength (nm)", "nm", [400, 500, 600, 700, 800, 900]),
+    ("Wavenumber [cm-1]", "cm-1", [25000, 20000, 16000, 14000, 12000, 11000]),
+    ("wavenumber (cm⁻¹)", "cm-1", [25000, 20000, 16000, 14000, 12000, 11000]),
+    ("Energy/eV", "eV", [3.1, 2.5, 2.0, 1.8, 1.5, 1.3]),
+    ("Photon energy", "eV", [3.1, 2.5, 2.0, 1.8, 1.5, 1.3]),
+    ("λ (µm)", "um", [0.4, 0.5, 0.6, 0.7, 0.8, 0.9]),          # micro sign U+00B5
+    ("lambda [μm]", "um", [0.4, 0.5, 0.6, 0.7, 0.8, 0.9]),      # Greek mu U+03BC
+    ("Wavelength (\u212b)", "A", [4000, 5000, 6000, 7000, 8000, 9000]),  # Angstrom sign
+    ("Wavelength (A)", "A", [4000, 5000, 6000, 7000, 8000, 9000]),
+    ("wavelength in nm", "nm", [400, 500, 600, 700, 800, 900]),
+])
+def test_abscissa_unit_from_column_name(label, unit, values):
+    wl_nm = to_nm(np.array(values, float), unit)
+    text = table([(v, 50 + i) for i, v in enumerate(values)], head=f"{label};T (%)\n")
+    s = parse_spectrum(text)
+    np.testing.assert_allclose(s.wavelength_nm, np.sort(wl_nm))
+    assert s.metadata["reader"]["x_unit"] == unit
+    assert s.metadata["reader"]["x_unit_from"] == "header"
+
+
+@pytest.mark.parametrize("meta, unit", [("XUnits: NANOMETERS", "nm"), ("##XUNITS=1/CM", "cm-1"),
+                                        ("X units = MICROMETERS", "um"),
+                                        ("Abscissa: eV", "eV")])
+def test_abscissa_unit_from_metadata(meta, unit):
+    # Values 4..9 would be read as µm from their range; the metadata decides.
+    s = parse_spectrum(table([(v, 0.5) for v in range(4, 10)], head=meta + "\n"))
+    assert s.metadata["reader"]["x_unit"] == unit
+    assert s.metadata["reader"]["x_unit_from"] == "metadata"
+
+
+def test_abscissa_unit_inferred_from_range_and_overridable():
+    nm = parse_spectrum(table([(v, 0.5) for v in range(400, 410)]))
+    assert nm.metadata["reader"]["x_unit"] == "nm" and nm.warnings == ()
+    um = parse_spectrum(table([(v / 10, 0.5) for v in range(3, 12)]))
+    assert um.metadata["reader"]["x_unit"] == "um"
+    assert any("µm" in w and "eV" in w for w in um.warnings)     # ambiguity is said
+    np.testing.assert_allclose(um.wavelength_nm, np.arange(3, 12) * 100.0)
+    # A grid even in 1/E (converted from an even nm grid) is read as energy.
+    ev = HC_EV_NM / np.linspace(400, 1000, 25)
+    s = parse_spectrum(table([(f"{e:.8f}", 0.5) for e in ev]))
+    assert s.metadata["reader"]["x_unit"] == "eV"
+    np.testing.assert_allclose(s.wavelength_nm, np.linspace(400, 1000, 25), rtol=1e-7)
+    wn = parse_spectrum(table([(v, 0.5) for v in range(25000, 9000, -2000)]))
+    assert wn.metadata["reader"]["x_unit"] == "cm-1"
+    forced = parse_spectrum(table([(v, 0.5) for v in range(25000, 9000, -2000)]),
+                            options=ReaderOptions(x_unit="Å"))
+    assert forced.metadata["reader"]["x_unit"] == "A"
+    assert forced.metadata["reader"]["x_unit_from"] == "option"
+    np.testing.assert_allclose(forced.wavelength_nm, np.arange(11000, 25001, 2000) / 10)
+
+
+# --------------------------------------------------------------------- ordinate
+
+def test_percent_fraction_and_absorbance():
+    rows = [(400 + 10 * i, v) for i, v in enumerate([12.5, 40.0, 80.0, 91.0, 88.0])]
+    s = parse_spectrum(table(rows))
+    np.testing.assert_allclose(s.values, [0.125, 0.40, 0.80, 0.91, 0.88])
+    assert s.metadata["reader"]["y_kind"] == "T_percent"
+    f = parse_spectrum(table([(w, v / 100) for w, v in rows]))
+    np.testing.assert_allclose(f.values, s.values)
+    assert f.metadata["reader"]["y_kind"] == "T_fraction"
+    # A = -log10 T (decadic absorbance, IUPAC Gold Book): A = 1 is T = 0.1.
+    a = parse_spectrum(table([(400 + i, A) for i, A in enumerate([0, 0.5, 1, 2, 3])],
+                             head="Wavelength (nm);Absorbance\n"))
+    np.testing.assert_allclose(a.values, [1.0, 10 ** -0.5, 0.1, 0.01, 0.001])
+    assert a.quantity == "T" and a.metadata["reader"]["y_kind"] == "absorbance"
+    opaque = parse_spectrum(table([(400 + i, v) for i, v in enumerate([0.1, 0.12, 0.15, 0.1,
+                                                                     0.11])]))
+    assert any("set y_kind='T_percent'" in w for w in opaque.warnings)
+    forced = parse_spectrum(table([(400 + i, v) for i, v in enumerate([0.1, 0.12, 0.15, 0.1,
+                                                                     0.11])]),
+                            options=ReaderOptions(y_kind="T_percent"))
+    np.testing.assert_allclose(forced.values, [0.001, 0.0012, 0.0015, 0.001, 0.0011])
+
+
+@pytest.mark.parametrize("name, kind, quantity", [
+    ("%T", "T_percent", "T"), ("T [%]", "T_percent", "T"), ("Transmittance", None, "T"),
+    ("%R", "R_percent", "R"), ("Reflectance (%)", "R_percent", "R"), ("R", None, "R"),
+    ("A", "absorbance", "T"), ("OD", "absorbance", "T"), ("Abs (a.u.)", "absorbance", "T"),
+])
+def test_ordinate_kind_from_column_name(name, kind, quantity):
+    values = [0.2, 0.4, 0.6, 0.7, 0.75] if kind != "T_percent" and kind != "R_percent" \
+        else [20, 40, 60, 70, 75]
+    s = parse_spectrum(table(list(zip(range(400, 405), values)),
+                             head=f"Wavelength (nm);{name}\n"))
+    assert s.quantity == quantity
+    if kind:
+        assert s.metadata["reader"]["y_kind"] == kind
+        assert s.metadata["reader"]["y_kind_from"] == "header"
+
+
+def test_raw_counts_need_saying_so():
+    text = table([(400 + i, 20000 + 100 * i) for i in range(6)])
+    with pytest.raises(SpectrumFormatError, match=r"line 6: values up to 20500.*y_kind='counts'"):
+        parse_spectrum(text)
+    s = parse_spectrum(text, options=ReaderOptions(y_kind="counts"))
+    np.testing.assert_allclose(s.values, 20000 + 100 * np.arange(6))
+    assert s.metadata["ordinate"] == "counts" and s.warnings == ()
+
+
+# --------------------------------------------------------------------- dialect details
+
+def test_decimal_comma_with_thousands_separator():
+    s = parse_spectrum("Wellenlänge (nm);T (%)\n" + table(
+        [("1.234,5", "87,2"), ("1.235,5", "87,4"), ("1.236,5", "87,0"), ("1.237,5", "86,9"),
+         ("1.238,5", "86,1")]))
+    np.testing.assert_allclose(s.wavelength_nm, [1234.5, 1235.5, 1236.5, 1237.5, 1238.5])
+    np.testing.assert_allclose(s.values, [0.872, 0.874, 0.870, 0.869, 0.861])
+    d = sniff("Wellenlänge (nm);T (%)\n" + table([("1.234,5", "87,2")] * 1 + [
+        (f"1.2{35 + i},5", "87,2") for i in range(5)]))
+    assert (d.delimiter, d.decimal, d.thousands) == (";", ",", ".")
+
+
+def test_point_decimal_with_thousands_separator_in_tab_file():
+    rows = [(f"1,{200 + i}.5", f"{80 + i}.25") for i in range(6)]
+    s = parse_spectrum(table(rows, delim="\t"))
+    np.testing.assert_allclose(s.wavelength_nm, 1200.5 + np.arange(6))
+    d = sniff(table(rows, delim="\t"))
+    assert (d.delimiter, d.decimal, d.thousands) == ("\t", ".", ",")
+
+
+def test_semicolon_decimal_comma_plain():
+    s = parse_spectrum(table([(f"{450 + i},5", f"8{i},2") for i in range(5)]))
+    np.testing.assert_allclose(s.wavelength_nm, 450.5 + np.arange(5))
+    np.testing.assert_allclose(s.values, (80.2 + np.arange(5)) / 100)
+
+
+def test_metadata_comments_and_footer_kept():
+    text = ("##TITLE=Film F-3 on glass\n# measured after anneal\nInstrument: UVN-2\n"
+            "Slit=2 nm\nIntegration time;100 ms\n\nWavelength (nm);T (%)\n"
+            + table([(400 + i, 50 + i) for i in range(6)]) + "\n[Peaks]\n1;403\nEnd\n")
+    s = parse_spectrum(text)
+    assert s.metadata["header"] == {"TITLE": "Film F-3 on glass", "Instrument": "UVN-2",
+                                    "Slit": "2 nm", "Integration time": "100 ms"}
+    assert s.metadata["comments"] == ["measured after anneal"]
+    assert s.metadata["footer"] == ["[Peaks]", "1;403", "End"]
+    assert len(s) == 6 and s.metadata["reader"]["columns"] == ["Wavelength (nm)", "T (%)"]
+    assert s.metadata["reader"]["header_lines"] == 7
+
+
+def test_two_header_lines_and_whitespace_header():
+    s = parse_spectrum("Wavelength\tT\nnm\t%\n" + table([(400 + i, 50 + i) for i in range(5)],
+                                                         delim="\t"))
+    assert s.metadata["reader"]["columns"] == ["Wavelength [nm]", "T [%]"]
+    assert s.metadata["reader"]["y_kind_from"] == "header"
+    w = parse_spectrum("Wavelength (nm)   T (%)\n" + table([(400 + i, 50 + i) for i in range(5)],
+                                                         delim="   "))
+    assert w.metadata["reader"]["columns"] == ["Wavelength (nm)", "T (%)"]
+
+
+def test_column_choice_auto_and_override():
+    rows = [(i, 400 + 2 * i, 0.5 + i / 100, 0.003) for i in range(8)]
+    text = table(rows, head="Point;Wavelength (nm);T;sigma\n")
+    s = parse_spectrum(text)                             # index column skipped
+    np.testing.assert_allclose(s.wavelength_nm, 400 + 2 * np.arange(8))
+    np.testing.assert_allclose(s.values, 0.5 + np.arange(8) / 100)
+    bare = parse_spectrum(table(rows))                   # no names: values decide
+    np.testing.assert_allclose(bare.wavelength_nm, s.wavelength_nm)
+    by_name = parse_spectrum(text, options=ReaderOptions(y_column="SIGMA"))
+    np.testing.assert_allclose(by_name.values, 0.003)
+    by_index = parse_spectrum(text, options=ReaderOptions(x_column=1, y_column=3))
+    np.testing.assert_allclose(by_index.values, 0.003)
+    by_prefix = parse_spectrum(text, options=ReaderOptions(x_column="wavelength"))
+    assert by_prefix.metadata["reader"]["x_column"] == 1
+
+
+def test_sorting_duplicates_and_dropped_rows():
+    desc = parse_spectrum(table([(409 - i, 50 + i) for i in range(10)]))
+    assert np.all(np.diff(desc.wavelength_nm) > 0) and desc.warnings == ()
+    np.testing.assert_allclose(desc.values, (59 - np.arange(10)) / 100)
+    assert desc.metadata["reader"]["x_order"] == "descending"
+    rng = np.random.default_rng(3)
+    perm = rng.permutation(10)
+    shuffled = parse_spectrum(table([(400 + p, 0.3 + 0.01 * p) for p in perm]))
+    np.testing.assert_allclose(shuffled.values, 0.3 + 0.01 * np.arange(10))
+    assert any("not in order" in w for w in shuffled.warnings)
+    dup = parse_spectrum(table([(400, 40), (401, 41), (401, 45), (402, 42), (403, 43),
+                                (404, 44)]))
+    np.testing.assert_allclose(dup.wavelength_nm, [400, 401, 402, 403, 404])
+    np.testing.assert_allclose(dup.values, [0.40, 0.43, 0.42, 0.43, 0.44])
+    assert any("1 repeated wavelength" in w for w in dup.warnings)
+    gaps = parse_spectrum("x;y\n" + table([(400 + i, 50 + i) for i in range(6)])
+                          + "406;--\n407;\n408;NaN\n;55\n409;59\n")
+    np.testing.assert_allclose(gaps.wavelength_nm, [400, 401, 402, 403, 404, 405, 409])
+    assert any(w.startswith("4 row(s)") and "line 8" in w for w in gaps.warnings)
+
+
+def test_out_of_range_values_kept_and_flagged():
+    s = parse_spectrum(table([(400, -0.4), (401, 3.0), (402, 50.0), (403, 99.0),
+                              (404, 100.6), (405, 100.2)]))
+    np.testing.assert_allclose(s.values, [-0.004, 0.03, 0.5, 0.99, 1.006, 1.002])
+    low = [w for w in s.warnings if "below 0 %" in w]
+    high = [w for w in s.warnings if "above 100 %" in w]
+    assert low and "1 value(s)" in low[0] and "-0.4 %" in low[0] and "400 nm" in low[0]
+    assert high and "2 value(s)" in high[0] and "100.6 %" in high[0]
+    clean = parse_spectrum(table([(400 + i, 50) for i in range(5)]))
+    assert clean.warnings == ()
+
+
+def test_quoted_csv_and_utf16_without_bom():
+    text = '"Wavelength (nm)","T (%)"\n' + "".join(f'"{400 + i}","{50 + i}.5"\n'
+                                                  for i in range(5))
+    s = parse_spectrum(text)
+    np.testing.assert_allclose(s.values, (50.5 + np.arange(5)) / 100)
+    raw = text.encode("utf-16-le")                         # no byte-order mark
+    assert sniff(raw).encoding == "utf-16-le"
+    np.testing.assert_allclose(parse_spectrum(raw).values, s.values)
+
+
+def test_latin1_header_and_forced_encoding(tmp_path):
+    p = tmp_path / "l1.txt"
+    p.write_bytes("Wavelength (µm)\tT (%)\n".encode("latin-1")
+                  + table([(0.4 + i / 10, 50) for i in range(5)], delim="\t").encode())
+    assert sniff(p).encoding == "latin-1"
+    s = read_spectrum(p)
+    np.testing.assert_allclose(s.wavelength_nm, [400, 500, 600, 700, 800])
+    with pytest.raises(SpectrumFormatError, match=r"l1.txt, line 1: .*decoded as utf-8"):
+        read_spectrum(p, options=ReaderOptions(encoding="utf-8"))
+
+
+def test_range_mask_and_sigma_options():
+    text = table([(400 + i, 50 + (i % 3)) for i in range(40)])
+    opts = ReaderOptions(range_nm=(405, 430), mask_windows_nm=((410, 412),), sigma=0.002,
+                         name="F-1")
+    s = parse_spectrum(text, options=opts)
+    assert s.wavelength_nm[0] == 405 and s.wavelength_nm[-1] == 430 and s.name == "F-1"
+    np.testing.assert_array_equal(s.wavelength_nm[~s.used], [410, 411, 412])
+    np.testing.assert_allclose(s.sigma, 0.002)
+    est = parse_spectrum(text, options=ReaderOptions(sigma="estimate"))
+    assert est.sigma.shape == est.values.shape and np.all(est.sigma > 0)
+    with pytest.raises(SpectrumFormatError, match="keeps only 2 points"):
+        parse_spectrum(text, options=ReaderOptions(range_nm=(400, 401)))
+
+
+# --------------------------------------------------------------------- options
+
+def test_options_dict_round_trip_and_validation():
+    opts = ReaderOptions(x_column="Wavelength (nm)", y_column=2, x_unit="µm", y_kind="%T",
+                         delimiter="semicolon", decimal=",", encoding="Latin1",
+                         range_nm=(350, 1000), mask_windows_nm=[(650, 660)], sigma="estimate")
+    assert (opts.x_unit, opts.y_kind, opts.delimiter, opts.encoding) == \
+        ("um", "T_percent", ";", "latin-1")
+    d = json.loads(json.dumps(opts.to_dict()))
+    assert ReaderOptions.from_dict(d) == opts
+    assert ReaderOptions.from_dict({}) == ReaderOptions()
+    with pytest.raises(RecipeError, match="'x_units'.*unknown reader option"):
+        ReaderOptions.from_dict({"x_units": "nm"})
+    for bad in ({"x_unit": "furlong"}, {"y_kind": "counts%"}, {"delimiter": "|"},
+                {"range_nm": [900, 400]}, {"sigma": -1}, {"sigma": "guess"},
+                {"mask_windows_nm": [[1, 2, 3]]}, {"x_column": -1}, {"x_column": True},
+                {"x_column": 1, "y_column": 1}, {"encoding": "ebcdic"},
+                {"decimal": ",", "delimiter": ","}):
+        with pytest.raises(RecipeError):
+            ReaderOptions.from_dict(bad)
+
+
+def test_preview_shows_lines_and_problem(tmp_path):
+    good = tmp_path / "good.csv"
+    good.write_text("Wavelength (nm),T (%)\n" + table([(400 + i, 50) for i in range(30)], ","))
+    pv = preview(good, n_lines=5)
+    assert len(pv.lines) == 5 and pv.lines[0] == "Wavelength (nm),T (%)"
+    assert pv.dialect.delimiter == "," and pv.dialect.n_rows == 30 and pv.problem == ""
+    assert "line 2" in pv.dialect.describe()
+    bad = tmp_path / "bad.csv"
+    bad.write_text("only\none\ncolumn\n1\n2\n")
+    pv = preview(bad)
+    assert pv.dialect is None and "bad.csv" in pv.problem and pv.lines[0] == "only"
+
+
+# --------------------------------------------------------------------- broken input
+
+BROKEN = [
+    ("empty", b"", r"line 1: the file is empty"),
+    ("blank", b"  \n\n \n", r"line 1: the file is empty"),
+    ("binary", b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR" + bytes(range(256)),
+     r"line 3: this is a binary file"),          # \r\n, then \n: NUL on line 3
+    ("control", b"400;50\n401;51\n402\x01;52\n", r"line 3: this is a binary or corrupted"),
+    ("one column", b"Wavelength\n400\n401\n402\n403\n404\n405\n",
+     r"line 2: only one numeric column"),
+    ("text only", b"hello\nworld\n", r"line 1: no rows of two or more numbers"),
+    ("text in data", b"x;y\n400;50\n401;51\n402;52\n403;5O\n404;54\n405;55\n",
+     r"line 5: column 1 \('y'\) holds text.*found '5O'"),
+    ("too few", b"x;y\n400;50\n401;51\n402;52\n", r"line 2: only 3 data rows"),
+    ("four points", b"400;50\n401;51\n402;52\n403;53\n\n", r"line 1: only 4 usable data points"),
+    ("nonpositive x", b"0;50\n401;51\n402;52\n403;53\n404;54\n", r"line 1: the abscissa must"),
+    ("jcamp compressed", b"##TITLE=x\n##XYDATA=(X++(Y..Y))\n400 1 2 3\n404 1 2 3\n"
+     b"408 1 2 3\n412 1 2 3\n416 1 2 3\n", r"line 2: compressed JCAMP-DX"),
+]
+
+
+@pytest.mark.parametrize("name, content, message", BROKEN, ids=[b[0] for b in BROKEN])
+def test_broken_input_names_file_and_line(tmp_path, name, content, message):
+    path = tmp_path / "broken.txt"
+    path.write_bytes(content)
+    with pytest.raises(SpectrumFormatError, match=message) as info:
+        read_spectrum(path)
+    assert str(info.value).startswith(f"{path}, line ")
+    assert info.value.line is not None and isinstance(info.value, PellucidError)
+
+
+def test_missing_file_and_bad_columns(tmp_path):
+    with pytest.raises(SpectrumFormatError, match="cannot read the file"):
+        read_spectrum(tmp_path / "nope.csv")
+    text = table([(400 + i, 50) for i in range(6)], head="wl;T\n")
+    with pytest.raises(SpectrumFormatError, match=r"line 1: no single x column.*'wl', 'T'"):
+        parse_spectrum(text, options=ReaderOptions(x_column="lambda"))
+    with pytest.raises(SpectrumFormatError, match=r"line 1: y column 5 does not exist"):
+        parse_spectrum(text, options=ReaderOptions(y_column=5))
+    with pytest.raises(SpectrumFormatError, match="has no column names"):
+        parse_spectrum(table([(400 + i, 50) for i in range(6)]),
+                       options=ReaderOptions(x_column="wl"))
+
+
+# --------------------------------------------------------------------- big file
+
+def test_twenty_megabyte_file(tmp_path):
+    n = 800_000
+    wl = np.linspace(190.0, 3300.0, n)
+    spec = Spectrum(wl, 0.5 + 0.4 * np.cos(wl / 37.0))
+    path = write_spectrum(tmp_path / "big.csv", spec,
+                          dialect=Dialect(delimiter=";", decimal=",", metadata_style="colon"))
+    assert os.path.getsize(path) > 18e6
+    back = read_spectrum(path)
+    assert len(back) == n
+    np.testing.assert_allclose(back.wavelength_nm, wl, rtol=1e-9)
+    np.testing.assert_allclose(back.values, spec.values, atol=1e-9)
+    assert back.metadata["reader"]["data_lines"] == [4, n + 3]   # XUnits, YUnits, names
+
+
+def test_big_file_with_a_bad_row_reports_its_line(tmp_path):
+    rows = [f"{400 + i / 100:.2f}\t{50 + (i % 7)}" for i in range(50_000)]
+    rows[31_234] = "712.34\tERR"
+    path = tmp_path / "bad.tsv"
+    path.write_text("\n".join(rows) + "\n")
+    with pytest.raises(SpectrumFormatError, match=r"line 31235: column 1 holds text.*'ERR'"):
+        read_spectrum(path)
+
+
+# --------------------------------------------------------------------- properties
+
+def _rows_text(rows, delim, comma):
+    out = []
+    for a, b in rows:
+        line = f"{a}{delim}{b}"
+        out.append(line.replace(".", ",") if comma else line)
+    return "\n".join(out)
+
+
+numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True, width=32),
+                    st.integers(-10, 100_000), st.sampled_from(["--", "", "nan", "x", "1,2"]))
+tables = st.builds(_rows_text, st.lists(st.tuples(numbers, numbers), max_size=40),
+                   st.sampled_from([",", ";", "\t", " ", "  "]), st.booleans())
+any_input = st.one_of(st.binary(max_size=300), st.text(max_size=300), tables,
+                      st.builds(lambda head, body: head + "\n" + body,
+                                st.text(max_size=80), tables))
+
+
+@settings(max_examples=250, deadline=2000, suppress_health_check=[HealthCheck.too_slow])
+@given(any_input)
+def test_any_input_parses_or_raises_format_error(content):
+    try:
+        s = parse_spectrum(content)
+    except SpectrumFormatError as exc:
+        assert exc.line is None or exc.line >= 1
+        return
+    assert len(s) >= 5 and np.all(np.diff(s.wavelength_nm) > 0)
+    assert np.all(np.isfinite(s.values)) and np.all(s.wavelength_nm > 0)
