@@ -41,13 +41,15 @@ from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
            "read_table_csv", "read_nk_csv", "read_curves_csv", "NK_COLUMNS", "CURVE_COLUMNS",
-           "PLOT_FORMATS"]
+           "PLOT_FORMATS", "PARTS"]
 
 #: Column names (with units) of the optical-constants CSV.
 NK_COLUMNS = ("wavelength_nm", "n", "n_sigma", "k", "k_sigma", "alpha_cm-1", "alpha_sigma_cm-1")
 #: Column names of the curves CSV; measured values are fractions (1.0 = 100 %).
 CURVE_COLUMNS = ("wavelength_nm", "measured", "fitted", "residual", "sigma", "used")
 PLOT_FORMATS = ("png", "svg", "pdf")
+#: The parts :func:`export_result` can write (the names of a recipe's ``outputs.exports``).
+PARTS = ("nk", "curves", "json", "report", "plots")
 _PROV_KEYS = ("software", "recipe_hash", "input_file", "input_sha256", "created")
 _STEM_RE = re.compile(r"^[^/\\\x00]+$")
 
@@ -205,8 +207,21 @@ def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None
     return atomic_write_bytes(path, buf.getvalue())
 
 
+def _write_curves(result, path, prov, name):
+    wl = np.asarray(result.wavelength_nm, dtype=float)
+    data = np.column_stack([wl, _col(result.measured, wl.size), _col(result.fitted, wl.size),
+                            _col(result.residuals, wl.size), _col(result.sigma, wl.size),
+                            np.asarray(result.used, dtype=float)])
+    header = _prov_lines(prov, {"spectrum": name, "quantity": result.quantity,
+                                "columns": f"wavelength in nm; measured, fitted, residual "
+                                           f"(measured - fitted) and sigma of {result.quantity} "
+                                           "as fractions (1.0 = 100 %); used = 1 if the point "
+                                           "took part in the fit"})
+    atomic_write_text(path, _csv_text(CURVE_COLUMNS, data, header))
+
+
 def export_result(result, out_dir, *, stem: str, provenance: Mapping,
-                  plots: Sequence[str] = ("png",)) -> list[Path]:
+                  plots: Sequence[str] = ("png",), parts: Sequence[str] = PARTS) -> list[Path]:
     """Write every export file of one fit into ``out_dir``.
 
     Parameters
@@ -220,6 +235,8 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
         From :func:`make_provenance`; written into every file.
     plots : sequence of {"png", "svg", "pdf"}
         Figure formats; empty for none.
+    parts : sequence of {"nk", "curves", "json", "report", "plots"}
+        Which files to write (a recipe's ``outputs.exports``); default all.
 
     Returns
     -------
@@ -233,13 +250,18 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
     bad = [p for p in plots if p not in PLOT_FORMATS]
     if bad:
         raise ValueError(f"plot format {bad[0]!r} is not supported; use one of {PLOT_FORMATS}")
+    unknown = [p for p in parts if p not in PARTS]
+    if unknown:
+        raise ValueError(f"export part {unknown[0]!r} is unknown; choose from {PARTS}")
+    if "plots" not in parts:
+        plots = ()
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     prov = dict(provenance)
     name = (result.spectrum or {}).get("name") or stem
     written: list[Path] = []
 
-    for layer, oc in result.optical.items():
+    for layer, oc in (result.optical.items() if "nk" in parts else ()):
         wl = np.asarray(oc.wavelength_nm, dtype=float)
         cols = [wl, oc.n, oc.n_sigma, oc.k, oc.k_sigma, oc.alpha_cm, oc.alpha_sigma]
         data = np.column_stack([_col(c, wl.size) for c in cols])
@@ -250,26 +272,17 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
         written.append(atomic_write_text(out / f"{stem}_nk_{layer}.csv",
                                          _csv_text(NK_COLUMNS, data, header)))
 
-    wl = np.asarray(result.wavelength_nm, dtype=float)
-    data = np.column_stack([wl, _col(result.measured, wl.size), _col(result.fitted, wl.size),
-                            _col(result.residuals, wl.size), _col(result.sigma, wl.size),
-                            np.asarray(result.used, dtype=float)])
-    header = _prov_lines(prov, {"spectrum": name, "quantity": result.quantity,
-                                "columns": f"wavelength in nm; measured, fitted, residual "
-                                           f"(measured - fitted) and sigma of {result.quantity} "
-                                           "as fractions (1.0 = 100 %); used = 1 if the point "
-                                           "took part in the fit"})
-    written.append(atomic_write_text(out / f"{stem}_curves.csv",
-                                     _csv_text(CURVE_COLUMNS, data, header)))
-
-    doc = result.to_dict(curves=True)
-    doc["provenance"] = prov
-    written.append(atomic_write_json(out / f"{stem}_result.json", _json_clean(doc)))
-
-    text = "\n".join(["Pellucid fit report", f"spectrum: {name}",
-                      *(line[2:] for line in _prov_lines(prov)), "", result.report(), ""])
-    written.append(atomic_write_text(out / f"{stem}_report.txt", text))
-
+    if "curves" in parts:
+        _write_curves(result, out / f"{stem}_curves.csv", prov, name)
+        written.append(out / f"{stem}_curves.csv")
+    if "json" in parts:
+        doc = result.to_dict(curves=True)
+        doc["provenance"] = prov
+        written.append(atomic_write_json(out / f"{stem}_result.json", _json_clean(doc)))
+    if "report" in parts:
+        text = "\n".join(["Pellucid fit report", f"spectrum: {name}",
+                          *(line[2:] for line in _prov_lines(prov)), "", result.report(), ""])
+        written.append(atomic_write_text(out / f"{stem}_report.txt", text))
     if plots:
         from . import plots as P   # matplotlib only when figures are asked for
         figures = [("fit", lambda: P.fit_figure(result))]

@@ -30,14 +30,19 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Mapping, Sequence
 
+import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from .units import HC_EV_NM
 
 __all__ = ["PALETTE", "fit_figure", "optical_figure", "tauc_figure", "thickness_trend_figure",
-           "thickness_histogram_figure", "nk_overlay_figure", "row_thickness_key"]
+           "thickness_histogram_figure", "nk_overlay_figure", "row_thickness_key", "row_ok",
+           "spec_bounds", "OK_STATUSES"]
 
 #: Okabe-Ito colours by role (see module references).
 PALETTE = {
@@ -317,21 +322,39 @@ def _num(x):
     return v
 
 
-def _is_ok(row) -> bool:
-    return str(row.get("status", "ok")).lower() in ("ok", "success", "converged", "done",
-                                                    "warning", "warn")
+#: Row statuses that count as a finished fit; anything else is a failure.
+OK_STATUSES = ("ok", "success", "converged", "done", "warning", "warnings")
+
+
+def row_ok(row: Mapping) -> bool:
+    """True if a batch summary row is a finished fit (``status`` in :data:`OK_STATUSES`;
+    a row without ``status`` counts as finished)."""
+    return str(row.get("status", "ok")).strip().lower() in OK_STATUSES
 
 
 def _thickness_arrays(rows, key):
     d = np.array([_num(r.get(key)) for r in rows])
     s = np.array([_num(r.get(f"{key}_sigma")) for r in rows])
-    ok = np.array([_is_ok(r) for r in rows], bool) & np.isfinite(d)
+    ok = np.array([row_ok(r) for r in rows], bool) & np.isfinite(d)
     return d, s, ok
 
 
-def _spec_limits(spec, key):
-    lim = (spec or {}).get(key) or {}
-    lo, hi = _num(lim.get("min")), _num(lim.get("max"))
+def spec_bounds(spec: Mapping | None, key: str) -> tuple[float | None, float | None]:
+    """(min, max) of one quantity's spec limit, None where open.
+
+    A limit may be ``{"min": a, "max": b}`` (either may be left out),
+    ``{"target": x, "tol": t}`` or a :class:`fitting.recipe.Limit`.
+    """
+    lim = (spec or {}).get(key)
+    if lim is None:
+        return None, None
+    if hasattr(lim, "bounds"):
+        lo, hi = lim.bounds
+    elif lim.get("target") is not None and lim.get("tol") is not None:
+        t, tol = _num(lim["target"]), abs(_num(lim["tol"]))
+        lo, hi = t - tol, t + tol
+    else:
+        lo, hi = _num(lim.get("min")), _num(lim.get("max"))
     return (lo if np.isfinite(lo) else None), (hi if np.isfinite(hi) else None)
 
 
@@ -354,7 +377,7 @@ def thickness_trend_figure(rows: Sequence[Mapping], spec: Mapping | None = None,
     idx = np.arange(1, len(rows) + 1)
     fig = _new_figure(fig, (7.0, 3.5))
     ax = fig.subplots()
-    lo, hi = _spec_limits(spec, key)
+    lo, hi = spec_bounds(spec, key)
     inside = np.ones_like(ok)
     if lo is not None:
         inside &= d >= lo
@@ -381,12 +404,14 @@ def thickness_trend_figure(rows: Sequence[Mapping], spec: Mapping | None = None,
                 transform=ax.get_xaxis_transform(), clip_on=False,
                 label=f"failed ({failed.sum()})")
     ax.set_xlim(0.5, max(len(rows), 1) + 0.5)
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel("Spectrum (batch order)")
     ax.set_ylabel(f"{key.replace('_', ' ')} (nm)")
     if ok.any() or failed.any():
-        ax.legend(loc="best", frameon=False, fontsize="small")
+        ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), ncols=3, frameon=False,
+                  fontsize="small", borderaxespad=0.2)
     _style(ax)
-    ax.set_title("Thickness over the batch", fontsize="medium")
+    ax.set_title("Thickness over the batch", fontsize="medium", loc="left")
     return fig
 
 
@@ -398,27 +423,29 @@ def thickness_histogram_figure(rows: Sequence[Mapping], spec: Mapping | None = N
     vals = d[ok]
     fig = _new_figure(fig, (7.0, 3.5))
     ax = fig.subplots()
-    lo, hi = _spec_limits(spec, key)
+    lo, hi = spec_bounds(spec, key)
+    title = "Thickness distribution"
     if vals.size:
         bins = int(np.clip(np.sqrt(vals.size) * 1.5, 5, 60))
         ax.hist(vals, bins=bins, color=PALETTE["ok"], alpha=0.85, edgecolor="white", lw=0.5)
-        txt = f"N = {vals.size}\nmean = {vals.mean():.1f} nm"
+        title += f":  N = {vals.size},  mean {vals.mean():.1f} nm"
         if vals.size > 1:
-            txt += f"\nstd = {vals.std(ddof=1):.2f} nm"
-        ax.text(0.98, 0.95, txt, transform=ax.transAxes, ha="right", va="top",
-                fontsize="small", bbox=dict(fc="white", ec="#cccccc", lw=0.5))
+            title += f",  std {vals.std(ddof=1):.2f} nm"
     else:
         ax.text(0.5, 0.5, "no successful fits", transform=ax.transAxes, ha="center",
                 color="#666666")
     for lim, name in ((lo, "min"), (hi, "max")):
         if lim is not None:
-            ax.axvline(lim, color=PALETTE["spec"], lw=1.4, ls="--", label=f"spec {name} {lim:g}")
+            ax.axvline(lim, color=PALETTE["spec"], lw=1.4, ls="--", zorder=3,
+                       label=f"spec {name} {lim:g}")
     if lo is not None or hi is not None:
-        ax.legend(loc="upper left", frameon=False, fontsize="small")
+        ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), ncols=2, frameon=False,
+                  fontsize="small", borderaxespad=0.2)
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(f"{key.replace('_', ' ')} (nm)")
     ax.set_ylabel("Spectra")
     _style(ax)
-    ax.set_title("Thickness distribution", fontsize="medium")
+    ax.set_title(title, fontsize="medium", loc="left")
     return fig
 
 
@@ -439,26 +466,40 @@ def nk_overlay_figure(results_or_curves: Iterable, *, max_curves: int = 60,
     ----------
     results_or_curves : iterable
         FitResults, OpticalConstants, or mappings with ``wavelength_nm``, ``n``, ``k``
-        and an optional ``name``.
+        and optional ``name`` and ``order`` (batch position, used for the colour
+        scale when more than 7 curves are drawn).
     max_curves : int
         At most this many curves are drawn, picked evenly over the sequence (the
         title says so), so a 1000-spectrum batch stays legible and small.
     """
     items = list(results_or_curves)
     total = len(items)
+    order = [_get(it, "order", None) for it in items]
+    if any(o is None for o in order):
+        order = list(range(1, total + 1))
     if total > max_curves:
         pick = np.unique(np.linspace(0, total - 1, max_curves).round().astype(int))
-        items = [items[i] for i in pick]
+        items, order = [items[i] for i in pick], [order[i] for i in pick]
     curves = [_curve_of(it) for it in items]
     fig = _new_figure(fig, (7.0, 5.5))
     axn, axk = fig.subplots(2, 1, sharex=True)
     few = len(curves) <= 7
+    # Many curves are coloured by batch order (viridis: perceptually uniform and
+    # colour-blind safe), so a drift through the batch shows as a colour gradient.
+    cmap = matplotlib.colormaps["viridis"]
+    norm = Normalize(min(order), max(order) if max(order) > min(order) else min(order) + 1) \
+        if curves else None
     for i, c in enumerate(curves):
-        color = CYCLE[i % len(CYCLE)] if few else PALETTE["n"]
-        kw = dict(lw=1.2 if few else 0.6, alpha=1.0 if few else 0.35)
-        axn.plot(c["wavelength_nm"], c["n"], color=color, label=c["label"] if few else None,
-                 **kw)
-        axk.plot(c["wavelength_nm"], c["k"], color=color if few else PALETTE["k"], **kw)
+        color = CYCLE[i % len(CYCLE)] if few else cmap(norm(order[i]))
+        kw = dict(lw=1.2 if few else 0.7, alpha=1.0 if few else 0.6, color=color)
+        axn.plot(c["wavelength_nm"], c["n"], label=c["label"] if few else None, **kw)
+        axk.plot(c["wavelength_nm"], c["k"], **kw)
+    if curves and not few:
+        cb = fig.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=[axn, axk], shrink=0.8,
+                          pad=0.02)
+        cb.set_label("Spectrum (batch order)")
+        cb.locator = MaxNLocator(integer=True)
+        cb.update_ticks()
     if not curves:
         axn.text(0.5, 0.5, "no optical constants to show", transform=axn.transAxes,
                  ha="center", color="#666666")

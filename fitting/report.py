@@ -1,0 +1,473 @@
+"""The batch report: one multi-page PDF a process engineer can read without Pellucid.
+
+Pages, in order (A4 portrait):
+
+1. **Overview**: provenance (software, recipe name and hash, date), counts, the
+   thickness statistics and the first rows of the summary table; the table goes
+   on over as many pages as needed.
+2. **Thickness**: the thickness over the batch order and its histogram, with the
+   specification limits drawn.
+3. **Optical constants**: n and κ of all successful spectra overlaid (evenly
+   subsampled for big batches), read from each spectrum's exported files.
+4. **Failed spectra** (only if any): each with the reason it failed.
+5. **Worst fits**: the successful fits with the highest reduced χ², two per page,
+   each redrawn from its exported curves.
+
+Summary rows
+------------
+``rows`` are the batch summary rows, plain dicts in batch order. Every key is
+optional; missing or unreadable values are shown as "–".
+
+==========================  =============================================================
+``file``                    input spectrum (path or name)
+``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit;
+                            anything else (``"failed"``, ``"error"``, ``"skipped"``) is a
+                            failure
+``reason``                  why it failed, in words (shown for failures)
+``film_thickness``          fitted thickness in nm (or another ``{layer}_thickness`` key)
+``film_thickness_sigma``    its 1σ in nm
+``n_633``                   n of that film at 633 nm (``film_n@633`` is accepted too)
+``redchi``                  reduced χ²
+``warnings``                number of warnings, or the list of warning texts
+``spec_pass``               True/False or ``"pass"``/``"fail"``/``"n/a"``; computed from
+                            ``spec`` when missing
+``result_dir``              folder with that spectrum's exports (absolute, or relative to
+                            ``results_dir``); default ``results_dir / <file stem>``
+==========================  =============================================================
+
+The per-spectrum files are those of :func:`fitting.export.export_result`
+(``*_nk_<layer>.csv`` and ``*_curves.csv``, or ``*_result.json`` as a fallback).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable, Mapping, Sequence
+
+import numpy as np
+from matplotlib.backends.backend_pdf import PdfPages
+from matplotlib.figure import Figure
+
+from . import __version__
+from .atomic import atomic_write_bytes
+from .export import provenance_footer, read_curves_csv, read_nk_csv
+from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
+                    spec_bounds, thickness_histogram_figure, thickness_trend_figure)
+
+__all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES"]
+
+#: Summary-row keys the report reads (see the module docstring).
+ROW_KEYS = ("file", "status", "reason", "film_thickness", "film_thickness_sigma", "n_633",
+            "redchi", "warnings", "spec_pass", "result_dir")
+A4_INCHES = (8.27, 11.69)
+ROWS_FIRST_PAGE = 36      # table rows under the overview block
+ROWS_PER_PAGE = 52        # table rows on continuation pages
+FAILED_PER_PAGE = 40
+MAX_OVERLAY = 60          # n/κ curves drawn at most (evenly subsampled)
+_MONO = "DejaVu Sans Mono"
+
+
+# -- reading rows ---------------------------------------------------------------------
+def _num(x) -> float:
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _fmt(x, spec="{:.4g}") -> str:
+    v = _num(x)
+    return spec.format(v) if math.isfinite(v) else "–"
+
+
+def _n633(row) -> float:
+    for key in ("n_633", "film_n@633", "n633"):
+        if key in row:
+            return _num(row[key])
+    return math.nan
+
+
+def _warn_count(row) -> int:
+    w = row.get("warnings")
+    if w is None or w == "":
+        return 0
+    if isinstance(w, (list, tuple)):
+        return len(w)
+    if isinstance(w, str):
+        try:
+            return int(w)
+        except ValueError:
+            return len([p for p in w.split(";") if p.strip()])
+    v = _num(w)
+    return int(v) if math.isfinite(v) else 0
+
+
+def _spec_state(row, spec, key) -> str | None:
+    """"pass", "fail" or None (no spec / not applicable)."""
+    v = row.get("spec_pass")
+    if isinstance(v, (bool, np.bool_)):
+        return "pass" if v else "fail"
+    if isinstance(v, str) and v.strip().lower() in ("pass", "fail"):
+        return v.strip().lower()
+    if not spec or not row_ok(row):
+        return None
+    states = []
+    for q in spec:
+        lo, hi = spec_bounds(spec, q)
+        x = _n633(row) if q.endswith("_n@633") else _num(row.get(q))
+        if not math.isfinite(x):
+            continue
+        states.append((lo is None or x >= lo) and (hi is None or x <= hi))
+    return None if not states else ("pass" if all(states) else "fail")
+
+
+def _short(text, width) -> str:
+    text = str(text)
+    if len(text) <= width:
+        return text
+    keep = width - 1
+    return text[: keep // 2] + "…" + text[len(text) - (keep - keep // 2):]
+
+
+def _clip(text, width) -> str:
+    """Cut prose at the end (a sentence reads from its start)."""
+    text = " ".join(str(text).split())
+    return text if len(text) <= width else text[: width - 1] + "…"
+
+
+def _result_dir(row, results_dir: Path) -> Path:
+    d = row.get("result_dir")
+    if d:
+        p = Path(d)
+        return p if p.is_absolute() else results_dir / p
+    return results_dir / Path(str(row.get("file", ""))).stem
+
+
+def _layer_of(key: str) -> str:
+    return key[: -len("_thickness")] if key.endswith("_thickness") else ""
+
+
+def _load_nk(folder: Path, layer: str):
+    files = sorted(folder.glob("*_nk_*.csv"))
+    if files:
+        pick = [f for f in files if f.stem.endswith(f"_nk_{layer}")] or files
+        return read_nk_csv(pick[0])
+    for f in sorted(folder.glob("*_result.json")):
+        import json
+        doc = json.loads(f.read_text(encoding="utf-8"))
+        optical = doc.get("optical") or {}
+        if optical:
+            oc = optical.get(layer) or next(iter(optical.values()))
+            return {"name": (doc.get("spectrum") or {}).get("name", folder.name),
+                    "wavelength_nm": oc["wavelength_nm"], "n": oc["n"], "k": oc["k"]}
+    return None
+
+
+def _load_curves(folder: Path):
+    files = sorted(folder.glob("*_curves.csv"))
+    if files:
+        return read_curves_csv(files[0])
+    for f in sorted(folder.glob("*_result.json")):
+        import json
+        doc = json.loads(f.read_text(encoding="utf-8"))
+        c = doc.get("curves")
+        if c:
+            return {**c, "name": (doc.get("spectrum") or {}).get("name", folder.name),
+                    "quantity": doc.get("quantity", "T"), "redchi": doc.get("redchi")}
+    return None
+
+
+# -- recipe and provenance ------------------------------------------------------------
+def _recipe_info(recipe, provenance: Mapping) -> tuple[str, str]:
+    name = provenance.get("recipe_name") or ""
+    rhash = provenance.get("recipe_hash") or ""
+    if recipe is not None:
+        if isinstance(recipe, Mapping):
+            name = recipe.get("name", name) or name
+            rhash = recipe.get("hash", rhash) or rhash
+        else:
+            name = getattr(recipe, "name", name) or name
+            h = getattr(recipe, "hash", None)
+            rhash = (h() if callable(h) else h) or rhash
+    return str(name), str(rhash)
+
+
+def _recipe_limits(recipe):
+    if recipe is None:
+        return None
+    lim = recipe.get("limits") if isinstance(recipe, Mapping) else getattr(recipe, "limits", None)
+    return dict(lim) if lim else None
+
+
+# -- page drawing ---------------------------------------------------------------------
+def _page(constrained: bool) -> Figure:
+    """An A4 page; ``constrained`` for pages of plots, plain for text and tables."""
+    if not constrained:
+        return Figure(figsize=A4_INCHES)
+    fig = Figure(figsize=A4_INCHES, layout="constrained")
+    # Keep a strip free for the footer; subfigure layouts respect the rect.
+    fig.get_layout_engine().set(rect=(0.02, 0.03, 0.96, 0.96))
+    return fig
+
+
+def _panels(fig, title, ratios):
+    """A page heading and sub-figures below it, heights in ``ratios``."""
+    head, *subs = fig.subfigures(len(ratios) + 1, 1,
+                                 height_ratios=(0.05 * sum(ratios), *ratios))
+    head.text(0.04, 0.5, title, fontsize=14, weight="bold", va="center")
+    return subs
+
+
+def _footer(fig, text, page, pages):
+    fig.text(0.04, 0.015, text, fontsize=6.5, color="#888888", ha="left")
+    fig.text(0.96, 0.015, f"page {page} of {pages}", fontsize=7, color="#666666", ha="right")
+
+
+_COLS = [  # header, x position (fraction of the table width), alignment
+    ("#", 0.035, "right"), ("file", 0.05, "left"), ("status", 0.45, "left"),
+    ("thickness (nm)", 0.69, "right"), ("n(633)", 0.77, "right"),
+    ("χ²_red", 0.86, "right"), ("spec", 0.93, "right"), ("warn.", 0.995, "right"),
+]
+ROW_HEIGHT = 0.0165   # figure fraction (about 0.19 in on A4)
+
+
+def _table_cells(i, row, key, spec):
+    ok = row_ok(row)
+    d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
+    thick = "–" if not math.isfinite(d) else (
+        f"{d:.1f} ± {s:.1f}" if math.isfinite(s) else f"{d:.1f}")
+    state = _spec_state(row, spec, key)
+    status = str(row.get("status", "ok"))
+    cells = [str(i + 1), _short(row.get("file", "–"), 46), _short(status, 12)]
+    if ok:
+        cells += [thick, _fmt(_n633(row), "{:.4f}"), _fmt(row.get("redchi"), "{:.3g}"),
+                  {"pass": "pass", "fail": "FAIL"}.get(state, "–"), str(_warn_count(row))]
+    else:   # a failure has no numbers; its reason goes where they would be
+        cells += [None] * 5
+    return cells, ok, state
+
+
+def _draw_table(fig, top, rows, start, key, spec):
+    """Rows of the summary table as aligned text, from ``top`` (figure fraction) down."""
+    height = (len(rows) + 1) * ROW_HEIGHT
+    ax = fig.add_axes((0.05, top - height, 0.9, height))
+    ax.set_axis_off()
+    ax.set_xlim(0, 1)
+    ax.set_ylim(len(rows) + 1, 0)      # one unit per row, first row on top
+    for name, x, ha in _COLS:
+        ax.text(x, 0.5, name, ha=ha, va="center", fontsize=7.5, weight="bold")
+    ax.axhline(1.0, color="#444444", lw=0.6)
+    for j, row in enumerate(rows):
+        y = j + 1.5
+        if j % 2:
+            ax.axhspan(y - 0.5, y + 0.5, color="#f2f2f2", lw=0)
+        cells, ok, state = _table_cells(start + j, row, key, spec)
+        for (name, x, ha), text in zip(_COLS, cells):
+            if text is None:
+                continue
+            color = "#222222"
+            if (name == "status" and not ok) or (name == "spec" and state == "fail"):
+                color = PALETTE["fail"]
+            ax.text(x, y, text, ha=ha, va="center", fontsize=7, color=color,
+                    family=_MONO if name in ("thickness (nm)", "n(633)", "χ²_red") else None)
+        if not ok:
+            reason = str(row.get("reason") or row.get("message") or "no reason recorded")
+            ax.text(0.56, y, _clip(reason, 68), ha="left", va="center", fontsize=6.5,
+                    color=PALETTE["fail"], style="italic")
+
+
+def _overview(fig, rows, key, spec, info):
+    fig.text(0.06, 0.955, "Pellucid batch report", fontsize=17, weight="bold")
+    lines = [("software", info["software"]), ("recipe", info["recipe_name"] or "–"),
+             ("recipe hash", info["recipe_hash"] or "–"), ("created", info["created"]),
+             ("results folder", _short(info["results_dir"], 80))]
+    for j, (k, v) in enumerate(lines):
+        fig.text(0.06, 0.925 - j * 0.018, k, fontsize=8.5, color="#555555")
+        fig.text(0.22, 0.925 - j * 0.018, v, fontsize=8.5)
+    ok = [r for r in rows if row_ok(r)]
+    d = np.array([_num(r.get(key)) for r in ok])
+    d = d[np.isfinite(d)]
+    states = [_spec_state(r, spec, key) for r in rows]
+    summary = [("spectra", f"{len(rows)}"), ("fitted", f"{len(ok)}"),
+               ("failed", f"{len(rows) - len(ok)}"),
+               ("in spec", f"{states.count('pass')} of {states.count('pass') + states.count('fail')}"
+                if spec or any(s for s in states) else "no limits given")]
+    if d.size:
+        summary.append((key.replace("_", " "),
+                        f"mean {d.mean():.1f} nm, std {d.std(ddof=1) if d.size > 1 else 0:.2f} nm,"
+                        f" range {d.min():.1f}–{d.max():.1f} nm"))
+    for q in (spec or {}):
+        lo, hi = spec_bounds(spec, q)
+        summary.append((f"limit {q}", f"{'–' if lo is None else f'{lo:g}'} to "
+                                      f"{'–' if hi is None else f'{hi:g}'}"))
+    y0 = 0.925 - len(lines) * 0.018 - 0.012
+    for j, (k, v) in enumerate(summary):
+        fig.text(0.06, y0 - j * 0.018, k, fontsize=8.5, color="#555555")
+        fig.text(0.22, y0 - j * 0.018, v, fontsize=8.5)
+    return y0 - len(summary) * 0.018 - 0.01
+
+
+def _failed_page(fig, items):
+    fig.text(0.06, 0.955, "Failed spectra", fontsize=14, weight="bold")
+    ax = fig.add_axes((0.06, 0.06, 0.88, 0.87))
+    ax.set_axis_off()
+    h = 1.0 / (FAILED_PER_PAGE + 0.5)
+    for j, (i, row) in enumerate(items):
+        y = 1 - (j + 0.5) * h
+        ax.text(0.0, y, f"{i + 1}", fontsize=7.5, ha="left", va="center", color="#555555")
+        ax.text(0.06, y, _short(row.get("file", "–"), 60), fontsize=7.5, va="center")
+        reason = str(row.get("reason") or row.get("message") or "no reason recorded")
+        ax.text(0.06, y - 0.42 * h, _clip(f"{row.get('status', 'failed')}: {reason}", 125),
+                fontsize=6.8, va="center", color=PALETTE["fail"])
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+
+
+def _worst_page(fig, items, results_dir, key):
+    subs = _panels(fig, "Worst fits (highest reduced χ²)", (5,) * len(items) +
+                   ((5,) if len(items) == 1 else ()))
+    for sub, (i, row) in zip(subs, items):
+        d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
+        title = (f"#{i + 1}  {_short(row.get('file', '–'), 50)}   "
+                 f"d = {d:.1f} ± {s:.1f} nm   " if math.isfinite(s) else
+                 f"#{i + 1}  {_short(row.get('file', '–'), 50)}   d = {_fmt(d, '{:.1f}')} nm   ")
+        title += rf"$\chi^2_\mathrm{{red}}$ = {_fmt(row.get('redchi'), '{:.3g}')}"
+        nw = _warn_count(row)
+        if nw:
+            title += f"   ({nw} warning{'s' if nw > 1 else ''})"
+        curves = None
+        try:
+            curves = _load_curves(_result_dir(row, results_dir))
+        except (OSError, ValueError, KeyError):
+            curves = None
+        if curves is None:
+            sub.text(0.5, 0.5, f"{title}\nno exported curves found in "
+                               f"{_short(_result_dir(row, results_dir), 70)}",
+                     ha="center", va="center", fontsize=8, color="#666666")
+            continue
+        fit_figure(curves, fig=sub, title=title)
+
+
+# -- public entry point ---------------------------------------------------------------
+def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe=None,
+                       provenance: Mapping | None = None, spec: Mapping | None = None,
+                       worst: int = 6) -> Path:
+    """Write the batch report PDF (atomically) and return its path.
+
+    Parameters
+    ----------
+    rows : sequence of dict
+        Batch summary rows in batch order; keys in the module docstring (all optional).
+    results_dir : path
+        Folder holding each spectrum's exports (see ``result_dir`` in the rows).
+    pdf_path : path
+        The PDF to write; an existing file is replaced only once the new one is complete.
+    recipe : Recipe or dict, optional
+        Supplies the recipe name, hash and (when ``spec`` is None) the limits.
+    provenance : dict, optional
+        ``software``, ``recipe_name``, ``recipe_hash``, ``created`` as made by
+        :func:`fitting.export.make_provenance`; the recipe fills what is missing.
+    spec : dict, optional
+        Specification limits by row key, e.g. ``{"film_thickness": {"min": 475,
+        "max": 525}}`` (``{"target", "tol"}`` and recipe ``Limit`` objects work too).
+    worst : int
+        How many of the worst successful fits get a fit plot.
+
+    Returns
+    -------
+    Path
+    """
+    rows = [dict(r) for r in rows]
+    results_dir = Path(results_dir)
+    pdf_path = Path(pdf_path)
+    prov = dict(provenance or {})
+    rname, rhash = _recipe_info(recipe, prov)
+    if spec is None:
+        spec = _recipe_limits(recipe)
+    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    info = {"software": prov.get("software") or f"pellucid {__version__}",
+            "recipe_name": rname, "recipe_hash": rhash, "created": created,
+            "results_dir": str(results_dir)}
+    footer = provenance_footer({**prov, "software": info["software"], "recipe_hash": rhash,
+                                "created": created, "input_sha256": None})
+    key = row_thickness_key(rows)
+    layer = _layer_of(key)
+
+    # Plan the pages first so each can say "page i of N".
+    pages: list[tuple[bool, Callable[[Figure], None]]] = []   # (constrained, draw)
+
+    def overview(fig, chunk=rows[:ROWS_FIRST_PAGE]):
+        top = _overview(fig, rows, key, spec, info)
+        if chunk:
+            _draw_table(fig, top, chunk, 0, key, spec)
+    pages.append((False, overview))
+    for start in range(ROWS_FIRST_PAGE, len(rows), ROWS_PER_PAGE):
+        chunk = rows[start:start + ROWS_PER_PAGE]
+
+        def table(fig, chunk=chunk, start=start):
+            fig.text(0.06, 0.955, f"Summary table, spectra {start + 1}–{start + len(chunk)}",
+                     fontsize=12, weight="bold")
+            _draw_table(fig, 0.935, chunk, start, key, spec)
+        pages.append((False, table))
+
+    def thickness(fig):
+        top, bottom = _panels(fig, "Thickness", (1, 1))
+        thickness_trend_figure(rows, spec, key=key, fig=top)
+        thickness_histogram_figure(rows, spec, key=key, fig=bottom)
+    pages.append((True, thickness))
+
+    ok_idx = [i for i, r in enumerate(rows) if row_ok(r)]
+    overlay_idx = ok_idx
+    if len(overlay_idx) > MAX_OVERLAY:
+        pick = np.unique(np.linspace(0, len(ok_idx) - 1, MAX_OVERLAY).round().astype(int))
+        overlay_idx = [ok_idx[j] for j in pick]
+
+    def overlay(fig):
+        curves, missing = [], 0
+        for i in overlay_idx:
+            try:
+                c = _load_nk(_result_dir(rows[i], results_dir), layer)
+            except (OSError, ValueError, KeyError):
+                c = None
+            if c is None:
+                missing += 1
+            else:
+                curves.append({**c, "order": i + 1})
+        top, bottom = _panels(fig, "Optical constants", (5, 1))
+        title = f"n and κ of {len(ok_idx)} successful spectra"
+        if len(curves) < len(ok_idx):
+            title += f" ({len(curves)} shown"
+            title += ", evenly spaced in batch order)" if len(overlay_idx) < len(ok_idx) else ")"
+        nk_overlay_figure(curves, max_curves=MAX_OVERLAY, fig=top, title=title)
+        if missing:
+            bottom.text(0.06, 0.7, f"{missing} of the selected spectra had no readable n/κ "
+                                   f"export in {_short(results_dir, 60)}.", fontsize=8,
+                        color="#666666")
+    pages.append((True, overlay))
+
+    failed = [(i, r) for i, r in enumerate(rows) if not row_ok(r)]
+    for start in range(0, len(failed), FAILED_PER_PAGE):
+        pages.append((False, lambda fig, items=failed[start:start + FAILED_PER_PAGE]:
+                      _failed_page(fig, items)))
+
+    ranked = sorted(ok_idx, key=lambda i: -_num(rows[i].get("redchi"))
+                    if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)
+    ranked = ranked[:max(int(worst), 0)]
+    for start in range(0, len(ranked), 2):
+        items = [(i, rows[i]) for i in ranked[start:start + 2]]
+        pages.append((True, lambda fig, items=items: _worst_page(fig, items, results_dir, key)))
+
+    meta = {"Title": f"Pellucid batch report{': ' + rname if rname else ''}",
+            "Creator": info["software"],
+            "Subject": f"recipe_hash={rhash}; created={created}; spectra={len(rows)}"}
+    buf = io.BytesIO()
+    with PdfPages(buf, metadata=meta) as pdf:
+        for n, (constrained, draw) in enumerate(pages, start=1):
+            fig = _page(constrained)
+            draw(fig)
+            _footer(fig, footer, n, len(pages))
+            pdf.savefig(fig)
+    return atomic_write_bytes(pdf_path, buf.getvalue())

@@ -1,0 +1,183 @@
+"""The batch PDF report: it opens, has the planned pages, shows what it must.
+
+Pages are rendered with poppler's ``pdftoppm`` and read back with ``pdftotext``
+(both from poppler-utils, an outside PDF implementation), so these tests check the
+file a reader gets, not matplotlib's idea of it.
+"""
+
+import math
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+from matplotlib.image import imread
+
+from fitting import export, report
+from fitting.recipe import Limit
+from test_export import make_result
+
+PDFTOPPM = shutil.which("pdftoppm")
+PDFTOTEXT = shutil.which("pdftotext")
+needs_poppler = pytest.mark.skipif(
+    PDFTOPPM is None, reason="pdftoppm not found: install poppler-utils to render report pages")
+needs_pdftotext = pytest.mark.skipif(
+    PDFTOTEXT is None, reason="pdftotext not found: install poppler-utils to read report text")
+
+SPEC = {"film_thickness": {"min": 475, "max": 525}}
+RECIPE = {"name": "oxide on silica, line 2", "hash": "3f2a9c0d11be7c"}
+
+
+def render(pdf, tmp_path, dpi=40):
+    """Render every page to PNG with pdftoppm; return the images in page order."""
+    out = tmp_path / "render"
+    out.mkdir(exist_ok=True)
+    subprocess.run([PDFTOPPM, "-r", str(dpi), "-png", str(pdf), str(out / "p")], check=True,
+                   capture_output=True, timeout=60)
+    files = sorted(out.glob("p-*.png"), key=lambda p: int(p.stem.split("-")[1]))
+    return [imread(f) for f in files]
+
+
+def page_text(pdf, page):
+    out = subprocess.run([PDFTOTEXT, "-f", str(page), "-l", str(page), "-layout", str(pdf), "-"],
+                         check=True, capture_output=True, text=True, timeout=60)
+    return out.stdout
+
+
+def ink(img):
+    """(grey-level std dev, fraction of non-white pixels) of a rendered page."""
+    grey = img[..., :3].mean(axis=2)
+    return float(grey.std()), float((grey < 0.9).mean())
+
+
+@pytest.fixture(scope="module")
+def batch(tmp_path_factory):
+    """Five spectra: four exported fits (thicknesses 490-540 nm) and one failure."""
+    root = tmp_path_factory.mktemp("batch")
+    rows = []
+    for i, (d, redchi) in enumerate([(490.0, 1.1), (505.0, 7.5), (512.0, 2.0), (540.0, 3.3)]):
+        name = f"coupon_{i + 1:02d}"
+        res = make_result(name, d, seed=i, band_gap=False, npts=120)
+        export.export_result(res, root / name, stem=name, provenance={}, plots=())
+        rows.append({"file": f"/lab/run4/{name}.csv", "status": "ok", "film_thickness": d,
+                     "film_thickness_sigma": 1.4, "n_633": res.optical["film"].at(633)[0],
+                     "redchi": redchi, "warnings": ["a"] * i, "result_dir": name})
+    rows.insert(2, {"file": "/lab/run4/coupon_x.csv", "status": "failed",
+                    "reason": "file holds absorbance above 6; check the instrument mode"})
+    return rows, root
+
+
+def write(batch, path, **kw):
+    rows, root = batch
+    kw.setdefault("recipe", RECIPE)
+    kw.setdefault("spec", SPEC)
+    return report.write_batch_report(rows, root, path, **kw)
+
+
+@pytest.fixture(scope="module")
+def pdf(batch, tmp_path_factory):
+    """One report of the five-spectrum batch, shared by the read-only tests."""
+    return write(batch, tmp_path_factory.mktemp("report") / "report.pdf",
+                 provenance={"software": "pellucid 9.9", "created": "2026-03-01T02:00:00+00:00"})
+
+
+# overview + thickness + optical + failed list + ceil(4 worst fits / 2)
+EXPECTED_PAGES = 1 + 1 + 1 + 1 + 2
+
+
+@needs_poppler
+def test_report_opens_with_planned_pages_and_is_not_blank(pdf, tmp_path):
+    assert pdf.read_bytes()[:5] == b"%PDF-"
+    pages = render(pdf, tmp_path)
+    assert len(pages) == EXPECTED_PAGES
+    std, frac = ink(pages[0])
+    assert std > 0.05 and frac > 0.01, (std, frac)
+    for img in pages[1:]:            # every page carries more than a heading and a footer
+        assert ink(img)[1] > 0.004
+    blank = np.ones_like(pages[0])   # the check itself can fail: a white page does
+    assert ink(blank) == (0.0, 0.0)
+
+
+@needs_pdftotext
+def test_overview_shows_provenance_failures_and_spec(pdf):
+    text = page_text(pdf, 1)
+    assert "pellucid 9.9" in text and "3f2a9c0d11be7c" in text
+    assert "oxide on silica, line 2" in text and "2026-03-01T02:00:00+00:00" in text
+    assert "3 of 4" in text                         # 540 nm is outside 475-525
+    assert "FAIL" in text and "failed" in text
+    assert "absorbance above 6" in text             # the failure's reason is in the table
+    assert "505.0 ± 1.4" in text
+    failed_page = page_text(pdf, 4)
+    assert "coupon_x.csv" in failed_page and "check the instrument mode" in failed_page
+
+
+@needs_pdftotext
+def test_worst_fits_come_first_and_are_drawn_from_exports(pdf):
+    first, second = page_text(pdf, 5), page_text(pdf, 6)
+    # redchi 7.5 (coupon_02), then 3.3 (coupon_04), then 2.0, 1.1
+    assert first.index("coupon_02") < first.index("coupon_04")
+    assert "coupon_03" in second and "coupon_01" in second
+    assert "no exported curves" not in first + second
+    assert "Wavelength (nm)" in first
+
+
+@needs_poppler
+def test_recipe_object_limits_and_missing_keys(tmp_path):
+    # Limits as recipe Limit objects (target ± tol), rows with almost nothing in them.
+    class FakeRecipe:
+        name = "bare rows"
+        limits = {"film_thickness": Limit(target=500, tol=10)}
+
+        def hash(self):
+            return "cafe01"
+
+    rows = [{"file": "a.csv", "film_thickness": 505.0}, {"file": "b.csv", "status": "error"},
+            {}, {"film_thickness": "not a number", "redchi": None, "warnings": "2"}]
+    pdf = report.write_batch_report(rows, tmp_path / "nothing_here", tmp_path / "r.pdf",
+                                    recipe=FakeRecipe())
+    # overview + thickness + optical + failed + ceil(3 ok rows / 2) worst-fit pages
+    assert len(render(pdf, tmp_path, dpi=20)) == 1 + 1 + 1 + 1 + 2
+    if PDFTOTEXT:
+        text = page_text(pdf, 1)
+        assert "cafe01" in text and "1 of 1" in text and "no reason recorded" in text
+
+
+@needs_poppler
+def test_two_hundred_rows_paginate(tmp_path):
+    rng = np.random.default_rng(7)
+    rows = []
+    for i in range(200):
+        if i % 25 == 0:
+            rows.append({"file": f"s{i:04d}.csv", "status": "failed", "reason": "too noisy"})
+        else:
+            rows.append({"file": f"s{i:04d}.csv", "status": "ok",
+                         "film_thickness": 500 + rng.normal(0, 10), "film_thickness_sigma": 1.0,
+                         "n_633": 2.0, "redchi": float(rng.uniform(0.5, 3)), "warnings": 0})
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "big.pdf", spec=SPEC, worst=2)
+    table_pages = 1 + math.ceil((200 - report.ROWS_FIRST_PAGE) / report.ROWS_PER_PAGE)
+    expected = table_pages + 1 + 1 + 1 + 1      # + thickness, optical, failed, 2 worst
+    assert table_pages == 5
+    assert len(render(pdf, tmp_path, dpi=15)) == expected
+    if PDFTOTEXT:
+        assert "s0199.csv" in page_text(pdf, table_pages)
+
+
+def test_failed_render_keeps_old_report(batch, pdf, tmp_path, monkeypatch):
+    from matplotlib.backends.backend_pdf import PdfPages
+    target = tmp_path / "report.pdf"
+    shutil.copy(pdf, target)
+    old = target.read_bytes()
+    calls = {"n": 0}
+    real = PdfPages.savefig
+
+    def dies_on_second_page(self, *a, **k):
+        calls["n"] += 1
+        if calls["n"] == 2:
+            raise RuntimeError("out of memory")
+        return real(self, *a, **k)
+
+    monkeypatch.setattr(PdfPages, "savefig", dies_on_second_page)
+    with pytest.raises(RuntimeError, match="out of memory"):
+        write(batch, target)
+    assert target.read_bytes() == old
+    assert [p.name for p in tmp_path.iterdir()] == ["report.pdf"]   # no temp file left
