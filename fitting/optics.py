@@ -297,28 +297,39 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm):
     r_if = (a - b) / (a + b)                                   # (P, L+1, W)
     t2 = _abs2(1 + r_if).prod(axis=1)
 
+    # Airy recursion from the substrate towards the ambient. The last step (the
+    # ambient interface) stays as numerator/denominator: only |r|² and |Π den|²
+    # are needed from it, in real arithmetic.
     r, D = r_if[:, L], None
-    for k in range(L - 1, -1, -1):
+    for k in range(L - 1, 0, -1):
         x = r * E2[k]
         den = 1 + r_if[:, k] * x
         r = (r_if[:, k] + x) / den
         D = den if D is None else D * den
-    Rf = _abs2(r)
-    Tf = outer.t_scale * t2
     if L:
-        Tf = Tf * loss / _abs2(D)
+        x = r * E2[0]
+        den2 = _abs2(1 + r_if[:, 0] * x)
+        Rf = _abs2(r_if[:, 0] + x) / den2
+        Tf = outer.t_scale * t2 * loss / (den2 if D is None else den2 * _abs2(D))
+    else:
+        Rf = _abs2(r)
+        Tf = outer.t_scale * t2
 
     if outer.back is None:
         R, T = Rf, Tf
     else:
         # From the substrate side the interfaces change sign: r_{f,i} = -r_{i,f}.
         # Carrying s = -r' keeps the same step, and |r'| = |s|.
-        s = r_if[:, 0]
-        for k in range(L):
-            x = s * E2[k]
-            s = (r_if[:, k + 1] + x) / (1 + r_if[:, k + 1] * x)
+        if L == 1:  # one film: the same denominator 1 + r01 r12 e^{2iδ} as forward
+            Rr = _abs2(r_if[:, 1] + r_if[:, 0] * E2[0]) / den2
+        else:
+            s = r_if[:, 0]
+            for k in range(L):
+                x = s * E2[k]
+                s = (r_if[:, k + 1] + x) / (1 + r_if[:, k + 1] * x)
+            Rr = _abs2(s)
         Rb_tau2, gRb_tau2, tau_Tb = outer.back
-        den = 1 - _abs2(s) * Rb_tau2
+        den = 1 - Rr * Rb_tau2
         T = Tf * tau_Tb / den
         R = Rf + Tf * Tf * gRb_tau2 / den
     if len(outer.pols) == 2:
