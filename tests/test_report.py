@@ -119,6 +119,8 @@ def test_worst_fits_come_first_and_are_drawn_from_exports(pdf):
     assert "coupon_03" in second and "coupon_01" in second
     assert "no exported curves" not in first + second
     assert "Wavelength (nm)" in first
+    overlay = page_text(pdf, 3)              # n/κ read back from every exported CSV
+    assert "n and κ of 4 successful spectra" in overlay and "no readable" not in overlay
 
 
 @needs_poppler
