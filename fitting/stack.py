@@ -59,6 +59,8 @@ def _spread_nodes(n_nodes: int):
     x = np.linspace(-6.0, 6.0, n_nodes)
     w = np.exp(-0.5 * x * x)
     return x, w / w.sum()
+
+
 # Triangular slit of unit FWHM sampled at 7 nodes on (-1, 1) FWHM, exact weights.
 _SLIT_U = np.linspace(-6 / 7, 6 / 7, 7)
 _SLIT_W = (1 - np.abs(_SLIT_U)) / np.sum(1 - np.abs(_SLIT_U))
@@ -313,7 +315,15 @@ class StackModel:
                 for k, x in local.items():
                     if not math.isfinite(x):
                         raise ParameterError(self._names[i][1] + k, x, "must be finite")
-                N = self._names[i][0].material.N_unchecked(self._wl, local)
+                material = self._names[i][0].material
+                with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                    N = material.N_unchecked(self._wl, local)
+                if not np.all(np.isfinite(N)):  # a pole on the grid: refuse, never pass NaN on
+                    raise ParameterError(
+                        self._names[i][0].name, local,
+                        f"{material.describe()} gives a non-finite refractive index on this "
+                        f"wavelength grid (a resonance without damping on a measured "
+                        f"wavelength); add broadening or move the resonance")
                 self._cache[i] = (key, N)
             Ns.append(N)
             ds.append(d)
