@@ -4,11 +4,14 @@ Sources named beside each check; the `tmm` package (S. J. Byrnes, arXiv:1603.027
 is the independent transfer-matrix reference.
 """
 
+import math
+
 import numpy as np
 import pytest
 
-from fitting.dispersion import Cauchy, Constant
-from fitting.errors import ParameterError
+from fitting.dispersion import Bruggeman, Cauchy, Constant, Drude, Lorentz, Oscillators, \
+    Tabulated, TaucLorentz
+from fitting.errors import ParameterError, RecipeError, WavelengthRangeError
 from fitting.stack import Layer, Stack
 from fitting.substrates import Substrate, library_substrate
 
@@ -52,3 +55,288 @@ def test_single_absorbing_film_matches_tmm_inc_tmm(angle, pol):
 def test_negative_thickness_is_refused():
     with pytest.raises(ParameterError, match="negative"):
         Layer("film", Cauchy(), -5.0)
+
+
+# ---------------------------------------------------------------------------------------
+def _random_stack(seed):
+    """1-4 tabulated films (exact N on the grid) on an incoherent, possibly lossy substrate."""
+    rng = np.random.default_rng(seed)
+    wl = np.sort(rng.uniform(320.0, 1500.0, 14))
+    layers = []
+    for j in range(int(rng.integers(1, 5))):
+        n = rng.uniform(1.3, 3.0) + 0.02 / (wl / 1000) ** 2
+        k = rng.uniform(0, 0.3) * 400 / wl if seed % 2 else 0 * wl
+        layers.append(Layer(f"f{j}", Tabulated(wl, n, k, name=f"f{j}"),
+                            float(rng.uniform(5, 900))))
+    ns = rng.uniform(1.4, 1.9) + 0.004 / (wl / 1000) ** 2
+    sub = Substrate(Tabulated(wl, ns, name="sub"), float(rng.uniform(0.3, 3.0)),
+                    internal_transmittance=float(rng.uniform(0.3, 1.0)) if seed % 3 else None)
+    # Immersion ambient / different exit medium in some cases.
+    ambient = Constant(1.33) if seed % 5 == 0 else Constant(1.0)
+    exit_medium = Constant(1.45) if seed % 4 == 1 else Constant(1.0)
+    angle = 0.0 if seed % 4 == 0 else float(rng.uniform(5, 70))
+    return wl, Stack(layers, sub, ambient, exit_medium), angle
+
+
+@pytest.mark.parametrize("seed", range(16))
+def test_random_stacks_through_stack_model_match_tmm(seed):
+    # Stack.RT (the path fits use) against tmm.inc_tmm: coherent films, incoherent substrate.
+    wl, st, angle = _random_stack(seed)
+    Nl = [layer.material.N(wl) for layer in st.layers]
+    d = [layer.thickness_nm for layer in st.layers]
+    Ns, n0, ne = st.substrate.N(wl), st.ambient.N(wl), st.exit_medium.N(wl)
+    ref = {}
+    for pol in "sp":
+        rr = []
+        for i, lam in enumerate(wl):
+            res = tmm.inc_tmm(pol, [n0[i]] + [N[i] for N in Nl] + [Ns[i], ne[i]],
+                              [np.inf] + d + [st.substrate.thickness_nm, np.inf],
+                              ["i"] + ["c"] * len(d) + ["i", "i"], np.radians(angle), lam)
+            rr.append((res["R"], res["T"]))
+        ref[pol] = np.array(rr).T
+    ref["u"] = (ref["s"] + ref["p"]) / 2  # natural light: mean of s and p (Born & Wolf 1.4.2)
+    for pol in "spu":
+        R, T = st.RT(wl, angle_deg=angle, polarization=pol)
+        np.testing.assert_allclose(R, ref[pol][0], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(T, ref[pol][1], rtol=0, atol=1e-9)
+
+
+def test_model_films_on_library_substrate_match_tmm():
+    # Oscillator film under a Bruggeman roughness layer on N-BK7 with bulk loss, oblique,
+    # unpolarised; reference tmm.inc_tmm with the models' N.
+    wl = np.linspace(320, 1500, 25)
+    film = Oscillators(1.8, [TaucLorentz(90, 4.4, 1.6, 3.2), Drude(0.6, 0.12)])
+    rough = Bruggeman(film, Constant(1.0), 0.45)
+    st = Stack([Layer("rough", rough, 12.0), Layer("film", film, 540.0)],
+               library_substrate("n_bk7", 1.1, internal_transmittance=0.93))
+    R, T = st.RT(wl, angle_deg=35.0, polarization="u")
+    Nr, Nf, Ns = rough.N(wl), film.N(wl), st.substrate.N(wl)
+    for i, lam in enumerate(wl):
+        ref = [tmm.inc_tmm(p, [1, Nr[i], Nf[i], Ns[i], 1], [np.inf, 12, 540, 1.1e6, np.inf],
+                           ["i", "c", "c", "i", "i"], np.radians(35), lam) for p in "sp"]
+        assert R[i] == pytest.approx((ref[0]["R"] + ref[1]["R"]) / 2, abs=1e-9)
+        assert T[i] == pytest.approx((ref[0]["T"] + ref[1]["T"]) / 2, abs=1e-9)
+
+
+def test_energy_balance_through_stack():
+    # Lossless everything: R + T = 1 (Born & Wolf 1.1.4); lossy film: 0 < A = 1 - R - T < 1
+    # and A equals tmm's Poynting-vector absorption (tmm.inc_absorp_in_each_layer).
+    wl = np.linspace(350, 1200, 40)
+    st = Stack([Layer("film", Cauchy(2.1, 0.02), 750.0)], library_substrate("fused_silica"))
+    for pol in "spu":
+        R, T = st.RT(wl, angle_deg=50.0, polarization=pol)
+        assert np.max(np.abs(R + T - 1)) < 1e-12
+    film = Cauchy(2.3, 0.03, urbach=True, k0=0.05, Eu=0.25)
+    st = Stack([Layer("film", film, 400.0)], library_substrate("fused_silica"))
+    R, T = st.RT(wl, polarization="s")
+    A = 1 - R - T
+    assert np.all(A > 0) and np.all(A < 1)
+    Nf, Ns = film.N(wl), st.substrate.N(wl)
+    for i, lam in enumerate(wl[::4]):
+        j = 4 * i
+        data = tmm.inc_tmm("s", [1, Nf[j], Ns[j], 1], [np.inf, 400, 1e6, np.inf],
+                           ["i", "c", "i", "i"], 0.0, lam)
+        assert A[j] == pytest.approx(sum(tmm.inc_absorp_in_each_layer(data)[1:-1]), abs=1e-9)
+
+
+# ---------------------------------------------------------------------------------------
+# Thickness non-uniformity: E over d(1 + s x), x ~ N(0, 1), against our own brute force,
+# a 400-point trapezoid rule on x in [-6, 6] (errors < 1e-9 for these fringe spacings).
+
+def _brute_spread(stack, wl, spread, n_nodes=400):
+    x = np.linspace(-6, 6, n_nodes)
+    w = np.exp(-x * x / 2)
+    w /= w.sum()
+    ev = Stack(stack.layers, stack.substrate).evaluator(wl, polarization="s")
+    d0 = {f"{layer.name}_thickness": layer.thickness_nm for layer in stack.layers}
+    R = T = 0.0
+    for xi, wi in zip(x, w):
+        # The Gaussian tail below zero thickness (weight < 5e-4) is lumped at d = 0.
+        Ri, Ti = ev.RT({k: d * max(1 + spread * xi, 0.0) for k, d in d0.items()})
+        R, T = R + wi * Ri, T + wi * Ti
+    return R, T
+
+
+@pytest.mark.parametrize("n,d,spread,tol", [
+    (2.2, 1000.0, 0.02, 1e-7),   # phase spread ~1.4 rad at 400 nm
+    (2.2, 5000.0, 0.02, 1e-6),   # ~7 rad: fringes nearly washed out in the blue
+    (3.5, 3000.0, 0.01, 5e-5),   # strong reflections: many harmonics
+    (2.0, 150.0, 0.3, 1e-6),     # widest allowed spread: the kink at d = 0 costs accuracy
+])
+def test_thickness_spread_equals_brute_force_gaussian_average(n, d, spread, tol):
+    wl = np.linspace(400, 1000, 241)
+    layers = [Layer("film", Cauchy(n, 0.02 if n < 3 else 0.0), d)]
+    st = Stack(layers, Substrate(Constant(1.52), 1.0), thickness_spread=spread)
+    R, T = st.RT(wl, polarization="s")
+    Rb, Tb = _brute_spread(st, wl, spread)
+    assert np.max(np.abs(T - Tb)) < tol
+    assert np.max(np.abs(R - Rb)) < tol
+
+
+def test_thickness_spread_two_layers_and_damping():
+    wl = np.linspace(400, 1000, 241)
+    layers = [Layer("hi", Cauchy(2.3, 0.02), 900.0), Layer("lo", Cauchy(1.46, 0.004), 1400.0)]
+    uniform = Stack(layers, library_substrate("fused_silica"))
+    spread = Stack(layers, library_substrate("fused_silica"), thickness_spread=0.02)
+    T0 = uniform.transmittance(wl, polarization="s")
+    T1 = spread.transmittance(wl, polarization="s")
+    assert np.max(np.abs(T1 - _brute_spread(spread, wl, 0.02)[1])) < 1e-7
+    # Averaging over thickness damps the fringes (Swanepoel 1984, J. Phys. E 17, 896).
+    blue = wl < 600  # the phase spread grows as 1/λ: strongest damping in the blue
+    assert np.ptp(T1[blue]) < 0.7 * np.ptp(T0[blue])
+    assert np.ptp(T1) < np.ptp(T0)
+    assert abs(np.mean(T1) - np.mean(T0)) < 0.01
+
+
+# Finite bandwidth: a triangular slit of FWHM w (base 2w) against a brute-force average of
+# single-wavelength spectra on an 801-point grid (trapezoid rule).
+
+def _brute_slit(stack, wl, fwhm, n_nodes=801):
+    u = np.linspace(-1, 1, n_nodes)
+    w = 1 - np.abs(u)
+    w /= np.trapezoid(w, u)
+    plain = Stack(stack.layers, stack.substrate)
+    Ts = np.array([plain.transmittance(wl + fwhm * ui, polarization="s") for ui in u])
+    return np.trapezoid(w[:, None] * Ts, u, axis=0)
+
+
+@pytest.mark.parametrize("d,fwhm", [(1000.0, 2.0), (1000.0, 5.0), (3000.0, 2.0)])
+def test_bandwidth_equals_brute_force_slit_average(d, fwhm):
+    n = 2.2
+    wl = np.linspace(400, 1000, 121)
+    st = Stack([Layer("film", Cauchy(n, 0.02), d)], Substrate(Constant(1.52), 1.0),
+               bandwidth_nm=fwhm)
+    T = st.transmittance(wl, polarization="s")
+    Tb = _brute_slit(st, wl, fwhm)
+    T0 = Stack(st.layers, st.substrate).transmittance(wl, polarization="s")
+    # The 7-node rule is a midpoint rule of spacing h = 2w/7: error ≈ h²/24 · max|T''|
+    # (e.g. Press et al., *Numerical Recipes*, 3rd ed., sec. 4.1), with |T''| <=
+    # (ΔT/2) (2π/P)² for fringes of contrast ΔT and period P = λ²/(2 n d) (Swanepoel 1983).
+    h = 2 * fwhm / 7
+    n_max = n + 0.02 / 0.4 ** 2
+    P = 400.0 ** 2 / (2 * n_max * d)
+    bound = h * h / 24 * np.ptp(T0) / 2 * (2 * np.pi / P) ** 2
+    assert np.max(np.abs(T - Tb)) < bound
+    # ... and the slit does damp the fringes, by much more than that error.
+    assert np.ptp(T0) - np.ptp(T) > 5 * bound
+
+
+# ---------------------------------------------------------------------------------------
+def test_stack_round_trip():
+    st = Stack([Layer("rough", Bruggeman(Cauchy(2.0, 0.02), Constant(1.0), 0.4), 15.0),
+                Layer("film", Oscillators(1.5, [TaucLorentz(), Lorentz(0.2, 8.0, 1.0)]), 650.0)],
+               library_substrate("sapphire_o", 0.5), Constant(1.0), Constant(1.33),
+               thickness_spread=0.01, bandwidth_nm=1.5)
+    back = Stack.from_dict(st.to_dict())
+    wl = np.linspace(300, 1200, 50)
+    for pol, angle in (("u", 0.0), ("p", 40.0)):
+        assert np.array_equal(np.array(back.RT(wl, angle_deg=angle, polarization=pol)),
+                              np.array(st.RT(wl, angle_deg=angle, polarization=pol)))
+    assert back.to_dict() == st.to_dict()
+
+
+def test_evaluator_follows_parameter_changes():
+    # The evaluator caches N per layer; new values must give the fresh result (common practice
+    # check of a cache: compare with an uncached evaluation).
+    wl = np.linspace(400, 900, 30)
+    st = Stack([Layer("film", Cauchy(2.0, 0.02), 500.0)], library_substrate("fused_silica"))
+    ev = st.evaluator(wl)
+    first = ev.RT({"film_A": 2.1, "film_thickness": 480.0})
+    second = ev.RT({"film_A": 2.3, "film_thickness": 480.0})
+    fresh = Stack([Layer("film", Cauchy(2.3, 0.02), 480.0)],
+                  library_substrate("fused_silica")).RT(wl)
+    assert not np.allclose(first[1], second[1])
+    assert np.array_equal(np.array(second), np.array(fresh))
+    assert np.array_equal(np.array(ev.RT({"film_A": 2.1, "film_thickness": 480.0})),
+                          np.array(first))
+
+
+# ---------------------------------------------------------------------------------------
+# Bad input: specific errors with actionable messages, never NaN.
+
+def _simple():
+    return Stack([Layer("film", Cauchy(2.0, 0.02), 500.0)], library_substrate("fused_silica"))
+
+
+@pytest.mark.parametrize("values,match", [
+    ({"film_thickness": -1.0}, "'film_thickness'.*non-negative"),
+    ({"film_thickness": math.nan}, "'film_thickness'.*non-negative"),
+    ({"film_A": math.nan}, "'film_A'.*finite"),
+    ({"film_B": math.inf}, "'film_B'.*finite"),
+])
+def test_bad_values_in_fit_path(values, match):
+    ev = _simple().evaluator(np.linspace(400, 800, 5))
+    with pytest.raises(ParameterError, match=match):
+        ev.RT(values)
+
+
+def test_pole_in_fit_path_is_an_error_not_nan():
+    # An undamped Lorentz oscillator exactly on a grid wavelength (E0 = hc/λ).
+    from fitting.units import HC_EV_NM
+    wl = np.array([500.0, 600.0, 700.0])
+    st = Stack([Layer("film", Oscillators(2.0, [Lorentz(0.5, 4.0, 0.1)]), 300.0)],
+               library_substrate("fused_silica"))
+    ev = st.evaluator(wl)
+    assert np.all(np.isfinite(ev.RT()[1]))
+    with pytest.raises(ParameterError, match="non-finite"):
+        ev.RT({"film_o1_gamma": 0.0, "film_o1_E0": HC_EV_NM / 600.0})
+
+
+@pytest.mark.parametrize("wl,kw,exc,match", [
+    ([400.0, math.nan], {}, ParameterError, "finite"),
+    ([[400.0, 500.0]], {}, ParameterError, "1-D"),
+    ([150.0, 500.0], {}, WavelengthRangeError, "fused silica is valid from 210"),
+    ([400.0], {"angle_deg": 90.0}, ParameterError, r"\[0, 90\)"),
+    ([400.0], {"angle_deg": math.nan}, ParameterError, "finite"),
+    ([400.0], {"polarization": "x"}, ParameterError, "'s', 'p' or 'u'"),
+])
+def test_bad_geometry_and_wavelengths(wl, kw, exc, match):
+    with pytest.raises(exc, match=match):
+        _simple().RT(wl, **kw)
+
+
+def test_table_film_outside_its_table():
+    st = Stack([Layer("film", Tabulated([400, 900], [2.0, 1.9], name="film.nk"), 300.0)],
+               library_substrate("fused_silica"))
+    with pytest.raises(WavelengthRangeError, match="table film.nk is valid from 400 to 900"):
+        st.RT([350.0, 600.0])
+    # The slit's side nodes must lie inside the table too.
+    st.bandwidth_nm = 5.0
+    with pytest.raises(WavelengthRangeError):
+        st.RT([401.0, 600.0])
+
+
+@pytest.mark.parametrize("make,match", [
+    (lambda: Layer("film", Cauchy(), math.nan), "finite"),
+    (lambda: Layer("2nd", Cauchy(), 10.0), "must start with a letter"),
+    (lambda: Layer("my film", Cauchy(), 10.0), "letters and digits"),
+    (lambda: Stack([Layer("a", Cauchy(), 1.0), Layer("a", Cauchy(), 2.0)],
+                   library_substrate("caf2")), "unique"),
+    (lambda: Stack([], library_substrate("caf2"), thickness_spread=0.5), "above 0.3"),
+    (lambda: Stack([], library_substrate("caf2"), thickness_spread=-0.01), "must not be negative"),
+    (lambda: Stack([], library_substrate("caf2"), bandwidth_nm=math.nan), "finite"),
+    (lambda: Stack([], library_substrate("caf2"), bandwidth_nm=-1.0), "must not be negative"),
+    (lambda: Stack([], library_substrate("caf2"), Constant(1.0, 0.1)).RT([500.0], angle_deg=30),
+     "lossless"),
+    (lambda: Stack([], Substrate(Constant(1.5)), bandwidth_nm=500.0).RT([300.0]),
+     "wider than the shortest wavelength"),
+])
+def test_bad_stack_setups(make, match):
+    with pytest.raises(ParameterError, match=match):
+        make()
+
+
+@pytest.mark.parametrize("mutate,match", [
+    (lambda d: d.pop("substrate"), r"'stack.substrate'.*missing"),
+    (lambda d: d.update(colour="red"), r"'stack.colour'.*unknown field"),
+    (lambda d: d.update(layers={}), r"'stack.layers'.*must be a list"),
+    (lambda d: d["layers"][0]["thickness"].update(value=-3.0), r"layers\[0\].thickness"),
+    (lambda d: d["layers"][0]["thickness"].update(min=-5.0), r"layers\[0\].thickness.*>= 0"),
+    (lambda d: d["layers"][0]["material"].update(kind="magic"), r"layers\[0\].material.kind"),
+    (lambda d: d.update(thickness_spread=2.0), r"'stack.thickness_spread'"),
+])
+def test_bad_stack_records(mutate, match):
+    d = _simple().to_dict()
+    mutate(d)
+    with pytest.raises(RecipeError, match=match):
+        Stack.from_dict(d)
