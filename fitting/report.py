@@ -42,6 +42,7 @@ The per-spectrum files are those of :func:`fitting.export.export_result`
 from __future__ import annotations
 
 import io
+import json
 import math
 from datetime import datetime, timezone
 from pathlib import Path
@@ -156,7 +157,6 @@ def _load_nk(folder: Path, layer: str):
         pick = [f for f in files if f.stem.endswith(f"_nk_{layer}")] or files
         return read_nk_csv(pick[0])
     for f in sorted(folder.glob("*_result.json")):
-        import json
         doc = json.loads(f.read_text(encoding="utf-8"))
         optical = doc.get("optical") or {}
         if optical:
@@ -171,7 +171,6 @@ def _load_curves(folder: Path):
     if files:
         return read_curves_csv(files[0])
     for f in sorted(folder.glob("*_result.json")):
-        import json
         doc = json.loads(f.read_text(encoding="utf-8"))
         c = doc.get("curves")
         if c:

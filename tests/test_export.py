@@ -117,12 +117,23 @@ def test_all_files_written(exported):
     assert b"<svg" in (out / "sample_01_fit.svg").read_bytes()[:2000]
 
 
-def test_no_tauc_plot_without_band_gap(tmp_path):
+def test_no_tauc_plot_without_band_gap(tmp_path, monkeypatch):
+    saved = []   # which figures are made is the question here, not how they render
+    monkeypatch.setattr(export, "save_figure", lambda fig, path, **kw: saved.append(path) or path)
     res = make_result(band_gap=False)
     files = export.export_result(res, tmp_path, stem="s", provenance=export.make_provenance(res),
                                  plots=("png",))
-    assert "s_tauc.png" not in {p.name for p in files}
-    assert "s_fit.png" in {p.name for p in files}
+    assert [p.name for p in saved] == ["s_fit.png", "s_optical.png"]
+    assert saved == files[-2:]
+
+
+def test_parts_choose_the_files(tmp_path):
+    files = export.export_result(make_result(), tmp_path, stem="s", provenance={},
+                                 plots=("png",), parts=("curves", "json"))
+    assert [p.name for p in files] == ["s_curves.csv", "s_result.json"]
+    with pytest.raises(ValueError, match="'pictures' is unknown"):
+        export.export_result(make_result(), tmp_path, stem="s", provenance={},
+                             parts=("pictures",))
 
 
 def test_nk_csv_reads_back_with_units_header(exported):
