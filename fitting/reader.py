@@ -796,6 +796,12 @@ def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
                     found=lines[first_content].strip()[:80])
     if start is None:
         data_rows = [i for i, (k, _) in enumerate(kinds) if k == _DATA]
+        if len(data_rows) >= MIN_POINTS:
+            cut = next((i for i, (k, _) in enumerate(kinds)
+                        if i > data_rows[0] and k in (_TEXT, _SINGLE)), data_rows[0])
+            raise _fail(path, cut + 1, "a line of text interrupts the rows of numbers",
+                        expected="one table: only rows of numbers between the first and the "
+                                 "last data row", found=lines[cut].strip()[:80])
         raise _fail(path, data_rows[0] + 1, f"only {len(data_rows)} data rows were found, at "
                     f"least {MIN_POINTS} are needed", expected=f"{MIN_POINTS} or more rows of "
                     "numbers", found=lines[data_rows[0]].strip()[:80])
@@ -856,6 +862,7 @@ def _preamble(lines, delim, numbers, n_columns):
         last = content[-1]
         toks = _header_tokens(lines[last], delim, n_columns)
         if toks is not None and numbers.parse(toks[0]) is None \
+                and not toks[0].endswith((":", "=")) \
                 and not any(_QUANTITY_VALUE.match(t) for t in toks[1:]):
             header_idx = last
             names = toks
@@ -1117,8 +1124,10 @@ def _meta_lookup(metadata: dict, keys) -> list:
 
 
 def _uniform(v: np.ndarray) -> bool:
-    d = np.diff(v)
-    return d.size >= 2 and abs(d.mean()) > 0 and float(np.std(d) / abs(d.mean())) < 0.02
+    with np.errstate(all="ignore"):
+        d = np.diff(v)
+        return bool(d.size >= 2 and abs(d.mean()) > 0
+                    and float(np.std(d) / abs(d.mean())) < 0.02)
 
 
 def _infer_x_unit(x: np.ndarray, name: str, metadata: dict, notes: list) -> tuple[str, str]:
@@ -1274,10 +1283,15 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
                     found=f"{wl.size} point(s)")
     if order == "unsorted":
         warn.append("the wavelengths were not in order and have been sorted")
-    idx = np.argsort(wl, kind="stable")
-    wl, val = wl[idx], val[idx]
-    uniq, inverse, counts = np.unique(wl, return_inverse=True, return_counts=True)
-    if uniq.size < wl.size:
+    # Reversing is free and sorting a million points is the slowest step: sort only
+    # when the grid is neither ascending nor descending.
+    if wl.size > 1 and wl[0] > wl[-1]:
+        wl, val = wl[::-1], val[::-1]
+    if not np.all(np.diff(wl) > 0):
+        idx = np.argsort(wl, kind="stable")
+        wl, val = wl[idx], val[idx]
+    if np.any(np.diff(wl) == 0):
+        uniq, inverse, counts = np.unique(wl, return_inverse=True, return_counts=True)
         n_dup = int(wl.size - uniq.size)
         warn.append(f"{n_dup} repeated wavelength(s) found; the values at each were averaged")
         val = np.bincount(inverse, weights=val) / counts
@@ -1547,10 +1561,16 @@ def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
     if names:
         # Two spaces keep names such as "T (%)" one column in a whitespace table.
         out.append(("  " if d.delimiter == " " else d.delimiter).join(names))
-    xs = _format_numbers(x, d, precision)
-    ys = _format_numbers(y, d, precision)
-    out.extend(a + d.delimiter + b for a, b in zip(xs, ys))
-    text = d.newline.join(out) + d.newline
+    if d.thousands:
+        xs = _format_numbers(x, d, precision)
+        ys = _format_numbers(y, d, precision)
+        body = d.newline.join(a + d.delimiter + b for a, b in zip(xs, ys))
+    else:                                # one pass; the decimal comma swapped in C
+        row = f"{{:.{precision}g}}{d.delimiter}{{:.{precision}g}}".format
+        body = d.newline.join(map(row, x.tolist(), y.tolist()))
+        if d.decimal == ",":
+            body = body.replace(".", ",")
+    text = d.newline.join(out + [body]) + d.newline
     try:
         if d.encoding == "utf-16-le":
             data = codecs.BOM_UTF16_LE + text.encode("utf-16-le")

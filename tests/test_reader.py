@@ -270,6 +270,24 @@ def test_two_header_lines_and_whitespace_header():
     assert w.metadata["reader"]["columns"] == ["Wavelength (nm)", "T (%)"]
 
 
+def test_whitespace_metadata_is_not_taken_for_column_names():
+    s = parse_spectrum("XUnits: 1/CM\nYUnits: %T\n"
+                       + "\n".join(f"{20000 - 100 * i} {50 + i}" for i in range(6)))
+    assert s.metadata["header"] == {"XUnits": "1/CM", "YUnits": "%T"}
+    assert s.metadata["reader"]["columns"] == []
+    assert s.metadata["reader"]["x_unit"] == "cm-1"
+    np.testing.assert_allclose(s.wavelength_nm, 1e7 / (20000 - 100 * np.arange(6)))
+
+
+def test_text_between_data_rows_is_reported():
+    text = "400;50\nx;3\n401;51\nNote;x\n402;52\n403;53\n404;54\n"
+    with pytest.raises(SpectrumFormatError, match=r"line 2: a line of text interrupts.*'x;3'"):
+        parse_spectrum(text)
+    damaged_first = "400;5O\n401;51\n402;52\n403;53\n404;54\n405;55\n"
+    with pytest.raises(SpectrumFormatError, match=r"line 1: column 1 holds text.*'5O'"):
+        parse_spectrum(damaged_first)
+
+
 def test_column_choice_auto_and_override():
     rows = [(i, 400 + 2 * i, 0.5 + i / 100, 0.003) for i in range(8)]
     text = table(rows, head="Point;Wavelength (nm);T;sigma\n")
@@ -472,16 +490,42 @@ numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True, width=32),
                     st.integers(-10, 100_000), st.sampled_from(["--", "", "nan", "x", "1,2"]))
 tables = st.builds(_rows_text, st.lists(st.tuples(numbers, numbers), max_size=40),
                    st.sampled_from([",", ";", "\t", " ", "  "]), st.booleans())
+
+
+@st.composite
+def plausible_files(draw):
+    """Spectrum-like tables in random dialects, now and then with a damaged line."""
+    delim = draw(st.sampled_from([",", ";", "\t", " "]))
+    comma = delim != "," and draw(st.booleans())
+    n = draw(st.integers(0, 30))
+    wl = draw(st.lists(st.floats(0.5, 30000, allow_nan=False), min_size=n, max_size=n))
+    y = draw(st.lists(st.floats(-1, 101, allow_nan=False), min_size=n, max_size=n))
+    lines = [f"{a:.6g}{delim}{b:.5g}" for a, b in zip(wl, y)]
+    if comma:
+        lines = [line.replace(".", ",") for line in lines]
+    junk = draw(st.lists(st.tuples(st.integers(0, max(n, 1)),
+                                   st.sampled_from(["", "#c", "Key: v", "x;y", "--;--", "1;a",
+                                                    "[End]", "\ufeffA", "nm;%"])),
+                         max_size=3))
+    for at, text in junk:
+        lines.insert(at, text)
+    head = draw(st.sampled_from(["", "Wavelength (nm);T (%)\n", "Energy/eV\tA\n",
+                                 "XUnits: 1/CM\n"]))
+    return head + "\n".join(lines)
+
+
 any_input = st.one_of(st.binary(max_size=300), st.text(max_size=300), tables,
                       st.builds(lambda head, body: head + "\n" + body,
-                                st.text(max_size=80), tables))
+                                st.text(max_size=80), tables), plausible_files())
 
 
-@settings(max_examples=250, deadline=2000, suppress_health_check=[HealthCheck.too_slow])
-@given(any_input)
-def test_any_input_parses_or_raises_format_error(content):
+@settings(max_examples=200, deadline=2000, suppress_health_check=[HealthCheck.too_slow])
+@given(any_input, st.sampled_from([ReaderOptions(), ReaderOptions(sigma="estimate"),
+                                   ReaderOptions(y_kind="absorbance", x_unit="eV"),
+                                   ReaderOptions(y_kind="counts", decimal=",")]))
+def test_any_input_parses_or_raises_format_error(content, options):
     try:
-        s = parse_spectrum(content)
+        s = parse_spectrum(content, options=options)
     except SpectrumFormatError as exc:
         assert exc.line is None or exc.line >= 1
         return
