@@ -1,0 +1,219 @@
+"""Batch runner (fitting/batch.py): independence, recovery of the truth, resume, stop.
+
+Synthetic spectra come from tests/batch_helpers.py (Stack.RT, itself checked against
+the tmm package in test_stack.py, plus seeded noise).
+"""
+
+import csv
+import json
+import threading
+
+import numpy as np
+import pytest
+
+from batch_helpers import BROKEN, make_recipe, true_n, write_spectra
+from fitting.batch import (MARKER_NAME, BatchInputError, expand_inputs, iter_batch, run_batch,
+                           summary_columns)
+from fitting.recipe import recipe_hash
+from fitting.spectrum import sha256_of_file
+
+THICKNESSES = np.linspace(350.0, 750.0, 27)
+
+
+@pytest.fixture(scope="module")
+def batch27(tmp_path_factory):
+    """27 good spectra + 3 broken ones, run once with 2 worker processes."""
+    root = tmp_path_factory.mktemp("batch27")
+    truth = write_spectra(root / "in", THICKNESSES, seed=27, broken=True)
+    recipe = make_recipe(limits={"film_thickness": {"target": 550, "tol": 100},
+                                 "film_n@633": {"min": 1.9, "max": 2.2}})
+    steps = []
+    summary = run_batch([root / "in"], recipe, root / "out", jobs=2, on_step=steps.append,
+                        report=False)
+    return root, truth, recipe, steps, summary
+
+
+def test_broken_files_are_reported_and_the_rest_recovered(batch27):
+    root, truth, recipe, steps, summary = batch27
+    assert summary.total == 30 and len(steps) == 30
+    assert summary.counts == {"ok": 27, "failed": 0, "error": 3}
+    assert summary.exit_code == 1                     # some failed
+    rows = json.loads((root / "out" / "summary.json").read_text())["rows"]
+    by_name = {r["file"].rsplit("/", 1)[-1]: r for r in rows}
+    for name in BROKEN:
+        r = by_name[name]
+        assert r["status"] == "error"
+        assert name in r["reason"]                    # the message names the file
+    assert "empty" in by_name["empty.csv"]["reason"]
+    assert "binary" in by_name["binary.dat"]["reason"]
+    assert "text" in by_name["text_in_numbers.csv"]["reason"]
+    assert "line" in by_name["text_in_numbers.csv"]["reason"]
+    for name, d in truth.items():
+        r = by_name[name]
+        assert r["status"] == "ok", r["reason"]
+        # Truth recovered: thickness within 1 %, n(633 nm) within 0.5 % of the Cauchy truth.
+        assert r["film_thickness"] == pytest.approx(d, rel=0.01)
+        assert r["film_n@633"] == pytest.approx(true_n(633.0), rel=0.005)
+        assert 0 < r["film_thickness_sigma"] < 5
+        assert 0.5 < r["redchi"] < 2                  # noise level known: χ²_red ≈ 1
+        expected = "pass" if abs(d - 550) <= 100 else "fail"
+        assert r["spec_film_thickness"] == expected
+        assert r["spec_film_n@633"] == "pass"
+        assert r["spec_pass"] == expected
+
+
+def test_every_row_and_file_carries_provenance(batch27):
+    root, truth, recipe, steps, summary = batch27
+    rhash = recipe_hash(recipe)
+    rows = json.loads((root / "out" / "summary.json").read_text())["rows"]
+    for r in rows:
+        assert r["recipe_hash"] == rhash and r["software_version"]
+        assert r["finished_utc"].endswith("+00:00")
+        if r["file"].endswith(".txt"):
+            assert r["sha256"] == sha256_of_file(r["file"])
+            folder = root / "out" / r["result_dir"]
+            rec = json.loads((folder / MARKER_NAME).read_text())
+            assert rec["recipe_hash"] == rhash and rec["input"]["sha256"] == r["sha256"]
+            assert rec["row"] == r
+            stem = folder.name.rsplit("-", 1)[0]
+            assert sorted(rec["files"]) == sorted(
+                [f"{stem}_nk_film.csv", f"{stem}_curves.csv", f"{stem}_result.json",
+                 f"{stem}_report.txt"])
+            assert not list(folder.glob("*.png"))     # "plots" not chosen in the recipe
+            assert rhash in (folder / f"{stem}_curves.csv").read_text()
+    doc = json.loads((root / "out" / "summary.json").read_text())
+    assert doc["recipe_hash"] == rhash and doc["software"]["version"]
+    assert json.loads((root / "out" / "recipe.json").read_text()) == recipe.to_dict()
+
+
+def test_summary_csv_matches_summary_json(batch27):
+    root, truth, recipe, steps, summary = batch27
+    doc = json.loads((root / "out" / "summary.json").read_text())
+    with open(root / "out" / "summary.csv", newline="") as fh:
+        table = list(csv.DictReader(fh))
+    assert list(table[0]) == summary_columns(recipe) == doc["columns"]
+    assert [r["index"] for r in doc["rows"]] == list(range(30))       # input order
+    for c, j in zip(table, doc["rows"]):
+        assert c["status"] == j["status"] and c["file"] == j["file"]
+        if j["film_thickness"] is not None:
+            assert float(c["film_thickness"]) == j["film_thickness"]  # full precision
+        else:
+            assert c["film_thickness"] == ""
+
+
+def test_report_pdf_is_written_at_the_end(tmp_path):
+    pytest.importorskip("fitting.report")
+    write_spectra(tmp_path / "in", [450.0, 520.0], seed=4, broken=True)
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1)
+    assert summary.report_error == ""
+    assert summary.report_pdf == tmp_path / "out" / "report.pdf"
+    assert summary.report_pdf.read_bytes()[:5] == b"%PDF-"
+
+
+def test_resume_skips_done_spectra_and_refits_changed_ones(batch27, tmp_path):
+    root, truth, recipe, steps, summary = batch27
+    import shutil
+    out = tmp_path / "out"
+    shutil.copytree(root / "out", out)
+    before = json.loads((out / "summary.json").read_text())["rows"]
+    # Change one input file: only it is fitted again.
+    changed = root / "in" / "s005.txt"
+    saved = changed.read_bytes()
+    try:
+        write_spectra(tmp_path / "other", [612.0], seed=5)
+        changed.write_bytes((tmp_path / "other" / "s000.txt").read_bytes())
+        again = list(iter_batch([root / "in"], recipe, out, jobs=1, resume=True, report=False))
+    finally:
+        changed.write_bytes(saved)
+    fitted = [s for s in again if not s.skipped]
+    assert [s.path.name for s in fitted] == ["s005.txt"]
+    assert fitted[0].row["film_thickness"] == pytest.approx(612.0, rel=0.01)
+    after = json.loads((out / "summary.json").read_text())["rows"]
+    assert [r for r in after if "s005" not in r["file"]] == \
+        [r for r in before if "s005" not in r["file"]]
+    # Another recipe (different hash) does not reuse the markers.
+    other = make_recipe(name="another name")
+    steps2 = list(iter_batch([root / "in" / "s000.txt"], other, out, jobs=1, resume=True,
+                             report=False))
+    assert [s.skipped for s in steps2] == [False]
+
+
+def test_stop_ends_the_batch_between_spectra(tmp_path):
+    write_spectra(tmp_path / "in", [400, 450, 500, 550, 600, 650], seed=3)
+    stop = threading.Event()
+    seen = []
+    gen = iter_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1, stop=stop,
+                     report=False)
+    for step in gen:
+        seen.append(step)
+        if len(seen) == 2:
+            stop.set()
+    assert len(seen) == 2
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert len(rows) == 2
+    markers = list((tmp_path / "out" / "spectra").glob(f"*/{MARKER_NAME}"))
+    assert len(markers) == 2
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        resume=True, report=False)
+    assert summary.counts["ok"] == 6 and summary.exit_code == 0 and not summary.stopped
+
+
+def test_expand_inputs(tmp_path):
+    write_spectra(tmp_path / "a", [400, 500], seed=1)
+    (tmp_path / "a" / "recipe.json").write_text("{}")       # not a spectrum: skipped
+    (tmp_path / "a" / ".hidden.csv").write_text("x")
+    write_spectra(tmp_path / "b", [600], seed=2)
+    out = tmp_path / "a" / "results"
+    out.mkdir()
+    (out / "summary.csv").write_text("x")
+    got = expand_inputs([tmp_path / "a", str(tmp_path / "b" / "*.txt"),
+                         tmp_path / "a" / "s000.txt", out / "summary.csv"], exclude=out)
+    assert [p.name for p in got] == ["s000.txt", "s001.txt", "s000.txt"]
+    assert got[2].parent.name == "b"
+    with pytest.raises(BatchInputError, match="no such file"):
+        expand_inputs([tmp_path / "missing.csv"])
+    with pytest.raises(BatchInputError, match="matches no file"):
+        expand_inputs([str(tmp_path / "*.nothing")])
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(BatchInputError, match="no spectrum files"):
+        expand_inputs([tmp_path / "empty"])
+
+
+def test_failed_fit_and_internal_error_are_recorded_not_raised(tmp_path, monkeypatch):
+    import dataclasses
+    import fitting.fit
+    real = fitting.fit.fit_spectrum
+    calls = []
+
+    def flaky(spectrum, stack, options=None, **kw):
+        calls.append(spectrum.name)
+        if len(calls) == 1:
+            res = real(spectrum, stack, options, **kw)
+            return dataclasses.replace(res, success=False, message="did not converge (test)")
+        if len(calls) == 2:
+            raise RuntimeError("simulated bug")
+        return real(spectrum, stack, options, **kw)
+
+    monkeypatch.setattr(fitting.fit, "fit_spectrum", flaky)
+    write_spectra(tmp_path / "in", [500.0, 550.0, 600.0], seed=9)
+    recipe = make_recipe(limits={"film_thickness": {"min": 0, "max": 1e4}})
+    summary = run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert [r["status"] for r in rows] == ["failed", "error", "ok"]
+    assert rows[0]["reason"] == "did not converge (test)"
+    assert rows[0]["film_thickness"] is not None           # best values are still shown
+    assert rows[0]["spec_pass"] == "n/a" and rows[2]["spec_pass"] == "pass"
+    assert "internal error" in rows[1]["reason"] and "simulated bug" in rows[1]["reason"]
+    rec = json.loads((tmp_path / "out" / rows[1]["result_dir"] / MARKER_NAME).read_text())
+    assert "RuntimeError" in rec["traceback"]
+    assert summary.counts == {"ok": 1, "failed": 1, "error": 1} and summary.exit_code == 1
+
+
+def test_exit_codes():
+    from fitting.batch import BatchSummary
+    mk = lambda ok, total, stopped=False: BatchSummary(  # noqa: E731
+        total, {"ok": ok}, None, None, None, "", 0.0, stopped)
+    assert mk(3, 3).exit_code == 0
+    assert mk(2, 3).exit_code == 1
+    assert mk(0, 3).exit_code == 2
+    assert mk(2, 3, stopped=True).exit_code == 1
