@@ -56,9 +56,10 @@ AGREEMENT_TOL = 1e-9
 _WL_RANGE_NM = (300.0, 1100.0)
 _FULL = dict(forward_sizes=(1000, 5000), scaling_sizes=(500, 1000, 2000, 5000, 10000, 20000),
              scaling_layers=(1, 2, 5, 10, 20), tmm_repeat=3, fit_points=1000, fit_seeds=5,
-             batch_counts=(50, 100, 200), repeat=200)
+             batch_counts=(50, 100, 200), batch_figures=10, repeat=200)
 _QUICK = dict(forward_sizes=(40, 80), scaling_sizes=(50, 100, 200), scaling_layers=(1, 2, 4),
-              tmm_repeat=1, fit_points=150, fit_seeds=1, batch_counts=(2, 4), repeat=15)
+              tmm_repeat=1, fit_points=150, fit_seeds=1, batch_counts=(2, 4), batch_figures=1,
+              repeat=15)
 
 
 # -- machine and timing ---------------------------------------------------------------------
@@ -106,6 +107,7 @@ def machine_info() -> dict:
         "cpu_model": _cpu_model(), "cpu_count": os.cpu_count(), "cpus_usable": usable,
         "numpy": np.__version__, "scipy": scipy.__version__, "tmm": tmm_version,
         "blas": _blas_info(),
+        "load_average_1_5_15min": list(os.getloadavg()) if hasattr(os, "getloadavg") else None,
         "env": {k: os.environ.get(k) for k in ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE",
                                                "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
                                                "MKL_NUM_THREADS")},
@@ -357,14 +359,63 @@ def _write_spectra(folder: Path, count: int, n_points: int) -> list[Path]:
     return paths
 
 
-def _write_recipe(path: Path):
+#: Per-spectrum exports of the throughput series: every table, no figures. Figures
+#: (matplotlib) cost more than the fit itself and are timed in their own short series.
+TABLE_EXPORTS = ("nk", "curves", "json", "report")
+
+
+def _write_recipe(path: Path, exports=None):
     from .recipe import Recipe, save_recipe
 
-    save_recipe(Recipe(_fit_start_stack(), name="benchmark film on fused silica"), path)
+    kw = {} if exports is None else {"exports": tuple(exports)}
+    save_recipe(Recipe(_fit_start_stack(), name="benchmark film on fused silica", **kw), path)
 
 
-def bench_batch(counts, jobs: int, n_points: int) -> dict:
-    """Spectra through ``pellucid batch`` in a subprocess: throughput, memory, linearity."""
+def _batch_series(cmd, tmp: Path, recipe_path: Path, paths, counts, jobs: int, tag: str):
+    """One ``pellucid batch`` run per count, on the first ``count`` spectra."""
+    runs = []
+    for n in counts:
+        src = tmp / f"in_{tag}_{n}"
+        src.mkdir()
+        for p in paths[:n]:
+            os.link(p, src / p.name)
+        run = _run_sampled([*cmd, "batch", "--recipe", str(recipe_path), "--out",
+                            str(tmp / f"out_{tag}_{n}"), "--jobs", str(jobs), str(src)], tmp)
+        run.update(spectra=n, spectra_per_s=n / run["wall_s"])
+        runs.append(run)
+        # Exit status 1 means some spectra failed to fit (recorded, batch finished);
+        # 2 or more is a usage error or a crash: stop the series.
+        if run["returncode"] not in (0, 1):
+            break
+    return runs
+
+
+def _series_summary(runs, counts) -> dict:
+    ok = [r for r in runs if r["returncode"] in (0, 1)]
+    out = {"runs": runs}
+    if len(ok) != len(counts):
+        out["failed"] = "a batch run ended with exit status >= 2; see runs[-1]"
+        return out
+    n = np.array([r["spectra"] for r in ok], float)
+    t = np.array([r["wall_s"] for r in ok])
+    out.update(spectra_per_s=ok[-1]["spectra_per_s"],
+               peak_tree_rss_mb=max(r["peak_tree_rss_bytes"] for r in ok) / 2 ** 20,
+               all_fits_ok=all(r["returncode"] == 0 for r in ok))
+    if len(ok) >= 2:
+        slope, intercept = np.polyfit(n, t, 1)
+        out.update(seconds_per_spectrum_slope=float(slope), startup_s=float(intercept),
+                   per_spectrum_ratio_last_first=float((t[-1] / n[-1]) / (t[0] / n[0])),
+                   slope_loglog=_loglog_slope(n, t))
+    return out
+
+
+def bench_batch(counts, jobs: int, n_points: int, figure_count: int) -> dict:
+    """Spectra through ``pellucid batch`` in a subprocess: throughput, memory, linearity.
+
+    The throughput series (``counts``) exports every table but no figures; a short
+    series of ``figure_count`` spectra with the recipe's default exports (figures
+    included) shows what the figures add.
+    """
     try:
         from . import recipe  # noqa: F401
         from .batch import iter_batch  # noqa: F401
@@ -379,40 +430,21 @@ def bench_batch(counts, jobs: int, n_points: int) -> dict:
     if probe.returncode != 0:
         return {"skipped": "the 'pellucid batch' command is not available yet",
                 "detail": (probe.stderr or probe.stdout)[-300:]}
-    runs = []
+    result = {"jobs": jobs, "points": n_points, "command": " ".join([*cmd, "batch"]),
+              "exports": list(TABLE_EXPORTS)}
     with tempfile.TemporaryDirectory(prefix="pellucid-bench-") as tmp:
         tmp = Path(tmp)
-        recipe_path = tmp / "recipe.json"
-        _write_recipe(recipe_path)
         (tmp / "spectra").mkdir()
-        all_paths = _write_spectra(tmp / "spectra", max(counts), n_points)
-        for n in counts:
-            src = tmp / f"in_{n}"
-            src.mkdir()
-            for p in all_paths[:n]:
-                os.link(p, src / p.name)
-            out = tmp / f"out_{n}"
-            run = _run_sampled([*cmd, "batch", str(recipe_path), str(src), "--out", str(out),
-                                "--jobs", str(jobs)], tmp)
-            run.update(spectra=n, spectra_per_s=n / run["wall_s"])
-            runs.append(run)
-            if run["returncode"] != 0:
-                break
-    ok = [r for r in runs if r["returncode"] == 0]
-    result = {"jobs": jobs, "points": n_points, "command": " ".join([*cmd, "batch"]),
-              "runs": runs}
-    if len(ok) == len(counts):
-        n = np.array([r["spectra"] for r in ok], float)
-        t = np.array([r["wall_s"] for r in ok])
-        slope, intercept = np.polyfit(n, t, 1)
-        result.update(
-            spectra_per_s=ok[-1]["spectra_per_s"],
-            peak_tree_rss_mb=max(r["peak_tree_rss_bytes"] for r in ok) / 2 ** 20,
-            seconds_per_spectrum_slope=float(slope), startup_s=float(intercept),
-            per_spectrum_ratio_last_first=float((t[-1] / n[-1]) / (t[0] / n[0])),
-            slope_loglog=_loglog_slope(n, t))
-    else:
-        result["failed"] = "a batch run returned a non-zero exit code; see runs[-1]"
+        paths = _write_spectra(tmp / "spectra", max(counts), n_points)
+        tables = tmp / "recipe_tables.json"
+        _write_recipe(tables, TABLE_EXPORTS)
+        result.update(_series_summary(
+            _batch_series(cmd, tmp, tables, paths, counts, jobs, "tables"), counts))
+        if figure_count and "failed" not in result:
+            default = tmp / "recipe_default.json"
+            _write_recipe(default)
+            fig_runs = _batch_series(cmd, tmp, default, paths, (figure_count,), jobs, "figures")
+            result["with_figures"] = _series_summary(fig_runs, (figure_count,))
     return result
 
 
@@ -435,8 +467,10 @@ def run_benchmark(*, quick: bool = False, skip_batch: bool = False,
         out["batch"] = {"skipped": "--skip-batch"}
     else:
         out["batch"] = bench_batch(cfg["batch_counts"], out["machine"]["cpus_usable"] or 1,
-                                   cfg["fit_points"])
+                                   cfg["fit_points"], cfg["batch_figures"])
     out["all_agree"] = all(r.get("agree", True) for r in out["forward"])
+    if hasattr(os, "getloadavg"):  # other work on the machine inflates every time
+        out["load_average_at_end"] = list(os.getloadavg())
     out["total_s"] = time.perf_counter() - t0
     return out
 
@@ -449,7 +483,13 @@ def format_report(res: dict) -> str:
     """The human-readable table of a :func:`run_benchmark` result."""
     m = res["machine"]
     lines = [f"Pellucid benchmark on {m['cpu_model']} ({m['cpus_usable']} cores), "
-             f"numpy {m['numpy']}, scipy {m['scipy']}, python {m['python']}", ""]
+             f"numpy {m['numpy']}, scipy {m['scipy']}, python {m['python']}"]
+    if m.get("load_average_1_5_15min"):
+        start, end = m["load_average_1_5_15min"][0], res.get("load_average_at_end", [math.nan])[0]
+        busy = max(start, end) > (m["cpus_usable"] or 1)
+        lines.append(f"load average at start {start:.2f}, at end {end:.2f}"
+                     + (": more than the cores, other work inflates these times" if busy else ""))
+    lines.append("")
     lines.append("Forward model (median per call, parameters changing as in a fit)")
     lines.append(f"{'case':26s}{'W':>7s}{'pellucid µs':>13s}{'tmm ms':>11s}{'speed-up':>10s}"
                  f"{'max|ΔT|':>11s}")
@@ -483,15 +523,23 @@ def format_report(res: dict) -> str:
     elif "failed" in b:
         lines.append(f"  failed: {b['failed']}")
     else:
+        lines.append(f"  exports {', '.join(b['exports'])}; {b['jobs']} jobs, "
+                     f"{b['points']} points per spectrum")
         for r in b["runs"]:
             lines.append(f"  {r['spectra']:5d} spectra  {r['wall_s']:8.2f} s  "
-                         f"{r['spectra_per_s']:6.1f} spectra/s  "
+                         f"{r['spectra_per_s']:6.2f} spectra/s  "
                          f"peak RSS {r['peak_tree_rss_bytes'] / 2 ** 20:7.0f} MB")
-        lines.append(f"  {b['jobs']} jobs: {b['spectra_per_s']:.1f} spectra/s; "
-                     f"{b['seconds_per_spectrum_slope']:.3f} s per spectrum + "
-                     f"{b['startup_s']:.2f} s; per-spectrum time "
-                     f"{b['runs'][-1]['spectra']} vs {b['runs'][0]['spectra']}: "
-                     f"{b['per_spectrum_ratio_last_first']:.2f}")
+        if "seconds_per_spectrum_slope" in b:
+            lines.append(f"  linear fit {b['seconds_per_spectrum_slope']:.3f} s per spectrum + "
+                         f"{b['startup_s']:.2f} s; per-spectrum time "
+                         f"{b['runs'][-1]['spectra']} vs {b['runs'][0]['spectra']}: "
+                         f"{b['per_spectrum_ratio_last_first']:.2f} "
+                         f"(log-log slope {b['slope_loglog']:.2f})")
+        fig = b.get("with_figures")
+        if fig and "spectra_per_s" in fig:
+            r = fig["runs"][0]
+            lines.append(f"  with figures (default exports): {r['spectra']} spectra "
+                         f"{r['wall_s']:.2f} s, {fig['spectra_per_s']:.2f} spectra/s")
     lines += ["", f"agreement with tmm (max |ΔT| < {res['agreement_tol']:g}): "
                   f"{'yes' if res['all_agree'] else 'NO'}; total {res['total_s']:.1f} s"]
     return "\n".join(lines)
