@@ -156,8 +156,11 @@ class Dispersion(_HasParams):
 
     # -- persistence -----------------------------------------------------------------
     def to_dict(self) -> dict:
-        return {"kind": self.kind, "params": {k: p.to_dict() for k, p in self.params.items()},
-                **self._shape_dict()}
+        d = {"kind": self.kind, "params": {k: p.to_dict() for k, p in self.params.items()},
+             **self._shape_dict()}
+        if self.label != type(self).label:  # a named material, e.g. "fused silica"
+            d["label"] = self.label
+        return d
 
     def _shape_dict(self) -> dict:
         """Construction options other than parameter values (e.g. number of terms)."""
@@ -681,6 +684,8 @@ def model_from_dict(d: Mapping, *, where: str = "model") -> Dispersion:
     except ParameterError as e:
         raise RecipeError(f"{where}.{e.name}", e.reason) from None
     _apply_saved_params(m, d.get("params", {}), where)
+    if "label" in d:
+        m.label = str(d["label"])
     if isinstance(m, Oscillators):
         try:
             m.check_params()

@@ -159,3 +159,19 @@ def test_substrate_round_trip(sub):
 def test_bad_substrate_records(d, match):
     with pytest.raises(RecipeError, match=match):
         Substrate.from_dict(d)
+
+
+@pytest.mark.parametrize("key", ["fused_silica", "n_bk7", "sapphire_o", "caf2"])
+def test_library_material_used_as_film_keeps_its_name_and_range(key):
+    # A library glass saved as a film material (recipe JSON) must come back with its name and
+    # its published validity range, so that range errors still name the material.
+    import json
+    from fitting.dispersion import model_from_dict
+    m = library_substrate(key).material
+    back = model_from_dict(json.loads(json.dumps(m.to_dict())))
+    assert back.describe() == m.describe() != "Sellmeier"
+    assert back.valid_nm == m.valid_nm
+    wl = np.linspace(*m.valid_nm, 50)
+    assert np.array_equal(back.N(wl), m.N(wl))
+    with pytest.raises(WavelengthRangeError, match=m.describe().replace("(", r"\(").replace(")", r"\)")):
+        back.N([m.valid_nm[0] - 20.0])
