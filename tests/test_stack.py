@@ -118,6 +118,28 @@ def test_model_films_on_library_substrate_match_tmm():
         assert T[i] == pytest.approx((ref[0]["T"] + ref[1]["T"]) / 2, abs=1e-9)
 
 
+@pytest.mark.parametrize("sub_kappa,sub_mm,exit_medium,angle", [
+    (1e-3, 0.01, Constant(1.0), 60.0),        # strongly absorbing substrate, steep angle
+    (3e-4, 0.05, Constant(1.33, 1e-3), 0.0),  # lossy exit medium
+    (3e-4, 0.05, Constant(1.33, 0.02), 40.0),
+])
+def test_lossy_substrate_and_exit_medium_match_tmm(sub_kappa, sub_mm, exit_medium, angle):
+    # The back-side terms with complex admittances, against tmm.inc_tmm.
+    wl = np.linspace(350, 1200, 20)
+    film = Cauchy(2.3, 0.03, urbach=True, k0=0.05, Eu=0.25)
+    st = Stack([Layer("film", film, 400.0)], Substrate(Cauchy(1.6, 0.01), sub_mm, kappa=sub_kappa),
+               Constant(1.0), exit_medium)
+    Nf, Ns, Ne = film.N(wl), st.substrate.N(wl), exit_medium.N(wl)
+    for pol in "sp":
+        R, T = st.RT(wl, angle_deg=angle, polarization=pol)
+        assert np.all(T > 0.05)  # the substrate is lossy, not opaque: T still tests something
+        for i, lam in enumerate(wl):
+            ref = tmm.inc_tmm(pol, [1, Nf[i], Ns[i], Ne[i]], [np.inf, 400, sub_mm * 1e6, np.inf],
+                              ["i", "c", "i", "i"], np.radians(angle), lam)
+            assert R[i] == pytest.approx(ref["R"], abs=1e-9)
+            assert T[i] == pytest.approx(ref["T"], abs=1e-9)
+
+
 def test_energy_balance_through_stack():
     # Lossless everything: R + T = 1 (Born & Wolf 1.1.4); lossy film: 0 < A = 1 - R - T < 1
     # and A equals tmm's Poynting-vector absorption (tmm.inc_absorp_in_each_layer).
