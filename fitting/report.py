@@ -84,9 +84,9 @@ def _fmt(x, spec="{:.4g}") -> str:
     return spec.format(v) if math.isfinite(v) else "–"
 
 
-def _n633(row) -> float:
-    for key in ("n_633", "film_n@633", "n633"):
-        if key in row:
+def _n633(row, layer: str = "film") -> float:
+    for key in ("n_633", f"{layer}_n@633", "n633"):
+        if row.get(key) is not None:
             return _num(row[key])
     return math.nan
 
@@ -111,14 +111,16 @@ def _spec_state(row, spec, key) -> str | None:
     v = row.get("spec_pass")
     if isinstance(v, (bool, np.bool_)):
         return "pass" if v else "fail"
-    if isinstance(v, str) and v.strip().lower() in ("pass", "fail"):
-        return v.strip().lower()
+    if isinstance(v, str) and v.strip().lower() in ("pass", "fail", "n/a"):
+        return {"n/a": None}.get(v.strip().lower(), v.strip().lower())
     if not spec or not row_ok(row):
         return None
     states = []
     for q in spec:
         lo, hi = spec_bounds(spec, q)
-        x = _n633(row) if q.endswith("_n@633") else _num(row.get(q))
+        x = _num(row.get(q))
+        if not math.isfinite(x) and q.endswith("_n@633"):
+            x = _n633(row, q[: -len("_n@633")])
         if not math.isfinite(x):
             continue
         states.append((lo is None or x >= lo) and (hi is None or x <= hi))
@@ -242,7 +244,8 @@ def _table_cells(i, row, key, spec):
     status = str(row.get("status", "ok"))
     cells = [str(i + 1), _short(row.get("file", "–"), 46), _short(status, 12)]
     if ok:
-        cells += [thick, _fmt(_n633(row), "{:.4f}"), _fmt(row.get("redchi"), "{:.3g}"),
+        cells += [thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
+                  _fmt(row.get("redchi"), "{:.3g}"),
                   {"pass": "pass", "fail": "FAIL"}.get(state, "–"), str(_warn_count(row))]
     else:   # a failure has no numbers; its reason goes where they would be
         cells += [None] * 5

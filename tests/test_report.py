@@ -136,9 +136,9 @@ def test_recipe_object_limits_and_missing_keys(tmp_path):
     rows = [{"file": "a.csv", "film_thickness": 505.0}, {"file": "b.csv", "status": "error"},
             {}, {"film_thickness": "not a number", "redchi": None, "warnings": "2"}]
     pdf = report.write_batch_report(rows, tmp_path / "nothing_here", tmp_path / "r.pdf",
-                                    recipe=FakeRecipe())
-    # overview + thickness + optical + failed + ceil(3 ok rows / 2) worst-fit pages
-    assert len(render(pdf, tmp_path, dpi=20)) == 1 + 1 + 1 + 1 + 2
+                                    recipe=FakeRecipe(), worst=0)
+    # overview + thickness + optical + failed; worst=0 asks for no fit pages
+    assert len(render(pdf, tmp_path, dpi=20)) == 1 + 1 + 1 + 1
     if PDFTOTEXT:
         text = page_text(pdf, 1)
         assert "cafe01" in text and "1 of 1" in text and "no reason recorded" in text
@@ -183,3 +183,36 @@ def test_failed_render_keeps_old_report(batch, pdf, tmp_path, monkeypatch):
         write(batch, target)
     assert target.read_bytes() == old
     assert [p.name for p in tmp_path.iterdir()] == ["report.pdf"]   # no temp file left
+
+
+@needs_pdftotext
+def test_rows_from_the_batch_runner(tmp_path):
+    # The rows the batch runner really writes (fitting.batch.summary_row): n at 633 nm as
+    # "film_n@633", warnings as one "; "-joined text, spec verdicts as "pass"/"fail"/"n/a".
+    batch_mod = pytest.importorskip("fitting.batch")
+    from fitting.recipe import Recipe
+    from fitting.stack import Stack
+
+    base = make_result(band_gap=False, npts=80)
+    recipe = Recipe(Stack.from_dict(base.stack), name="line 5 oxide",
+                    limits={"film_thickness": {"target": 500, "tol": 10}})
+    rows = []
+    for i, d in enumerate([498.0, 530.0]):
+        res = make_result(f"c{i}", d, seed=i, band_gap=False, npts=80)
+        folder = tmp_path / "spectra" / f"c{i}-0123456789"
+        export.export_result(res, folder, stem=f"c{i}", provenance={}, plots=())
+        rows.append(batch_mod.summary_row(res, recipe, index=i, path=f"/in/c{i}.csv",
+                                          sha256="0" * 64, rhash=recipe.hash(), status="ok",
+                                          output=f"spectra/c{i}-0123456789"))
+    rows.append(batch_mod.summary_row(None, recipe, index=2, path="/in/bad.csv", sha256="",
+                                      rhash=recipe.hash(), status="error",
+                                      reason="cannot read the file: Permission denied"))
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "report.pdf", recipe=recipe,
+                                    spec=recipe.limits, worst=0)
+    text = page_text(pdf, 1)
+    n633 = f"{rows[0]['film_n@633']:.4f}"
+    assert text.count(n633) == 2                    # both fitted rows show n(633)
+    assert recipe.hash() in text and "line 5 oxide" in text
+    assert "1 of 2" in text and "Permission denied" in text
+    assert "530.0" in text and "FAIL" in text
+    assert "no readable" not in page_text(pdf, 3)
