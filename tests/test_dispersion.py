@@ -25,7 +25,7 @@ WL = np.linspace(250.0, 2000.0, 71)
 
 # ---------------------------------------------------------------------------------------
 # Kramers-Kronig machinery (Kramers 1927, Kronig 1926; in the form of e.g. Wooten,
-# *Optical Properties of Solids*, Academic Press (1972), eqs. 6.49-6.50):
+# *Optical Properties of Solids*, Academic Press (1972), ch. 6):
 #   Re χ(E) = (2/π) P∫_0^∞ ξ Im χ(ξ) / (ξ² - E²) dξ
 #   Im χ(E) = -(2E/π) P∫_0^∞ Re χ(ξ) / (ξ² - E²) dξ   (+ a DC-conductivity term, below)
 # The first is written with g(ξ) = ξ Im χ(ξ) and 1/(ξ²-E²) = [1/(ξ-E) - 1/(ξ+E)]/(2E), the
@@ -84,7 +84,7 @@ def test_tauc_lorentz_eps1_is_kramers_kronig_of_eps2(A, E0, C, Eg):
 
 def test_tauc_lorentz_eps2_is_the_published_formula():
     # ε2(E) = A E0 C (E - Eg)² / [(E² - E0²)² + C² E²] / E for E > Eg, 0 below
-    # (Jellison & Modine 1996, eq. 4).
+    # (Jellison & Modine 1996).
     A, E0, C, Eg = TL_SETS[1]
     E = np.linspace(0.5, 10, 200)
     ref = np.where(E > Eg, A * E0 * C * (E - Eg) ** 2 / ((E * E - E0 * E0) ** 2 + C * C * E * E) / E,
@@ -109,7 +109,7 @@ def test_lorentz_obeys_kramers_kronig_and_f_sum_rule(f, E0, gamma):
     for E in (0.2, 0.7 * E0, E0, 1.3 * E0, 3 * E0):
         assert re(E) == pytest.approx(kk_real_from_imag(im, E), abs=1e-8)
         assert im(E) == pytest.approx(kk_imag_from_real(re, E), abs=1e-8)
-    # f-sum rule ∫_0^∞ E ε2 dE = (π/2) f E0² (Wooten 1972, eq. 6.54 with the oscillator
+    # f-sum rule ∫_0^∞ E ε2 dE = (π/2) f E0² (Wooten 1972, ch. 6, with the oscillator
     # strength written as f E0²): checks the meaning of f (static ε contribution).
     s = quad(lambda x: x * im(x), 0, np.inf, **_Q)[0]
     assert s == pytest.approx(np.pi / 2 * f * E0 ** 2, rel=1e-8)
@@ -122,7 +122,7 @@ def test_drude_obeys_kramers_kronig_with_its_dc_pole(Ep, gamma):
     # plain KK integral, because ξ Im χ(ξ) = Ep² Γ/(ξ² + Γ²) is regular at 0 and the pole's
     # residue only feeds Im χ. Im χ needs the extra term σ0/(ε0 ω), here s/E with
     # s = lim_{E->0} E Im χ(E) (J. D. Jackson, *Classical Electrodynamics*, 3rd ed.,
-    # Wiley (1999), sec. 7.10, eq. 7.120 ff.). s is read from the model, not assumed.
+    # Wiley (1999), sec. 7.10; from memory). s is read from the model, not assumed.
     t = Drude(Ep, gamma)
     v = t.values()
     im, re = _scalar(t, v, "imag"), _scalar(t, v, "real")
@@ -131,14 +131,14 @@ def test_drude_obeys_kramers_kronig_with_its_dc_pole(Ep, gamma):
     for E in (0.05, 0.5 * gamma, gamma, 1.0, 4.0):
         assert re(E) == pytest.approx(kk_real_from_imag(im, E), abs=1e-8)
         assert im(E) == pytest.approx(kk_imag_from_real(re, E) + s_dc / E, rel=1e-8)
-    # f-sum rule ∫_0^∞ E ε2 dE = (π/2) Ep² (Wooten 1972, eq. 6.54): Ep is the plasma energy.
+    # f-sum rule ∫_0^∞ E ε2 dE = (π/2) Ep² (Wooten 1972, ch. 6): Ep is the plasma energy.
     assert quad(lambda x: x * im(x), 0, np.inf, **_Q)[0] == pytest.approx(np.pi / 2 * Ep ** 2,
                                                                            rel=1e-8)
 
 
 def test_lorentz_with_vanishing_resonance_tends_to_drude():
     # E0 -> 0 with f E0² = Ep² fixed turns a Lorentz oscillator into the Drude term
-    # (M. Fox, *Optical Properties of Solids*, 2nd ed., OUP (2010), sec. 7.2).
+    # (M. Fox, *Optical Properties of Solids*, 2nd ed., OUP (2010), ch. 7; from memory).
     Ep, gamma = 1.5, 0.2
     E = np.linspace(0.3, 5, 50)
     d = Drude(Ep, gamma)
@@ -150,7 +150,7 @@ def test_lorentz_with_vanishing_resonance_tends_to_drude():
 
 def test_oscillator_model_sums_its_terms():
     # ε = ε∞ + Σ χ_k (the definition of the model; e.g. Fujiwara, *Spectroscopic
-    # Ellipsometry*, Wiley (2007), sec. 5.3).
+    # Ellipsometry*, Wiley (2007), ch. 5).
     m = Oscillators(2.1, [TaucLorentz(80, 4.2, 1.8, 3.1), Lorentz(0.5, 7.0, 0.5), Drude(0.9, 0.1)])
     parts = m.components(WL)
     assert np.allclose(m.epsilon(WL), 2.1 + sum(parts), rtol=1e-13)
@@ -204,7 +204,7 @@ def _sample_models():
 
 @pytest.mark.parametrize("model", _sample_models(), ids=lambda m: type(m).__name__)
 def test_loss_convention_kappa_and_eps2_non_negative(model):
-    # exp(-iωt) convention: passive media have κ >= 0 and ε2 >= 0 (Born & Wolf sec. 14.1).
+    # exp(-iωt) convention: passive media have κ >= 0 and ε2 >= 0 (Born & Wolf ch. 14).
     N = model.N(WL)
     assert np.all(N.imag >= 0)
     assert np.all((N * N).imag >= -1e-12)
@@ -278,7 +278,7 @@ def test_bruggeman_dilute_limit_is_maxwell_garnett():
 
 def test_bruggeman_within_wiener_bounds_for_lossless_parts():
     # Any isotropic mixture lies between the series and parallel (Wiener 1912) bounds
-    # (Aspnes 1982, sec. 3).
+    # (Aspnes 1982).
     h, i = MATERIALS["dielectric"], MATERIALS["void"]
     ea, eb = _eps(i).real, _eps(h).real
     for f in (0.2, 0.5, 0.7):

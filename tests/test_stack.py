@@ -19,7 +19,7 @@ tmm = pytest.importorskip("tmm")
 
 
 def test_bare_lossless_substrate_transmission():
-    # Incoherent slab, both faces: T = 2s/(s²+1) (Swanepoel 1983, J. Phys. E 16, 1214, eq. 3):
+    # Incoherent slab, both faces: T = 2s/(s²+1) (Swanepoel 1983, J. Phys. E 16, 1214):
     # 0.9231 for s = 1.5.
     wl = np.linspace(400, 800, 5)
     T = Stack([], Substrate(Constant(1.5), 1.0)).transmittance(wl)
@@ -203,7 +203,7 @@ def test_thickness_spread_two_layers_and_damping():
     T0 = uniform.transmittance(wl, polarization="s")
     T1 = spread.transmittance(wl, polarization="s")
     assert np.max(np.abs(T1 - _brute_spread(spread, wl, 0.02)[1])) < 1e-7
-    # Averaging over thickness damps the fringes (Swanepoel 1984, J. Phys. E 17, 896).
+    # Averaging over thickness damps the fringes (Swanepoel 1984, J. Phys. E 17, 896; from memory).
     blue = wl < 600  # the phase spread grows as 1/λ: strongest damping in the blue
     assert np.ptp(T1[blue]) < 0.7 * np.ptp(T0[blue])
     assert np.ptp(T1) < np.ptp(T0)

@@ -59,7 +59,7 @@ def test_caf2():
 @pytest.mark.parametrize("key", sorted(SUBSTRATE_LIBRARY))
 def test_library_materials_are_lossless_and_normally_dispersive(key):
     # Transparent glasses and crystals: κ = 0 and dn/dλ < 0 in the visible (normal
-    # dispersion, Born & Wolf sec. 2.3); generic glass is constant by design.
+    # dispersion away from absorption bands; common practice); generic glass is constant by design.
     m = library_substrate(key).material
     wl = np.linspace(400, 800, 41)
     N = m.N(wl)
@@ -89,7 +89,7 @@ def test_fused_silica_at_150_nm_names_the_material():
 
 
 def test_internal_transmittance_gives_the_stated_single_pass_loss():
-    # τ_i = exp(-α d) with α = 4πκ/λ (Beer-Lambert; Born & Wolf sec. 14.1).
+    # τ_i = exp(-α d) with α = 4πκ/λ (Beer-Lambert; Born & Wolf ch. 14).
     wl = np.array([400.0, 700.0, 1000.0])
     sub = Substrate(Constant(1.5), 2.0, internal_transmittance=0.9)
     kappa = sub.N(wl).imag

@@ -2,7 +2,7 @@
 
 Sources: CODATA 2018 (E. Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021)), also
 shipped as ``scipy.constants``; α = 4πκ/λ from Born & Wolf, *Principles of Optics*,
-7th ed., sec. 14.1 (intensity of a plane wave in an absorbing medium decays as
+7th ed., ch. 14 (intensity of a plane wave in an absorbing medium decays as
 exp(-4πκz/λ)).
 """
 
@@ -42,7 +42,7 @@ def test_wavenumber_conversions():
 
 
 def test_alpha_from_kappa():
-    # α = 4πκ/λ (Born & Wolf sec. 14.1). κ = 1e-3 at 500 nm = 5e-5 cm:
+    # α = 4πκ/λ (Born & Wolf ch. 14). κ = 1e-3 at 500 nm = 5e-5 cm:
     # α = 4π·1e-3/5e-5 cm = 251.327 cm⁻¹.
     assert units.alpha_per_cm(1e-3, 500.0) == pytest.approx(4 * math.pi * 1e-3 / 5e-5, rel=1e-12)
     assert units.alpha_per_cm(1e-3, 500.0) == pytest.approx(251.327, abs=1e-3)
