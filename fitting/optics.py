@@ -244,7 +244,7 @@ def outer_media(wavelength_nm, N_ambient, N_sub, sub_d_nm, N_exit, *, angle_rad:
         back=tuple(np.array(x) for x in zip(*back)) if finite else None)
 
 
-def films_RT(outer: OuterMedia, N_films, d_films_nm):
+def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, weights=None):
     """R and T of coherent films between the bound outer media (see :func:`stack_RT`).
 
     Parameters
@@ -254,6 +254,10 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm):
     N_films : sequence of ndarray of complex, shape (W,)
         Film indices, ambient side first; κ >= 0.
     d_films_nm : sequence of float or ndarray broadcasting against (W,)
+    thickness_scales, weights : sequence of float, optional
+        Average R and T over all thicknesses scaled by each factor, with these
+        weights (quadrature of a thickness distribution). The interface terms
+        do not depend on thickness and are computed once for all nodes.
 
     Returns
     -------
@@ -269,7 +273,27 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm):
     R = R_f + T_f T_f' R_b τ²/(1 - R_f' R_b τ²), with T_f' = g T_f.
     """
     L = len(N_films)
+    q, r_if, t2 = _interfaces(outer, N_films)
     if L:
+        try:
+            d = np.array(d_films_nm, dtype=float).reshape(L, -1)
+        except ValueError:  # a mix of scalars and arrays
+            d = np.array([np.broadcast_to(np.asarray(x, float), outer.ik2.shape)
+                          for x in d_films_nm])
+        kq = outer.ik2 * q                                     # i·2δ per nm of thickness
+    if thickness_scales is None:
+        R, T = _airy(outer, r_if, t2, kq * d if L else None)
+    else:
+        R = T = 0.0
+        for x, w in zip(thickness_scales, weights):
+            Ri, Ti = _airy(outer, r_if, t2, kq * (d * x) if L else None)
+            R, T = R + w * Ri, T + w * Ti
+    return R, T
+
+
+def _interfaces(outer: OuterMedia, N_films):
+    """N cos θ of the films (L, W), interface r (P, L+1, W) and Π|1 + r|² (P, W)."""
+    if N_films:
         N = np.array(N_films, dtype=complex)                  # (L, W)
         if outer.normal:
             q = N                                              # cos θ = 1
@@ -281,21 +305,22 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm):
             q = np.sqrt(N2 - outer.inv2)
             Yf = [q if pol == "s" else q / N2 for pol in outer.pols]
         Y = np.concatenate([outer.Y_amb[:, None], np.array(Yf), outer.Y_sub[:, None]], axis=1)
-        try:
-            d = np.array(d_films_nm, dtype=float).reshape(L, -1)
-        except ValueError:  # a mix of scalars and arrays
-            d = np.array([np.broadcast_to(np.asarray(x, float), outer.ik2.shape)
-                          for x in d_films_nm])
-        arg = (outer.ik2 * d) * q                              # i·2δ, (L, W)
+    else:
+        q = None
+        Y = np.stack([outer.Y_amb, outer.Y_sub], axis=1)
+    a, b = Y[:, :-1], Y[:, 1:]
+    r_if = (a - b) / (a + b)
+    return q, r_if, _abs2(1 + r_if).prod(axis=1)
+
+
+def _airy(outer: OuterMedia, r_if, t2, arg):
+    """R, T from the interface terms and the phases ``arg`` = i·2δ of shape (L, W)."""
+    L = r_if.shape[1] - 1
+    if L:
         # Opaque layers: cap the single-pass loss at e^-70 so nothing underflows to 0/0.
         np.maximum(arg.real, -2 * _MAX_IM_PHASE, out=arg.real)
         E2 = np.exp(arg)
         loss = np.exp(arg.real.sum(axis=0))                    # Π |e^{2iδ}|
-    else:
-        Y = np.stack([outer.Y_amb, outer.Y_sub], axis=1)
-    a, b = Y[:, :-1], Y[:, 1:]
-    r_if = (a - b) / (a + b)                                   # (P, L+1, W)
-    t2 = _abs2(1 + r_if).prod(axis=1)
 
     # Airy recursion from the substrate towards the ambient. The last step (the
     # ambient interface) stays as numerator/denominator: only |r|² and |Π den|²

@@ -329,7 +329,6 @@ class StackModel:
             ds.append(d)
         spread = self.stack.thickness_spread
         if spread > 0:
-            R = T = 0.0
             # Spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength:
             # 7-point Gauss-Hermite is good to ~1e-9 up to 0.25 rad; beyond, a
             # uniform rule with 21 + 8σ nodes keeps errors below ~1e-7 for n <= 2.5
@@ -339,11 +338,12 @@ class StackModel:
                                              for N, d in zip(Ns, ds))
             xs, ws = ((_GH_X, _GH_W) if sigma <= 0.25
                       else _spread_nodes(min(401, int(21 + 8 * sigma) | 1)))
-            for x, w in zip(xs, ws):
-                # A Gaussian this wide reaches below zero thickness: that tail
-                # (< 5e-4 of the weight for spread <= 0.3) is lumped at d = 0.
-                Ri, Ti = self._rt(Ns, [d * max(1 + spread * x, 0.0) for d in ds])
-                R, T = R + w * Ri, T + w * Ti
+            # A Gaussian this wide reaches below zero thickness: that tail
+            # (< 5e-4 of the weight for spread <= 0.3) is lumped at d = 0. The
+            # interface terms do not depend on thickness: films_RT computes them
+            # once for all nodes.
+            R, T = films_RT(self._outer, Ns, ds,
+                            thickness_scales=np.maximum(1 + spread * xs, 0.0), weights=ws)
         else:
             R, T = self._rt(Ns, ds)
         if self._wl is not self.wavelength_nm:
