@@ -1,0 +1,268 @@
+"""The pellucid command (fitting/cli.py): simulate, fit, batch, demo, gui, errors, kill/resume."""
+
+import csv
+import io
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+import types
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from batch_helpers import make_recipe, true_stack, write_spectra
+from fitting import cli
+from fitting.batch import MARKER_NAME
+from fitting.recipe import recipe_hash, save_recipe
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run(argv):
+    out, err = io.StringIO(), io.StringIO()
+    code = cli.main(argv, stdout=out, stderr=err)
+    return code, out.getvalue(), err.getvalue()
+
+
+def read_csv_block(text):
+    lines = [ln for ln in text.splitlines() if not ln.startswith("#")]
+    return list(csv.DictReader(lines))
+
+
+@pytest.fixture
+def recipe_file(tmp_path):
+    return save_recipe(make_recipe(), tmp_path / "recipe.json")
+
+
+def test_simulate_matches_the_stack_and_tmm(recipe_file):
+    code, out, err = run(["simulate", str(recipe_file), "--range", "400:1000:2"])
+    assert code == 0, err
+    rows = read_csv_block(out)
+    wl = np.array([float(r["wavelength_nm"]) for r in rows])
+    T = np.array([float(r["T"]) for r in rows])
+    R = np.array([float(r["R"]) for r in rows])
+    assert wl[0] == 400 and wl[-1] == 1000 and wl.size == 301
+    rhash = recipe_hash(make_recipe())
+    assert f"# recipe_hash: {rhash}" in out and "# software: pellucid" in out
+    stack = make_recipe().stack
+    R_ref, T_ref = stack.RT(wl)
+    np.testing.assert_allclose(T, T_ref, rtol=1e-9)
+    np.testing.assert_allclose(R, R_ref, rtol=1e-9)
+    # Independent reference: tmm.inc_tmm (S. J. Byrnes, arXiv:1603.02720), coherent film on
+    # an incoherent 1 mm substrate, normal incidence, at 632 nm.
+    tmm = pytest.importorskip("tmm")
+    i = int(np.argmin(abs(wl - 632.0)))
+    Nf = stack.layers[0].material.N(wl[i:i + 1])[0]
+    Ns = stack.substrate.N(wl[i:i + 1])[0]
+    ref = tmm.inc_tmm("s", [1, Nf, Ns, 1], [np.inf, 500.0, 1e6, np.inf],
+                      ["i", "c", "i", "i"], 0.0, wl[i])
+    assert T[i] == pytest.approx(ref["T"], abs=1e-8)
+    assert R[i] == pytest.approx(ref["R"], abs=1e-8)
+
+
+def test_simulate_to_file_and_bad_ranges(recipe_file, tmp_path):
+    code, out, err = run(["simulate", str(recipe_file), "--range", "500:600:50",
+                          "--out", str(tmp_path / "sim.csv")])
+    assert code == 0 and out == ""
+    rows = read_csv_block((tmp_path / "sim.csv").read_text())
+    assert [float(r["wavelength_nm"]) for r in rows] == [500, 550, 600]
+    for bad in ("500:400:1", "500:600", "a:b:c", "0:600:1", "500:600:-1"):
+        code, out, err = run(["simulate", str(recipe_file), "--range", bad])
+        assert code == 2 and "--range" in err and "Traceback" not in err
+
+
+def test_fit_one_spectrum_writes_exports(recipe_file, tmp_path):
+    write_spectra(tmp_path / "in", [560.0], seed=11)
+    code, out, err = run(["fit", str(tmp_path / "in" / "s000.txt"), "--recipe",
+                          str(recipe_file), "--out", str(tmp_path / "res")])
+    assert code == 0, err
+    assert "[[Fit statistics]]" in out and "film_thickness" in out
+    files = sorted(p.name for p in (tmp_path / "res").iterdir())
+    assert files == ["s000_curves.csv", "s000_nk_film.csv", "s000_report.txt",
+                     "s000_result.json"]
+    doc = json.loads((tmp_path / "res" / "s000_result.json").read_text())
+    assert doc["params"]["film_thickness"]["value"] == pytest.approx(560.0, rel=0.01)
+    assert doc["provenance"]["recipe_hash"] == recipe_hash(make_recipe())
+
+
+@pytest.mark.parametrize("edit,field", [
+    (lambda d: d["stack"]["layers"][0]["material"].update(kind="plasma"),
+     "stack.layers[0].material.kind"),
+    (lambda d: d.update(version=99), "version"),
+    (lambda d: d["stack"]["layers"][0]["thickness"].update(expr="__import__('os')"),
+     "stack.layers[0].thickness.expr"),
+])
+def test_invalid_recipe_gives_one_line_error(tmp_path, edit, field):
+    d = make_recipe().to_dict()
+    edit(d)
+    (tmp_path / "bad.json").write_text(json.dumps(d))
+    write_spectra(tmp_path / "in", [500.0], seed=1)
+    for argv in (["simulate", str(tmp_path / "bad.json"), "--range", "400:500:10"],
+                 ["batch", str(tmp_path / "in"), "--recipe", str(tmp_path / "bad.json"),
+                  "--out", str(tmp_path / "o")]):
+        code, out, err = run(argv)
+        assert code == 2
+        assert f"field '{field}'" in err and "bad.json" in err
+        assert "Traceback" not in err and err.count("\n") == 1
+
+
+def test_batch_exit_status(tmp_path, recipe_file):
+    write_spectra(tmp_path / "good", [450.0, 650.0], seed=2)
+    write_spectra(tmp_path / "bad", [], broken=True)
+    base = ["--recipe", str(recipe_file), "--jobs", "1", "--no-report"]
+    code, out, err = run(["batch", str(tmp_path / "good"), "--out", str(tmp_path / "o1"), *base])
+    assert code == 0 and "2 ok" in out
+    assert "[2/2] ok" in err                        # plain log lines when not a terminal
+    code, out, err = run(["batch", str(tmp_path / "good"), str(tmp_path / "bad" / "empty.csv"),
+                          "--out", str(tmp_path / "o2"), *base])
+    assert code == 1 and "1 errors" in out and "the file is empty" in err
+    code, out, err = run(["batch", str(tmp_path / "bad"), "--out", str(tmp_path / "o3"), *base])
+    assert code == 2 and "0 ok" in out
+    code, out, err = run(["batch", str(tmp_path / "nowhere"), "--out", str(tmp_path / "o4"),
+                          *base])
+    assert code == 2 and "no such file or folder" in err
+    code, out, err = run(["batch", str(tmp_path / "good"), "--out", str(tmp_path / "o5"),
+                          "--recipe", str(recipe_file), "--jobs", "0"])
+    assert code == 2                                 # argparse usage error
+
+
+def test_batch_help_documents_exit_status(capsys):
+    assert cli.main(["batch", "--help"]) == 0
+    text = capsys.readouterr().out
+    assert "exit status" in text and "--resume" in text and "--scheduler" in text
+    for code in ("0 ", "1 ", "2 "):
+        assert f"\n  {code}" in text
+
+
+def test_progress_bar_on_a_terminal():
+    from fitting.batch import BatchStep
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    s = Tty()
+    bar = cli._Progress(s, 4, time.monotonic() - 2.0)
+    for i in range(4):
+        bar(BatchStep(i, 4, Path(f"s{i}.txt"), "ok", "", {"film_thickness": 500.0}, i + 1))
+    text = s.getvalue()
+    assert text.count("\r") == 4 and text.endswith("\n")
+    assert "4/4" in text and "spectra/s" in text and "ETA" in text
+    assert "\n" not in text[:-1]                      # one line, redrawn in place
+
+
+def test_demo_without_demo_data_fails_clearly(tmp_path, monkeypatch):
+    monkeypatch.setattr(cli, "demo_data_dir", lambda: tmp_path / "no_demo")
+    code, out, err = run(["demo", "--out", str(tmp_path / "o")])
+    assert code == 2 and "demo data are not installed" in err and "recipe.json" in err
+
+
+def test_demo_runs_the_batch_on_demo_data(tmp_path, monkeypatch):
+    demo = tmp_path / "demo_data"
+    write_spectra(demo / "spectra", [480.0, 530.0], seed=8)
+    save_recipe(make_recipe(), demo / "recipe.json")
+    monkeypatch.setattr(cli, "demo_data_dir", lambda: demo)
+    code, out, err = run(["demo", "--out", str(tmp_path / "o"), "--jobs", "1"])
+    assert code == 0, err
+    assert "2 ok" in out and "report:" in out
+    assert (tmp_path / "o" / "report.pdf").is_file()
+
+
+def test_gui_is_loaded_by_name(monkeypatch, tmp_path):
+    calls = []
+    fake = types.ModuleType("app.main")
+    fake.main = lambda argv=None: calls.append(argv) or 0
+    monkeypatch.setitem(sys.modules, "app.main", fake)
+    monkeypatch.setenv("QT_QPA_PLATFORM", "offscreen")
+    assert run(["gui", str(tmp_path / "p.json")])[0] == 0
+    assert run([])[0] == 0
+    assert calls == [[str(tmp_path / "p.json")], []]
+
+
+def test_gui_errors_are_clear(monkeypatch):
+    for var in ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM"):
+        monkeypatch.delenv(var, raising=False)
+    if sys.platform.startswith("linux"):
+        code, out, err = run(["gui"])
+        assert code == 2 and "no display" in err
+    monkeypatch.setenv("QT_QPA_PLATFORM", "offscreen")
+
+    def no_qt(name):
+        if name == "app.main":
+            raise ModuleNotFoundError("No module named 'PySide6'", name="PySide6")
+        return real_import(name)
+
+    real_import = cli.importlib.import_module
+    monkeypatch.setattr(cli.importlib, "import_module", no_qt)
+    code, out, err = run(["gui"])
+    assert code == 2 and "needs PySide6" in err and "Traceback" not in err
+
+
+def test_no_traceback_for_missing_files(tmp_path, recipe_file):
+    code, out, err = run(["fit", str(tmp_path / "nope.csv"), "--recipe", str(recipe_file),
+                          "--out", str(tmp_path / "o")])
+    assert code == 2 and "no such file" in err
+    code, out, err = run(["simulate", str(tmp_path / "nope.json"), "--range", "400:500:1"])
+    assert code == 2 and "file not found" in err
+
+
+# ---------------------------------------------------------------------------------
+def _cli(*args):
+    return [sys.executable, "-m", "fitting.cli", *map(str, args)]
+
+
+def _rows(out_dir):
+    rows = json.loads((out_dir / "summary.json").read_text())["rows"]
+    drop = ("finished_utc", "elapsed_s")
+    return {r["file"]: {k: v for k, v in r.items() if k not in drop} for r in rows}
+
+
+def test_killed_batch_resumes_to_the_same_summary(tmp_path):
+    n = 16
+    write_spectra(tmp_path / "in", np.linspace(380, 720, n - 1), seed=16, broken=False)
+    (tmp_path / "in" / "empty.csv").write_bytes(b"")
+    recipe = save_recipe(make_recipe(limits={"film_thickness": {"min": 400, "max": 700}}),
+                         tmp_path / "recipe.json")
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    common = ["--recipe", recipe, "--jobs", 2, "--no-report"]
+
+    # 1. Start, wait until a few spectra are done, then SIGKILL the whole process group.
+    out = tmp_path / "killed"
+    proc = subprocess.Popen(_cli("batch", tmp_path / "in", "--out", out, *common), env=env,
+                            cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            start_new_session=True)
+    deadline = time.monotonic() + 120
+    try:
+        while len(list(out.glob(f"spectra/*/{MARKER_NAME}"))) < 3:
+            assert proc.poll() is None, "batch ended before it could be killed"
+            assert time.monotonic() < deadline, "no spectrum finished within 120 s"
+            time.sleep(0.01)
+    finally:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()
+    done_at_kill = len(list(out.glob(f"spectra/*/{MARKER_NAME}")))
+    assert 3 <= done_at_kill < n
+    for marker in out.glob(f"spectra/*/{MARKER_NAME}"):
+        json.loads(marker.read_text())                # every marker is whole
+    # The summary is rewritten after each spectrum; the kill may land between a
+    # marker and the summary rewrite, so it may lag by the spectra in flight.
+    assert len(_rows(out)) >= done_at_kill - 2
+    print(f"killed with {done_at_kill} of {n} spectra done")
+
+    # 2. Resume; 3. an uninterrupted run for comparison.
+    r = subprocess.run(_cli("batch", tmp_path / "in", "--out", out, "--resume", *common),
+                       env=env, cwd=ROOT, capture_output=True, text=True, timeout=300)
+    assert r.returncode == 1, r.stderr                # one broken file
+    assert r.stderr.count("(resumed)") >= done_at_kill - 2
+    ref = tmp_path / "reference"
+    r2 = subprocess.run(_cli("batch", tmp_path / "in", "--out", ref, *common), env=env,
+                        cwd=ROOT, capture_output=True, text=True, timeout=300)
+    assert r2.returncode == 1, r2.stderr
+    resumed, reference = _rows(out), _rows(ref)
+    assert len(reference) == n
+    assert resumed == reference                       # same rows, statuses and values
+    assert not list(out.glob("**/.*.tmp"))            # no temp files left behind
