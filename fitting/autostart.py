@@ -41,7 +41,8 @@ from .dispersion import Cauchy, Constant, Oscillators, Sellmeier
 from .optics import films_RT, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
-           "apply_seed", "scan_thickness", "ScanResult", "pick_basins", "scan_range"]
+           "apply_seed", "scan_thickness", "fringe_region", "ScanResult", "pick_basins",
+           "scan_range", "edge_params"]
 
 # Largest number of thickness grid points of one scan; beyond it the step grows
 # (a 50 µm film on a UV grid would otherwise need ~10⁴ points).
@@ -49,6 +50,9 @@ _MAX_SCAN_POINTS = 6000
 # Index levels tried at each thickness, relative to the seed: ±6 % covers the
 # error of a rough seed while keeping the grid cheap (common practice).
 _N_LEVELS = (-0.06, 0.0, 0.06)
+#: Without a seed: index levels spanning the usual dielectric films (fluorides to
+#: titania, common practice).
+BLIND_LEVELS = (1.45, 1.75, 2.1, 2.5)
 
 
 @dataclass
@@ -211,8 +215,28 @@ def set_n_level(material, local: dict, name: str, target_n: float, wl_ref: float
 
 
 #: Parameters that shape n(λ) besides the level, tried in the seed fit (kind -> names).
-_SHAPE_PARAMS = {"cauchy": ("B",), "sellmeier": ("C1",), "constant": (),
-                 "oscillators": ("o1_A", "o1_f", "o1_Ep")}
+# Oscillator strengths also set the absorption, which the fringes' n says nothing
+# about: oscillator models get their level (ε∞) only.
+_SHAPE_PARAMS = {"cauchy": ("B",), "sellmeier": ("C1",)}
+
+
+#: Parameters that shape only the absorption edge of a term (held back in a fringe fit).
+_EDGE_PARAMS = {"tauc_lorentz": ("Eg", "C"), "lorentz": ("gamma",), "drude": ()}
+
+
+def edge_params(material) -> tuple:
+    """Parameters of a material that mostly set its absorption edge, not n in the clear.
+
+    The fringes of the transparent region say little about them, so the first
+    stage of a fit holds them at their start: Cauchy's Urbach tail (k0, Eu,
+    E_edge), a Tauc-Lorentz term's gap and broadening, a Lorentz term's damping.
+    """
+    if isinstance(material, Cauchy):
+        return tuple(k for k in ("k0", "Eu", "E_edge") if k in material.params)
+    if isinstance(material, Oscillators):
+        return tuple(f"o{i}_{k}" for i, t in enumerate(material.terms, start=1)
+                     for k in _EDGE_PARAMS.get(t.kind, ()))
+    return ()
 
 
 def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
@@ -275,18 +299,24 @@ class ScanResult:
         return self.chisqr.min(axis=0)
 
 
-def scan_range(seed: Seed, bounds: tuple[float, float], n_mid: float, wl_max: float,
+def scan_range(seed: Seed, bounds: tuple[float, float], wl_min: float, wl_max: float,
                user: tuple[float, float] | None = None) -> tuple[float, float]:
-    """Thickness range of the scan: user choice, else from the seed and the layer bounds."""
+    """Thickness range of the scan: user choice, else from the seed and the layer bounds.
+
+    With fringes: 5 nm to twice the seed's thickness. Without (fewer than three
+    extrema): k extrema in [λ1, λ2] mean 4nd(1/λ1 - 1/λ2) < k + 2, so with n no
+    lower than 1.4 the film is thinner than (k + 2)/(5.6 (1/λ1 - 1/λ2)); at
+    least 1 µm is scanned (a film matched in index to the substrate shows no
+    fringes at any thickness).
+    """
     lo_b, hi_b = bounds
     if user is not None:
         lo, hi = float(user[0]), float(user[1])
     elif seed.has_fringes and seed.thickness_nm:
         lo, hi = 5.0, 2.0 * seed.thickness_nm + 50.0
     else:
-        # No fringes: the film is thinner than about a quarter wave at λ_max
-        # (or its index matches the substrate). Scan a generous margin above.
-        lo, hi = 5.0, max(wl_max / (2 * max(n_mid, 1.0)), 1000.0)
+        span = 1.0 / wl_min - 1.0 / wl_max
+        lo, hi = 5.0, max((seed.n_extrema + 2) / (5.6 * span), 1000.0)
     lo, hi = max(lo, lo_b), min(hi, hi_b)
     if hi <= lo:
         lo, hi = lo_b, min(hi_b, max(lo_b * 2, lo_b + 1000.0))
@@ -313,10 +343,27 @@ def _subsample(wl: np.ndarray, n_hi: float, d_max: float) -> np.ndarray:
     return np.asarray(idx)
 
 
+def fringe_region(part, material, local: dict, wl_range, d_typical) -> np.ndarray | None:
+    """Used points inside ``wl_range`` where the film at ``local`` is nearly transparent.
+
+    "Nearly transparent": one pass through ``d_typical`` absorbs under 20 %
+    (4πκd/λ < 0.22). Returns None (use every point) if fewer than 24 remain.
+    """
+    if wl_range is None:
+        return None
+    keep = (part.wl >= wl_range[0]) & (part.wl <= wl_range[1])
+    if d_typical:
+        with np.errstate(all="ignore"):
+            kap = material.N_unchecked(part.wl, local).imag
+        keep &= 4 * np.pi * kap * d_typical / part.wl < 0.22
+    return keep if keep.sum() >= 24 else None
+
+
 def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
                    level_name: str | None, n_ref: float, wl_ref: float, fit_scale: bool,
                    fit_offset: bool, check=None, chunk: int = 256,
-                   wl_range: tuple | None = None) -> ScanResult:
+                   wl_range: tuple | None = None, d_typical: float | None = None
+                   ) -> ScanResult:
     """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
 
     Parameters
@@ -330,32 +377,37 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
     d_grid : ndarray of shape (K,)
     level_name : str or None
         Parameter of the film's material setting its index level; None: one level.
-    n_ref, wl_ref : float
-        Index level at the seed and the wavelength it refers to.
+    n_ref : float or sequence of float
+        Index level at the seed (tried at ±6 %), or the list of levels to try.
+    wl_ref : float
+        Wavelength the index levels refer to.
     fit_scale, fit_offset : bool
         Solve scale and offset in closed form at every grid point.
     check : callable or None
         Called between chunks; may raise to abort.
     wl_range : (float, float) or None
         Wavelengths the scan looks at (the fringe region); None: all used points.
+    d_typical : float or None
+        Typical film thickness (the seed's). Where the film at its start values
+        would absorb more than 20 % in one pass at this thickness, the scan
+        leaves the points out: an absorption edge not yet fitted would favour
+        thin films there whatever the fringes say.
     """
     mat0 = parts[0].stack.layers[layer_index].material
     pre = parts[0].stack.layers[layer_index].name + "_"
     base_local = {k: local_start[0][pre + k] for k in mat0.params}
     levels = [base_local]
     if level_name is not None:
+        targets = n_ref if np.ndim(n_ref) else [n_ref * (1 + dl) for dl in _N_LEVELS]
         levels = [{**base_local, level_name: set_n_level(mat0, base_local, level_name,
-                                                        n_ref * (1 + dl), wl_ref)}
-                  for dl in _N_LEVELS]
+                                                        float(t), wl_ref)} for t in targets]
+        n_ref = float(np.max(targets))
     chi = np.zeros((len(levels), d_grid.size))
     for part, start in zip(parts, local_start):
         st = part.stack
         n_hi = 1.15 * n_ref * (1 + max(_N_LEVELS))
-        sel = np.arange(part.wl.size)
-        if wl_range is not None:
-            inside = np.flatnonzero((part.wl >= wl_range[0]) & (part.wl <= wl_range[1]))
-            if inside.size >= 24:
-                sel = inside
+        keep = fringe_region(part, mat0, base_local, wl_range, d_typical)
+        sel = np.arange(part.wl.size) if keep is None else np.flatnonzero(keep)
         idx = sel[_subsample(part.wl[sel], n_hi, float(d_grid.max()))]
         wl, y, w = part.wl[idx], part.y[idx], 1.0 / part.sigma[idx] ** 2
         W = wl.size
@@ -420,22 +472,32 @@ def _profiled_chi2(m, y, w, fit_scale, fit_offset, s0, o0):
     return (r * r) @ w
 
 
-def pick_basins(scan: ScanResult, n_max: int = 3) -> list[tuple[float, dict, float]]:
-    """The ``n_max`` lowest local minima of the scanned χ²(d): (d, level values, χ²)."""
-    prof = scan.profile
-    K = prof.size
-    if K == 0:
-        return []
-    if K < 3:
-        i = int(np.argmin(prof))
-        lv = scan.levels[int(np.argmin(scan.chisqr[:, i]))]
-        return [(float(scan.thickness_nm[i]), lv, float(prof[i]))]
-    left = np.r_[np.inf, prof[:-1]]
-    right = np.r_[prof[1:], np.inf]
-    mins = np.flatnonzero((prof <= left) & (prof <= right) & np.isfinite(prof))
-    mins = mins[np.argsort(prof[mins])][:n_max]
-    out = []
-    for i in mins:
-        lv = scan.levels[int(np.argmin(scan.chisqr[:, i]))]
-        out.append((float(scan.thickness_nm[i]), lv, float(prof[i])))
+def pick_basins(scan: ScanResult, n_max: int = 3, *, n_of_level=None,
+                same_nd: float = 0.0) -> list[tuple[float, dict, float]]:
+    """The ``n_max`` lowest distinct minima of the scanned χ²: (d, level values, χ²).
+
+    Minima are looked for along d in every index level. Because fringes fix the
+    optical thickness n·d, the same interference order shows up at each level
+    at a slightly different d; minima whose n·d differ by less than ``same_nd``
+    (``n_of_level`` gives each level's n) count as one basin, the lowest kept.
+    """
+    cands = []
+    K = scan.thickness_nm.size
+    for li, row in enumerate(scan.chisqr):
+        if K == 0:
+            break
+        left = np.r_[np.inf, row[:-1]]
+        right = np.r_[row[1:], np.inf]
+        for i in np.flatnonzero((row <= left) & (row <= right) & np.isfinite(row)):
+            cands.append((float(row[i]), float(scan.thickness_nm[i]), li))
+    cands.sort()
+    out, nds = [], []
+    for chi, d, li in cands:
+        nd = d * (n_of_level[li] if n_of_level is not None else 1.0)
+        if any(abs(nd - x) < same_nd for x in nds):
+            continue
+        nds.append(nd)
+        out.append((d, scan.levels[li], chi))
+        if len(out) >= n_max:
+            break
     return out

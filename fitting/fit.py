@@ -47,7 +47,7 @@ import numpy as np
 from . import autostart
 from .errors import FitError, PellucidError, RecipeError
 from .objective import DEFAULT_SIGMA, Objective, Part, _Stop, build_part, robust_sigma
-from .result import (Alternative, BandGap, FitProgress, FitResult, OpticalConstants,
+from .result import (Alternative, FitProgress, FitResult, OpticalConstants,
                      ParamResult)
 from .stack import POLARIZATIONS, Stack, StackModel
 from .units import alpha_per_cm
@@ -303,15 +303,31 @@ def _run(obj: Objective, options: FitOptions):
         obj.set_stage("start", 0.0, 0.05, message="preparing")
         obj.check()
         if method == "auto":
-            starts = _auto_starts(obj, options, start, info)
+            starts, plan = _auto_starts(obj, options, start, info)
             yield FitProgress("scan", 0.3, obj.nfev, obj.best_chisqr,
                               f"{len(starts)} start(s) from the thickness scan")
+            if plan is not None:
+                # Stage A: thickness and index on the transparent fringe region, the
+                # absorption held at its start; a basin far worse here is dropped.
+                stage_a = []
+                for i, (label, values) in enumerate(starts):
+                    lo = 0.3 + 0.25 * i / len(starts)
+                    obj.set_stage("polish", lo, lo + 0.25 / len(starts),
+                                  30 * len(obj.var_names), f"fringe fit of {label}")
+                    res = obj.minimize("least_squares", values, fixed=plan["fixed"],
+                                       masks=plan["masks"], x_scale="jac")
+                    stage_a.append((float(res.chisqr), label, res.params.valuesdict()))
+                    obj.check()
+                best_a = min(c for c, *_ in stage_a)
+                starts = [(label, v) for c, label, v in sorted(stage_a, key=lambda t: t[0])
+                          if c <= 3.0 * best_a]
+                info["stage_a"] = [{"label": label, "chisqr": c} for c, label, _ in stage_a]
             for i, (label, values) in enumerate(starts):
-                lo = 0.3 + 0.65 * i / len(starts)
-                obj.set_stage("polish", lo, lo + 0.65 / len(starts), 60 * len(obj.var_names),
+                lo = 0.55 + 0.4 * i / len(starts)
+                obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
                               f"polishing {label}")
                 polished.append(_polish(obj, values, label))
-                yield FitProgress("polish", lo + 0.65 / len(starts), obj.nfev, obj.best_chisqr,
+                yield FitProgress("polish", lo + 0.4 / len(starts), obj.nfev, obj.best_chisqr,
                                   f"polished {label}")
                 obj.check()
         elif method in ("leastsq", "least_squares"):
@@ -377,7 +393,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     found = _scanned_film(obj)
     if found is None:
         info["scan"] = "no film thickness is fitted: a single local fit from the start values"
-        return [("start values", start)]
+        return [("start values", start)], None
     tname, li = found
     part = obj.parts[0]
     layer = part.stack.layers[li]
@@ -401,18 +417,24 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     local = {k: values[gmap[pre + k]] for k in mat.params}
     wl_mid = float(np.median(part.wl))
     n_film = mat.N_unchecked(part.wl, local).real
-    n_ref, wl_ref = (seed.n_ref, seed.wl_ref) if seed.n_ref else (float(np.median(n_film)),
-                                                                 wl_mid)
+    level = autostart.n_level_param(mat)
+    if level is not None and gmap[pre + level] not in obj.var_names:
+        level = None
+    if seed.n_ref:
+        n_ref, wl_ref, n_try = seed.n_ref, seed.wl_ref, seed.n_ref
+    elif level is not None:
+        # No fringes, so no index from the data: try the usual range of films.
+        n_ref, wl_ref, n_try = max(autostart.BLIND_LEVELS), wl_mid, autostart.BLIND_LEVELS
+    else:
+        n_ref, wl_ref = float(np.median(n_film)), wl_mid
+        n_try = n_ref
     pth = obj.params[tname]
-    lo, hi = autostart.scan_range(seed, (pth.min, pth.max), n_ref, float(part.wl.max()),
-                                  options.thickness_range_nm)
+    lo, hi = autostart.scan_range(seed, (pth.min, pth.max), float(part.wl.min()),
+                                  float(part.wl.max()), options.thickness_range_nm)
     n_hi = 1.15 * max(float(n_film.max()), n_ref) * 1.06
     step = float(part.wl.min()) / (16 * n_hi)
     K = int(min(autostart._MAX_SCAN_POINTS, max(8, math.ceil((hi - lo) / step) + 1)))
     grid = np.linspace(lo, hi, K)
-    level = autostart.n_level_param(mat)
-    if level is not None and gmap[pre + level] not in obj.var_names:
-        level = None
     obj.set_stage("scan", 0.05, 0.3, 1, f"scanning {K} thicknesses {lo:.0f}-{hi:.0f} nm")
     # Parts that share this thickness add their χ²; each is scanned at its own film.
     scan_parts, scan_locals = [], []
@@ -424,12 +446,17 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     t0 = time.perf_counter()
     # Below the shortest fringe the film absorbs: those points say little about d
     # but much about the (not yet fitted) absorption, so the scan leaves them out.
-    wl_range = None if seed.fringe_range_nm is None else (0.97 * seed.fringe_range_nm[0],
-                                                          math.inf)
-    scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_ref, wl_ref,
+    # Without fringes the same holds for the part of the range where the film at its
+    # start values would absorb noticeably at half the scan's largest thickness.
+    wl_range = (0.0 if seed.fringe_range_nm is None else 0.97 * seed.fringe_range_nm[0],
+                math.inf)
+    d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
+    scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
                                     options.fit_scale, options.fit_offset, check=obj.check,
-                                    wl_range=wl_range)
-    basins = autostart.pick_basins(scan, N_POLISH)
+                                    wl_range=wl_range, d_typical=d_typ)
+    n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
+    basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
+                                   same_nd=float(part.wl.min()) / 8)
     info["scan"] = {"thickness_range_nm": [lo, hi], "points": K, "step_nm": (hi - lo) / (K - 1),
                     "levels": len(scan.levels), "time_s": time.perf_counter() - t0,
                     "basins_nm": [b[0] for b in basins]}
@@ -450,8 +477,8 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
             continue
         pp = obj.params[g2]
         sd = autostart.fringe_seed(p.wl, p.y, p.quantity, p.stack.substrate.N(p.wl).real)
-        lo2, hi2 = autostart.scan_range(sd, (pp.min, pp.max), n_ref, float(p.wl.max()),
-                                        options.thickness_range_nm)
+        lo2, hi2 = autostart.scan_range(sd, (pp.min, pp.max), float(p.wl.min()),
+                                        float(p.wl.max()), options.thickness_range_nm)
         K2 = int(min(autostart._MAX_SCAN_POINTS,
                      max(8, math.ceil((hi2 - lo2) / (float(p.wl.min()) / (16 * n_hi))) + 1)))
         sc = autostart.scan_thickness([p], li, [{loc: values[g] for g, loc in p.names}],
@@ -461,7 +488,23 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         if b:
             for _, v in starts:
                 v[g2] = b[0][0]
-    return starts or [("start values", values)]
+    # The staged polish: which points are the transparent fringe region, and which
+    # parameters (the film's absorption) wait for the second stage.
+    plan = None
+    if wl_range is not None:
+        masks = []
+        for p in obj.parts:
+            m = autostart.fringe_region(p, mat, local, wl_range, d_typ) if p in scan_parts \
+                else None
+            masks.append(np.ones(p.wl.size, bool) if m is None else m)
+        edge = set(autostart.edge_params(mat))
+        fixed = [gmap[pre + k] for k in mat.params
+                 if k in edge and gmap[pre + k] in obj.var_names]
+        if fixed and not all(m.all() for m in masks):
+            plan = {"masks": masks, "fixed": fixed}
+        elif fixed:
+            plan = {"masks": None, "fixed": fixed}
+    return starts or [("start values", values)], plan
 
 
 # ----------------------------------------------------------------------------------------
@@ -582,10 +625,9 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
         warnings.append(bg_warn)
     part0, c0 = obj.parts[0], curves[0]
     sp = part0.spectrum
-    extra = {"elapsed_by_stage": None, **info,
+    extra = {**info,
              "sigma_source": "; ".join(sig_note) if sig_note else "given with the spectrum",
              "starts": [{"label": q.label, "chisqr": q.chisqr} for q in polished]}
-    extra.pop("elapsed_by_stage")
     if len(obj.parts) > 1:
         extra["parts"] = [{"name": p.spectrum.name, "quantity": p.quantity,
                            "wavelength_nm": c["wl"].tolist(), "measured": c["y"].tolist(),
@@ -679,12 +721,9 @@ def _band_gap(optical: dict, transition: str):
     for name, oc in optical.items():
         if np.nanmax(oc.k) > 1e-5:
             try:
-                g = tauc_gap(oc.wavelength_nm, oc.alpha_cm, transition=transition)
+                g = tauc_gap(oc.wavelength_nm, oc.alpha_cm, transition=transition, layer=name)
             except PellucidError as e:
                 return None, f"band gap of {name} not computed: {e}"
-            if g is not None and not getattr(g, "layer", ""):
-                g = BandGap(g.Eg_eV, g.sigma_eV, g.transition, g.fit_range_eV, g.r_squared,
-                            name)
             return g, None
     return None, ("band gap not computed: no film absorbs in the fitted range "
                   "(κ is zero everywhere)")

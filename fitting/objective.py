@@ -29,6 +29,7 @@ import re
 import threading
 import time
 from dataclasses import dataclass, field
+from types import SimpleNamespace
 from typing import Callable
 
 import lmfit
@@ -178,6 +179,7 @@ class Objective:
         self.stage, self._frac = "start", (0.0, 0.05)
         self._stage_nfev0, self._stage_expect = 0, 1
         self._last_report = 0.0
+        self._masks = None          # per-part point selections of a staged fit
         self.params = self._make_params(shared)
         self.ndata = sum(p.y.size for p in parts)
         self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
@@ -261,10 +263,13 @@ class Objective:
     def residual(self, params) -> np.ndarray:
         """Concatenated weighted residuals (the function lmfit minimises)."""
         out = [self.part_residual(p, self.local_values(p, params)) for p in self.parts]
+        masks = self._masks
+        if masks is not None:
+            out = [r[m] for r, m in zip(out, masks)]
         r = out[0] if len(out) == 1 else np.concatenate(out)
         self.nfev += 1
         chi2 = float(r @ r)
-        if chi2 < self.best_chisqr:
+        if masks is None and chi2 < self.best_chisqr:
             self.best_chisqr = chi2
             self.best_values = params.valuesdict() if isinstance(params, lmfit.Parameters) \
                 else dict(params)
@@ -324,8 +329,15 @@ class Objective:
     def elapsed(self) -> float:
         return time.perf_counter() - self.t0
 
-    def minimize(self, method: str, values: dict | None = None, **kws):
-        """Run one lmfit minimiser from ``values`` (default: the current parameters)."""
+    def minimize(self, method: str, values: dict | None = None, *, fixed=(), masks=None,
+                 **kws):
+        """Run one lmfit minimiser from ``values`` (default: the current parameters).
+
+        ``fixed`` names varied parameters held at their value for this run;
+        ``masks`` (one bool array per part, over its used points) restricts the
+        residual to a subset of points. Either makes a *stage* whose χ² is not
+        the fit's, so the best-point record is not updated during it.
+        """
         params = self.params.copy()
         if values:
             for k, v in values.items():
@@ -333,7 +345,19 @@ class Objective:
                     p = params[k]
                     params[k].value = float(min(max(v, p.min), p.max))
             params.update_constraints()
+        for k in fixed:
+            params[k].vary = False
         mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
-                               max_nfev=self.remaining_nfev(), scale_covar=True)
-        with np.errstate(all="ignore"):
-            return mini.minimize(method=method, **kws)
+                               max_nfev=self.remaining_nfev() + 10 ** 7, scale_covar=True)
+        self._masks = None if masks is None else list(masks)
+        try:
+            with np.errstate(all="ignore"):
+                return mini.minimize(method=method, **kws)
+        except lmfit.minimizer.AbortFitException:
+            # Some of lmfit's scalar minimisers let the abort through: report the
+            # point the minimiser last asked for, as lmfit does for the others.
+            return SimpleNamespace(params=mini.result.params, aborted=True, success=False,
+                                   covar=None, var_names=list(mini.result.var_names),
+                                   message="aborted", chisqr=math.inf)
+        finally:
+            self._masks = None
