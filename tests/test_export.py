@@ -286,3 +286,21 @@ def test_save_figure_leaves_gui_figure_unchanged(tmp_path):
     n_text = len(fig.texts)
     export.save_figure(fig, tmp_path / "f.png", provenance={"software": "pellucid x"})
     assert len(fig.texts) == n_text
+
+
+def test_export_of_a_real_fit(tmp_path):
+    # End to end with the fit engine: whatever fields a real FitResult fills must export.
+    fit = pytest.importorskip("fitting.fit")
+    from fitting.spectrum import Spectrum
+    wl = np.linspace(350.0, 1000.0, 200)
+    truth = Stack([Layer("film", Cauchy(2.0, 0.02), 520.0)], library_substrate("fused_silica"))
+    T = truth.transmittance(wl) + np.random.default_rng(1).normal(0, 0.002, wl.size)
+    start = Stack([Layer("film", Cauchy(1.9, 0.01), 480.0)], library_substrate("fused_silica"))
+    res = fit.fit_spectrum(Spectrum(wl, T, name="synthetic"), start)
+    files = export.export_result(res, tmp_path, stem="syn", provenance=export.make_provenance(res),
+                                 plots=())
+    assert {p.name for p in files} >= {"syn_nk_film.csv", "syn_curves.csv", "syn_result.json"}
+    doc = json.loads((tmp_path / "syn_result.json").read_text(encoding="utf-8"))
+    assert doc["params"]["film_thickness"]["value"] == pytest.approx(res.thickness()[0])
+    _, _, data = read_csv(tmp_path / "syn_nk_film.csv")
+    np.testing.assert_array_equal(data[:, 1], res.optical["film"].n)
