@@ -540,51 +540,45 @@ def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
     if not raw.strip():
         raise _fail(path, 1, "the file is empty", expected="a table of wavelength and T or R "
                     "values")
-    used = encoding
+    boms = {"utf-8-sig": codecs.BOM_UTF8, "utf-8": codecs.BOM_UTF8,
+            "utf-16-le": codecs.BOM_UTF16_LE, "utf-16-be": codecs.BOM_UTF16_BE}
+    if encoding != "auto":
+        used = encoding
+    elif raw.startswith(codecs.BOM_UTF8):
+        used = "utf-8-sig"
+    elif raw.startswith(codecs.BOM_UTF16_LE):
+        used = "utf-16-le"
+    elif raw.startswith(codecs.BOM_UTF16_BE):
+        used = "utf-16-be"
+    elif b"\x00" in raw[:4096]:
+        used = _utf16_without_bom(raw[:4096])
+        if used is None:
+            at = raw.index(b"\x00")
+            raise _fail(path, raw[:at].count(b"\n") + 1, "this is a binary file, not a text "
+                        "table", expected="text", found=f"byte 0x00 at offset {at}")
+    else:
+        used = "utf-8"
+    skip = len(boms[used]) if used in boms and raw.startswith(boms[used]) else 0
+    body = raw[skip:]
+    codec = "utf-8" if used == "utf-8-sig" else used
     try:
-        if encoding != "auto":
-            body = raw
-            boms = {"utf-8-sig": codecs.BOM_UTF8, "utf-16-le": codecs.BOM_UTF16_LE,
-                    "utf-16-be": codecs.BOM_UTF16_BE, "utf-8": codecs.BOM_UTF8}
-            bom = boms.get(encoding)
-            if bom and body.startswith(bom):
-                body = body[len(bom):]
-            text = body.decode("utf-8" if encoding == "utf-8-sig" else encoding)
-        elif raw.startswith(codecs.BOM_UTF8):
-            used, text = "utf-8-sig", raw[3:].decode("utf-8")
-        elif raw.startswith(codecs.BOM_UTF16_LE):
-            used, text = "utf-16-le", raw[2:].decode("utf-16-le")
-        elif raw.startswith(codecs.BOM_UTF16_BE):
-            used, text = "utf-16-be", raw[2:].decode("utf-16-be")
-        elif b"\x00" in raw[:4096]:
-            head = raw[:4096]
-            even, odd = head[0::2], head[1::2]
-            if odd and odd.count(0) > 0.3 * len(odd) and even.count(0) < 0.05 * len(even):
-                used, text = "utf-16-le", raw.decode("utf-16-le")
-            elif even and even.count(0) > 0.3 * len(even) and odd.count(0) < 0.05 * len(odd):
-                used, text = "utf-16-be", raw.decode("utf-16-be")
-            else:
-                at = raw.index(b"\x00")
-                raise _fail(path, raw[:at].count(b"\n") + 1, "this is a binary file, not a "
-                            "text table", expected="text", found=f"byte 0x00 at offset {at}")
-        else:
+        try:
+            text = body.decode(codec)
+        except UnicodeDecodeError:
+            if encoding != "auto" or used != "utf-8":
+                raise
+            # Windows exports: cp1252 is Latin-1 with printable 0x80-0x9F.
+            used = "cp1252" if re.search(rb"[\x80-\x9f]", body) else "latin-1"
             try:
-                used, text = "utf-8", raw.decode("utf-8")
+                text = body.decode(used)
             except UnicodeDecodeError:
-                # Windows exports: cp1252 is Latin-1 plus printable 0x80-0x9F.
-                if re.search(rb"[\x80-\x9f]", raw):
-                    try:
-                        used, text = "cp1252", raw.decode("cp1252")
-                    except UnicodeDecodeError:
-                        used, text = "latin-1", raw.decode("latin-1")
-                else:
-                    used, text = "latin-1", raw.decode("latin-1")
+                used, text = "latin-1", body.decode("latin-1")
     except UnicodeDecodeError as exc:
-        width = 2 if used.startswith("utf-16") else 1
-        line = raw[:exc.start].count(b"\n" if width == 1 else b"\n\x00") + 1
+        newline = {"utf-16-le": b"\n\x00", "utf-16-be": b"\x00\n"}.get(used, b"\n")
+        line = body[:exc.start].count(newline) + 1
         raise _fail(path, line, f"the file cannot be decoded as {used}",
                     expected=f"{used} text (or set the encoding)",
-                    found=repr(raw[exc.start:exc.start + 4])) from None
+                    found=repr(body[exc.start:exc.start + 4])) from None
     if text.startswith("\ufeff"):
         text = text[1:]
     text = text.replace("\r\n", "\n").replace("\r", "\n").rstrip("\x1a")  # DOS end-of-file
@@ -594,6 +588,16 @@ def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
         raise _fail(path, line, "this is a binary or corrupted file, not a text table",
                     expected="printable text", found=f"control character U+{ord(bad.group()):04X}")
     return text, used
+
+
+def _utf16_without_bom(head: bytes) -> str | None:
+    """UTF-16 byte order from where the NUL bytes of ASCII text sit, or None (binary)."""
+    even, odd = head[0::2], head[1::2]
+    if odd and odd.count(0) > 0.3 * len(odd) and even.count(0) < 0.05 * len(even):
+        return "utf-16-le"
+    if even and even.count(0) > 0.3 * len(even) and odd.count(0) < 0.05 * len(odd):
+        return "utf-16-be"
+    return None
 
 
 def _newline_of(raw: bytes, encoding: str) -> str:
@@ -715,7 +719,6 @@ class _Layout:
     comments: list
     metadata_style: str
     header_line: int | None     # 1-based line of the column names
-    thousands_seen: bool
 
 
 def _head_lines(text: str, n: int) -> tuple[list[str], bool]:
@@ -757,8 +760,7 @@ def _choose_dialect(lines, options, path):
 
 #: "100 ms", "2.5 nm": a metadata value with a unit, never a column name.
 _QUANTITY_VALUE = re.compile(r"[+-]?\d+(?:[.,]\d+)?\s*[^\W\d_]", re.ASCII)
-_KV = re.compile(r"\s*([^\W\d][^:=]{0,80}?)\s*([:=])\s*(.*?)\s*\Z", re.S)
-_SECTION = re.compile(r"\s*\[[^\]]{0,200}\]\s*\Z")
+_KV = re.compile(r"\s*([^\W\d][^:=]{0,80}?)\s*([:=])(.*)\Z", re.S)
 
 
 def _key_value(s: str):
@@ -767,15 +769,13 @@ def _key_value(s: str):
     m = _KV.match(s)
     if not m:
         return None
-    return m.group(1).strip(), m.group(3), ("colon" if m.group(2) == ":" else "equals")
+    return m.group(1).strip(), m.group(3).strip(), ("colon" if m.group(2) == ":" else "equals")
 
 
 def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
     n = _SNIFF_LINES
     while True:
         lines, complete = _head_lines(text, n)
-        if not complete:
-            lines = lines[:-1] if len(lines) > 1 else lines
         choice = _choose_dialect(lines, options, path)
         start = None
         if choice is not None:
@@ -816,7 +816,7 @@ def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
     names, header_line, metadata, comments, style = _preamble(
         lines[:start], delim, numbers, n_columns)
     return _Layout(delim, dec, start, names, n_columns, sample, metadata, comments, style,
-                   header_line, numbers.seen_thousands)
+                   header_line)
 
 
 def _first_run(kinds, complete: bool) -> int | None:
@@ -1079,6 +1079,12 @@ def _looks_like_abscissa(col: np.ndarray) -> bool:
     return d.size > 0 and abs(d.sum()) >= 0.9 * d.size
 
 
+def _looks_like_ordinate(col: np.ndarray) -> bool:
+    """Values a T, R or absorbance column can hold (fraction, percent or A)."""
+    c = col[np.isfinite(col)]
+    return c.size > 0 and float(c.min()) >= -5.0 and float(c.max()) <= 150.0
+
+
 def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int, int]:
     names, n = layout.names or ("",) * layout.n_columns, layout.n_columns
     x = y = None
@@ -1102,11 +1108,13 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
         if not free:
             raise _fail(path, layout.start + 1, "only one column is left for the values",
                         expected="a second numeric column", found=f"{n} column(s)")
-        usable = [i for i in free if np.isfinite(layout.sample[:, i]).mean() >= 0.5]
+        usable = [i for i in free if np.isfinite(layout.sample[:, i]).mean() >= 0.5
+                  and not _is_index(layout.sample[:, i])]
         y = next((i for i in usable if _ordinate_label(names[i]) is not None), None)
+        if y is None and options.y_kind != "counts":
+            y = next((i for i in usable if _looks_like_ordinate(layout.sample[:, i])), None)
         if y is None:
-            y = next((i for i in usable if not _is_index(layout.sample[:, i])),
-                     usable[0] if usable else free[0])
+            y = usable[0] if usable else free[0]
     return x, y
 
 
@@ -1220,8 +1228,7 @@ def _source_bytes(source) -> tuple[bytes, str]:
     """(content, path label) of a path, bytes or text."""
     if isinstance(source, (bytes, bytearray, memoryview)):
         return bytes(source), "<bytes>"
-    if isinstance(source, str) and ("\n" in source or "\r" in source
-                                    or not os.path.isfile(source)):
+    if isinstance(source, str) and ("\n" in source or "\r" in source):
         return source.encode("utf-8"), "<text>"
     path = os.fspath(source)
     try:
@@ -1239,12 +1246,11 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     block, footer = _data_block(text, layout)
     first_line = layout.start + 1
     table = _parse_fast(block, layout, (xc, yc))
-    thousands_seen = layout.thousands_seen
+    thousands_seen = False              # the fast path refuses thousands groups
     if table is not None:
         line_no = first_line + np.arange(table.shape[0])
     else:
-        table, line_no, seen = _parse_slow(block, layout, (xc, yc), first_line, path)
-        thousands_seen = thousands_seen or seen
+        table, line_no, thousands_seen = _parse_slow(block, layout, (xc, yc), first_line, path)
     x, y = table[:, 0], table[:, 1]
     n_rows = x.size
     warn: list = []
@@ -1424,8 +1430,8 @@ def parse_spectrum(content: str | bytes, *, options: ReaderOptions | None = None
 def sniff(source, *, options: ReaderOptions | None = None) -> Dialect:
     """The :class:`Dialect` of a file, or of text or bytes already in memory.
 
-    ``source`` is a path (``str`` without a line break naming an existing file,
-    or ``os.PathLike``), ``bytes``, or text. The whole file is parsed, so the
+    ``source`` is a path (``os.PathLike``, or a ``str`` without a line break),
+    ``bytes``, or text (a ``str`` with at least one line break). The whole file is parsed, so the
     detected units and ordinate kind are what :func:`read_spectrum` will use.
 
     Raises

@@ -78,6 +78,7 @@ def test_round_trip_every_dialect(tmp_path, dialect):
         assert back.metadata["header"]["Operator"] == "Kim"
         assert back.metadata["header"].get("Note", "") == header.get("Note", "")
     assert back.sha256 and back.source == str(path) and back.name == "s"
+    json.dumps(back.metadata)                            # recipes and exports store it
 
 
 @pytest.mark.parametrize("kind", ["R_fraction", "R_percent"])
@@ -302,6 +303,10 @@ def test_column_choice_auto_and_override():
     np.testing.assert_allclose(by_index.values, 0.003)
     by_prefix = parse_spectrum(text, options=ReaderOptions(x_column="wavelength"))
     assert by_prefix.metadata["reader"]["x_column"] == 1
+    # Unnamed raw-signal column before the T column: T is the one that fits 0-100 %.
+    raw = parse_spectrum(table([(400 + i, 21000 + i, 55.0 + i) for i in range(6)]))
+    assert raw.metadata["reader"]["y_column"] == 2
+    np.testing.assert_allclose(raw.values, (55.0 + np.arange(6)) / 100)
 
 
 def test_sorting_duplicates_and_dropped_rows():
@@ -423,6 +428,8 @@ BROKEN = [
     ("too few", b"x;y\n400;50\n401;51\n402;52\n", r"line 2: only 3 data rows"),
     ("four points", b"400;50\n401;51\n402;52\n403;53\n\n", r"line 1: only 4 usable data points"),
     ("nonpositive x", b"0;50\n401;51\n402;52\n403;53\n404;54\n", r"line 1: the abscissa must"),
+    ("odd utf-16", codecs.BOM_UTF16_LE + "400;50\n".encode("utf-16-le") + b"4",
+     r"line 2: the file cannot be decoded as utf-16-le"),
     ("jcamp compressed", b"##TITLE=x\n##XYDATA=(X++(Y..Y))\n400 1 2 3\n404 1 2 3\n"
      b"408 1 2 3\n412 1 2 3\n416 1 2 3\n", r"line 2: compressed JCAMP-DX"),
 ]
