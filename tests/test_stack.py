@@ -218,7 +218,8 @@ def _brute_slit(stack, wl, fwhm, n_nodes=801):
     w = 1 - np.abs(u)
     w /= np.trapezoid(w, u)
     plain = Stack(stack.layers, stack.substrate)
-    Ts = np.array([plain.transmittance(wl + fwhm * ui, polarization="s") for ui in u])
+    shifted = wl[None, :] + fwhm * u[:, None]  # all single-wavelength spectra in one call
+    Ts = plain.transmittance(shifted.ravel(), polarization="s").reshape(shifted.shape)
     return np.trapezoid(w[:, None] * Ts, u, axis=0)
 
 
