@@ -340,13 +340,31 @@ class Dialect:
         return d
 
     def describe(self) -> str:
-        """One line a technician can read, e.g. for an import preview."""
-        thou = f", thousands {self.thousands!r}" if self.thousands else ""
-        return (f"columns separated by {_DELIMITER_NAMES[self.delimiter]}, decimal "
-                f"{self.decimal!r}{thou}, {self.encoding}; abscissa column {self.x_column} in "
-                f"{self.x_unit} ({self.x_unit_from or 'given'}), ordinate column "
-                f"{self.y_column} as {self.y_kind} ({self.y_kind_from or 'given'}); "
-                f"data from line {self.header_lines + 1}, {self.n_rows} rows")
+        """One sentence a technician can check, e.g. in an import preview.
+
+        Columns are counted from 1 here, as people count them.
+        """
+        def column(i):
+            name = self.columns[i] if self.columns and i < len(self.columns) else ""
+            return f"column {i + 1}" + (f" '{name}'" if name else "")
+
+        decimal = "comma" if self.decimal == "," else "point"
+        thou = f", thousands separator {self.thousands!r}" if self.thousands else ""
+        return (f"columns separated by {_DELIMITER_NAMES[self.delimiter]}, decimal {decimal}"
+                f"{thou}, {self.encoding}; wavelength from {column(self.x_column)} in "
+                f"{_UNIT_NAMES[self.x_unit]} ({_FROM_NAMES.get(self.x_unit_from, 'given')}); "
+                f"values from {column(self.y_column)} as {_KIND_NAMES[self.y_kind]} "
+                f"({_FROM_NAMES.get(self.y_kind_from, 'given')}); data from line "
+                f"{self.header_lines + 1}, {self.n_rows} rows")
+
+
+_UNIT_NAMES = {"nm": "nm", "um": "µm", "A": "Å", "cm-1": "cm⁻¹ (wavenumber)",
+               "eV": "eV (photon energy)"}
+_KIND_NAMES = {"T_fraction": "transmittance (fraction)", "T_percent": "transmittance in %",
+               "absorbance": "absorbance", "R_fraction": "reflectance (fraction)",
+               "R_percent": "reflectance in %", "counts": "raw detector counts"}
+_FROM_NAMES = {"header": "from the column name", "metadata": "from the file header",
+               "values": "guessed from the values", "option": "as set"}
 
 
 @dataclass(frozen=True)
@@ -1322,7 +1340,8 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     if footer:
         metadata["footer"] = footer
     metadata["reader"] = dict(dialect.to_dict(), dropped_rows=dropped,
-                              data_lines=[int(line_no[0]), int(line_no[-1])] if n_rows else [])
+                              data_lines=[int(line_no[0]), int(line_no[-1])] if n_rows else [],
+                              options=options.to_dict())
     metadata["ordinate"] = "counts" if y_kind == "counts" else "fraction"
     return _Parsed(dialect, wl, val, lines_ok, metadata, warn)
 
