@@ -1632,3 +1632,33 @@ def bench_read(size_mb: float = 20.0, *, folder=None, dialect: Dialect | None = 
         seconds = time.perf_counter() - t0
     return {"bytes": size, "points": len(out), "seconds": seconds,
             "seconds_per_mb": seconds / (size / 1e6)}
+
+
+def _main(argv=None) -> int:
+    """``python -m fitting.reader FILE...``: what the reader makes of each file, and how fast."""
+    import sys
+    status = 0
+    for name in (sys.argv[1:] if argv is None else argv):
+        t0 = time.perf_counter()
+        try:
+            spec = read_spectrum(name)
+        except SpectrumFormatError as exc:
+            print(f"{exc}", file=sys.stderr)
+            status = 1
+            continue
+        dt = time.perf_counter() - t0
+        size = os.path.getsize(name) / 1e6
+        d = spec.metadata["reader"]
+        print(f"{name}: {len(spec)} points, {spec.wavelength_nm[0]:g}-"
+              f"{spec.wavelength_nm[-1]:g} nm, {spec.quantity}; read in {dt:.3f} s "
+              f"({dt / max(size, 1e-9):.3f} s/MB)")
+        print("  " + Dialect(**{k: d[k] for k in d if k in _DIALECT_FIELDS}).describe())
+        for w in spec.warnings:
+            print("  note: " + w)
+    return status
+
+
+_DIALECT_FIELDS = {f.name for f in fields(Dialect)}
+
+if __name__ == "__main__":
+    raise SystemExit(_main())

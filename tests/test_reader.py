@@ -538,3 +538,13 @@ def test_any_input_parses_or_raises_format_error(content, options):
         return
     assert len(s) >= 5 and np.all(np.diff(s.wavelength_nm) > 0)
     assert np.all(np.isfinite(s.values)) and np.all(s.wavelength_nm > 0)
+
+
+def test_command_line_summary(tmp_path, capsys):
+    from fitting.reader import _main
+    good = write_spectrum(tmp_path / "good.txt", smooth_spectrum())
+    (tmp_path / "bad.txt").write_text("nothing here\n")
+    assert _main([str(good), str(tmp_path / "bad.txt")]) == 1
+    out, err = capsys.readouterr()
+    assert "301 points, 300-1100 nm, T; read in" in out and "from the column name" in out
+    assert "bad.txt, line 1: no rows of two or more numbers" in err
