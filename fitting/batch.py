@@ -78,6 +78,8 @@ SPECTRUM_SUFFIXES = (".csv", ".txt", ".dat", ".tsv", ".asc", ".prn", ".sp")
 #: Name of the per-spectrum record written last: its presence means "done".
 MARKER_NAME = "result.json"
 STATUSES = ("ok", "failed", "error")
+#: How long to try reaching a Dask scheduler before giving up.
+DASK_CONNECT_TIMEOUT_S = 20
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
 
@@ -662,24 +664,23 @@ def _run_dask(todo, address: str, stop):
         raise BatchInputError("--scheduler needs Dask distributed: "
                               "pip install 'dask[distributed]'") from None
     try:
-        client = Client(address, timeout=20, set_as_default=False)
+        client = Client(address, timeout=DASK_CONNECT_TIMEOUT_S, set_as_default=False)
     except (OSError, TimeoutError) as e:
         raise BatchInputError(f"cannot reach the Dask scheduler at {address}: {e}") from None
     try:
         nworkers = max(1, len(client.scheduler_info().get("workers", {})))
         queue = list(reversed(todo))
         inflight: dict = {}
-        ac = as_completed()
 
         def submit():
             task = queue.pop()
             fut = client.submit(process_spectrum, task, pure=False)
             inflight[fut.key] = (fut, task)
-            ac.add(fut)
+            return fut
 
         # A bounded window keeps the scheduler's memory flat for long batches.
-        while queue and len(inflight) < 4 * nworkers:
-            submit()
+        first = [submit() for _ in range(min(len(queue), 4 * nworkers))]
+        ac = as_completed(first, loop=client.loop)
         for fut in ac:
             _, task = inflight.pop(fut.key)
             try:
@@ -692,7 +693,7 @@ def _run_dask(todo, address: str, stop):
                 client.cancel([f for f, _ in inflight.values()])
                 return
             if queue:
-                submit()
+                ac.add(submit())
     finally:
         client.close()
 
