@@ -314,8 +314,11 @@ def _run(obj: Objective, options: FitOptions):
                     lo = 0.3 + 0.25 * i / len(starts)
                     obj.set_stage("polish", lo, lo + 0.25 / len(starts),
                                   30 * len(obj.var_names), f"fringe fit of {label}")
+                    # A basin that needs more than this is not the one (common practice:
+                    # a right basin converges in a few Jacobians).
                     res = obj.minimize("least_squares", values, fixed=plan["fixed"],
-                                       masks=plan["masks"], x_scale="jac")
+                                       masks=plan["masks"], x_scale="jac",
+                                       max_nfev=12 * (len(obj.var_names) + 1))
                     stage_a.append((float(res.chisqr), label, res.params.valuesdict()))
                     obj.check()
                 best_a = min(c for c, *_ in stage_a)

@@ -180,6 +180,7 @@ class Objective:
         self._stage_nfev0, self._stage_expect = 0, 1
         self._last_report = 0.0
         self._masks = None          # per-part point selections of a staged fit
+        self._stage_limit = math.inf  # evaluation cap of the current minimiser run
         self.params = self._make_params(shared)
         self.ndata = sum(p.y.size for p in parts)
         self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
@@ -297,7 +298,7 @@ class Objective:
     def iter_cb(self, params, it, resid, *args, **kws) -> bool:
         """lmfit iteration callback: report progress, return True to abort."""
         self.report()
-        return self.should_stop()
+        return self.should_stop() or self.nfev >= self._stage_limit
 
     def check(self) -> None:
         """Between stages: raise :class:`_Stop` if the fit must end."""
@@ -330,13 +331,15 @@ class Objective:
         return time.perf_counter() - self.t0
 
     def minimize(self, method: str, values: dict | None = None, *, fixed=(), masks=None,
-                 **kws):
+                 max_nfev: int | None = None, **kws):
         """Run one lmfit minimiser from ``values`` (default: the current parameters).
 
         ``fixed`` names varied parameters held at their value for this run;
         ``masks`` (one bool array per part, over its used points) restricts the
         residual to a subset of points. Either makes a *stage* whose χ² is not
         the fit's, so the best-point record is not updated during it.
+        ``max_nfev`` caps this run alone (it then ends with ``aborted=True``
+        but the fit goes on).
         """
         params = self.params.copy()
         if values:
@@ -350,6 +353,7 @@ class Objective:
         mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
                                max_nfev=self.remaining_nfev() + 10 ** 7, scale_covar=True)
         self._masks = None if masks is None else list(masks)
+        self._stage_limit = math.inf if max_nfev is None else self.nfev + max_nfev
         try:
             with np.errstate(all="ignore"):
                 return mini.minimize(method=method, **kws)
@@ -361,3 +365,4 @@ class Objective:
                                    message="aborted", chisqr=math.inf)
         finally:
             self._masks = None
+            self._stage_limit = math.inf
