@@ -13,8 +13,9 @@ quadrature nodes:
 * thickness non-uniformity: all film thicknesses scaled by (1 + s·x) with x
   normally distributed (relative standard deviation s): 7-point Gauss-Hermite
   while the fringe phase spread is small, a uniform rule with more nodes beyond;
-* finite spectral bandwidth: a triangular slit function of the given FWHM,
-  7 nodes (common practice for grating monochromators).
+* finite spectral bandwidth: a triangular slit function of the given FWHM
+  (common practice for grating monochromators), Gauss-Jacobi nodes on each
+  half of the triangle (12 in all).
 
 Global parameter names are ``{layer}_{param}``, e.g. ``film_thickness``,
 ``film_A``, ``film_o1_E0``.
@@ -29,6 +30,7 @@ from dataclasses import dataclass, field
 from typing import Mapping
 
 import numpy as np
+from scipy.special import roots_jacobi
 
 from .dispersion import Constant, Dispersion, check_wavelengths, model_from_dict
 from .errors import ParameterError, RecipeError
@@ -61,9 +63,18 @@ def _spread_nodes(n_nodes: int):
     return x, w / w.sum()
 
 
-# Triangular slit of unit FWHM sampled at 7 nodes on (-1, 1) FWHM, exact weights.
-_SLIT_U = np.linspace(-6 / 7, 6 / 7, 7)
-_SLIT_W = (1 - np.abs(_SLIT_U)) / np.sum(1 - np.abs(_SLIT_U))
+# Triangular slit of unit FWHM (base -1..1): 6-point Gauss-Jacobi rules for the
+# weight (1 - |u|) on each half, where the spectrum is smooth. The earlier 7-point
+# midpoint rule straddled the kink at u = 0 and converged only as h², off by 2e-4
+# in T for a 1 µm film with a 5 nm slit and 7e-3 for 10 µm; this rule gives 1e-9
+# and 8e-4 (brute-force checks in tests/test_stack.py).
+def _slit_rule(m: int = 6):
+    x, w = roots_jacobi(m, 1.0, 0.0)  # weight (1 - x) on [-1, 1]
+    u = (x + 1) / 2                     # -> weight (1 - u) on [0, 1]
+    return np.concatenate([-u[::-1], u]), np.concatenate([w[::-1], w]) / (2 * w.sum())
+
+
+_SLIT_U, _SLIT_W = _slit_rule()
 
 
 @dataclass
