@@ -242,3 +242,22 @@ def test_project_errors_name_the_field(tmp_path):
     with pytest.raises(RecipeError, match="hex") as ei:
         load_project(f)
     assert ei.value.field == "spectra[0].sha256"
+
+
+def test_round_trip_gives_identical_fit_results(tmp_path):
+    # Save, load, fit the same spectrum with both: every parameter and χ² identical.
+    fit = pytest.importorskip("fitting.fit")
+    from batch_helpers import make_recipe as single_film_recipe
+    from batch_helpers import write_spectra
+    from fitting.reader import read_spectrum
+    write_spectra(tmp_path, [575.0], seed=5)
+    r = single_film_recipe(fit_options={"method": "auto", "fit_offset": True})
+    r2 = load_recipe(save_recipe(r, tmp_path / "r.json"))
+    sp = read_spectrum(tmp_path / "s000.txt", options=r2.reader_options())
+    a = fit.fit_spectrum(sp, r.new_stack(), r.make_fit_options(sp))
+    b = fit.fit_spectrum(sp, r2.new_stack(), r2.make_fit_options(sp))
+    assert a.success and b.success
+    assert {k: (p.value, p.stderr) for k, p in a.params.items()} == \
+        {k: (p.value, p.stderr) for k, p in b.params.items()}
+    assert a.chisqr == b.chisqr and "offset" in a.params
+    assert a.thickness()[0] == pytest.approx(575.0, rel=0.01)
