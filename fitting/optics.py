@@ -17,6 +17,12 @@ but needs fewer operations per layer. The thick substrate is incoherent: the
 beams bouncing inside it add in intensity (Harbecke 1986; Swanepoel 1983,
 eq. A1), with the back side included.
 
+Fits evaluate one geometry thousands of times with only the films changing:
+:func:`outer_media` binds the ambient, substrate and back side to a grid once
+and :func:`films_RT` then evaluates the films alone, all interfaces at once,
+both polarisations sharing every phase factor. :func:`stack_RT` is the same
+two steps in one call.
+
 References
 ----------
 .. [1] M. Born and E. Wolf, *Principles of Optics*, 7th ed., Cambridge (1999), sec. 1.6.
@@ -25,6 +31,7 @@ References
        multilayer structures", Appl. Phys. B 39, 165 (1986).
 .. [4] R. Swanepoel, "Determination of the thickness and optical constants of
        amorphous silicon", J. Phys. E 16, 1214 (1983).
+.. [5] H. A. Macleod, *Thin-Film Optical Filters*, 4th ed., CRC Press (2010), ch. 2.
 """
 
 from __future__ import annotations
@@ -188,8 +195,11 @@ class OuterMedia:
     (1 for "s" or "p", 2 for unpolarised light at oblique incidence: s, p).
     Admittances are Y = N cos θ (s) and Y = cos θ / N (p), so that every
     interface has r = (Y_i - Y_f)/(Y_i + Y_f) and t-factor 1 + r in both
-    polarisations (Macleod 2010, sec. 2.4; the p form is Byrnes' r_p divided
-    by N_i N_f, its t_p is (1 + r) N_i/N_f, whose product telescopes to N_0/N_s).
+    polarisations. For s this is Macleod's tilted admittance (2010, sec. 2.4);
+    for p it is the reciprocal of his N/cos θ, which gives Byrnes' sign of r_p
+    (his r_p with numerator and denominator divided by N_i N_f). Byrnes' t_p is
+    then (1 + r) N_i/N_f, whose product over the interfaces telescopes to
+    N_0/N_s, a factor folded into ``t_scale``.
     """
 
     ik2: np.ndarray          # (W,) 2i·2π/λ: i·2δ = ik2 · d · N cos θ
