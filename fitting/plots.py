@@ -454,7 +454,8 @@ def _curve_of(item) -> dict[str, Any]:
     optical = _get(item, "optical")
     label = _spectrum_name(item) if optical is not None else _get(item, "name", "") or ""
     oc = _pick_layer(optical, None) if optical is not None else item
-    return {"label": label or _get(oc, "layer", ""), "wavelength_nm": _arr(_get(oc, "wavelength_nm")),
+    return {"label": label or _get(oc, "layer", ""),
+            "wavelength_nm": _arr(_get(oc, "wavelength_nm")),
             "n": _arr(_get(oc, "n")), "k": _arr(_get(oc, "k"))}
 
 

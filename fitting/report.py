@@ -44,6 +44,8 @@ from __future__ import annotations
 import io
 import json
 import math
+import os
+import textwrap
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable, Mapping, Sequence
@@ -89,6 +91,22 @@ def _n633(row, layer: str = "film") -> float:
         if row.get(key) is not None:
             return _num(row[key])
     return math.nan
+
+
+def _pm(value, sigma) -> str:
+    """Thickness as "231.0 ± 0.06": one decimal, σ to two significant digits."""
+    if not math.isfinite(value):
+        return "–"
+    return f"{value:.1f} ± {sigma:.2g}" if math.isfinite(sigma) else f"{value:.1f}"
+
+
+def _warn_texts(row) -> list[str]:
+    w = row.get("warnings")
+    if isinstance(w, (list, tuple)):
+        return [str(x) for x in w]
+    if isinstance(w, str) and not math.isfinite(_num(w)):   # texts, not a count
+        return [p.strip() for p in w.split(";") if p.strip()]
+    return []
 
 
 def _warn_count(row) -> int:
@@ -139,6 +157,26 @@ def _clip(text, width) -> str:
     """Cut prose at the end (a sentence reads from its start)."""
     text = " ".join(str(text).split())
     return text if len(text) <= width else text[: width - 1] + "…"
+
+
+def _input_folder(rows) -> str:
+    """The folder all input files share ("" if they do not, or there is one file)."""
+    files = [str(r["file"]) for r in rows if r.get("file")]
+    if len(files) < 2:
+        return ""
+    try:
+        common = os.path.commonpath(files)
+    except ValueError:      # mixed absolute/relative paths or drives
+        return ""
+    return "" if common in files else common
+
+
+def _display_name(row, info) -> str:
+    f = str(row.get("file") or "–")
+    folder = info.get("input_folder")
+    if folder and f.startswith(folder):
+        return f[len(folder):].lstrip("/\\") or f
+    return f
 
 
 def _result_dir(row, results_dir: Path) -> Path:
@@ -235,14 +273,13 @@ _COLS = [  # header, x position (fraction of the table width), alignment
 ROW_HEIGHT = 0.0165   # figure fraction (about 0.19 in on A4)
 
 
-def _table_cells(i, row, key, spec):
+def _table_cells(i, row, key, spec, info):
     ok = row_ok(row)
     d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
-    thick = "–" if not math.isfinite(d) else (
-        f"{d:.1f} ± {s:.1f}" if math.isfinite(s) else f"{d:.1f}")
+    thick = _pm(d, s)
     state = _spec_state(row, spec, key)
     status = str(row.get("status", "ok"))
-    cells = [str(i + 1), _short(row.get("file", "–"), 46), _short(status, 12)]
+    cells = [str(i + 1), _short(_display_name(row, info), 46), _short(status, 12)]
     if ok:
         cells += [thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
                   _fmt(row.get("redchi"), "{:.3g}"),
@@ -252,7 +289,7 @@ def _table_cells(i, row, key, spec):
     return cells, ok, state
 
 
-def _draw_table(fig, top, rows, start, key, spec):
+def _draw_table(fig, top, rows, start, key, spec, info):
     """Rows of the summary table as aligned text, from ``top`` (figure fraction) down."""
     height = (len(rows) + 1) * ROW_HEIGHT
     ax = fig.add_axes((0.05, top - height, 0.9, height))
@@ -266,7 +303,7 @@ def _draw_table(fig, top, rows, start, key, spec):
         y = j + 1.5
         if j % 2:
             ax.axhspan(y - 0.5, y + 0.5, color="#f2f2f2", lw=0)
-        cells, ok, state = _table_cells(start + j, row, key, spec)
+        cells, ok, state = _table_cells(start + j, row, key, spec, info)
         for (name, x, ha), text in zip(_COLS, cells):
             if text is None:
                 continue
@@ -285,6 +322,7 @@ def _overview(fig, rows, key, spec, info):
     fig.text(0.06, 0.955, "Pellucid batch report", fontsize=17, weight="bold")
     lines = [("software", info["software"]), ("recipe", info["recipe_name"] or "–"),
              ("recipe hash", info["recipe_hash"] or "–"), ("created", info["created"]),
+             ("input folder", _short(info["input_folder"], 80) or "–"),
              ("results folder", _short(info["results_dir"], 80))]
     for j, (k, v) in enumerate(lines):
         fig.text(0.06, 0.925 - j * 0.018, k, fontsize=8.5, color="#555555")
@@ -293,9 +331,10 @@ def _overview(fig, rows, key, spec, info):
     d = np.array([_num(r.get(key)) for r in ok])
     d = d[np.isfinite(d)]
     states = [_spec_state(r, spec, key) for r in rows]
+    n_pass = states.count("pass")
     summary = [("spectra", f"{len(rows)}"), ("fitted", f"{len(ok)}"),
                ("failed", f"{len(rows) - len(ok)}"),
-               ("in spec", f"{states.count('pass')} of {states.count('pass') + states.count('fail')}"
+               ("in spec", f"{n_pass} of {n_pass + states.count('fail')}"
                 if spec or any(s for s in states) else "no limits given")]
     if d.size:
         summary.append((key.replace("_", " "),
@@ -312,7 +351,7 @@ def _overview(fig, rows, key, spec, info):
     return y0 - len(summary) * 0.018 - 0.01
 
 
-def _failed_page(fig, items):
+def _failed_page(fig, items, info):
     fig.text(0.06, 0.955, "Failed spectra", fontsize=14, weight="bold")
     ax = fig.add_axes((0.06, 0.06, 0.88, 0.87))
     ax.set_axis_off()
@@ -320,7 +359,7 @@ def _failed_page(fig, items):
     for j, (i, row) in enumerate(items):
         y = 1 - (j + 0.5) * h
         ax.text(0.0, y, f"{i + 1}", fontsize=7.5, ha="left", va="center", color="#555555")
-        ax.text(0.06, y, _short(row.get("file", "–"), 60), fontsize=7.5, va="center")
+        ax.text(0.06, y, _short(_display_name(row, info), 60), fontsize=7.5, va="center")
         reason = str(row.get("reason") or row.get("message") or "no reason recorded")
         ax.text(0.06, y - 0.42 * h, _clip(f"{row.get('status', 'failed')}: {reason}", 125),
                 fontsize=6.8, va="center", color=PALETTE["fail"])
@@ -328,17 +367,22 @@ def _failed_page(fig, items):
     ax.set_ylim(0, 1)
 
 
-def _worst_page(fig, items, results_dir, key):
+def _worst_page(fig, items, results_dir, key, info):
     subs = _panels(fig, "Worst fits (highest reduced χ²)", (5,) * len(items) +
                    ((5,) if len(items) == 1 else ()))
     for sub, (i, row) in zip(subs, items):
         d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
-        title = (f"#{i + 1}  {_short(row.get('file', '–'), 50)}   "
-                 f"d = {d:.1f} ± {s:.1f} nm   " if math.isfinite(s) else
-                 f"#{i + 1}  {_short(row.get('file', '–'), 50)}   d = {_fmt(d, '{:.1f}')} nm   ")
-        title += rf"$\chi^2_\mathrm{{red}}$ = {_fmt(row.get('redchi'), '{:.3g}')}"
+        title = (f"#{i + 1}  {_short(_display_name(row, info), 50)}   d = {_pm(d, s)} nm   "
+                 rf"$\chi^2_\mathrm{{red}}$ = {_fmt(row.get('redchi'), '{:.3g}')}")
+        texts = _warn_texts(row)
         nw = _warn_count(row)
-        if nw:
+        if texts:   # at most two lines of about 90 characters fit the page width
+            sentences = [t if t[-1] in ".!?" else t + "." for t in texts]
+            lines = textwrap.wrap("warnings: " + " ".join(sentences), 90)
+            if len(lines) > 2:
+                lines = [lines[0], _clip(" ".join(lines[1:]), 90)]
+            title += "\n" + "\n".join(lines)
+        elif nw:
             title += f"   ({nw} warning{'s' if nw > 1 else ''})"
         curves = None
         try:
@@ -392,7 +436,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
     info = {"software": prov.get("software") or f"pellucid {__version__}",
             "recipe_name": rname, "recipe_hash": rhash, "created": created,
-            "results_dir": str(results_dir)}
+            "results_dir": str(results_dir), "input_folder": _input_folder(rows)}
     footer = provenance_footer({**prov, "software": info["software"], "recipe_hash": rhash,
                                 "created": created, "input_sha256": None})
     key = row_thickness_key(rows)
@@ -404,7 +448,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     def overview(fig, chunk=rows[:ROWS_FIRST_PAGE]):
         top = _overview(fig, rows, key, spec, info)
         if chunk:
-            _draw_table(fig, top, chunk, 0, key, spec)
+            _draw_table(fig, top, chunk, 0, key, spec, info)
     pages.append((False, overview))
     for start in range(ROWS_FIRST_PAGE, len(rows), ROWS_PER_PAGE):
         chunk = rows[start:start + ROWS_PER_PAGE]
@@ -412,7 +456,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
         def table(fig, chunk=chunk, start=start):
             fig.text(0.06, 0.955, f"Summary table, spectra {start + 1}–{start + len(chunk)}",
                      fontsize=12, weight="bold")
-            _draw_table(fig, 0.935, chunk, start, key, spec)
+            _draw_table(fig, 0.935, chunk, start, key, spec, info)
         pages.append((False, table))
 
     def thickness(fig):
@@ -453,14 +497,15 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     failed = [(i, r) for i, r in enumerate(rows) if not row_ok(r)]
     for start in range(0, len(failed), FAILED_PER_PAGE):
         pages.append((False, lambda fig, items=failed[start:start + FAILED_PER_PAGE]:
-                      _failed_page(fig, items)))
+                      _failed_page(fig, items, info)))
 
     ranked = sorted(ok_idx, key=lambda i: -_num(rows[i].get("redchi"))
                     if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)
     ranked = ranked[:max(int(worst), 0)]
     for start in range(0, len(ranked), 2):
         items = [(i, rows[i]) for i in ranked[start:start + 2]]
-        pages.append((True, lambda fig, items=items: _worst_page(fig, items, results_dir, key)))
+        pages.append((True, lambda fig, items=items:
+                      _worst_page(fig, items, results_dir, key, info)))
 
     meta = {"Title": f"Pellucid batch report{': ' + rname if rname else ''}",
             "Creator": info["software"],
