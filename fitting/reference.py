@@ -141,18 +141,16 @@ def reference_correct(sample: Spectrum, baseline: Spectrum, dark: Spectrum | Non
         bad = wl[~ok]
         warnings.append(f"{wl.size - n_ok} points where the baseline is not above the dark "
                         f"signal were dropped ({bad.min():g}-{bad.max():g} nm)")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t = (s_val - d_val)[ok] / denom[ok]
-        sigma = None
-        inputs = [(sample, keep, None), (baseline, None, b_val), (dark, None, d_val)]
-        if any(s is not None and s.sigma is not None for s, _, _ in inputs):
-            def interp_sigma(spec):
-                if spec is None or spec.sigma is None:
-                    return np.zeros(n_ok)
-                return np.interp(wl, spec.wavelength_nm, spec.sigma)[ok]
-            sig_s = np.zeros(n_ok) if sample.sigma is None else sample.sigma[keep][ok]
-            sigma = np.sqrt(sig_s ** 2 + (t * interp_sigma(baseline)) ** 2
-                            + ((1 - t) * interp_sigma(dark)) ** 2) / denom[ok]
+    t = (s_val - d_val)[ok] / denom[ok]          # denom[ok] > 0 by construction
+    sigma = None
+    if any(s is not None and s.sigma is not None for s in (sample, baseline, dark)):
+        def sigma_on_grid(spec):
+            if spec is None or spec.sigma is None:
+                return np.zeros(n_ok)
+            return np.interp(wl, spec.wavelength_nm, spec.sigma)[ok]
+        # dT/dS = 1/(B-D), dT/dB = -T/(B-D), dT/dD = (T-1)/(B-D)
+        sigma = np.sqrt(sigma_on_grid(sample) ** 2 + (t * sigma_on_grid(baseline)) ** 2
+                        + ((1 - t) * sigma_on_grid(dark)) ** 2) / denom[ok]
     mask = None if sample.mask is None else sample.mask[keep][ok]
     metadata = dict(sample.metadata)
     metadata["ordinate"] = "fraction"
