@@ -1,0 +1,172 @@
+"""Import preview: the first lines of a file, what the reader detected, and corrections.
+
+The dialog shows the raw lines and the detected layout (separator, decimal
+mark, columns, units, percent or fraction) from :func:`fitting.reader.preview`;
+every detection can be overridden before the file is loaded. The result is a
+:class:`fitting.reader.ReaderOptions`, which is also what a recipe saves.
+"""
+
+from __future__ import annotations
+
+from PySide6.QtGui import QFontDatabase
+from PySide6.QtWidgets import (QCheckBox, QComboBox, QDialog, QDialogButtonBox, QFormLayout,
+                               QGroupBox, QHBoxLayout, QLabel, QPlainTextEdit, QPushButton,
+                               QSpinBox, QVBoxLayout)
+
+from fitting.errors import PellucidError
+from fitting.reader import ReaderOptions, preview, read_spectrum
+
+__all__ = ["ImportDialog"]
+
+_DELIMS = {"auto": "detect", "\t": "tab", ";": "semicolon ;", ",": "comma ,",
+           " ": "spaces"}
+_DECIMALS = {"auto": "detect", ".": "point  (450.5)", ",": "comma  (450,5)"}
+_X_UNITS = {"auto": "detect", "nm": "nm", "um": "µm", "A": "Å", "cm-1": "cm⁻¹ (wavenumber)",
+            "eV": "eV (photon energy)"}
+_Y_KINDS = {"auto": "detect", "T_percent": "Transmittance in %",
+            "T_fraction": "Transmittance as fraction (0-1)", "R_percent": "Reflectance in %",
+            "R_fraction": "Reflectance as fraction (0-1)", "absorbance": "Absorbance",
+            "counts": "Raw detector counts (needs reference correction)"}
+
+
+def _combo(choices: dict, current, tip: str) -> QComboBox:
+    c = QComboBox()
+    for k, label in choices.items():
+        c.addItem(label, k)
+    i = c.findData(current)
+    c.setCurrentIndex(max(i, 0))
+    c.setToolTip(tip)
+    return c
+
+
+class ImportDialog(QDialog):
+    """Preview a spectrum file and correct the detection before loading it."""
+
+    def __init__(self, path, options: ReaderOptions | None = None, parent=None,
+                 *, show_every_time: bool = True):
+        super().__init__(parent)
+        self.setWindowTitle("Import spectrum — check how the file is read")
+        self.path = str(path)
+        self.spectrum = None
+        opts = options or ReaderOptions()
+
+        self.lines = QPlainTextEdit()
+        self.lines.setReadOnly(True)
+        self.lines.setFont(QFontDatabase.systemFont(QFontDatabase.FixedFont))
+        self.lines.setLineWrapMode(QPlainTextEdit.NoWrap)
+        self.lines.setToolTip("The first lines of the file exactly as stored")
+        self.detected = QLabel("")
+        self.detected.setWordWrap(True)
+        self.result_label = QLabel("")
+        self.result_label.setWordWrap(True)
+
+        self.delimiter = _combo(_DELIMS, opts.delimiter, "What separates the columns")
+        self.decimal = _combo(_DECIMALS, opts.decimal, "The decimal mark of the numbers")
+        self.x_column = QSpinBox()
+        self.x_column.setRange(0, 99)
+        self.x_column.setSpecialValueText("detect")
+        self.x_column.setValue(opts.x_column + 1 if isinstance(opts.x_column, int) else 0)
+        self.x_column.setToolTip("Column holding wavelength (or energy, wavenumber); 1 = first")
+        self.y_column = QSpinBox()
+        self.y_column.setRange(0, 99)
+        self.y_column.setSpecialValueText("detect")
+        self.y_column.setValue(opts.y_column + 1 if isinstance(opts.y_column, int) else 0)
+        self.y_column.setToolTip("Column holding the measured values; 1 = first")
+        self.x_unit = _combo(_X_UNITS, opts.x_unit, "Unit of the abscissa column")
+        self.y_kind = _combo(_Y_KINDS, opts.y_kind, "What the values are: T or R, in % or "
+                                                    "as a fraction, or absorbance")
+        for w in (self.delimiter, self.decimal, self.x_unit, self.y_kind):
+            w.currentIndexChanged.connect(self.update_preview)
+        for w in (self.x_column, self.y_column):
+            w.valueChanged.connect(self.update_preview)
+        self.every_time = QCheckBox("Show this preview every time a file is opened")
+        self.every_time.setChecked(show_every_time)
+        self.every_time.setToolTip("Untick to load files directly with automatic detection "
+                                   "(you can still open this preview from the Spectrum menu)")
+
+        form = QFormLayout()
+        form.addRow("Column separator:", self.delimiter)
+        form.addRow("Decimal mark:", self.decimal)
+        cols = QHBoxLayout()
+        cols.addWidget(QLabel("wavelength"))
+        cols.addWidget(self.x_column)
+        cols.addWidget(QLabel("values"))
+        cols.addWidget(self.y_column)
+        cols.addStretch(1)
+        form.addRow("Columns:", cols)
+        form.addRow("Abscissa unit:", self.x_unit)
+        form.addRow("Values are:", self.y_kind)
+        box = QGroupBox("Corrections (leave at 'detect' if the summary above is right)")
+        box.setLayout(form)
+
+        self.buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
+        self.buttons.button(QDialogButtonBox.Ok).setText("Load")
+        self.buttons.button(QDialogButtonBox.Ok).setToolTip("Load the spectrum as shown")
+        self.buttons.accepted.connect(self.accept)
+        self.buttons.rejected.connect(self.reject)
+        reset = QPushButton("Back to detection")
+        reset.setToolTip("Set every correction back to automatic detection")
+        reset.clicked.connect(self._reset)
+        self.buttons.addButton(reset, QDialogButtonBox.ResetRole)
+
+        lay = QVBoxLayout(self)
+        lay.addWidget(QLabel(f"<b>{self.path}</b>"))
+        lay.addWidget(self.lines, 1)
+        lay.addWidget(self.detected)
+        lay.addWidget(box)
+        lay.addWidget(self.result_label)
+        lay.addWidget(self.every_time)
+        lay.addWidget(self.buttons)
+        self.resize(760, 620)
+        self.update_preview()
+
+    def _reset(self):
+        for w in (self.delimiter, self.decimal, self.x_unit, self.y_kind):
+            w.setCurrentIndex(0)
+        self.x_column.setValue(0)
+        self.y_column.setValue(0)
+
+    def options(self) -> ReaderOptions:
+        """The reader options chosen (raises RecipeError on an impossible combination)."""
+        col = lambda spin: None if spin.value() == 0 else spin.value() - 1  # noqa: E731
+        return ReaderOptions(x_column=col(self.x_column), y_column=col(self.y_column),
+                             x_unit=self.x_unit.currentData(), y_kind=self.y_kind.currentData(),
+                             delimiter=self.delimiter.currentData(),
+                             decimal=self.decimal.currentData())
+
+    def update_preview(self, *_):
+        ok = self.buttons.button(QDialogButtonBox.Ok)
+        try:
+            opts = self.options()
+            pv = preview(self.path, 25, options=opts)
+        except PellucidError as exc:
+            self.detected.setText(f"<span style='color:#d9480f'><b>Cannot read:</b> {exc}</span>")
+            self.result_label.setText("")
+            self.spectrum = None
+            ok.setEnabled(False)
+            return
+        self.lines.setPlainText("\n".join(pv.lines))
+        if pv.dialect is None:
+            self.detected.setText(f"<span style='color:#d9480f'><b>Not readable as it is:"
+                                  f"</b> {pv.problem}</span><br>Correct the settings below.")
+            self.result_label.setText("")
+            self.spectrum = None
+            ok.setEnabled(False)
+            return
+        self.detected.setText("<b>Detected:</b> " + pv.dialect.describe())
+        try:
+            s = read_spectrum(self.path, options=opts)
+        except PellucidError as exc:
+            self.result_label.setText(f"<span style='color:#d9480f'>{exc}</span>")
+            self.spectrum = None
+            ok.setEnabled(False)
+            return
+        self.spectrum = s
+        wl = s.wavelength_nm
+        q = {"T": "transmittance", "R": "reflectance"}.get(s.quantity, s.quantity)
+        txt = (f"<b>Will load:</b> {len(s)} points of {q}, {wl[0]:.1f}–{wl[-1]:.1f} nm, "
+               f"values {100 * s.values.min():.1f}–{100 * s.values.max():.1f} %.")
+        if s.warnings:
+            txt += "<br><b>Notes:</b> " + "; ".join(s.warnings)
+        self.result_label.setText(txt)
+        ok.setEnabled(True)

@@ -1,0 +1,267 @@
+"""The central plot: measured spectrum, the model curve of the current stack, residuals.
+
+The model curve follows every edit of the stack at once (it is one call of
+:meth:`fitting.stack.Stack.RT` on the data grid, a few milliseconds). After a
+fit the fitted curve is shown until the next edit. Masked windows are drawn
+shaded; in "Mask" mode a drag across the plot adds one (matplotlib
+``SpanSelector``), a right click on a shaded window removes it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg, NavigationToolbar2QT
+from matplotlib.figure import Figure
+from matplotlib.widgets import SpanSelector
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtWidgets import (QComboBox, QHBoxLayout, QLabel, QPushButton, QToolButton,
+                               QVBoxLayout, QWidget)
+
+from fitting.errors import PellucidError
+from fitting.units import HC_EV_NM
+
+from .theme import figure_colors, style_figure
+
+__all__ = ["PlotPanel", "AXES"]
+
+#: x-axis choices: key -> (label, nm -> x, x -> nm)
+AXES = {
+    "nm": ("Wavelength λ (nm)", lambda w: w, lambda x: x),
+    "eV": ("Photon energy E (eV)", lambda w: HC_EV_NM / w, lambda x: HC_EV_NM / x),
+    "cm-1": ("Wavenumber ν̃ (cm⁻¹)", lambda w: 1e7 / w, lambda x: 1e7 / x),
+}
+_QUANTITY = {"T": "Transmittance T (%)", "R": "Reflectance R (%)"}
+
+
+class PlotPanel(QWidget):
+    """Canvas with toolbar, x-axis chooser and mask mode, bound to a :class:`Session`.
+
+    Signals
+    -------
+    cursor_text(str) : what lies under the mouse, for the status bar
+    """
+
+    cursor_text = Signal(str)
+
+    def __init__(self, session, parent=None):
+        super().__init__(parent)
+        self.session = session
+        self.axis = "nm"
+        self._result_fresh = False
+        self._model = None          # (wavelength_nm, model values) of the live curve
+        self._model_error = ""
+
+        self.figure = Figure(figsize=(6, 5), layout="constrained")
+        self.canvas = FigureCanvasQTAgg(self.figure)
+        self.canvas.setToolTip("")
+        self.ax, self.ax_res = self.figure.subplots(
+            2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1]})
+        self.toolbar = NavigationToolbar2QT(self.canvas, self)
+        self.toolbar.setToolTip("Zoom, pan, go back to the full view, save the picture")
+
+        self.axis_combo = QComboBox()
+        for key, (label, *_rest) in AXES.items():
+            self.axis_combo.addItem(label.split(" (")[0], key)
+        self.axis_combo.setToolTip("Show the spectrum against wavelength, photon energy or "
+                                   "wavenumber")
+        self.axis_combo.currentIndexChanged.connect(self._on_axis)
+
+        self.mask_button = QToolButton()
+        self.mask_button.setText("Mask a window")
+        self.mask_button.setCheckable(True)
+        self.mask_button.setToolTip(
+            "When on, drag across the plot to leave that wavelength window out of the fit "
+            "(e.g. a detector change-over or a noisy band). Right-click a grey window to "
+            "remove it.")
+        self.mask_button.toggled.connect(self._on_mask_mode)
+        self.clear_masks_button = QPushButton("Clear masks")
+        self.clear_masks_button.setToolTip("Remove every masked window (can be undone)")
+        self.clear_masks_button.clicked.connect(session.clear_masks)
+
+        top = QHBoxLayout()
+        top.addWidget(QLabel("x axis:"))
+        top.addWidget(self.axis_combo)
+        top.addSpacing(12)
+        top.addWidget(self.mask_button)
+        top.addWidget(self.clear_masks_button)
+        top.addStretch(1)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.addLayout(top)
+        lay.addWidget(self.canvas, 1)
+        lay.addWidget(self.toolbar)
+
+        self.span = SpanSelector(self.ax, self._on_span, "horizontal", useblit=True,
+                                 props={"alpha": 0.25, "facecolor": "#8a8f98"},
+                                 interactive=False, drag_from_anywhere=False)
+        self.span.set_active(False)
+        self.canvas.mpl_connect("motion_notify_event", self._on_motion)
+        self.canvas.mpl_connect("button_press_event", self._on_press)
+
+        session.spectrum_changed.connect(self._on_data)
+        session.stack_changed.connect(self._on_setup)
+        session.options_changed.connect(self._on_setup)
+        session.masks_changed.connect(self.redraw)
+        session.result_changed.connect(self._on_result)
+        self.redraw()
+
+    # -- reactions ----------------------------------------------------------------------
+    def _on_data(self):
+        self._result_fresh = False
+        self._update_model()
+        self.redraw(reset_view=True)
+
+    def _on_setup(self):
+        self._result_fresh = False
+        self._update_model()
+        self.redraw()
+
+    def _on_result(self):
+        self._result_fresh = self.session.result is not None
+        self.redraw()
+
+    def _on_axis(self, _index):
+        self.axis = self.axis_combo.currentData()
+        self.redraw(reset_view=True)
+
+    def set_axis(self, key: str) -> None:
+        self.axis_combo.setCurrentIndex(list(AXES).index(key))
+
+    def _on_mask_mode(self, on: bool):
+        if on and self.toolbar.mode:
+            # Leave zoom/pan so the drag goes to the span selector.
+            if "zoom" in str(self.toolbar.mode):
+                self.toolbar.zoom()
+            else:
+                self.toolbar.pan()
+        self.span.set_active(on)
+
+    def _on_span(self, x0, x1):
+        if self.session.spectrum is None:
+            return
+        to_nm = AXES[self.axis][2]
+        a, b = sorted((float(to_nm(x0)), float(to_nm(x1))))
+        if b - a <= 0:
+            return
+        self.session.add_mask(a, b)
+
+    def _on_press(self, event):
+        if event.button != 3 or event.inaxes not in (self.ax, self.ax_res) or event.xdata is None:
+            return
+        wl = float(AXES[self.axis][2](event.xdata))
+        for i, (lo, hi) in enumerate(self.session.masks):
+            if lo <= wl <= hi:
+                self.session.remove_mask(i)
+                return
+
+    def _on_motion(self, event):
+        if event.inaxes is None or event.xdata is None:
+            self.cursor_text.emit("")
+            return
+        x = event.xdata
+        if not np.isfinite(x) or x <= 0:
+            return
+        wl = float(AXES[self.axis][2](x))
+        parts = [f"λ = {wl:.1f} nm", f"E = {HC_EV_NM / wl:.3f} eV",
+                 f"ν̃ = {1e7 / wl:.0f} cm⁻¹"]
+        if event.inaxes is self.ax:
+            parts.append(f"cursor {event.ydata:.2f} %")
+        else:
+            parts.append(f"residual {event.ydata:.3f} %")
+        s = self.session.spectrum
+        if s is not None and s.wavelength_nm[0] <= wl <= s.wavelength_nm[-1]:
+            q = s.quantity
+            parts.append(f"measured {q} = {100 * np.interp(wl, s.wavelength_nm, s.values):.2f} %")
+            curve = self._shown_model()
+            if curve is not None:
+                parts.append(f"model {q} = {100 * np.interp(wl, curve[0], curve[1]):.2f} %")
+        self.cursor_text.emit("    ".join(parts))
+
+    # -- model --------------------------------------------------------------------------
+    def _update_model(self):
+        s = self.session.spectrum
+        self._model, self._model_error = None, ""
+        if s is None or len(s) == 0:
+            return
+        opts = self.session.options
+        try:
+            R, T = self.session.stack.RT(s.wavelength_nm, angle_deg=opts.get("angle_deg", 0.0),
+                                         polarization=opts.get("polarization", "u"))
+        except PellucidError as exc:
+            self._model_error = str(exc)
+            return
+        self._model = (s.wavelength_nm, T if s.quantity == "T" else R)
+
+    def _shown_model(self):
+        r = self.session.result
+        if self._result_fresh and r is not None:
+            return r.wavelength_nm, r.fitted
+        return self._model
+
+    # -- drawing ------------------------------------------------------------------------
+    def redraw(self, reset_view: bool = False):
+        ax, axr = self.ax, self.ax_res
+        keep = None
+        if not reset_view and ax.has_data():
+            keep = (ax.get_xlim(), ax.get_ylim())
+        ax.cla()
+        axr.cla()
+        col = figure_colors()
+        label, conv, _inv = AXES[self.axis]
+        s = self.session.spectrum
+        axr.set_xlabel(label)
+        axr.set_ylabel("Residual (%)")
+        if s is None:
+            ax.set_ylabel("Transmittance T (%)")
+            ax.text(0.5, 0.5, "No spectrum loaded.\n\nOpen a measured spectrum with "
+                    "File ▸ Open (Ctrl+O)\nor drop a file onto this window.",
+                    ha="center", va="center", transform=ax.transAxes, color=col["text"],
+                    fontsize=11)
+            ax.set_xticks([])
+            ax.set_yticks([])
+            axr.set_yticks([])
+        else:
+            x = conv(s.wavelength_nm)
+            y = 100 * s.values
+            used = self.session.spectrum_for_fit().used
+            if self.session.options.get("fit_range_nm"):
+                lo, hi = self.session.options["fit_range_nm"]
+                used = used & (s.wavelength_nm >= lo) & (s.wavelength_nm <= hi)
+            ax.plot(x, np.where(used, y, np.nan), color=col["measured"], lw=1.2,
+                    label="measured")
+            if not used.all():
+                ax.plot(x, np.where(used, np.nan, y), color=col["unused"], lw=1.0, ls=":",
+                        label="not fitted")
+            curve = self._shown_model()
+            if curve is not None:
+                is_fit = self._result_fresh and self.session.result is not None
+                ax.plot(conv(curve[0]), 100 * curve[1],
+                        color=col["fitted"] if is_fit else col["model"], lw=1.4,
+                        label="fitted model" if is_fit else "model (current stack)")
+                res = 100 * (s.values - np.interp(s.wavelength_nm, curve[0], curve[1]))
+                axr.plot(x, np.where(used, res, np.nan), color=col["residual"], lw=1.0)
+                axr.axhline(0.0, color=col["grid"], lw=0.8)
+            elif self._model_error:
+                ax.text(0.02, 0.03, "Model curve not shown: " + self._model_error,
+                        transform=ax.transAxes, fontsize=8, color=col["second"], wrap=True)
+            ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
+            title = s.name or "spectrum"
+            ax.set_title(title, fontsize=10, loc="left")
+            for lo, hi in self.session.masks:
+                for a in (ax, axr):
+                    a.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)
+            ax.legend(loc="best", fontsize=8)
+            ax.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
+            axr.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
+            if keep is not None and not reset_view:
+                ax.set_xlim(keep[0])
+                ax.set_ylim(keep[1])
+        style_figure(self.figure)
+        self.canvas.draw_idle()
+
+    def image_data(self):
+        """What is plotted, for tests: dict with x, measured and model arrays."""
+        s = self.session.spectrum
+        curve = self._shown_model()
+        return {"measured": None if s is None else s.values,
+                "model": None if curve is None else curve[1]}

@@ -1,0 +1,510 @@
+"""The app-side state of one working session, and the only place edits are made.
+
+A :class:`Session` holds the current spectrum, the sample stack, the fit
+options, the masked windows and the last fit result. Panels read it and call
+its methods to change it; it emits a signal for each kind of change so every
+view can refresh itself (the pattern of napari's ``QtDims`` wrapping ``Dims``:
+views never own the data).
+
+Every edit to the stack, the parameters, the options or the masks goes through
+a :class:`QUndoCommand` on :attr:`Session.undo`, so Ctrl+Z / Ctrl+Shift+Z work
+for all of them. A command stores the whole editable state before and after
+(the stack as :meth:`fitting.stack.Stack.to_dict`, a few kilobytes), which is
+simpler and safer than per-field inverse operations.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from dataclasses import replace
+
+from PySide6.QtCore import QObject, Signal
+from PySide6.QtGui import QUndoCommand, QUndoStack
+
+from fitting.dispersion import (Bruggeman, Cauchy, Constant, Drude, Lorentz, Oscillators,
+                                Sellmeier, Tabulated, TaucLorentz)
+from fitting.errors import FitError, ParameterError, PellucidError
+# Imported at start-up, not on the first Fit: importing the fit engine (lmfit, scipy)
+# takes a second or more, which must not freeze the window when the user clicks Fit.
+from fitting.fit import FitOptions
+from fitting.params import Param, check_finite
+from fitting.recipe import Recipe
+from fitting.stack import Layer, Stack
+from fitting.substrates import Substrate, library_substrate
+
+__all__ = ["Session", "MODEL_CHOICES", "make_model", "model_choice_of", "default_options",
+           "SUBSTRATE_NAMES"]
+
+#: Dispersion models a user can pick for a film, in menu order: key -> label.
+MODEL_CHOICES = {
+    "cauchy": "Cauchy (transparent film)",
+    "cauchy_urbach": "Cauchy + Urbach tail (weak absorption edge)",
+    "sellmeier": "Sellmeier (1 term)",
+    "lorentz": "Lorentz oscillator",
+    "drude": "Drude (free carriers)",
+    "drude_lorentz": "Drude + Lorentz (transparent conductor)",
+    "tauc_lorentz": "Tauc-Lorentz (amorphous semiconductor)",
+    "constant": "Constant n, κ",
+    "tabulated": "Tabulated n, κ from file…",
+    "roughness": "Surface roughness (Bruggeman, film + voids)",
+}
+
+#: Display names of the substrate library keys.
+SUBSTRATE_NAMES = {
+    "fused_silica": "Fused silica",
+    "n_bk7": "N-BK7 borosilicate glass",
+    "sapphire_o": "Sapphire (ordinary ray)",
+    "caf2": "Calcium fluoride (CaF₂)",
+    "generic_glass": "Glass, constant n",
+}
+
+_OPTION_DEFAULTS = {
+    "method": "auto",
+    "fit_range_nm": None,
+    "angle_deg": 0.0,
+    "polarization": "u",
+    "fit_scale": False,
+    "fit_offset": False,
+    "band_gap": None,
+}
+
+
+def default_options() -> dict:
+    """The fit options a new session starts with (keys of ``fitting.fit.FitOptions``)."""
+    return dict(_OPTION_DEFAULTS)
+
+
+def make_model(choice: str, *, host=None, table_path=None):
+    """A fresh dispersion model for a :data:`MODEL_CHOICES` key.
+
+    ``host`` is the material a roughness layer mixes with voids; ``table_path``
+    the n, κ file of a tabulated material.
+    """
+    if choice == "cauchy":
+        return Cauchy()
+    if choice == "cauchy_urbach":
+        return Cauchy(urbach=True)
+    if choice == "sellmeier":
+        return Sellmeier(1)
+    if choice == "lorentz":
+        return Oscillators(1.0, [Lorentz(1.5, 6.0, 0.5)])
+    if choice == "drude":
+        return Oscillators(3.5, [Drude(1.5, 0.1)])
+    if choice == "drude_lorentz":
+        return Oscillators(3.5, [Drude(1.5, 0.1), Lorentz(1.0, 6.0, 0.5)])
+    if choice == "tauc_lorentz":
+        return Oscillators(2.0, [TaucLorentz()])
+    if choice == "constant":
+        return Constant(1.8, 0.0)
+    if choice == "tabulated":
+        if table_path is None:
+            raise ParameterError("table file", None, "choose an n, κ table file")
+        return Tabulated.from_file(table_path)
+    if choice == "roughness":
+        return Bruggeman(host.copy() if host is not None else Cauchy(), Constant(1.0, 0.0), 0.5)
+    raise ParameterError("model", choice, f"choose one of {', '.join(MODEL_CHOICES)}")
+
+
+def model_choice_of(model) -> str:
+    """The :data:`MODEL_CHOICES` key that best describes an existing model."""
+    if isinstance(model, Cauchy):
+        return "cauchy_urbach" if model.urbach else "cauchy"
+    if isinstance(model, Sellmeier):
+        return "sellmeier"
+    if isinstance(model, Oscillators):
+        kinds = [t.kind for t in model.terms]
+        if kinds == ["lorentz"]:
+            return "lorentz"
+        if kinds == ["drude"]:
+            return "drude"
+        if kinds == ["tauc_lorentz"]:
+            return "tauc_lorentz"
+        return "drude_lorentz"
+    if isinstance(model, Tabulated):
+        return "tabulated"
+    if isinstance(model, Bruggeman):
+        return "roughness"
+    return "constant"
+
+
+def default_stack() -> Stack:
+    """One Cauchy film of 500 nm on 1 mm fused silica: a sensible first guess."""
+    return Stack([Layer("film", Cauchy())], library_substrate("fused_silica", 1.0))
+
+
+class _StateCommand(QUndoCommand):
+    """Undo entry that swaps the whole editable state (stack, options, masks)."""
+
+    def __init__(self, session: "Session", text: str, before: dict, after: dict):
+        super().__init__(text)
+        self._s, self._before, self._after = session, before, after
+        self._first = True
+
+    def redo(self):
+        # The edit was already applied when the command was pushed.
+        if self._first:
+            self._first = False
+            return
+        self._s._restore(self._after)
+
+    def undo(self):
+        self._s._restore(self._before)
+
+
+class Session(QObject):
+    """Current spectrum, stack, fit options, masks and result, with change signals.
+
+    Signals
+    -------
+    spectrum_changed : the measured spectrum was replaced (or cleared)
+    stack_changed : layers, materials, parameters or substrate changed
+    options_changed : fit options changed
+    masks_changed : masked wavelength windows changed
+    result_changed : a fit result arrived (or was cleared)
+    message(str, bool) : a status message for the user; True for an error
+    """
+
+    spectrum_changed = Signal()
+    stack_changed = Signal()
+    options_changed = Signal()
+    masks_changed = Signal()
+    result_changed = Signal()
+    message = Signal(str, bool)
+
+    def __init__(self, parent=None):
+        super().__init__(parent)
+        self.undo = QUndoStack(self)
+        self.spectrum = None          # fitting.spectrum.Spectrum or None
+        self.spectrum_path = ""       # file it was read from
+        self.reader_options = None    # fitting.reader.ReaderOptions used, or None
+        self.stack: Stack = default_stack()
+        self.options: dict = default_options()
+        self.masks: list[tuple[float, float]] = []
+        self.result = None            # fitting.result.FitResult or None
+        self.project_path = ""
+
+    # -- snapshots for undo -----------------------------------------------------------
+    def _state(self) -> dict:
+        return {"stack": self.stack.to_dict(), "options": copy.deepcopy(self.options),
+                "masks": list(self.masks)}
+
+    def _restore(self, state: dict) -> None:
+        self.stack = Stack.from_dict(state["stack"])
+        changed_opts = state["options"] != self.options
+        changed_masks = state["masks"] != self.masks
+        self.options = copy.deepcopy(state["options"])
+        self.masks = list(state["masks"])
+        self.stack_changed.emit()
+        if changed_opts:
+            self.options_changed.emit()
+        if changed_masks:
+            self.masks_changed.emit()
+
+    def _edit(self, text: str, apply) -> None:
+        """Run ``apply()`` (which mutates the state) as one undoable step.
+
+        If ``apply`` raises a :class:`PellucidError`, the state is put back and the
+        error is re-raised for the caller to show.
+        """
+        before = self._state()
+        try:
+            apply()
+        except PellucidError:
+            self._restore(before)
+            raise
+        after = self._state()
+        if after == before:
+            return
+        self.undo.push(_StateCommand(self, text, before, after))
+
+    # -- spectrum ---------------------------------------------------------------------
+    def set_spectrum(self, spectrum, *, path: str = "", reader_options=None) -> None:
+        """Replace the measured spectrum (not undoable: it is data, not a setup edit)."""
+        self.spectrum = spectrum
+        self.spectrum_path = str(path or getattr(spectrum, "source", "") or "")
+        self.reader_options = reader_options
+        self.result = None
+        self.spectrum_changed.emit()
+        self.result_changed.emit()
+
+    # -- stack ------------------------------------------------------------------------
+    def find_param(self, global_name: str) -> tuple[Layer, str]:
+        """(layer, local name) of a global parameter name such as ``film_A``."""
+        for layer in self.stack.layers:
+            pre = layer.name + "_"
+            if global_name.startswith(pre):
+                local = global_name[len(pre):]
+                if local == "thickness" or local in layer.material.params:
+                    return layer, local
+        raise ParameterError("parameter", global_name, "no such parameter in the stack")
+
+    def param(self, global_name: str) -> Param:
+        layer, local = self.find_param(global_name)
+        return layer.thickness if local == "thickness" else layer.material.params[local]
+
+    def set_param(self, global_name: str, **changes) -> None:
+        """Change a parameter's ``value``, ``min``, ``max`` or ``vary`` (undoable).
+
+        Raises :class:`~fitting.errors.ParameterError` with the reason if the new
+        entry is impossible (value outside bounds, min >= max, negative thickness).
+        """
+        unknown = set(changes) - {"value", "min", "max", "vary"}
+        if unknown:
+            raise ParameterError("field", sorted(unknown)[0], "only value, min, max, vary")
+        for k in ("value", "min", "max"):
+            if k in changes:
+                v = changes[k]
+                if isinstance(v, str) and v.strip().lower() in ("", "inf", "+inf", "-inf",
+                                                                 "none", "∞", "-∞") and k != "value":
+                    changes[k] = -math.inf if k == "min" else math.inf
+                else:
+                    changes[k] = check_finite(f"{global_name} {k}", v)
+        layer, local = self.find_param(global_name)
+        old = self.param(global_name)
+        new = old.copy(**changes)              # Param validates bounds on construction
+        if local == "thickness" and new.min < 0:
+            raise ParameterError(global_name, new.min, "a thickness bound must not be negative")
+        what = ", ".join(changes)
+
+        def apply():
+            if local == "thickness":
+                layer.thickness = new
+            else:
+                layer.material.params[local] = new
+
+        self._edit(f"Set {global_name} {what}", apply)
+        self.stack_changed.emit()
+
+    def _new_layer_name(self, base: str) -> str:
+        names = {layer.name for layer in self.stack.layers}
+        if base not in names:
+            return base
+        i = 2
+        while f"{base}{i}" in names:
+            i += 1
+        return f"{base}{i}"
+
+    def add_layer(self, choice: str = "cauchy", *, index: int | None = None,
+                  table_path=None) -> str:
+        """Add a film (ambient side first; default on top). Returns its name."""
+        layers = self.stack.layers
+        index = 0 if index is None else max(0, min(index, len(layers)))
+        if choice == "roughness":
+            if not layers:
+                raise ParameterError("roughness", "no film",
+                                     "add the film first; roughness mixes it with voids")
+            below = layers[min(index, len(layers) - 1)]
+            model = make_model(choice, host=below.material)
+            name = self._new_layer_name("rough")
+            thickness = Param("thickness", 10.0, 0.0, 200.0, "nm", "roughness layer thickness")
+        else:
+            model = make_model(choice, table_path=table_path)
+            name = self._new_layer_name("film")
+            thickness = Param("thickness", 500.0, 0.0, 50000.0, "nm", "physical film thickness")
+
+        def apply():
+            self.stack.layers.insert(index, Layer(name, model, thickness))
+
+        self._edit(f"Add layer {name}", apply)
+        self.stack_changed.emit()
+        return name
+
+    def remove_layer(self, index: int) -> None:
+        name = self.stack.layers[index].name
+        self._edit(f"Remove layer {name}", lambda: self.stack.layers.pop(index))
+        self.stack_changed.emit()
+
+    def move_layer(self, index: int, delta: int) -> int:
+        """Move a layer up (-1, toward the ambient) or down (+1). Returns its new index."""
+        layers = self.stack.layers
+        j = index + delta
+        if not (0 <= index < len(layers) and 0 <= j < len(layers)):
+            return index
+
+        def apply():
+            layers[index], layers[j] = layers[j], layers[index]
+
+        self._edit(f"Move layer {layers[index].name}", apply)
+        self.stack_changed.emit()
+        return j
+
+    def set_layer_model(self, index: int, choice: str, *, table_path=None) -> None:
+        """Give a layer a new dispersion model (its thickness is kept)."""
+        layers = self.stack.layers
+        layer = layers[index]
+        host = layers[index + 1].material if index + 1 < len(layers) else layer.material
+        model = make_model(choice, host=host, table_path=table_path)
+
+        def apply():
+            layer.material = model
+
+        self._edit(f"Model of {layer.name}: {MODEL_CHOICES[choice]}", apply)
+        self.stack_changed.emit()
+
+    def rename_layer(self, index: int, name: str) -> None:
+        layer = self.stack.layers[index]
+        Layer(name, layer.material, layer.thickness)   # validates the name
+        if any(x.name == name for i, x in enumerate(self.stack.layers) if i != index):
+            raise ParameterError("layer name", name, "another layer already has this name")
+
+        def apply():
+            layer.name = name
+
+        self._edit(f"Rename layer to {name}", apply)
+        self.stack_changed.emit()
+
+    def set_substrate(self, key: str | None = None, *, thickness_mm: float | None = None,
+                      n: float | None = None, material=None) -> None:
+        """Pick a library substrate (or a custom material) and/or its thickness in mm."""
+        old = self.stack.substrate
+        d = old.thickness_mm if thickness_mm is None else thickness_mm
+        if material is not None:
+            new = Substrate(material, d, old.kappa, old.internal_transmittance, "")
+        else:
+            key = key or old.library or "fused_silica"
+            kw = {}
+            if key == "generic_glass":
+                from fitting.substrates import generic_glass
+                nn = n if n is not None else (old.material.params["n"].value
+                                              if old.library == "generic_glass" else 1.52)
+                new = Substrate(generic_glass(check_finite("substrate n", nn)), d,
+                                old.kappa, old.internal_transmittance, key)
+            else:
+                new = library_substrate(key, d, kappa=old.kappa,
+                                        internal_transmittance=old.internal_transmittance, **kw)
+
+        def apply():
+            self.stack.substrate = new
+
+        self._edit(f"Substrate {new.name}, {new.thickness_mm:g} mm", apply)
+        self.stack_changed.emit()
+
+    def set_stack(self, stack: Stack, text: str = "Replace stack") -> None:
+        def apply():
+            self.stack = stack
+
+        self._edit(text, apply)
+        self.stack_changed.emit()
+
+    # -- options and masks ------------------------------------------------------------
+    def set_option(self, name: str, value) -> None:
+        if name not in _OPTION_DEFAULTS:
+            raise ParameterError("fit option", name, f"known: {', '.join(_OPTION_DEFAULTS)}")
+        if name == "angle_deg":
+            value = check_finite("angle of incidence", value)
+            if not 0 <= value < 90:
+                raise ParameterError("angle of incidence", value, "must be in [0, 90) degrees")
+        if name == "fit_range_nm" and value is not None:
+            lo, hi = (check_finite("fit range start", value[0]),
+                      check_finite("fit range end", value[1]))
+            if not 0 < lo < hi:
+                raise ParameterError("fit range", (lo, hi),
+                                     "start must be positive and below the end")
+            value = (lo, hi)
+        if self.options.get(name) == value:
+            return
+
+        def apply():
+            self.options[name] = value
+
+        self._edit(f"Fit option {name}", apply)
+        self.options_changed.emit()
+
+    def add_mask(self, lo_nm: float, hi_nm: float) -> None:
+        """Exclude the window [lo, hi] nm from fits (undoable)."""
+        lo, hi = sorted((float(lo_nm), float(hi_nm)))
+        if not hi > lo:
+            return
+        self._edit(f"Mask {lo:.0f}-{hi:.0f} nm", lambda: self.masks.append((lo, hi)))
+        self.masks_changed.emit()
+
+    def remove_mask(self, index: int) -> None:
+        lo, hi = self.masks[index]
+        self._edit(f"Unmask {lo:.0f}-{hi:.0f} nm", lambda: self.masks.pop(index))
+        self.masks_changed.emit()
+
+    def clear_masks(self) -> None:
+        if self.masks:
+            self._edit("Remove all masks", self.masks.clear)
+            self.masks_changed.emit()
+
+    # -- fit --------------------------------------------------------------------------
+    def recipe(self, name: str = ""):
+        """The current setup as a :class:`fitting.recipe.Recipe` (what a batch would run).
+
+        The single fit in the app goes through the same recipe, so it gives
+        exactly what a batch run of the same file would give.
+        """
+        o = self.options
+        fit = FitOptions(method=o["method"], angle_deg=o["angle_deg"],
+                         polarization=o["polarization"], fit_scale=o["fit_scale"],
+                         fit_offset=o["fit_offset"], band_gap=o["band_gap"])
+        reader = self.reader_options.to_dict() if self.reader_options is not None else {}
+        rng = o.get("fit_range_nm") or (None, None)
+        return Recipe(Stack.from_dict(self.stack.to_dict()), name=name, reader=reader,
+                      fit_options=fit.to_dict(), range_nm=tuple(rng),
+                      masks_nm=[tuple(m) for m in self.masks])
+
+    def fit_inputs(self):
+        """(spectrum, fresh stack copy, FitOptions with range and masks) for one fit."""
+        if self.spectrum is None:
+            raise FitError("no spectrum loaded: open a measured spectrum first (Ctrl+O)")
+        recipe = self.recipe()
+        return self.spectrum, recipe.new_stack(), recipe.make_fit_options(self.spectrum)
+
+    def apply_recipe(self, recipe, text: str = "Load recipe") -> None:
+        """Take stack, fit options, range and masks from a recipe (undoable)."""
+        fo = dict(recipe.fit_options or {})
+        options = default_options()
+        for k in options:
+            if k in fo and k != "fit_range_nm":
+                options[k] = fo[k]
+        lo, hi = recipe.range_nm
+        if lo is not None or hi is not None:
+            options["fit_range_nm"] = (lo if lo is not None else 1.0,
+                                       hi if hi is not None else 1e5)
+        stack = recipe.new_stack()
+
+        def apply():
+            self.stack = stack
+            self.options = options
+            self.masks = [tuple(m) for m in recipe.masks_nm]
+
+        self._edit(text, apply)
+        if recipe.reader:
+            from fitting.reader import ReaderOptions
+            self.reader_options = ReaderOptions.from_dict(dict(recipe.reader))
+        self.stack_changed.emit()
+        self.options_changed.emit()
+        self.masks_changed.emit()
+
+    def set_result(self, result, *, apply: bool = True) -> None:
+        """Store a fit result; with ``apply`` write the fitted values into the stack (undoable)."""
+        self.result = result
+        if result is not None and apply and not result.aborted and result.stack:
+            try:
+                fitted = Stack.from_dict(result.stack)
+            except PellucidError:
+                fitted = None
+            if fitted is not None:
+                self.set_stack(fitted, "Apply fit result")
+        self.result_changed.emit()
+
+    def clear_result(self) -> None:
+        self.result = None
+        self.result_changed.emit()
+
+    def spectrum_for_fit(self):
+        """The spectrum with masks applied (what the fit and the plot's 'used' points see)."""
+        if self.spectrum is None:
+            return None
+        s = self.spectrum
+        if self.masks:
+            s = s.masked_windows(self.masks)
+        return s
+
+    def replace_spectrum_values(self, **changes) -> None:
+        if self.spectrum is not None:
+            self.set_spectrum(replace(self.spectrum, **changes), path=self.spectrum_path,
+                              reader_options=self.reader_options)

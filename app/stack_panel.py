@@ -1,0 +1,259 @@
+"""The "Sample stack" section: substrate, film layers, each layer's model and parameters.
+
+Layers are listed as they sit on the sample, from the ambient (top) down to
+the substrate (bottom), which is how the light meets them. All edits go
+through the :class:`~app.session.Session` and can be undone.
+"""
+
+from __future__ import annotations
+
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtWidgets import (QComboBox, QDoubleSpinBox, QFileDialog, QFormLayout,
+                               QHBoxLayout, QInputDialog, QLabel, QListWidget, QListWidgetItem,
+                               QPushButton, QToolButton, QVBoxLayout, QWidget)
+
+from fitting.errors import PellucidError
+from fitting.substrates import SUBSTRATE_LIBRARY
+
+from .param_table import ParamTableModel, ParamTableView
+from .session import MODEL_CHOICES, SUBSTRATE_NAMES, model_choice_of
+
+__all__ = ["StackPanel"]
+
+
+class StackPanel(QWidget):
+    """Substrate chooser, layer list with add/remove/reorder, model chooser, parameter table.
+
+    Signals
+    -------
+    error(str, str) : title and message of an error to show in a dialog
+    status(str, bool) : a status-bar message (True = refusal)
+    """
+
+    error = Signal(str, str)
+    status = Signal(str, bool)
+
+    def __init__(self, session, parent=None):
+        super().__init__(parent)
+        self.session = session
+        self._updating = False
+
+        # Substrate --------------------------------------------------------------------
+        self.substrate_combo = QComboBox()
+        for key in SUBSTRATE_LIBRARY:
+            self.substrate_combo.addItem(SUBSTRATE_NAMES.get(key, key), key)
+        self.substrate_combo.setToolTip("Substrate material (thick, incoherent; its "
+                                        "back-side reflection is included)")
+        self.substrate_combo.currentIndexChanged.connect(self._on_substrate)
+        self.substrate_thickness = QDoubleSpinBox()
+        self.substrate_thickness.setRange(0.01, 100.0)
+        self.substrate_thickness.setDecimals(3)
+        self.substrate_thickness.setSuffix(" mm")
+        self.substrate_thickness.setSingleStep(0.1)
+        self.substrate_thickness.setKeyboardTracking(False)
+        self.substrate_thickness.setToolTip("Substrate thickness in mm (sets its absorption "
+                                            "path; fringes do not depend on it)")
+        self.substrate_thickness.valueChanged.connect(self._on_substrate_thickness)
+        self.substrate_n = QDoubleSpinBox()
+        self.substrate_n.setRange(1.0, 4.0)
+        self.substrate_n.setDecimals(4)
+        self.substrate_n.setSingleStep(0.01)
+        self.substrate_n.setKeyboardTracking(False)
+        self.substrate_n.setPrefix("n = ")
+        self.substrate_n.setToolTip("Refractive index of a glass described by one constant n")
+        self.substrate_n.valueChanged.connect(self._on_substrate_n)
+
+        # Layers -----------------------------------------------------------------------
+        self.layer_list = QListWidget()
+        self.layer_list.setToolTip("Film layers as they sit on the sample: the top row faces "
+                                   "the light source side (ambient), the bottom row lies on "
+                                   "the substrate. Double-click to rename.")
+        self.layer_list.setMaximumHeight(72)
+        self.layer_list.currentRowChanged.connect(self._on_layer_selected)
+        self.layer_list.itemDoubleClicked.connect(self._rename)
+
+        self.add_button = QToolButton()
+        self.add_button.setText("Add layer")
+        self.add_button.setToolTip("Add a film layer on top of the selected one")
+        self.add_button.setPopupMode(QToolButton.InstantPopup)
+        from PySide6.QtWidgets import QMenu
+        menu = QMenu(self.add_button)
+        for key, label in MODEL_CHOICES.items():
+            act = menu.addAction(label)
+            act.triggered.connect(lambda _=False, k=key: self.add_layer(k))
+        self.add_button.setMenu(menu)
+        self.remove_button = QPushButton("Remove")
+        self.remove_button.setToolTip("Remove the selected layer (can be undone)")
+        self.remove_button.clicked.connect(self._remove)
+        self.up_button = QPushButton("Move up")
+        self.up_button.setToolTip("Move the selected layer one place toward the ambient")
+        self.up_button.clicked.connect(lambda: self._move(-1))
+        self.down_button = QPushButton("Move down")
+        self.down_button.setToolTip("Move the selected layer one place toward the substrate")
+        self.down_button.clicked.connect(lambda: self._move(+1))
+
+        self.model_combo = QComboBox()
+        for key, label in MODEL_CHOICES.items():
+            self.model_combo.addItem(label, key)
+        self.model_combo.setToolTip("Dispersion model of the selected layer: how n and κ "
+                                    "vary with wavelength")
+        self.model_combo.activated.connect(self._on_model)
+
+        self.table_model = ParamTableModel(session, self)
+        self.table = ParamTableView(self.table_model)
+        self.table.setMinimumHeight(140)
+        self.table_model.refused.connect(lambda msg, _i: self.status.emit(msg, True))
+
+        # Layout -----------------------------------------------------------------------
+        form = QFormLayout()
+        form.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
+        form.addRow("Substrate:", self.substrate_combo)
+        sub_row = QHBoxLayout()
+        sub_row.addWidget(self.substrate_thickness)
+        sub_row.addWidget(self.substrate_n)
+        form.addRow("", sub_row)
+        buttons = QHBoxLayout()
+        for b in (self.add_button, self.remove_button, self.up_button, self.down_button):
+            buttons.addWidget(b)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(4, 4, 4, 4)
+        lay.addLayout(form)
+        lay.addWidget(QLabel("Film layers (top = ambient side):"))
+        lay.addWidget(self.layer_list)
+        lay.addLayout(buttons)
+        model_row = QFormLayout()
+        model_row.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
+        model_row.addRow("Model:", self.model_combo)
+        lay.addLayout(model_row)
+        lay.addWidget(self.table, 1)
+
+        session.stack_changed.connect(self.refresh)
+        self.refresh()
+
+    # -- view from session ----------------------------------------------------------------
+    def refresh(self):
+        self._updating = True
+        try:
+            st = self.session.stack
+            sub = st.substrate
+            i = self.substrate_combo.findData(sub.library)
+            if i < 0:
+                if self.substrate_combo.findData("") < 0:
+                    self.substrate_combo.addItem("Custom material", "")
+                i = self.substrate_combo.findData("")
+            self.substrate_combo.setCurrentIndex(i)
+            self.substrate_thickness.setValue(sub.thickness_mm)
+            is_glass = sub.library == "generic_glass"
+            self.substrate_n.setVisible(is_glass)
+            if is_glass:
+                self.substrate_n.setValue(sub.material.params["n"].value)
+            row = self.layer_list.currentRow()
+            self.layer_list.clear()
+            for layer in st.layers:
+                it = QListWidgetItem(f"{layer.name}   —   {layer.material.describe()}, "
+                                     f"{layer.thickness.value:.1f} nm")
+                it.setToolTip(f"Layer '{layer.name}': {layer.material.describe()}")
+                self.layer_list.addItem(it)
+            if st.layers:
+                row = min(max(row, 0), len(st.layers) - 1)
+                self.layer_list.setCurrentRow(row)
+            has = bool(st.layers)
+            for w in (self.remove_button, self.up_button, self.down_button, self.model_combo,
+                      self.table):
+                w.setEnabled(has)
+            self._sync_layer(row if has else -1)
+        finally:
+            self._updating = False
+
+    def _sync_layer(self, row: int):
+        layers = self.session.stack.layers
+        if 0 <= row < len(layers):
+            key = model_choice_of(layers[row].material)
+            self.model_combo.setCurrentIndex(self.model_combo.findData(key))
+        if self.table_model.layer_index != row:
+            self.table_model.set_layer(row)
+        self.table.resizeColumnsToContents()
+
+    def selected_row(self) -> int:
+        return self.layer_list.currentRow()
+
+    # -- edits ------------------------------------------------------------------------------
+    def _guard(self, title, fn, *a, **kw):
+        try:
+            return fn(*a, **kw)
+        except PellucidError as exc:
+            self.status.emit(str(exc), True)
+            self.error.emit(title, str(exc))
+            self.refresh()
+            return None
+
+    def _on_layer_selected(self, row):
+        if not self._updating:
+            self._sync_layer(row)
+
+    def _on_substrate(self, _i):
+        if self._updating:
+            return
+        key = self.substrate_combo.currentData()
+        if key:
+            self._guard("Substrate not changed", self.session.set_substrate, key)
+
+    def _on_substrate_thickness(self, v):
+        if not self._updating:
+            self._guard("Substrate not changed", self.session.set_substrate, thickness_mm=v)
+
+    def _on_substrate_n(self, v):
+        if not self._updating:
+            self._guard("Substrate not changed", self.session.set_substrate, "generic_glass",
+                        n=v)
+
+    def _table_file(self):
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Open an n, κ table", "",
+            "n, κ tables (*.csv *.txt *.dat *.nk);;All files (*)")
+        return path or None
+
+    def add_layer(self, key: str, *, table_path=None):
+        if key == "tabulated" and table_path is None:
+            table_path = self._table_file()
+            if table_path is None:
+                return None
+        row = max(self.selected_row(), 0)
+        name = self._guard("Layer not added", self.session.add_layer, key, index=row,
+                           table_path=table_path)
+        if name is not None:
+            self.layer_list.setCurrentRow(row)
+            self.status.emit(f"Added layer '{name}'", False)
+        return name
+
+    def _remove(self):
+        row = self.selected_row()
+        if row >= 0:
+            self._guard("Layer not removed", self.session.remove_layer, row)
+
+    def _move(self, delta):
+        row = self.selected_row()
+        if row >= 0:
+            j = self.session.move_layer(row, delta)
+            self.layer_list.setCurrentRow(j)
+
+    def _on_model(self, _i):
+        row = self.selected_row()
+        key = self.model_combo.currentData()
+        if row < 0 or key == model_choice_of(self.session.stack.layers[row].material):
+            return
+        table = self._table_file() if key == "tabulated" else None
+        if key == "tabulated" and table is None:
+            self.refresh()
+            return
+        self._guard("Model not changed", self.session.set_layer_model, row, key,
+                    table_path=table)
+
+    def _rename(self, item):
+        row = self.layer_list.row(item)
+        old = self.session.stack.layers[row].name
+        name, ok = QInputDialog.getText(self, "Rename layer",
+                                        "Layer name (letters and digits, starting with a "
+                                        "letter):", text=old)
+        if ok and name and name != old:
+            self._guard("Layer not renamed", self.session.rename_layer, row, name)
