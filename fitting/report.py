@@ -10,8 +10,10 @@ Pages, in order (A4 portrait):
 3. **Optical constants**: n and κ of all successful spectra overlaid (evenly
    subsampled for big batches), read from each spectrum's exported files.
 4. **Failed spectra** (only if any): each with the reason it failed.
-5. **Worst fits**: the successful fits with the highest reduced χ², two per page,
-   each redrawn from its exported curves.
+5. **Fits that did not converge** (only failures that still exported their curves,
+   e.g. status ``"failed"`` from the batch runner), then the **worst fits**: the
+   successful fits with the highest reduced χ². ``worst`` of each at most, two per
+   page, each redrawn from its exported curves with its reason or warnings.
 
 Summary rows
 ------------
@@ -367,21 +369,32 @@ def _failed_page(fig, items, info):
     ax.set_ylim(0, 1)
 
 
-def _worst_page(fig, items, results_dir, key, info):
-    subs = _panels(fig, "Worst fits (highest reduced χ²)", (5,) * len(items) +
-                   ((5,) if len(items) == 1 else ()))
+def _has_curves(folder: Path) -> bool:
+    return any(folder.glob("*_curves.csv")) or any(folder.glob("*_result.json"))
+
+
+def _two_lines(text: str) -> str:
+    """At most two lines of about 90 characters (what fits the page width)."""
+    lines = textwrap.wrap(text, 90)
+    if len(lines) > 2:
+        lines = [lines[0], _clip(" ".join(lines[1:]), 90)]
+    return "\n".join(lines)
+
+
+def _worst_page(fig, items, results_dir, key, info, heading):
+    subs = _panels(fig, heading, (5,) * len(items) + ((5,) if len(items) == 1 else ()))
     for sub, (i, row) in zip(subs, items):
         d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
         title = (f"#{i + 1}  {_short(_display_name(row, info), 50)}   d = {_pm(d, s)} nm   "
                  rf"$\chi^2_\mathrm{{red}}$ = {_fmt(row.get('redchi'), '{:.3g}')}")
         texts = _warn_texts(row)
         nw = _warn_count(row)
-        if texts:   # at most two lines of about 90 characters fit the page width
+        if not row_ok(row):
+            reason = row.get("reason") or "no reason recorded"
+            title += "\n" + _two_lines(f"{row.get('status', 'failed')}: {reason}")
+        elif texts:
             sentences = [t if t[-1] in ".!?" else t + "." for t in texts]
-            lines = textwrap.wrap("warnings: " + " ".join(sentences), 90)
-            if len(lines) > 2:
-                lines = [lines[0], _clip(" ".join(lines[1:]), 90)]
-            title += "\n" + "\n".join(lines)
+            title += "\n" + _two_lines("warnings: " + " ".join(sentences))
         elif nw:
             title += f"   ({nw} warning{'s' if nw > 1 else ''})"
         curves = None
@@ -420,7 +433,8 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
         Specification limits by row key, e.g. ``{"film_thickness": {"min": 475,
         "max": 525}}`` (``{"target", "tol"}`` and recipe ``Limit`` objects work too).
     worst : int
-        How many of the worst successful fits get a fit plot.
+        How many of the worst successful fits (and, separately, of the failures
+        with exported curves) get a fit plot.
 
     Returns
     -------
@@ -499,13 +513,18 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
         pages.append((False, lambda fig, items=failed[start:start + FAILED_PER_PAGE]:
                       _failed_page(fig, items, info)))
 
+    # Fits that ran but did not converge still have curves worth seeing; they come
+    # first, then the finished fits with the highest reduced χ².
+    n_worst = max(int(worst), 0)
+    unconverged = [i for i, r in failed if _has_curves(_result_dir(r, results_dir))][:n_worst]
     ranked = sorted(ok_idx, key=lambda i: -_num(rows[i].get("redchi"))
-                    if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)
-    ranked = ranked[:max(int(worst), 0)]
-    for start in range(0, len(ranked), 2):
-        items = [(i, rows[i]) for i in ranked[start:start + 2]]
-        pages.append((True, lambda fig, items=items:
-                      _worst_page(fig, items, results_dir, key, info)))
+                    if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)[:n_worst]
+    for group, heading in ((unconverged, "Fits that did not converge"),
+                           (ranked, "Worst fits (highest reduced χ²)")):
+        for start in range(0, len(group), 2):
+            items = [(i, rows[i]) for i in group[start:start + 2]]
+            pages.append((True, lambda fig, items=items, heading=heading:
+                          _worst_page(fig, items, results_dir, key, info, heading)))
 
     meta = {"Title": f"Pellucid batch report{': ' + rname if rname else ''}",
             "Creator": info["software"],

@@ -216,3 +216,18 @@ def test_rows_from_the_batch_runner(tmp_path):
     assert "1 of 2" in text and "Permission denied" in text
     assert "530.0" in text and "FAIL" in text
     assert "no readable" not in page_text(pdf, 3)
+
+
+@needs_pdftotext
+def test_unconverged_fit_with_curves_is_plotted_first(batch, tmp_path):
+    rows, root = batch
+    res = make_result("stuck", 505.0, seed=9, success=False, band_gap=False, npts=80)
+    export.export_result(res, root / "stuck", stem="stuck", provenance={}, plots=())
+    rows = rows + [{"file": "/lab/run4/stuck.csv", "status": "failed", "result_dir": "stuck",
+                    "reason": res.message, "film_thickness": 505.0, "redchi": 40.0}]
+    pdf = report.write_batch_report(rows, root, tmp_path / "r.pdf", spec=SPEC, worst=1)
+    # overview, thickness, optical, failed list, 1 unconverged plot, 1 worst plot
+    assert len(render(pdf, tmp_path, dpi=15)) == 6
+    text = page_text(pdf, 5)
+    assert "did not converge" in text and "stuck.csv" in text and "2000 evaluations" in text
+    assert "coupon_02" in page_text(pdf, 6)          # then the worst finished fit
