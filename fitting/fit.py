@@ -36,6 +36,7 @@ References
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import threading
 import time
@@ -308,23 +309,28 @@ def _run(obj: Objective, options: FitOptions):
                               f"{len(starts)} start(s) from the thickness scan")
             if plan is not None:
                 # Stage A: thickness and index on the transparent fringe region, the
-                # absorption held at its start; a basin far worse here is dropped.
-                stage_a = []
-                for i, (label, values) in enumerate(starts):
-                    lo = 0.3 + 0.25 * i / len(starts)
-                    obj.set_stage("polish", lo, lo + 0.25 / len(starts),
-                                  30 * len(obj.var_names), f"fringe fit of {label}")
-                    # A basin that needs more than this is not the one (common practice:
-                    # a right basin converges in a few Jacobians).
-                    res = obj.minimize("least_squares", values, fixed=plan["fixed"],
-                                       masks=plan["masks"], x_scale="jac",
-                                       max_nfev=12 * (len(obj.var_names) + 1))
-                    stage_a.append((float(res.chisqr), label, res.params.valuesdict()))
-                    obj.check()
-                best_a = min(c for c, *_ in stage_a)
-                starts = [(label, v) for c, label, v in sorted(stage_a, key=lambda t: t[0])
-                          if c <= 3.0 * best_a]
-                info["stage_a"] = [{"label": label, "chisqr": c} for c, label, _ in stage_a]
+                # absorption edge held at its start. Each stage runs for every surviving basin; a basin far worse than
+                # the best after a stage is dropped (ratio 3, common practice).
+                pool = [(math.inf, label, values) for label, values in starts]
+                n_st = len(plan["stages"])
+                for j, masks in enumerate(plan["stages"]):
+                    done = []
+                    for i, (_, label, values) in enumerate(pool):
+                        lo = 0.3 + 0.25 * (j + i / len(pool)) / n_st
+                        obj.set_stage("polish", lo, lo + 0.25 / (n_st * len(pool)),
+                                      10 * (len(obj.var_names) + 1), f"fringe fit of {label}")
+                        # A right basin converges in a few Jacobians; one that needs more
+                        # than this cap is not the one.
+                        res = obj.minimize("least_squares", values, fixed=plan["fixed"],
+                                           masks=masks, x_scale="jac",
+                                           max_nfev=10 * (len(obj.var_names) + 1))
+                        done.append((float(res.chisqr), label, res.params.valuesdict()))
+                        obj.check()
+                    best_a = min(c for c, *_ in done)
+                    pool = sorted((t for t in done if t[0] <= 3.0 * best_a), key=lambda t: t[0])
+                    info.setdefault("stage_a", []).append(
+                        [{"label": label, "chisqr": c} for c, label, _ in done])
+                starts = [(label, v) for _, label, v in pool]
             for i, (label, values) in enumerate(starts):
                 lo = 0.55 + 0.4 * i / len(starts)
                 obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
@@ -408,6 +414,16 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     seed = autostart.envelope_seed(part.wl, part.y, part.quantity, sub_n) or \
         autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
     info["seed"] = seed.to_dict()
+    # Fringes closer than ~4 data points are not resolved: their extrema heights (and
+    # so the seed's n there) are wrong, and a fit there can slip orders.
+    wl_res = 0.0
+    if seed.has_fringes and seed.thickness_nm and seed.n_ref and part.wl.size > 1:
+        dl = float(np.median(np.diff(part.wl)))
+        wl_res = math.sqrt(8 * 1.15 * seed.n_ref * seed.thickness_nm * dl)
+        if seed.n_points:
+            lam, nn = (np.asarray(a, float) for a in seed.n_points)
+            ok = lam >= wl_res
+            seed = dataclasses.replace(seed, n_points=(lam[ok], nn[ok]))
     pre = layer.name + "_"
     local = {k: start[gmap[pre + k]] for k in mat.params}
     free = [k for k in mat.params if gmap[pre + k] in obj.var_names]
@@ -451,12 +467,20 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     # but much about the (not yet fitted) absorption, so the scan leaves them out.
     # Without fringes the same holds for the part of the range where the film at its
     # start values would absorb noticeably at half the scan's largest thickness.
-    wl_range = (0.0 if seed.fringe_range_nm is None else 0.97 * seed.fringe_range_nm[0],
-                math.inf)
+    wl_range = (0.0 if seed.fringe_range_nm is None else
+                max(0.97 * seed.fringe_range_nm[0], wl_res), math.inf)
     d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
+    # Many fringes: scan on the long-wavelength half (in wavenumber) only, where the
+    # start's dispersion error shifts the fringe phase least; the staged polish then
+    # extends to the whole fringe region (continuation in wavelength).
+    long_range = None
+    if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
+        w_lo = max(wl_range[0], float(part.wl.min()))
+        w_hi = min(seed.fringe_range_nm[1], float(part.wl.max()))
+        long_range = (2.0 / (1.0 / w_lo + 1.0 / w_hi), math.inf)
     scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
                                     options.fit_scale, options.fit_offset, check=obj.check,
-                                    wl_range=wl_range, d_typical=d_typ)
+                                    wl_range=long_range or wl_range, d_typical=d_typ)
     n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
     basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
                                    same_nd=float(part.wl.min()) / 8)
@@ -491,22 +515,23 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         if b:
             for _, v in starts:
                 v[g2] = b[0][0]
-    # The staged polish: which points are the transparent fringe region, and which
-    # parameters (the film's absorption) wait for the second stage.
-    plan = None
-    if wl_range is not None:
+    # The staged polish: which points are the transparent fringe region (first its
+    # long-wavelength half if there are many fringes), and which parameters (the
+    # film's absorption edge) wait for the full fit.
+    edge = set(autostart.edge_params(mat))
+    fixed = [gmap[pre + k] for k in mat.params if k in edge and gmap[pre + k] in obj.var_names]
+    stages = []
+    for rng in ([long_range] if long_range else []) + [wl_range]:
         masks = []
         for p in obj.parts:
-            m = autostart.fringe_region(p, mat, local, wl_range, d_typ) if p in scan_parts \
-                else None
+            m = autostart.fringe_region(p, mat, local, rng, d_typ) if p in scan_parts else None
             masks.append(np.ones(p.wl.size, bool) if m is None else m)
-        edge = set(autostart.edge_params(mat))
-        fixed = [gmap[pre + k] for k in mat.params
-                 if k in edge and gmap[pre + k] in obj.var_names]
-        if fixed and not all(m.all() for m in masks):
-            plan = {"masks": masks, "fixed": fixed}
-        elif fixed:
-            plan = {"masks": None, "fixed": fixed}
+        if all(m.all() for m in masks):
+            if not fixed:
+                continue            # the same as the final fit
+            masks = None
+        stages.append(masks)
+    plan = {"stages": stages, "fixed": fixed} if stages else None
     return starts or [("start values", values)], plan
 
 
@@ -583,10 +608,11 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
             gnames = [gmap[f"{layer.name}_{k}"] for k in layer.material.params]
             key = layer.name
             if part.index > 0:
-                if all(g == gn for g, gn in zip(gnames, [
-                        dict((loc, g) for g, loc in obj.parts[0].names).get(
-                            f"{layer.name}_{k}") for k in layer.material.params])):
-                    continue          # same material parameters as in the first part
+                g0 = dict((loc, g) for g, loc in obj.parts[0].names)
+                same = [g0.get(f"{layer.name}_{k}") for k in layer.material.params]
+                if all(g == h or (h is not None and values[g] == values[h])
+                       for g, h in zip(gnames, same)):
+                    continue          # the same material as in the first part
                 key = f"p{part.index + 1}_{layer.name}"
             optical[key] = _optical(part, layer, local, gmap, covar, cov_index)
 
