@@ -22,6 +22,7 @@ optional; missing or unreadable values are shown as "–".
 
 ==========================  =============================================================
 ``file``                    input spectrum (path or name)
+``sha256``                  SHA-256 of the input file (the table shows its first 10 digits)
 ``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit;
                             anything else (``"failed"``, ``"error"``, ``"skipped"``) is a
                             failure
@@ -65,7 +66,7 @@ from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thicknes
 __all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES"]
 
 #: Summary-row keys the report reads (see the module docstring).
-ROW_KEYS = ("file", "status", "reason", "film_thickness", "film_thickness_sigma", "n_633",
+ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickness_sigma", "n_633",
             "redchi", "warnings", "spec_pass", "result_dir")
 A4_INCHES = (8.27, 11.69)
 ROWS_FIRST_PAGE = 36      # table rows under the overview block
@@ -268,7 +269,8 @@ def _footer(fig, text, page, pages):
 
 
 _COLS = [  # header, x position (fraction of the table width), alignment
-    ("#", 0.035, "right"), ("file", 0.05, "left"), ("status", 0.45, "left"),
+    ("#", 0.035, "right"), ("file", 0.05, "left"), ("sha256", 0.335, "left"),
+    ("status", 0.45, "left"),
     ("thickness (nm)", 0.69, "right"), ("n(633)", 0.77, "right"),
     ("χ²_red", 0.86, "right"), ("spec", 0.93, "right"), ("warn.", 0.995, "right"),
 ]
@@ -281,7 +283,8 @@ def _table_cells(i, row, key, spec, info):
     thick = _pm(d, s)
     state = _spec_state(row, spec, key)
     status = str(row.get("status", "ok"))
-    cells = [str(i + 1), _short(_display_name(row, info), 46), _short(status, 12)]
+    sha = str(row.get("sha256") or row.get("input_sha256") or "")[:10] or "–"
+    cells = [str(i + 1), _short(_display_name(row, info), 34), sha, _short(status, 12)]
     if ok:
         cells += [thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
                   _fmt(row.get("redchi"), "{:.3g}"),
@@ -313,7 +316,8 @@ def _draw_table(fig, top, rows, start, key, spec, info):
             if (name == "status" and not ok) or (name == "spec" and state == "fail"):
                 color = PALETTE["fail"]
             ax.text(x, y, text, ha=ha, va="center", fontsize=7, color=color,
-                    family=_MONO if name in ("thickness (nm)", "n(633)", "χ²_red") else None)
+                    family=_MONO if name in ("sha256", "thickness (nm)", "n(633)", "χ²_red")
+                    else None)
         if not ok:
             reason = str(row.get("reason") or row.get("message") or "no reason recorded")
             ax.text(0.56, y, _clip(reason, 68), ha="left", va="center", fontsize=6.5,
@@ -325,7 +329,9 @@ def _overview(fig, rows, key, spec, info):
     lines = [("software", info["software"]), ("recipe", info["recipe_name"] or "–"),
              ("recipe hash", info["recipe_hash"] or "–"), ("created", info["created"]),
              ("input folder", _short(info["input_folder"], 80) or "–"),
-             ("results folder", _short(info["results_dir"], 80))]
+             ("results folder", _short(info["results_dir"], 80)),
+             ("input hashes", "first 10 hex digits of each file's SHA-256 below; "
+                              "full values in the batch summary and each result")]
     for j, (k, v) in enumerate(lines):
         fig.text(0.06, 0.925 - j * 0.018, k, fontsize=8.5, color="#555555")
         fig.text(0.22, 0.925 - j * 0.018, v, fontsize=8.5)

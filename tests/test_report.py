@@ -59,9 +59,10 @@ def batch(tmp_path_factory):
         name = f"coupon_{i + 1:02d}"
         res = make_result(name, d, seed=i, band_gap=False, npts=120)
         export.export_result(res, root / name, stem=name, provenance={}, plots=())
-        rows.append({"file": f"/lab/run4/{name}.csv", "status": "ok", "film_thickness": d,
-                     "film_thickness_sigma": 1.4, "n_633": res.optical["film"].at(633)[0],
-                     "redchi": redchi, "warnings": ["a"] * i, "result_dir": name})
+        rows.append({"file": f"/lab/run4/{name}.csv", "sha256": f"{i + 10:x}" * 64,
+                     "status": "ok", "film_thickness": d, "film_thickness_sigma": 1.4,
+                     "n_633": res.optical["film"].at(633)[0], "redchi": redchi,
+                     "warnings": ["a"] * i, "result_dir": name})
     rows.insert(2, {"file": "/lab/run4/coupon_x.csv", "status": "failed",
                     "reason": "file holds absorbance above 6; check the instrument mode"})
     return rows, root
@@ -107,6 +108,7 @@ def test_overview_shows_provenance_failures_and_spec(pdf):
     assert "FAIL" in text and "failed" in text
     assert "absorbance above 6" in text             # the failure's reason is in the table
     assert "505.0 ± 1.4" in text
+    assert "bbbbbbbbbb" in text and "b" * 11 not in text    # coupon_02's hash, 10 digits
     failed_page = page_text(pdf, 4)
     assert "coupon_x.csv" in failed_page and "check the instrument mode" in failed_page
 
