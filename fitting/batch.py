@@ -17,8 +17,8 @@ What the runner guarantees:
   written *last*. ``summary.csv`` and ``summary.json`` are rewritten atomically
   after each spectrum. A killed run (Ctrl-C, SIGKILL, power cut) keeps every
   finished spectrum; ``resume=True`` skips those whose marker carries the same
-  recipe hash and input SHA-256, so the rerun's summary equals an
-  uninterrupted run's.
+  recipe hash, input SHA-256 and Pellucid version, so the rerun's summary
+  equals an uninterrupted run's.
 * **Provenance.** Software version, recipe hash, input SHA-256 and the time
   (UTC) are in every row, every marker and every export.
 * **Flat memory.** Only the small summary rows are kept, never fit results.
@@ -422,7 +422,11 @@ def _json_safe(obj):
 
 
 def read_marker(out_dir, path, sha256: str, rhash: str) -> dict | None:
-    """The summary row of an earlier run of this spectrum with this recipe, else None."""
+    """The summary row of an earlier run of this spectrum with this recipe, else None.
+
+    Reused only if the marker names the same recipe hash, input SHA-256 and
+    Pellucid version, and the spectrum did not end in an internal error.
+    """
     f = spectrum_folder(out_dir, path, sha256) / MARKER_NAME
     try:
         rec = json.loads(f.read_text(encoding="utf-8"))
@@ -430,9 +434,13 @@ def read_marker(out_dir, path, sha256: str, rhash: str) -> dict | None:
         return None
     if not isinstance(rec, dict) or rec.get("recipe_hash") != rhash:
         return None
+    if (rec.get("software") or {}).get("version") != __version__:
+        return None                 # another Pellucid version may fit differently
     row = rec.get("row")
     if not isinstance(row, dict) or (rec.get("input") or {}).get("sha256") != sha256:
         return None
+    if str(row.get("reason", "")).startswith("internal error"):
+        return None                 # a bug, not the file: worth another try
     return row
 
 
@@ -562,22 +570,37 @@ def iter_batch(paths, recipe: Recipe, out_dir, *, jobs: int | None = None,
                      "recipe_hash": rhash})
 
     stopped = False
+    active: dict[int, dict] = {}     # tasks started and not yet recorded
     try:
         if not todo:
             pass
         elif scheduler:
-            run = _run_dask(todo, scheduler, stop)
+            run = _run_dask(todo, scheduler, stop, active)
         elif (jobs or os.cpu_count() or 1) == 1 or len(todo) == 1:
-            run = _run_inline(todo, stop)
+            run = _run_inline(todo, stop, active)
         else:
-            run = _run_pool(todo, jobs or os.cpu_count() or 1, stop)
+            run = _run_pool(todo, jobs or os.cpu_count() or 1, stop, active)
         for task, r in (run if todo else ()):
             if r.get("status") == "stopped":
+                active.pop(task["index"], None)
                 stopped = True
                 continue
-            yield record(task["index"], r, False)
+            step = record(task["index"], r, False)
+            active.pop(task["index"], None)
+            yield step
         stopped = stopped or bool(stop is not None and stop.is_set() and len(rows) < total)
     finally:
+        # An interrupt can land after a spectrum's marker was written but before its
+        # row reached us; take such rows from their markers so the summary is complete.
+        for i, task in list(active.items()):
+            if i not in rows:
+                try:
+                    old = read_marker(out_dir, task["path"], sha256_of_file(task["path"]),
+                                      rhash)
+                except OSError:
+                    old = None
+                if old is not None:
+                    rows[i] = dict(old, index=i, file=task["path"])
         if rows:
             write_summary(rows.values(), columns, out_dir, header)
     pdf, report_error = (None, "")
@@ -600,10 +623,11 @@ def _stopped(stop) -> bool:
     return stop is not None and stop.is_set()
 
 
-def _run_inline(todo, stop):
+def _run_inline(todo, stop, active):
     for task in todo:
         if _stopped(stop):
             return
+        active[task["index"]] = task
         yield task, process_spectrum(task, stop=stop)
 
 
@@ -613,7 +637,7 @@ def _crash_row(task, why: str) -> dict:
                        rhash=task["recipe_hash"], status="error", reason=why)
 
 
-def _run_pool(todo, jobs: int, stop):
+def _run_pool(todo, jobs: int, stop, active):
     """Local worker processes, at most 2 x jobs tasks in flight (flat memory)."""
     ctx = multiprocessing.get_context("spawn")
     queue = list(reversed(todo))
@@ -625,6 +649,7 @@ def _run_pool(todo, jobs: int, stop):
             while queue and len(inflight) < 2 * jobs and not _stopped(stop):
                 task = queue.pop()
                 inflight[pool.submit(process_spectrum, task)] = task
+                active[task["index"]] = task
             if not inflight:
                 return
             done, _ = wait(inflight, timeout=0.5, return_when=FIRST_COMPLETED)
@@ -656,7 +681,7 @@ def _run_pool(todo, jobs: int, stop):
         pool.shutdown(wait=False, cancel_futures=True)
 
 
-def _run_dask(todo, address: str, stop):
+def _run_dask(todo, address: str, stop, active):
     """The same per-spectrum calls on an existing Dask distributed cluster."""
     try:
         from dask.distributed import Client, as_completed
@@ -676,6 +701,7 @@ def _run_dask(todo, address: str, stop):
             task = queue.pop()
             fut = client.submit(process_spectrum, task, pure=False)
             inflight[fut.key] = (fut, task)
+            active[task["index"]] = task
             return fut
 
         # A bounded window keeps the scheduler's memory flat for long batches.

@@ -266,3 +266,24 @@ def test_killed_batch_resumes_to_the_same_summary(tmp_path):
     assert len(reference) == n
     assert resumed == reference                       # same rows, statuses and values
     assert not list(out.glob("**/.*.tmp"))            # no temp files left behind
+
+
+def test_ctrl_c_keeps_finished_spectra(tmp_path):
+    write_spectra(tmp_path / "in", np.linspace(400, 700, 12), seed=12)
+    recipe = save_recipe(make_recipe(), tmp_path / "recipe.json")
+    out = tmp_path / "out"
+    proc = subprocess.Popen(_cli("batch", tmp_path / "in", "--out", out, "--recipe", recipe,
+                                 "--jobs", 1, "--no-report"),
+                            env=dict(os.environ, PYTHONPATH=str(ROOT)), cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while len(list(out.glob(f"spectra/*/{MARKER_NAME}"))) < 2:
+        assert proc.poll() is None and time.monotonic() < deadline
+        time.sleep(0.01)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "interrupted" in err and "--resume" in err and "Traceback" not in err
+    markers = list(out.glob(f"spectra/*/{MARKER_NAME}"))
+    assert 2 <= len(markers) < 12
+    assert len(_rows(out)) == len(markers)          # the summary lists every finished one
