@@ -102,7 +102,7 @@ def kk_integral(E_nodes, kappa_nodes, E_eval) -> np.ndarray:
     return 0.5 * np.sum(minus + plus, axis=1)
 
 
-def _energy_grid(wavelength_nm, kappa, extend: bool):
+def _energy_grid(wavelength_nm, kappa, extend: bool, shape: str = "decay"):
     wl = np.asarray(wavelength_nm, dtype=float)
     k = np.asarray(kappa, dtype=float)
     if wl.ndim != 1 or wl.size < 3 or k.shape != wl.shape:
@@ -123,10 +123,19 @@ def _energy_grid(wavelength_nm, kappa, extend: bool):
         # High side: power-law decay. Low side: κ falls linearly to 0 at E = 0
         # (a dielectric's κ vanishes in the far infrared; for conductors this is
         # only a guess, and its error is a smooth 1/E² term in band).
+        # ``shape="flat"`` is the other plausible guess, used to measure how much
+        # the unknown continuation matters: κ held at its end value over a factor
+        # 1.5 in energy before it decays (or falls to zero).
+        hold = 1.5 if shape == "flat" else 1.0
         hi = E[-1] * np.geomspace(1.0, _TAIL_SPAN, _TAIL_NODES + 1)[1:]
-        k_hi = kk[-1] * (E[-1] / hi) ** _TAIL_POWER
-        lo = np.linspace(0.0, E[0], 9)[1:-1] if kk[0] > 0 else np.zeros(0)
-        k_lo = kk[0] * lo / E[0]
+        k_hi = kk[-1] * np.minimum(1.0, (hold * E[-1] / hi) ** _TAIL_POWER)
+        e_lo = E[0] / hold
+        lo = np.linspace(0.0, e_lo, 9)[1:-1 if hold == 1.0 else None] if kk[0] > 0 else \
+            np.zeros(0)
+        k_lo = kk[0] * lo / e_lo
+        if kk[0] > 0 and hold > 1:
+            lo = np.concatenate((lo, np.linspace(e_lo, E[0], 8)[1:-1]))
+            k_lo = np.concatenate((k_lo, np.full(6, kk[0])))
         En = np.concatenate((lo, E, hi))
         kn = np.concatenate((k_lo, kk, k_hi))
     return E, kk, order, En, kn
@@ -189,6 +198,25 @@ def kk_n_from_kappa(wavelength_nm, kappa, *, n_anchor, extend: bool = True) -> n
     return out
 
 
+def _out_of_range_terms(E, diff, inner):
+    """Least-squares smooth terms that absorption outside the range can add in band.
+
+    A constant (the anchor's own error), an infrared term -1/E² (absorption far
+    below) and one ultraviolet pole 1/(E_p² - E²) above the range (the usual
+    Sellmeier "UV pole"; for E_p far above it becomes the E² term). E_p is
+    chosen on a grid from 1.05 to 20 E_max for the smallest residual.
+    """
+    best = None
+    for Ep in E[-1] * np.geomspace(1.05, 20.0, 30):
+        basis = np.column_stack((np.ones_like(E), 1.0 / E ** 2, 1.0 / (Ep ** 2 - E ** 2)))
+        coef, *_ = np.linalg.lstsq(basis[inner], diff[inner], rcond=None)
+        fit = basis @ coef
+        r = float(np.sum((diff - fit)[inner] ** 2))
+        if best is None or r < best[0]:
+            best = (r, fit)
+    return best[1]
+
+
 @dataclass(frozen=True)
 class KKCheck:
     """Outcome of :func:`kk_consistency`.
@@ -247,15 +275,23 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     -----
     How the finite range is accounted for. Absorption outside the range
     cannot be measured, but far from the range it only adds smooth terms to n in
-    band (Aspnes 1985; Lucarini et al. 2005, sec. 4.2): for the subtractive form
-    anchored at E_0, c_hi (E² - E_0²) from absorption far above and
-    c_lo (1/E_0² - 1/E²) from far below. These two terms are fitted by least
-    squares to n - n_kk and removed; whatever remains cannot come from
+    band (Aspnes 1985; Lucarini et al. 2005, sec. 4.2): absorption above the
+    range acts like a pole c_p/(E_p² - E²) with E_p above the range (the E²
+    term when far), absorption far below like -c_ir/E². These terms and a
+    constant (which refines the anchor, so one noisy point cannot shift the
+    curve) are fitted by least squares to n - n_kk and removed, with E_p
+    chosen on a grid above the range; whatever remains cannot come from
     absorption outside the range, and is an inconsistency. In addition:
 
     * κ is continued past the ends (see :func:`kk_n_from_kappa`) and the outer
       ``edge_fraction`` of the span is not compared, where the unknown shape of
       κ just outside matters most;
+    * the truncation sensitivity is measured: the integral is repeated with a
+      second plausible continuation (κ held at its end value over a factor 1.5
+      in energy before it decays); where the two differ by more than tol/2
+      after removing the smooth terms (typically next to an end where κ is
+      large and rising), n_kk is set by the unknown κ outside and the point is
+      not compared;
     * the discretisation error is estimated by repeating the integration on
       every second point (the error of the piecewise-linear rule falls as h²,
       so the full grid's error is about a third of the difference); the
@@ -306,9 +342,20 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     lspan = math.log(E[-1] / E[0])
     inner = ((E >= E[0] * math.exp(edge_fraction * lspan))
              & (E <= E[-1] * math.exp(-edge_fraction * lspan)))
-    basis = np.column_stack((np.ones_like(E), E ** 2 - E0 ** 2, 1.0 / E0 ** 2 - 1.0 / E ** 2))
-    coef, *_ = np.linalg.lstsq(basis[inner], (ns - n_raw)[inner], rcond=None)
-    n_kk_sorted = n_raw + basis @ coef
+    # Truncation sensitivity: the same integral with the other continuation of κ;
+    # what of the difference the smooth out-of-range terms cannot absorb is how much
+    # the unknown κ outside can move n_kk at each point. Points where that exceeds
+    # half the tolerance are not compared.
+    *_, En_b, kn_b = _energy_grid(wl, kappa, True, "flat")
+    Ib = kk_integral(En_b, kn_b, E)
+    delta = 2 / np.pi * ((Ib - Ib[i0]) - (I - I[i0]))
+    trunc = np.abs(delta - _out_of_range_terms(E, delta, inner))
+    inner &= trunc <= 0.5 * tol
+    if inner.sum() < 6:
+        raise ParameterError("wavelength_nm", f"{E.size} points",
+                             "too short a range for a Kramers-Kronig check: κ outside it "
+                             "decides n everywhere; measure a wider range")
+    n_kk_sorted = n_raw + _out_of_range_terms(E, ns - n_raw, inner)
     dev = (ns - n_kk_sorted)[inner]
     rms = float(np.sqrt(np.mean(dev ** 2)))
     mx = float(np.max(np.abs(dev)))

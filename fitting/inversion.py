@@ -1,0 +1,392 @@
+"""Point-by-point inversion: n and κ of one film at every wavelength, no dispersion model.
+
+With the film's thickness known (from a model fit or the envelope method) and
+every other layer fixed, T(λ) and R(λ) at one wavelength are two equations for
+the two unknowns n(λ), κ(λ). They have many solutions: the film's phase
+4πnd/λ repeats, so besides the physical n there are others about λ/(2d) apart.
+The inversion therefore walks the spectrum from the long-wavelength end, where
+the film is transparent and a start value is easy, and at each wavelength
+starts the 2x2 least-squares solve from the extrapolation of the solutions
+already found (continuation along the physically continuous branch). A
+solution that lands far from that prediction is a branch jump: it is retried
+from neighbouring candidate starts and the one closest to the prediction is
+kept; if none is close, the point is marked not ok and the walk goes on from
+the prediction.
+
+**T only.** One equation cannot give two unknowns. Pellucid then takes n(λ)
+from a smooth prior (a dispersion model or array the caller gives, by default
+the Cauchy curve of the envelope method, which needs fringes) and solves κ(λ)
+alone from T. Where the film is transparent this reproduces the prior's n and
+gives κ ≈ 0; near the edge κ follows the data, n stays the prior's.
+
+The result is checked with :func:`fitting.kramers_kronig.kk_consistency`: an
+inversion that followed a wrong branch, or data with a systematic error, give
+n and κ that no causal material has.
+
+Forward calculations use :mod:`fitting.optics` (the transfer-matrix engine of
+:class:`fitting.stack.Stack`), including its thickness-spread averaging.
+The spectral bandwidth of the stack is not applied (it couples neighbouring
+wavelengths, which a point-by-point solution cannot).
+
+References
+----------
+.. [1] J. C. Manifacier, J. Gasiot and J. P. Fillard, "A simple method for the
+       determination of the optical constants n, k and the thickness of a weakly
+       absorbing thin film", J. Phys. E 9, 1002 (1976).
+.. [2] D. P. Arndt et al., "Multiple determination of the optical constants of
+       thin-film coating materials", Appl. Opt. 23, 3571 (1984) (the ambiguity of
+       the (T, R) inversion and the choice of the continuous branch).
+.. [3] J. A. Dobrowolski, F. C. Ho and A. Waldorf, "Determination of optical
+       constants of thin film coating materials based on inverse synthesis",
+       Appl. Opt. 22, 3191 (1983).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import least_squares
+
+from .dispersion import Dispersion, check_wavelengths
+from .errors import FitError, ParameterError
+from .kramers_kronig import KKCheck, kk_consistency
+from .optics import stack_RT
+
+__all__ = ["InversionResult", "invert_point_by_point"]
+
+_GH_X, _GH_W = np.polynomial.hermite_e.hermegauss(7)
+_GH_W = _GH_W / _GH_W.sum()
+_N_BOUNDS = (0.05, 15.0)
+_K_BOUNDS = (0.0, 15.0)
+
+
+@dataclass(frozen=True)
+class InversionResult:
+    """n and κ of one film from point-by-point inversion.
+
+    Attributes
+    ----------
+    wavelength_nm, n, k : ndarray of shape (N,)
+        On the input grid (input order). Points not ok hold the best solution
+        found (or the prediction), so curves stay plottable; use ``ok``.
+    residual : ndarray of shape (N,)
+        RMS of (model - data) over the quantities used, per point.
+    ok : ndarray of bool, shape (N,)
+        Solved, on the continuous branch, with T above ``min_T``.
+    message : str
+    mode : {"T+R", "T"}
+        "T": κ from T with n from the prior.
+    layer : str
+    thickness_nm : float
+    kk : KKCheck or None
+        Kramers-Kronig check of the ok points (None if too few).
+    """
+
+    wavelength_nm: np.ndarray
+    n: np.ndarray
+    k: np.ndarray
+    residual: np.ndarray
+    ok: np.ndarray
+    message: str
+    mode: str
+    layer: str
+    thickness_nm: float
+    kk: KKCheck | None = None
+
+
+class _PointModel:
+    """R, T of the stack at one grid wavelength with the chosen film's N replaced."""
+
+    def __init__(self, stack, layer_name, wl, angle_deg, polarization):
+        names = [layer.name for layer in stack.layers]
+        if layer_name not in names:
+            raise ParameterError("layer_name", layer_name,
+                                 f"no such layer; the stack has {', '.join(names) or 'none'}")
+        if not 0 <= angle_deg < 90:
+            raise ParameterError("angle_deg", angle_deg, "angle of incidence must be in [0, 90)")
+        self.j = names.index(layer_name)
+        self.wl = wl
+        self.N_amb = stack.ambient.N(wl)
+        self.N_exit = stack.exit_medium.N(wl)
+        self.N_sub = stack.substrate.N(wl)
+        self.sub_d = stack.substrate.thickness_nm
+        self.N_films = [None if i == self.j else layer.material.N(wl)
+                        for i, layer in enumerate(stack.layers)]
+        self.d = [layer.thickness.value for layer in stack.layers]
+        self.spread = stack.thickness_spread
+        self.angle = math.radians(angle_deg)
+        self.pol = polarization
+
+    def RT_many(self, i, N):
+        """R, T at grid point ``i`` for an array of trial indices N of the film."""
+        N = np.atleast_1d(np.asarray(N, complex))
+        rep = lambda a: np.full(N.shape, a[i])  # noqa: E731
+        Ns = [N if f is None else rep(f) for f in self.N_films]
+        args = (rep(self.wl).real, rep(self.N_amb))
+        tail = (rep(self.N_sub), self.sub_d, rep(self.N_exit))
+        if self.spread > 0:
+            R = T = 0.0
+            for x, w in zip(_GH_X, _GH_W):
+                Ri, Ti = stack_RT(*args, Ns, [d * (1 + self.spread * x) for d in self.d], *tail,
+                                  angle_rad=self.angle, polarization=self.pol)
+                R, T = R + w * Ri, T + w * Ti
+            return R, T
+        return stack_RT(*args, Ns, self.d, *tail, angle_rad=self.angle, polarization=self.pol)
+
+    def RT(self, i, N):
+        R, T = self.RT_many(i, N)
+        return R[0], T[0]
+
+
+def _prior_on_grid(n_prior, wl):
+    if n_prior is None:
+        return None
+    if isinstance(n_prior, Dispersion):
+        return np.real(n_prior.N(wl))
+    a = np.asarray(n_prior, dtype=float)
+    if a.shape != wl.shape or not np.all(np.isfinite(a)):
+        raise ParameterError("n_prior", f"shape {a.shape}",
+                             f"must be a dispersion model or finite n on the grid {wl.shape}")
+    return a
+
+
+def _envelope_prior(stack, model, wl, T):
+    """Cauchy n(λ) from the envelope method, for T-only inversion without a prior."""
+    from .dispersion import Cauchy
+    from .envelope import cauchy_start, swanepoel_envelope
+    env = swanepoel_envelope(wl, T, np.real(model.N_sub))
+    if not env.ok:
+        raise FitError("point-by-point inversion from T alone needs n from somewhere: "
+                       f"the envelope method found none ({env.message}); give n_prior "
+                       "(a dispersion model or an n array) or measure R as well")
+    c = cauchy_start(env)
+    return np.real(Cauchy(urbach=False).N_unchecked(wl, {"A": c["A"], "B": c["B"], "C": 0.0}))
+
+
+def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
+                          n_start: float | None = None, n_prior=None, angle_deg: float = 0.0,
+                          polarization: str = "u", min_T: float = 1e-4,
+                          residual_tol: float = 1e-4, kk_check: bool = True
+                          ) -> InversionResult:
+    """Solve n(λ), κ(λ) of one film at every wavelength from measured T (and R).
+
+    Parameters
+    ----------
+    stack : Stack
+        The sample; the film ``layer_name`` has its thickness set (it is not
+        varied), every other layer and the substrate are used as they are.
+    layer_name : str
+        The film whose n and κ are sought.
+    wavelength_nm, T : array_like of shape (N,)
+        Measured transmittance as a fraction.
+    R : array_like of shape (N,), optional
+        Measured front-side reflectance. Without it, see ``n_prior``.
+    n_start : float, optional
+        n at the longest wavelength to start the continuation from (T+R mode).
+        Default: from the envelope method's Cauchy curve, else the film
+        material's n there.
+    n_prior : Dispersion or array_like of shape (N,), optional
+        T-only mode: n used at every wavelength while κ is solved from T.
+        Default: the envelope method's Cauchy curve.
+    angle_deg, polarization
+        Geometry, as for :meth:`fitting.stack.Stack.RT`.
+    min_T : float
+        Points with T below this carry no information on the film bulk and
+        are marked not ok.
+    residual_tol : float
+        Largest RMS residual (fraction) for a point to count as solved.
+    kk_check : bool
+        Run :func:`~fitting.kramers_kronig.kk_consistency` on the ok points.
+
+    Returns
+    -------
+    InversionResult
+
+    Raises
+    ------
+    ParameterError
+        For malformed input (shapes, unknown layer, NaN).
+    FitError
+        T-only mode with no n prior and no fringes to take one from.
+
+    Notes
+    -----
+    A branch jump is a solution whose n differs from the prediction by more
+    than 0.3 λ/(2d), a third of the spacing of the ambiguous solutions. Near
+    fringe extrema of a transparent film both T and R are stationary in n, so
+    n is least certain there (its error grows as the square root of the data
+    error) although the continuation still keeps the right branch.
+
+    References
+    ----------
+    .. [1] D. P. Arndt et al., Appl. Opt. 23, 3571 (1984).
+    .. [2] J. C. Manifacier, J. Gasiot and J. P. Fillard, J. Phys. E 9, 1002 (1976).
+    """
+    wl = check_wavelengths(wavelength_nm)
+    T = np.asarray(T, dtype=float)
+    if wl.ndim != 1 or T.shape != wl.shape or not np.all(np.isfinite(T)):
+        raise ParameterError("T", f"shape {T.shape}",
+                             f"must be finite numbers with the shape of wavelength_nm {wl.shape}")
+    if R is not None:
+        R = np.asarray(R, dtype=float)
+        if R.shape != wl.shape or not np.all(np.isfinite(R)):
+            raise ParameterError("R", f"shape {R.shape}",
+                                 f"must be finite numbers with the shape of wavelength_nm "
+                                 f"{wl.shape}")
+    if max(T.max(), -T.min()) > 1.5 or (R is not None and R.max() > 1.5):
+        raise ParameterError("T", float(T.max()), "must be a fraction 0..1 (divide percent "
+                             "by 100)")
+    model = _PointModel(stack, layer_name, wl, float(angle_deg), polarization)
+    d = model.d[model.j]
+    if not d > 0:
+        raise ParameterError(f"{layer_name}_thickness", d,
+                             "point-by-point inversion needs the film's thickness (> 0)")
+    mode = "T+R" if R is not None else "T"
+    prior = _prior_on_grid(n_prior, wl)
+    if mode == "T" and prior is None:
+        prior = _envelope_prior(stack, model, wl, T)
+
+    order = np.argsort(wl)[::-1]                 # long wavelengths first
+    n_out = np.full(wl.shape, np.nan)
+    k_out = np.full(wl.shape, np.nan)
+    res_out = np.full(wl.shape, np.nan)
+    ok = np.zeros(wl.shape, bool)
+    jumps = 0
+
+    if mode == "T+R":
+        if n_start is None:
+            n_start = _default_n_start(stack, layer_name, model, wl, T, order[0])
+        hist: list[tuple[float, float, float]] = []    # (λ, n, κ) of accepted points
+        for i in order:
+            lam = wl[i]
+            n_pred, k_pred = _predict(hist, lam, float(n_start))
+            spacing = lam / (2 * d)
+            jump = min(0.3 * spacing, 0.5)
+            fun = _residual_TR(model, i, T[i], R[i])
+            x, res = _solve(fun, (n_pred, k_pred))
+            if T[i] >= min_T and not (res <= residual_tol and abs(x[0] - n_pred) <= jump):
+                best = (x, res)
+                for start in _candidate_starts(model, i, T[i], R[i], n_pred, k_pred, spacing):
+                    xc, rc = _solve(fun, start)
+                    if rc <= residual_tol and (
+                            best[1] > residual_tol
+                            or abs(xc[0] - n_pred) < abs(best[0][0] - n_pred)):
+                        best = (xc, rc)
+                x, res = best
+                if abs(x[0] - n_pred) > jump:
+                    jumps += 1
+            n_out[i], k_out[i], res_out[i] = x[0], x[1], res
+            good = res <= residual_tol and abs(x[0] - n_pred) <= jump and T[i] >= min_T
+            ok[i] = good
+            if good:
+                hist.append((lam, x[0], x[1]))
+            elif T[i] < min_T:
+                # Opaque: the solution there is unreliable; continue from the prediction.
+                n_out[i], k_out[i] = x[0], x[1]
+    else:
+        k_prev = 0.0
+        for i in order:
+            fun = _residual_T(model, i, T[i], prior[i])
+            (kx,), res = _solve(fun, (max(k_prev, 0.0),), bounds=([_K_BOUNDS[0]], [_K_BOUNDS[1]]))
+            n_out[i], k_out[i], res_out[i] = prior[i], kx, res
+            ok[i] = res <= residual_tol and T[i] >= min_T
+            if ok[i]:
+                k_prev = kx
+
+    kk = None
+    if kk_check and ok.sum() >= 12:
+        try:
+            kk = kk_consistency(wl[ok], n_out[ok], k_out[ok])
+        except ParameterError:
+            kk = None
+    nbad = int((~ok).sum())
+    parts = [f"{mode} inversion of {layer_name!r} (d = {d:.1f} nm): {int(ok.sum())} of "
+             f"{wl.size} points solved"]
+    if nbad:
+        opaque = int((T < min_T).sum())
+        parts.append(f"{nbad} not ok" + (f" ({opaque} opaque, T < {min_T:g})" if opaque else ""))
+    if jumps:
+        parts.append(f"{jumps} branch jumps not resolved (check the thickness)")
+    if kk is not None:
+        parts.append("Kramers-Kronig consistent" if kk.consistent else
+                     "NOT Kramers-Kronig consistent")
+    return InversionResult(wl, n_out, k_out, res_out, ok, "; ".join(parts), mode, layer_name, d,
+                           kk)
+
+
+def _default_n_start(stack, layer_name, model, wl, T, i0):
+    from .envelope import swanepoel_envelope
+    env = swanepoel_envelope(wl, T, np.real(model.N_sub))
+    if env.ok:
+        # n at the longest extremum, carried to the grid end with the envelope's slope.
+        return float(np.interp(wl[i0], env.wavelength_nm, env.n))
+    return float(np.real(stack.layer(layer_name).material.N(wl[i0:i0 + 1]))[0])
+
+
+def _candidate_starts(model, i, Tm, Rm, n_pred, k_pred, spacing, keep=3):
+    """Starts for a retry: the best local minima of |model - data| on an (n, κ) grid.
+
+    One vectorised forward call scans n within ±1 solution spacing of the
+    prediction and κ from 0 to well above it, so a retry costs a few polishes
+    instead of many blind solves.
+    """
+    n_grid = n_pred + spacing * np.linspace(-1.0, 1.0, 41)
+    k_grid = np.unique(np.concatenate(([0.0], k_pred * np.array([0.3, 1.0, 3.0]),
+                                       np.geomspace(1e-4, max(1.0, 10 * k_pred), 9))))
+    n_grid = n_grid[(n_grid > _N_BOUNDS[0]) & (n_grid < _N_BOUNDS[1])]
+    NN, KK = np.meshgrid(n_grid, k_grid, indexing="ij")
+    R, T = model.RT_many(i, (NN + 1j * KK).ravel())
+    cost = ((T - Tm) ** 2 + (R - Rm) ** 2).reshape(NN.shape)
+    # Local minima along n (each κ row), best first.
+    c = np.pad(cost, ((1, 1), (0, 0)), constant_values=np.inf)
+    is_min = (cost <= c[:-2]) & (cost <= c[2:])
+    idx = np.argwhere(is_min)
+    order = np.argsort(cost[is_min])
+    starts, seen = [], []
+    for a, b in idx[order]:
+        if any(abs(NN[a, b] - s) < 0.2 * spacing for s in seen):
+            continue
+        seen.append(NN[a, b])
+        starts.append((float(NN[a, b]), float(KK[a, b])))
+        if len(starts) == keep:
+            break
+    return starts
+
+
+def _predict(hist, lam, n_start):
+    if not hist:
+        return n_start, 1e-6
+    if len(hist) == 1:
+        return hist[-1][1], hist[-1][2]
+    (l1, n1, k1), (l2, n2, k2) = hist[-2], hist[-1]
+    f = (lam - l2) / (l2 - l1)
+    n = n2 + f * (n2 - n1)
+    k = max(k2 + f * (k2 - k1), 0.0)
+    return float(np.clip(n, *_N_BOUNDS)), float(min(k, _K_BOUNDS[1]))
+
+
+def _residual_TR(model, i, Tm, Rm):
+    def f(x):
+        R, T = model.RT(i, complex(x[0], x[1]))
+        return np.array([T - Tm, R - Rm])
+    return f
+
+
+def _residual_T(model, i, Tm, n):
+    def f(x):
+        _, T = model.RT(i, complex(n, x[0]))
+        return np.array([T - Tm])
+    return f
+
+
+def _solve(fun, x0, bounds=None):
+    if bounds is None:
+        bounds = ([_N_BOUNDS[0], _K_BOUNDS[0]], [_N_BOUNDS[1], _K_BOUNDS[1]])
+    lo, hi = np.asarray(bounds[0]), np.asarray(bounds[1])
+    x0 = np.clip(np.asarray(x0, dtype=float), lo, hi - 1e-12)
+    sol = least_squares(fun, x0, bounds=(lo, hi), method="trf", x_scale="jac",
+                        xtol=1e-13, ftol=1e-15, gtol=1e-15, max_nfev=100)
+    res = float(np.sqrt(np.mean(sol.fun ** 2)))
+    return sol.x, res
