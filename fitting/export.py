@@ -2,7 +2,7 @@
 
 :func:`export_result` writes, for one :class:`~fitting.result.FitResult`:
 
-========================  ===========================================================
+=========================  ==========================================================
 ``<stem>_nk_<layer>.csv``  n, κ, α with 1σ per wavelength, one file per film layer
 ``<stem>_curves.csv``      measured, fitted and residual spectrum, per-point σ, mask
 ``<stem>_result.json``     parameters with σ, correlation matrix, curves, provenance
@@ -10,7 +10,7 @@
 ``<stem>_fit.<fmt>``       measured vs fitted with residuals (:func:`plots.fit_figure`)
 ``<stem>_optical.<fmt>``   n and κ with 1σ bands (:func:`plots.optical_figure`)
 ``<stem>_tauc.<fmt>``      Tauc plot, only if the fit found a band gap
-========================  ===========================================================
+=========================  ==========================================================
 
 Every file carries the same provenance (software version, recipe hash, input file
 and its SHA-256, creation time in UTC): ``# key: value`` lines on top of CSV and
