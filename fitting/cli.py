@@ -122,7 +122,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="output folder (default: ./pellucid-demo)")
     d.add_argument("--jobs", type=_positive_int, metavar="N", help="worker processes")
 
-    g = sub.add_parser("gui", help="open the desktop app (the default)")
+    g = sub.add_parser("gui", help="open the desktop app (the default); "
+                                   "'pellucid gui --help' lists its options")
     g.add_argument("project", nargs="?", metavar="PROJECT", help="project file to open")
     return p
 
@@ -321,6 +322,15 @@ def main(argv=None, *, stdout=None, stderr=None) -> int:
     out, err = stdout or sys.stdout, stderr or sys.stderr
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
+    if argv[:1] == ["gui"]:
+        # Everything after "gui" belongs to the app's own options (--theme, --help ...).
+        try:
+            return _gui(argv[1:], err)
+        except SystemExit as e:
+            return int(e.code or 0)
+        except PellucidError as e:
+            err.write(f"pellucid: error: {e}\n")
+            return EXIT_ERROR
     try:
         args = parser.parse_args(argv)
     except SystemExit as e:               # --help, --version, usage errors

@@ -180,7 +180,8 @@ def test_gui_is_loaded_by_name(monkeypatch, tmp_path):
     monkeypatch.setenv("QT_QPA_PLATFORM", "offscreen")
     assert run(["gui", str(tmp_path / "p.json")])[0] == 0
     assert run([])[0] == 0
-    assert calls == [[str(tmp_path / "p.json")], []]
+    assert run(["gui", "--theme", "dark"])[0] == 0     # the app's own options pass through
+    assert calls == [[str(tmp_path / "p.json")], [], ["--theme", "dark"]]
 
 
 def test_gui_errors_are_clear(monkeypatch):
