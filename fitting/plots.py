@@ -147,16 +147,17 @@ def fit_figure(result, *, fig: Figure | None = None, title: str | None = None) -
 
     fig = _new_figure(fig, (7.0, 5.0))
     ax, axr = fig.subplots(2, 1, sharex=True, height_ratios=(3, 1))
-    small = wl.size > 400   # dense grids read better as a thin line than as dots
+    dense = wl.size > 400
     kw = dict(color=PALETTE["measured"], label="measured")
-    if small:
-        ax.plot(wl, np.where(used, meas, np.nan), lw=0.8, **kw)
+    if dense:   # a broad grey line under a thin fitted one: misfits show as grey edges
+        ax.plot(wl, np.where(used, meas, np.nan), lw=2.2, alpha=0.4, solid_capstyle="butt",
+                **kw)
     else:
         ax.plot(wl[used], meas[used], "o", ms=2.5, mew=0, **kw)
     if not used.all():
         ax.plot(wl[~used], meas[~used], ".", ms=2.5, color=PALETTE["excluded"],
                 label="excluded from fit")
-    ax.plot(wl, fitted, color=PALETTE["fitted"], lw=1.4, label="fitted")
+    ax.plot(wl, fitted, color=PALETTE["fitted"], lw=1.0 if dense else 1.4, label="fitted")
     ax.set_ylabel(f"{_QUANTITY_LABEL.get(quantity, quantity)} (fraction)")
     ax.legend(loc="best", frameon=False, fontsize="small")
     _style(ax)
@@ -165,7 +166,8 @@ def fit_figure(result, *, fig: Figure | None = None, title: str | None = None) -
     if sig is not None and np.any(np.isfinite(sig) & (sig > 0)):
         axr.fill_between(wl, -sig, sig, color="#dddddd", lw=0, label="±1σ noise")
     axr.axhline(0.0, color="#666666", lw=0.7)
-    axr.plot(wl[used], res[used], color=PALETTE["residual"], lw=0.8)
+    # NaN where a point is excluded, so the line breaks over masked windows
+    axr.plot(wl, np.where(used, res, np.nan), color=PALETTE["residual"], lw=0.8)
     if not used.all():
         axr.plot(wl[~used], res[~used], ".", ms=2, color=PALETTE["excluded"])
     axr.set_xlabel("Wavelength (nm)")
