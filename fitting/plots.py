@@ -198,7 +198,10 @@ def _thickness_of(result):
 def _band(ax, x, y, s, color, label):
     ax.plot(x, y, color=color, lw=1.4, label=label)
     if s is not None and np.any(np.isfinite(s)):
-        ax.fill_between(x, y - s, y + s, color=color, alpha=0.22, lw=0, label="±1σ")
+        # The largest σ goes in the legend: a band thinner than the line is still shown.
+        ax.fill_between(x, y - s, y + s, color=color, alpha=0.22, lw=0,
+                        label=f"±1σ (at most {np.nanmax(s):.2g})")
+        ax.legend(loc="best", frameon=False, fontsize="small")
 
 
 def optical_figure(result, *, layer: str | None = None, alpha: bool = False,
@@ -244,7 +247,6 @@ def optical_figure(result, *, layer: str | None = None, alpha: bool = False,
         axes[2].set_ylabel("α (cm⁻¹)")
     for ax in axes:
         _style(ax)
-    axes[0].legend(loc="best", frameon=False, fontsize="small")
     axes[-1].set_xlabel("Wavelength (nm)")
     if title is None:
         lname = _get(oc, "layer", layer) or ""

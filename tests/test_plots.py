@@ -50,6 +50,7 @@ def test_optical_figure_has_bands_and_log_alpha(result):
     fig = plots.optical_figure(result, alpha=True)
     axn, axk, axa = fig.axes
     assert any(isinstance(c, PolyCollection) for c in axn.collections)   # the ±1σ band
+    assert "±1σ (at most 0.003)" in [t.get_text() for t in axn.get_legend().get_texts()]
     assert axa.get_yscale() == "log" and "cm⁻¹" in axa.get_ylabel()
     np.testing.assert_array_equal(axn.lines[0].get_ydata(), result.optical["film"].n)
     assert "layer film" in fig.get_suptitle()
