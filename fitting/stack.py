@@ -340,15 +340,15 @@ class StackModel:
             ds.append(d)
         spread = self.stack.thickness_spread
         if spread > 0:
-            # Spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength:
-            # 7-point Gauss-Hermite is good to ~1e-9 up to 0.25 rad; beyond, a
-            # uniform rule with 21 + 8σ nodes keeps errors below ~1e-7 for n <= 2.5
-            # films and ~1e-5 for n = 3.5 (strong reflections, many harmonics);
-            # checked against a 2000-point brute force in tests/test_stack.py.
+            # σ: spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength.
+            # Node counts calibrated against an 801-node average for T <= 1e-5 even
+            # for n = 3.5 on glass (strong reflections, many harmonics): 7-point
+            # Gauss-Hermite up to 0.5 rad, beyond it a uniform rule of 8 + 13σ nodes
+            # (checked against a brute force in tests/test_stack.py).
             sigma = 4 * np.pi * spread * sum(float(np.max(np.abs(N.real) / self._wl)) * d
                                              for N, d in zip(Ns, ds))
-            xs, ws = ((_GH_X, _GH_W) if sigma <= 0.25
-                      else _spread_nodes(min(401, int(21 + 8 * sigma) | 1)))
+            xs, ws = ((_GH_X, _GH_W) if sigma <= 0.5
+                      else _spread_nodes(min(401, int(8 + 13 * sigma) | 1)))
             # A Gaussian this wide reaches below zero thickness: that tail
             # (< 5e-4 of the weight for spread <= 0.3) is lumped at d = 0. The
             # interface terms do not depend on thickness: films_RT computes them
