@@ -15,13 +15,18 @@ What the runner guarantees:
   into ``<out>/spectra/<stem>-<sha256[:10]>/`` as soon as it is done, and the
   per-spectrum ``result.json`` (the resume marker, with its summary row) is
   written *last*. ``summary.csv`` and ``summary.json`` are rewritten atomically
-  after each spectrum. A killed run (Ctrl-C, SIGKILL, power cut) keeps every
+  after each spectrum (past 200 rows at most once a second, so huge batches do
+  not spend their time rewriting tables; the markers hold every row anyway). A killed run (Ctrl-C, SIGKILL, power cut) keeps every
   finished spectrum; ``resume=True`` skips those whose marker carries the same
   recipe hash, input SHA-256 and Pellucid version, so the rerun's summary
   equals an uninterrupted run's.
 * **Provenance.** Software version, recipe hash, input SHA-256 and the time
   (UTC) are in every row, every marker and every export.
 * **Flat memory.** Only the small summary rows are kept, never fit results.
+
+Stopping (``stop`` event, the GUI's Stop button): no new spectrum starts; the
+ones already running in worker processes finish and are recorded. Ctrl-C in
+the CLI ends at once; spectra that finished are kept.
 
 Parallelism: ``jobs`` worker processes (``concurrent.futures`` with the
 ``spawn`` start method, safe with threads and identical on every OS; default:
@@ -652,26 +657,31 @@ def _run_pool(todo, jobs: int, stop, active):
                 active[task["index"]] = task
             if not inflight:
                 return
+            if _stopped(stop):
+                # Not yet started: drop. Running: let them finish, so nothing done is lost.
+                for fut in [f for f in inflight if f.cancel()]:
+                    active.pop(inflight.pop(fut)["index"], None)
+                queue.clear()
             done, _ = wait(inflight, timeout=0.5, return_when=FIRST_COMPLETED)
             broken = False
             for fut in done:
                 task = inflight.pop(fut)
                 try:
-                    yield task, fut.result()
+                    r = fut.result()
                 except BrokenProcessPool:
                     broken = True
                     n = crashes[task["index"]] = crashes.get(task["index"], 0) + 1
-                    if n >= 2:
-                        yield task, _crash_row(task, "the worker process crashed while "
-                                                     "fitting this spectrum (twice)")
-                    else:
+                    if n < 2:
                         queue.append(task)
+                        continue
+                    r = _crash_row(task, "the worker process crashed while fitting this "
+                                         "spectrum (twice)")
                 except Exception as e:
-                    yield task, _crash_row(task, f"worker error: {type(e).__name__}: {e}")
+                    r = _crash_row(task, f"worker error: {type(e).__name__}: {e}")
+                yield task, r
             if broken:
                 # Every task in flight died with the pool; run them again in a new one.
-                for fut, task in inflight.items():
-                    queue.append(task)
+                queue.extend(inflight.values())
                 inflight.clear()
                 pool.shutdown(wait=False, cancel_futures=True)
                 pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx)

@@ -158,6 +158,19 @@ def test_stop_ends_the_batch_between_spectra(tmp_path):
     assert summary.counts["ok"] == 6 and summary.exit_code == 0 and not summary.stopped
 
 
+def test_stop_with_worker_processes_keeps_what_finished(tmp_path):
+    write_spectra(tmp_path / "in", np.linspace(400, 700, 10), seed=10)
+    stop = threading.Event()
+    seen = []
+    for step in iter_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=2,
+                           stop=stop, report=False):
+        seen.append(step)
+        stop.set()
+    assert 1 <= len(seen) < 10            # the spectra running at the stop may finish
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert len(rows) == len(seen)
+
+
 def test_expand_inputs(tmp_path):
     write_spectra(tmp_path / "a", [400, 500], seed=1)
     (tmp_path / "a" / "recipe.json").write_text("{}")       # not a spectrum: skipped
