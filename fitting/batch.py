@@ -16,8 +16,8 @@ What the runner guarantees:
   per-spectrum ``result.json`` (the resume marker, with its summary row) is
   written *last*. ``summary.csv`` and ``summary.json`` are rewritten atomically
   after each spectrum (past 200 rows at most once a second, so huge batches do
-  not spend their time rewriting tables; the markers hold every row anyway). A killed run (Ctrl-C, SIGKILL, power cut) keeps every
-  finished spectrum; ``resume=True`` skips those whose marker carries the same
+  not spend their time rewriting tables; the markers hold every row anyway).
+  A killed run (Ctrl-C, SIGKILL, power cut) keeps every finished spectrum; ``resume=True`` skips those whose marker carries the same
   recipe hash, input SHA-256 and Pellucid version, so the rerun's summary
   equals an uninterrupted run's.
 * **Provenance.** Software version, recipe hash, input SHA-256 and the time
@@ -63,7 +63,7 @@ import time
 import traceback
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable, Iterator, Mapping

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from batch_helpers import make_recipe, true_stack, write_spectra
+from batch_helpers import make_recipe, write_spectra
 from fitting import cli
 from fitting.batch import MARKER_NAME
 from fitting.recipe import recipe_hash, save_recipe
