@@ -340,7 +340,13 @@ def _run_sampled(cmd, cwd) -> dict:
         time.sleep(0.02)
     wall = time.perf_counter() - t0
     out, err = popen.communicate()
+    try:  # largest resident set of any waited-for descendant so far (kB on Linux)
+        import resource
+        child_max = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024
+    except (ImportError, OSError):
+        child_max = None
     return {"wall_s": wall, "returncode": popen.returncode, "peak_tree_rss_bytes": peak,
+            "max_child_rss_bytes_so_far": child_max,
             "stdout_tail": out.decode(errors="replace")[-400:],
             "stderr_tail": err.decode(errors="replace")[-800:]}
 

@@ -8,6 +8,7 @@ by 1e-6 that the check must reject.
 
 import json
 import math
+import sys
 
 import numpy as np
 import pytest
@@ -93,3 +94,29 @@ def test_reference_wrapper_gives_the_bare_slab_transmittance():
     R, T = bench.tmm_RT(st, np.array([500.0, 700.0]))
     assert T == pytest.approx(2 * 1.5 / (1.5 ** 2 + 1), abs=1e-12)
     assert R + T == pytest.approx(1.0, abs=1e-12)
+
+
+def test_subprocess_runner_samples_the_memory_of_the_process_tree(tmp_path):
+    pytest.importorskip("psutil")
+    # A child that holds ~60 MB for a moment must show up in the sampled peak.
+    code = "import time; b = bytearray(60 * 2**20); b[::4096] = b'x' * len(b[::4096]); " \
+           "time.sleep(0.3)"
+    run = bench._run_sampled([sys.executable, "-c", code], tmp_path)
+    assert run["returncode"] == 0 and run["wall_s"] >= 0.3
+    assert run["peak_tree_rss_bytes"] > 60 * 2 ** 20
+
+
+def test_series_summary_reports_slope_and_per_spectrum_ratio():
+    # Wall time 2 s + 0.5 s per spectrum: exactly linear, so the fit recovers both
+    # and the per-spectrum time at 200 vs 50 is (2/200 + 0.5)/(2/50 + 0.5).
+    runs = [{"spectra": n, "wall_s": 2 + 0.5 * n, "returncode": 0,
+             "peak_tree_rss_bytes": 100 * 2 ** 20, "spectra_per_s": n / (2 + 0.5 * n)}
+            for n in (50, 100, 200)]
+    out = bench._series_summary(runs, (50, 100, 200))
+    assert out["seconds_per_spectrum_slope"] == pytest.approx(0.5)
+    assert out["startup_s"] == pytest.approx(2.0)
+    assert out["per_spectrum_ratio_last_first"] == pytest.approx((2 / 200 + 0.5) / (2 / 50 + 0.5))
+    assert out["peak_tree_rss_mb"] == pytest.approx(100)
+    assert out["all_fits_ok"] is True
+    crashed = runs[:2] + [{**runs[2], "returncode": 2}]
+    assert "failed" in bench._series_summary(crashed, (50, 100, 200))
