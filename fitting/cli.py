@@ -303,7 +303,9 @@ def _gui(argv_rest, err) -> int:
                             "Run it in a desktop session, or use the command-line tools: "
                             "pellucid --help")
     try:
+        # app.main may import Qt only when it starts, so both steps are guarded.
         app_main = importlib.import_module("app.main")
+        return int(app_main.main(argv_rest) or 0)
     except ImportError as e:
         missing = getattr(e, "name", "") or ""
         if missing.startswith(("PySide6", "shiboken6")):
@@ -312,8 +314,9 @@ def _gui(argv_rest, err) -> int:
         if missing in ("app", "app.main"):
             raise PellucidError("the desktop app is not part of this installation "
                                 "(no module app.main)") from None
-        raise PellucidError(f"the desktop app cannot start: {e}") from None
-    return int(app_main.main(argv_rest) or 0)
+        # Typically a system library Qt needs (libEGL, libxkbcommon ...).
+        raise PellucidError(f"the desktop app cannot start: {e}. On Linux, Qt needs the "
+                            f"system libraries listed in DEVELOPERS.md") from None
 
 
 # ---------------------------------------------------------------------------------

@@ -201,6 +201,17 @@ def test_gui_errors_are_clear(monkeypatch):
     monkeypatch.setattr(cli.importlib, "import_module", no_qt)
     code, out, err = run(["gui"])
     assert code == 2 and "needs PySide6" in err and "Traceback" not in err
+    # Qt present but a system library missing, found only when the app starts.
+    fake = types.ModuleType("app.main")
+
+    def qt_fails(argv=None):
+        raise ImportError("libEGL.so.1: cannot open shared object file")
+
+    fake.main = qt_fails
+    monkeypatch.setattr(cli.importlib, "import_module",
+                        lambda name: fake if name == "app.main" else real_import(name))
+    code, out, err = run(["gui"])
+    assert code == 2 and "libEGL" in err and "cannot start" in err
 
 
 def test_no_traceback_for_missing_files(tmp_path, recipe_file):
