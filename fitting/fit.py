@@ -467,8 +467,13 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     # but much about the (not yet fitted) absorption, so the scan leaves them out.
     # Without fringes the same holds for the part of the range where the film at its
     # start values would absorb noticeably at half the scan's largest thickness.
-    wl_range = (0.0 if seed.fringe_range_nm is None else
-                max(0.97 * seed.fringe_range_nm[0], wl_res), math.inf)
+    wl_range = (0.0, math.inf)
+    if seed.fringe_range_nm is not None:
+        # Above the longest fringe, too, if the next extremum (about λ²/(4nd) further
+        # on) would lie inside the data: the fringes die out there (free carriers).
+        f_lo, f_hi = seed.fringe_range_nm
+        nxt = f_hi + 1.2 * f_hi ** 2 / (4 * (seed.n_ref or 2.0) * (seed.thickness_nm or 1e3))
+        wl_range = (max(0.97 * f_lo, wl_res), nxt if nxt < float(part.wl.max()) else math.inf)
     d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
     # Many fringes: scan on the long-wavelength half (in wavenumber) only, where the
     # start's dispersion error shifts the fringe phase least; the staged polish then
@@ -477,13 +482,22 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
         w_lo = max(wl_range[0], float(part.wl.min()))
         w_hi = min(seed.fringe_range_nm[1], float(part.wl.max()))
-        long_range = (2.0 / (1.0 / w_lo + 1.0 / w_hi), math.inf)
+        long_range = (2.0 / (1.0 / w_lo + 1.0 / w_hi), wl_range[1])
     scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
                                     options.fit_scale, options.fit_offset, check=obj.check,
                                     wl_range=long_range or wl_range, d_typical=d_typ)
     n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
     basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
                                    same_nd=float(part.wl.min()) / 8)
+    # The seed's own thickness is a start too: when the start dispersion is far off,
+    # the χ² scan can prefer a smooth thin film or a double thickness to the right
+    # order, while the fringe analysis already has it.
+    if seed.has_fringes and seed.thickness_nm and lo <= seed.thickness_nm <= hi:
+        mid = len(scan.levels) // 2
+        nd = seed.thickness_nm * n_lv[mid]
+        if all(abs(nd - b[0] * autostart._n_at(mat, wl_ref, b[1])) >= float(part.wl.min()) / 8
+               for b in basins):
+            basins.append((float(seed.thickness_nm), scan.levels[mid], math.nan))
     info["scan"] = {"thickness_range_nm": [lo, hi], "points": K, "step_nm": (hi - lo) / (K - 1),
                     "levels": len(scan.levels), "time_s": time.perf_counter() - t0,
                     "basins_nm": [b[0] for b in basins]}

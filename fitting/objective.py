@@ -181,6 +181,7 @@ class Objective:
         self._last_report = 0.0
         self._masks = None          # per-part point selections of a staged fit
         self._stage_limit = math.inf  # evaluation cap of the current minimiser run
+        self._run_best = (math.inf, None)  # best point of the current minimiser run
         self.params = self._make_params(shared)
         self.ndata = sum(p.y.size for p in parts)
         self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
@@ -270,10 +271,11 @@ class Objective:
         r = out[0] if len(out) == 1 else np.concatenate(out)
         self.nfev += 1
         chi2 = float(r @ r)
-        if masks is None and chi2 < self.best_chisqr:
-            self.best_chisqr = chi2
-            self.best_values = params.valuesdict() if isinstance(params, lmfit.Parameters) \
-                else dict(params)
+        if chi2 < self._run_best[0]:
+            self._run_best = (chi2, params.valuesdict() if isinstance(params, lmfit.Parameters)
+                              else dict(params))
+            if masks is None and chi2 < self.best_chisqr:
+                self.best_chisqr, self.best_values = chi2, self._run_best[1]
         return r
 
     def chisqr_of(self, values: dict) -> float:
@@ -354,15 +356,27 @@ class Objective:
                                max_nfev=self.remaining_nfev() + 10 ** 7, scale_covar=True)
         self._masks = None if masks is None else list(masks)
         self._stage_limit = math.inf if max_nfev is None else self.nfev + max_nfev
+        self._run_best = (math.inf, None)
         try:
             with np.errstate(all="ignore"):
-                return mini.minimize(method=method, **kws)
+                res = mini.minimize(method=method, **kws)
         except lmfit.minimizer.AbortFitException:
-            # Some of lmfit's scalar minimisers let the abort through: report the
-            # point the minimiser last asked for, as lmfit does for the others.
-            return SimpleNamespace(params=mini.result.params, aborted=True, success=False,
-                                   covar=None, var_names=list(mini.result.var_names),
-                                   message="aborted", chisqr=math.inf)
+            # Some of lmfit's scalar minimisers let the abort through.
+            res = None
         finally:
             self._masks = None
             self._stage_limit = math.inf
+        if res is not None and not res.aborted:
+            return res
+        # Stopped early (budget, stage cap, user): the best point this run saw, not
+        # the last one asked for (which may be a Jacobian step).
+        chi2, best = self._run_best
+        out = params.copy()
+        if best is not None:
+            for k, v in best.items():
+                if k in out and not out[k].expr:
+                    out[k].value = v
+            out.update_constraints()
+        return SimpleNamespace(params=out, aborted=True, success=False, covar=None,
+                               var_names=[k for k, p in out.items() if p.vary and not p.expr],
+                               message="stopped early", chisqr=chi2, nfev=self.nfev)
