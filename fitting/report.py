@@ -45,6 +45,7 @@ The per-spectrum files are those of :func:`fitting.export.export_result`
 from __future__ import annotations
 
 import io
+import itertools
 import json
 import math
 import os
@@ -66,8 +67,8 @@ from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thicknes
 __all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES"]
 
 #: Summary-row keys the report reads (see the module docstring).
-ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickness_sigma", "n_633",
-            "redchi", "warnings", "spec_pass", "result_dir")
+ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickness_sigma",
+            "n_633", "redchi", "warnings", "spec_pass", "result_dir")
 A4_INCHES = (8.27, 11.69)
 ROWS_FIRST_PAGE = 36      # table rows under the overview block
 ROWS_PER_PAGE = 52        # table rows on continuation pages
@@ -522,7 +523,8 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     # Fits that ran but did not converge still have curves worth seeing; they come
     # first, then the finished fits with the highest reduced χ².
     n_worst = max(int(worst), 0)
-    unconverged = [i for i, r in failed if _has_curves(_result_dir(r, results_dir))][:n_worst]
+    unconverged = list(itertools.islice(
+        (i for i, r in failed if _has_curves(_result_dir(r, results_dir))), n_worst))
     ranked = sorted(ok_idx, key=lambda i: -_num(rows[i].get("redchi"))
                     if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)[:n_worst]
     for group, heading in ((unconverged, "Fits that did not converge"),
