@@ -29,8 +29,9 @@ ones already running in worker processes finish and are recorded. Ctrl-C in
 the CLI ends at once; spectra that finished are kept.
 
 Parallelism: ``jobs`` worker processes (``concurrent.futures`` with the
-``spawn`` start method, safe with threads and identical on every OS; default:
-all cores); ``jobs=1`` runs in this process and honours ``stop`` inside a fit.
+``forkserver`` start method where available, else ``spawn``: both safe with
+threads; a worker that crashes is replaced and its spectra are run again, once;
+default: all cores); ``jobs=1`` runs in this process and honours ``stop`` inside a fit.
 ``scheduler="tcp://host:port"`` sends the same :func:`process_spectrum` calls to
 an existing Dask distributed cluster instead; its workers must see the input
 and output folders at the same paths.
@@ -642,28 +643,55 @@ def _crash_row(task, why: str) -> dict:
                        rhash=task["recipe_hash"], status="error", reason=why)
 
 
+#: Imported once by the fork server, so each worker starts with the fit engine loaded.
+_PRELOAD = ["fitting.batch", "fitting.fit", "fitting.reader", "fitting.export"]
+
+
+def _mp_context():
+    """'forkserver' where the OS has it (POSIX), else 'spawn'.
+
+    Both start workers from a clean process (never fork() a process that may run
+    GUI or BLAS threads). The fork server imports the fit engine once and forks
+    warm workers from it, which also makes restarting after a worker crash quick.
+    """
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(_PRELOAD)
+        return ctx
+    return multiprocessing.get_context("spawn")
+
+
+_CRASH_REASON = ("a worker process crashed twice while this spectrum was being fitted "
+                 "(out of memory?); it was skipped")
+
+
 def _run_pool(todo, jobs: int, stop, active):
     """Local worker processes, at most 2 x jobs tasks in flight (flat memory)."""
-    ctx = multiprocessing.get_context("spawn")
+    ctx = _mp_context()
     queue = list(reversed(todo))
     crashes: dict[int, int] = {}
     pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx)
     inflight: dict = {}
     try:
         while queue or inflight:
+            broken = False
             while queue and len(inflight) < 2 * jobs and not _stopped(stop):
                 task = queue.pop()
-                inflight[pool.submit(process_spectrum, task)] = task
+                try:
+                    inflight[pool.submit(process_spectrum, task)] = task
+                except BrokenProcessPool:
+                    queue.append(task)
+                    broken = True
+                    break
                 active[task["index"]] = task
-            if not inflight:
-                return
             if _stopped(stop):
                 # Not yet started: drop. Running: let them finish, so nothing done is lost.
                 for fut in [f for f in inflight if f.cancel()]:
                     active.pop(inflight.pop(fut)["index"], None)
                 queue.clear()
-            done, _ = wait(inflight, timeout=0.5, return_when=FIRST_COMPLETED)
-            broken = False
+            done = set()
+            if inflight and not broken:
+                done, _ = wait(inflight, timeout=0.5, return_when=FIRST_COMPLETED)
             for fut in done:
                 task = inflight.pop(fut)
                 try:
@@ -674,14 +702,22 @@ def _run_pool(todo, jobs: int, stop, active):
                     if n < 2:
                         queue.append(task)
                         continue
-                    r = _crash_row(task, "the worker process crashed while fitting this "
-                                         "spectrum (twice)")
+                    r = _crash_row(task, _CRASH_REASON)
                 except Exception as e:
                     r = _crash_row(task, f"worker error: {type(e).__name__}: {e}")
                 yield task, r
             if broken:
-                # Every task in flight died with the pool; run them again in a new one.
-                queue.extend(inflight.values())
+                # A worker died and took the pool with it: run what was in flight again
+                # in a new pool (each spectrum gets one second chance, see above).
+                for fut, task in list(inflight.items()):
+                    if fut.done() and not fut.cancelled() and fut.exception() is None:
+                        yield task, fut.result()          # finished just before the crash
+                        continue
+                    n = crashes[task["index"]] = crashes.get(task["index"], 0) + 1
+                    if n < 2:
+                        queue.append(task)
+                    else:
+                        yield task, _crash_row(task, _CRASH_REASON)
                 inflight.clear()
                 pool.shutdown(wait=False, cancel_futures=True)
                 pool = ProcessPoolExecutor(max_workers=jobs, mp_context=ctx)

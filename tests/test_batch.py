@@ -171,6 +171,26 @@ def test_stop_with_worker_processes_keeps_what_finished(tmp_path):
     assert len(rows) == len(seen)
 
 
+def test_a_crashed_worker_process_does_not_stop_the_batch(tmp_path):
+    import multiprocessing
+    import os
+    import signal
+    write_spectra(tmp_path / "in", np.linspace(400, 700, 8), seed=8)
+    steps, killed = [], []
+    for step in iter_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=2,
+                           report=False):
+        steps.append(step)
+        if not killed:
+            # Kill one pool worker (SIGKILL) while others are queued or running.
+            child = multiprocessing.active_children()[0]
+            os.kill(child.pid, signal.SIGKILL)
+            killed.append(child.pid)
+    assert killed
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert len(rows) == 8
+    assert [r["status"] for r in rows] == ["ok"] * 8     # in-flight ones were rerun
+
+
 def test_expand_inputs(tmp_path):
     write_spectra(tmp_path / "a", [400, 500], seed=1)
     (tmp_path / "a" / "recipe.json").write_text("{}")       # not a spectrum: skipped
