@@ -139,6 +139,20 @@ class _PointModel:
         R, T = self.RT_many(i, N)
         return R[0], T[0]
 
+    def T_grid(self, idx, N):
+        """T at grid points ``idx`` with the film index N (array over idx)."""
+        Ns = [N if f is None else f[idx] for f in self.N_films]
+        args = (self.wl[idx], self.N_amb[idx])
+        tail = (self.N_sub[idx], self.sub_d, self.N_exit[idx])
+        if self.spread > 0:
+            T = 0.0
+            for x, w in zip(_GH_X, _GH_W):
+                T = T + w * stack_RT(*args, Ns, [d * (1 + self.spread * x) for d in self.d],
+                                     *tail, angle_rad=self.angle, polarization=self.pol)[1]
+            return T
+        return stack_RT(*args, Ns, self.d, *tail, angle_rad=self.angle,
+                        polarization=self.pol)[1]
+
 
 def _prior_on_grid(n_prior, wl):
     if n_prior is None:
@@ -153,8 +167,15 @@ def _prior_on_grid(n_prior, wl):
 
 
 def _envelope_prior(stack, model, wl, T):
-    """Cauchy n(λ) from the envelope method, for T-only inversion without a prior."""
-    from .dispersion import Cauchy
+    """Smooth n(λ) prior for T-only inversion when the caller gives none.
+
+    The envelope method's Cauchy curve (Swanepoel 1983) is refined by a
+    least-squares fit of n = A + B/λ² + C/λ⁴ with κ = 0 to T where the film is
+    transparent (the upper envelope within 1 % of its highest value, where
+    Swanepoel's eq. A holds best), at the stack's fixed thickness: the envelope
+    n alone is good to ~1 %, not enough to put the fringes of a micron-thick
+    film in the right place.
+    """
     from .envelope import cauchy_start, swanepoel_envelope
     env = swanepoel_envelope(wl, T, np.real(model.N_sub))
     if not env.ok:
@@ -162,7 +183,21 @@ def _envelope_prior(stack, model, wl, T):
                        f"the envelope method found none ({env.message}); give n_prior "
                        "(a dispersion model or an n array) or measure R as well")
     c = cauchy_start(env)
-    return np.real(Cauchy(urbach=False).N_unchecked(wl, {"A": c["A"], "B": c["B"], "C": 0.0}))
+    lu2 = (wl * 1e-3) ** 2
+    TM = env.T_max_env
+    top = np.nanmax(TM)
+    clear = np.isfinite(TM) & (TM >= 0.99 * top)
+    # Past the longest extremum the film is at least as transparent.
+    clear |= wl >= env.wavelength_nm.max()
+    idx = np.flatnonzero(clear)
+    x0 = np.array([c["A"], c["B"], 0.0])
+    if idx.size >= 8:
+        def resid(p):
+            N = p[0] + p[1] / lu2[idx] + p[2] / lu2[idx] ** 2 + 0j
+            return model.T_grid(idx, N) - T[idx]
+        sol = least_squares(resid, x0, x_scale=[0.1, 0.01, 0.001], method="lm")
+        x0 = sol.x
+    return x0[0] + x0[1] / lu2 + x0[2] / lu2 ** 2
 
 
 def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
@@ -312,6 +347,9 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
     if kk is not None:
         parts.append("Kramers-Kronig consistent" if kk.consistent else
                      "NOT Kramers-Kronig consistent")
+    if stack.bandwidth_nm > 0:
+        parts.append(f"the instrument bandwidth ({stack.bandwidth_nm:g} nm) is not applied "
+                     "point by point")
     return InversionResult(wl, n_out, k_out, res_out, ok, "; ".join(parts), mode, layer_name, d,
                            kk)
 
