@@ -264,6 +264,10 @@ def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
                        and not material.params[k].expr][:1]
     if len(names) < 2 or n.size < 3 or lam.max() / lam.min() < 1.3:
         return out
+    # Seed n rising with wavelength is not a film's normal dispersion but a sign of
+    # damped fringes (absorption, thickness spread) misread as low n: level only.
+    if np.polyfit(1.0 / lam ** 2, n, 1)[0] <= 0:
+        return out
     lo = np.array([material.params[k].min for k in names])
     hi = np.array([material.params[k].max for k in names])
     x0 = np.clip([out[k] for k in names], lo, hi)

@@ -652,15 +652,14 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
 
     aborted = bool(stopped)
     if aborted:
-        success, message = False, f"stopped early: {stopped}"
+        success, message = False, stopped
     elif lm is None and options.method in ("differential_evolution", "basinhopping"):
         success, message = False, "the local polish after the global search did not finish"
     elif lm is None:
         success, message = False, "no local fit finished"
     else:
         success = bool(lm.success)
-        msg = str(getattr(lm, "message", "") or "").strip()
-        message = ("converged" if success else "did not converge") + (f" ({msg})" if msg else "")
+        message = _plain_message(success, str(getattr(lm, "message", "") or ""))
 
     warnings = _warnings(params, var_names, correl, optical, alternatives, success, aborted,
                          message, covar, redchi, all(p.sigma_given for p in obj.parts), values)
@@ -687,6 +686,20 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
         method=options.method if len(obj.parts) == 1 else f"joint {options.method}",
         spectrum={"name": sp.name, "source": sp.source, "sha256": sp.sha256},
         extra=extra)
+
+
+def _plain_message(success: bool, msg: str) -> str:
+    """The minimiser's termination message in words a technician can read."""
+    why = []
+    if "ftol" in msg:
+        why.append("χ² stopped improving")
+    if "xtol" in msg:
+        why.append("the parameters stopped changing")
+    if "gtol" in msg:
+        why.append("the gradient vanished")
+    if success:
+        return " and ".join(why) if why else msg.strip() or "minimum found"
+    return "the local minimiser gave up: " + (msg.strip() or "no reason given")
 
 
 def _units(obj: Objective) -> dict:
@@ -776,8 +789,7 @@ def _warnings(params, var_names, correl, optical, alternatives, success, aborted
               covar, redchi, sigma_given, values) -> list[str]:
     w = []
     if aborted:
-        w.append(f"The fit ended early ({message.removeprefix('stopped early: ')}); "
-                 f"the values are the best found so far.")
+        w.append(f"The fit ended early ({message}); the values are the best found so far.")
     elif not success:
         w.append(f"The fit did not converge ({message}); treat the values with care.")
     for p in params.values():

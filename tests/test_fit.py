@@ -280,6 +280,50 @@ def test_other_methods_from_a_nearby_start(method):
     assert res.method == method
 
 
+def test_oblique_incidence_and_fitted_angle():
+    # tmm.inc_tmm at 40° in p polarisation is the reference (Byrnes 2016).
+    params, d = {"A": 2.0, "B": 0.02}, 900.0
+    R, T = _tmm_RT("cauchy", tuple(sorted(params.items())), d, "vis", "p", 40.0)
+    y = T + NOISE * np.random.default_rng(5).standard_normal(T.size)
+    spec = Spectrum(WL_VIS, y)
+    res = fit_spectrum(spec, _default_stack("cauchy"), FitOptions(angle_deg=40.0,
+                                                                  polarization="p"))
+    assert abs(res.thickness()[0] - d) < 0.01 * d
+    # Started 6° off, the angle is fitted back (the fringe shift with cos θ in the
+    # film and the p-polarised Fresnel terms fix it).
+    start = _default_stack("cauchy", res.thickness()[0])
+    start.set_values({"film_A": res.params["film_A"].value, "film_B": res.params["film_B"].value})
+    res2 = fit_spectrum(spec, start, FitOptions(method="least_squares", angle_deg=34.0,
+                                                polarization="p", fit_angle=True))
+    assert res2.params["angle_deg"].value == pytest.approx(40.0, abs=2.0)
+    assert res2.params["angle_deg"].unit == "deg"
+
+
+def test_thickness_spread_is_fitted():
+    # Reference: tmm spectra averaged over a normal thickness distribution, relative
+    # σ = 2 %, by 41-point trapezoidal quadrature over ±4σ (independent of the
+    # Gauss-Hermite rule inside Pellucid).
+    params, d, spread = {"A": 2.0, "B": 0.02}, 1500.0, 0.02
+    x = np.linspace(-4, 4, 41)
+    w = np.exp(-x * x / 2)
+    w /= w.sum()
+    T = sum(wi * _tmm_RT("cauchy", tuple(sorted(params.items())), float(round(d * (1 + spread * xi), 6)),
+                        "vis")[1] for xi, wi in zip(x, w))
+    y = T + NOISE * np.random.default_rng(9).standard_normal(T.size)
+    res = fit_spectrum(Spectrum(WL_VIS, y), _default_stack("cauchy"), FitOptions(fit_spread=True))
+    assert abs(res.thickness()[0] - d) < 0.01 * d
+    assert res.params["thickness_spread"].value == pytest.approx(spread, rel=0.2)
+    assert res.stack["thickness_spread"] == pytest.approx(res.params["thickness_spread"].value)
+
+
+def test_warning_for_negative_cauchy_B():
+    # A film with anomalous dispersion in a Cauchy model: B < 0 is flagged.
+    params, d = {"A": 2.0, "B": -0.02}, 700.0
+    res = fit_spectrum(_measured("cauchy", params, d, scale=1.0), _default_stack("cauchy"))
+    assert res.params["film_B"].value < 0
+    assert any("film_B" in w and "negative" in w for w in res.warnings)
+
+
 # -- cancel, limits, progress ------------------------------------------------------------------
 def _slow_setup():
     params, d = {"A": 2.0, "B": 0.02, "k0": 0.005, "Eu": 0.25}, 900.0
@@ -324,6 +368,9 @@ def test_evaluation_budget_is_honoured():
     res = fit_spectrum(spec, stack, FitOptions(method="least_squares", max_nfev=40))
     assert res.aborted and "evaluation budget" in res.message
     assert res.nfev <= 45
+    assert res.covar is None and all(p.stderr is None for p in res.params.values())
+    assert any("Uncertainties could not be estimated" in w for w in res.warnings)
+    assert any("ended early" in w for w in res.warnings)
 
 
 def test_progress_is_reported_and_generator_form_yields_result_last():
