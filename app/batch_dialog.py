@@ -99,7 +99,18 @@ class BatchDialog(QDialog):
         buttons.addWidget(self.cancel_button)
         buttons.addStretch(1)
         buttons.addWidget(self.close_button)
+        intro = QLabel("Fits every spectrum in the folder with the current sample stack and "
+                       "fit options, one after another, and writes each result as soon as it "
+                       "is done. A file that cannot be read is listed with the reason; the "
+                       "others go on.")
+        intro.setWordWrap(True)
+        self.open_results = QPushButton("Open results folder")
+        self.open_results.setToolTip("Show the results folder in the file manager")
+        self.open_results.setEnabled(False)
+        self.open_results.clicked.connect(self._open_results)
+        buttons.insertWidget(2, self.open_results)
         lay = QVBoxLayout(self)
+        lay.addWidget(intro)
         lay.addLayout(form)
         lay.addLayout(buttons)
         lay.addWidget(self.progress)
@@ -199,7 +210,13 @@ class BatchDialog(QDialog):
                            f"{counts or 'nothing to do'}. Summary table: {summary.summary_csv}")
         self.progress.setMaximum(max(summary.total, 1))
         self.progress.setValue(summary.total if not summary.stopped else len(self.rows))
+        self.open_results.setEnabled(True)
         self.finished_run.emit(summary)
+
+    def _open_results(self):
+        from PySide6.QtCore import QUrl
+        from PySide6.QtGui import QDesktopServices
+        QDesktopServices.openUrl(QUrl.fromLocalFile(self.output_edit.text().strip()))
 
     def _on_failed(self, exc):
         self.state.setText(f"Batch stopped by an error: {exc}")

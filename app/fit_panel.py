@@ -39,7 +39,7 @@ class FitPanel(QWidget):
         self.session = session
         self._updating = False
 
-        self.whole_range = QCheckBox("Whole spectrum")
+        self.whole_range = QCheckBox("All")
         self.whole_range.setToolTip("Fit every measured point (untick to fit only a range)")
         self.whole_range.toggled.connect(self._on_range)
         self.range_lo = QDoubleSpinBox()
@@ -83,7 +83,7 @@ class FitPanel(QWidget):
             lambda _i: self._set("band_gap", _BAND_GAP[self.band_gap.currentData()][0]))
 
         self.mask_list = QListWidget()
-        self.mask_list.setMaximumHeight(44)
+        self.mask_list.setMaximumHeight(40)
         self.mask_list.setToolTip("Wavelength windows left out of the fit. Add one with "
                                   "'Mask a window' above the plot.")
         self.unmask_button = QPushButton("Remove mask")
@@ -93,7 +93,7 @@ class FitPanel(QWidget):
         self.fit_button = QPushButton("Fit")
         self.fit_button.setToolTip("Fit the model to the spectrum, starting from an automatic "
                                    "first guess (Ctrl+R or F5)")
-        self.fit_button.setMinimumHeight(34)
+        self.fit_button.setMinimumHeight(32)
         f = self.fit_button.font()
         f.setBold(True)
         f.setPointSizeF(f.pointSizeF() * 1.15)
@@ -111,15 +111,16 @@ class FitPanel(QWidget):
         self.progress.setToolTip("Progress of the running fit")
         self.stage = QLabel("")
         self.stage.setWordWrap(True)
+        self.stage.setVisible(False)
 
         form = QFormLayout()
         form.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
         rng = QHBoxLayout()
-        rng.addWidget(self.range_lo)
+        rng.addWidget(self.whole_range)
+        rng.addWidget(self.range_lo, 1)
         rng.addWidget(QLabel("to"))
-        rng.addWidget(self.range_hi)
-        form.addRow("Fit range:", self.whole_range)
-        form.addRow("", rng)
+        rng.addWidget(self.range_hi, 1)
+        form.addRow("Fit range:", rng)
         geo = QHBoxLayout()
         geo.addWidget(self.angle)
         geo.addWidget(self.polarization)
@@ -187,6 +188,7 @@ class FitPanel(QWidget):
             self.progress.setValue(0)
             self.progress.setFormat("starting…")
             self.stage.setText("")
+            self.stage.setVisible(True)
 
     def show_progress(self, p):
         frac = float(getattr(p, "fraction", 0.0) or 0.0)

@@ -246,7 +246,7 @@ class PlotPanel(QWidget):
                         transform=ax.transAxes, fontsize=8, color=col["second"], wrap=True)
             ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
             title = s.name or "spectrum"
-            ax.set_title(title, fontsize=10, loc="left")
+            ax.set_title(title, fontsize=10, loc="left", color=col["text"])
             for lo, hi in self.session.masks:
                 for a in (ax, axr):
                     a.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)

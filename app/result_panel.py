@@ -30,6 +30,18 @@ def _pm(value, sigma, unit="", digits=2):
     return f"{value:.{digits}f} {unit} (σ not estimated)".rstrip()
 
 
+def _label(name: str, r) -> str:
+    """``film_o1_E0`` -> ``film: term 1: E₀``; nuisance names (scale, offset) as they are."""
+    from .param_table import pretty_name
+    for layer in (r.stack or {}).get("layers", []):
+        pre = f"{layer.get('name')}_"
+        if name.startswith(pre):
+            return f"{layer.get('name')}: {pretty_name(name[len(pre):])}"
+    return {"scale": "scale of the 100 % line", "offset": "offset (stray light)",
+            "angle_deg": "angle of incidence", "thickness_spread":
+            "thickness spread"}.get(name, name)
+
+
 class _FigureTab(QWidget):
     def __init__(self, tip: str, parent=None):
         super().__init__(parent)
@@ -104,6 +116,8 @@ class ResultPanel(QTabWidget):
         lay.addWidget(self.chi_label)
         lay.addWidget(self.warnings_label)
         lay.addWidget(self.params_table, 1)
+        lay.addStretch(0)          # takes the space while the table is hidden
+        self._summary_layout = lay
         self.addTab(summary, "Summary")
         self.setTabToolTip(0, "Thickness ± σ, goodness of fit and warnings")
 
@@ -144,12 +158,19 @@ class ResultPanel(QTabWidget):
     def refresh(self):
         r = self.session.result
         if r is None:
-            self.headline.setText("<b>No fit yet.</b> Load a spectrum, set up the stack and "
-                                  "press <b>Fit</b>.")
+            self.headline.setText(
+                "<b>No fit yet.</b><ol style='margin-left:-20px'>"
+                "<li>Open the measured spectrum (section 1).</li>"
+                "<li>Pick the substrate and a model for each film (section 2); the blue "
+                "curve shows what the model predicts.</li>"
+                "<li>Press <b>Fit</b> (section 3). Thickness, χ², warnings, n and κ "
+                "appear here.</li></ol>")
             self.thickness_label.setText("")
             self.chi_label.setText("")
             self.warnings_label.setText("")
             self.params_table.setRowCount(0)
+            self.params_table.setVisible(False)
+            self._summary_layout.setStretch(self._summary_layout.count() - 1, 1)
             for tab in (self.optical_tab, self.tauc_tab, self.corr_tab):
                 tab.message("No fit result yet.")
             self.report.setPlainText("")
@@ -164,8 +185,8 @@ class ResultPanel(QTabWidget):
         if r.aborted:
             status = "was stopped before it finished"
         name = (r.spectrum or {}).get("name", "") if isinstance(r.spectrum, dict) else ""
-        self.headline.setText(f"Fit of <b>{name or 'the spectrum'}</b> {status}. "
-                              f"{r.message}")
+        why = "" if r.success and not r.aborted else f" {r.message}"
+        self.headline.setText(f"Fit of <b>{name or 'the spectrum'}</b> {status}.{why}")
         try:
             d, sd = r.thickness()
             self.thickness_label.setText("Thickness  " + _pm(d, sd, "nm", 1))
@@ -177,8 +198,8 @@ class ResultPanel(QTabWidget):
         warn = list(r.warnings)
         if r.band_gap is not None:
             g = r.band_gap
-            warn_html = (f"Band gap ({g.transition}): <b>{_pm(g.Eg_eV, g.sigma_eV, 'eV', 3)}"
-                         f"</b><br>")
+            warn_html = (f"Band gap from the Tauc plot ({g.transition} transition): "
+                         f"<b>{_pm(g.Eg_eV, g.sigma_eV, 'eV', 3)}</b><br>")
         else:
             warn_html = ""
         if r.alternatives:
@@ -192,6 +213,8 @@ class ResultPanel(QTabWidget):
             warn_html += "No warnings."
         self.warnings_label.setText(warn_html)
         rows = list(r.params.values())
+        self.params_table.setVisible(True)
+        self._summary_layout.setStretch(self._summary_layout.count() - 1, 0)
         self.params_table.setRowCount(len(rows))
         for i, p in enumerate(rows):
             sd = "" if p.stderr is None or not math.isfinite(p.stderr) else f"{p.stderr:.3g}"
@@ -199,7 +222,7 @@ class ResultPanel(QTabWidget):
                 sd = "fixed"
             if p.at_bound:
                 sd += "  (at bound)"
-            for j, txt in enumerate((p.name, f"{p.value:.6g}", sd, p.unit)):
+            for j, txt in enumerate((_label(p.name, r), f"{p.value:.6g}", sd, p.unit)):
                 it = QTableWidgetItem(txt)
                 if j in (1, 2):
                     it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
@@ -225,6 +248,18 @@ class ResultPanel(QTabWidget):
         except (ValueError, KeyError) as exc:
             self.tauc_tab.message(str(exc))
             return
+        # Show the edge, not the whole transparent range: about 1 eV either side of Eg.
+        ax = self.tauc_tab.figure.axes[0]
+        eg = r.band_gap.Eg_eV
+        lo, hi = r.band_gap.fit_range_eV
+        ax.set_xlim(eg - 1.0, max(hi, eg) + 0.8)
+        ys = [line.get_ydata() for line in ax.get_lines()[:1]]
+        xs = [line.get_xdata() for line in ax.get_lines()[:1]]
+        if ys and len(ys[0]):
+            sel = (np.asarray(xs[0]) <= max(hi, eg) + 0.8)
+            top = np.nanmax(np.asarray(ys[0], dtype=float)[sel]) if sel.any() else None
+            if top is not None and np.isfinite(top) and top > 0:
+                ax.set_ylim(0, 1.05 * top)
         self.tauc_tab.finish()
 
     def _correlations(self, r):

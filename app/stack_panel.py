@@ -68,7 +68,9 @@ class StackPanel(QWidget):
         self.layer_list.setToolTip("Film layers as they sit on the sample: the top row faces "
                                    "the light source side (ambient), the bottom row lies on "
                                    "the substrate. Double-click to rename.")
-        self.layer_list.setMaximumHeight(72)
+        self.layer_list.setMaximumHeight(60)
+        self.layer_list.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
+        self.layer_list.setTextElideMode(Qt.ElideRight)
         self.layer_list.currentRowChanged.connect(self._on_layer_selected)
         self.layer_list.itemDoubleClicked.connect(self._rename)
 
@@ -101,7 +103,7 @@ class StackPanel(QWidget):
 
         self.table_model = ParamTableModel(session, self)
         self.table = ParamTableView(self.table_model)
-        self.table.setMinimumHeight(140)
+        self.table.setMinimumHeight(120)
         self.table_model.refused.connect(lambda msg, _i: self.status.emit(msg, True))
 
         # Layout -----------------------------------------------------------------------
@@ -150,8 +152,8 @@ class StackPanel(QWidget):
             row = self.layer_list.currentRow()
             self.layer_list.clear()
             for layer in st.layers:
-                it = QListWidgetItem(f"{layer.name}   —   {layer.material.describe()}, "
-                                     f"{layer.thickness.value:.1f} nm")
+                kind = MODEL_CHOICES[model_choice_of(layer.material)].split(" (")[0]
+                it = QListWidgetItem(f"{layer.name}  —  {kind}, {layer.thickness.value:.1f} nm")
                 it.setToolTip(f"Layer '{layer.name}': {layer.material.describe()}")
                 self.layer_list.addItem(it)
             if st.layers:

@@ -432,6 +432,11 @@ class MainWindow(QMainWindow):
 
     def _fit_ended(self):
         self._set_running(False)
+        r = self.session.result
+        if r is not None:
+            self.fit_panel.stage.setText(
+                f"{'Stopped' if r.aborted else 'Done'} after {r.nfev} model evaluations, "
+                f"{r.elapsed_s:.1f} s.")
         self.fit_panel.progress.setFormat("done" if self.session.result is not None else "idle")
         if self.session.result is not None:
             self.fit_panel.progress.setValue(1000)
