@@ -406,10 +406,27 @@ def process_spectrum(task: Mapping, *, stop=None) -> dict:
         record["traceback"] = tb
     try:
         folder.mkdir(parents=True, exist_ok=True)
+        _remove_old_exports(folder, keep=set(files))
         atomic_write_json(folder / MARKER_NAME, record)    # last: marks the spectrum done
     except (OSError, ValueError, TypeError) as e:
         r["status"], r["reason"] = "error", f"cannot write results: {e}"
     return r
+
+
+def _remove_old_exports(folder: Path, keep: set) -> None:
+    """Delete files an earlier run (another recipe) exported here and this one did not.
+
+    Without this, a figure from last week's recipe could sit beside today's
+    tables. Only files the old marker lists are touched.
+    """
+    try:
+        old = json.loads((folder / MARKER_NAME).read_text(encoding="utf-8")).get("files", [])
+    except (OSError, ValueError, AttributeError):
+        return
+    for name in old if isinstance(old, list) else []:
+        if isinstance(name, str) and name not in keep and name == Path(name).name \
+                and name != MARKER_NAME:
+            (folder / name).unlink(missing_ok=True)
 
 
 def _json_safe(obj):

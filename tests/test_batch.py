@@ -191,6 +191,17 @@ def test_a_crashed_worker_process_does_not_stop_the_batch(tmp_path):
     assert [r["status"] for r in rows] == ["ok"] * 8     # in-flight ones were rerun
 
 
+def test_rerun_with_another_recipe_leaves_no_stale_exports(tmp_path):
+    write_spectra(tmp_path / "in", [480.0], seed=6)
+    run_batch([tmp_path / "in"], make_recipe(exports=("nk", "curves", "report")),
+              tmp_path / "out", jobs=1, report=False)
+    (folder,) = (tmp_path / "out" / "spectra").iterdir()
+    assert (folder / "s000_report.txt").is_file()
+    run_batch([tmp_path / "in"], make_recipe(exports=("curves",)), tmp_path / "out", jobs=1,
+              report=False)
+    assert sorted(p.name for p in folder.iterdir()) == [MARKER_NAME, "s000_curves.csv"]
+
+
 def test_expand_inputs(tmp_path):
     write_spectra(tmp_path / "a", [400, 500], seed=1)
     (tmp_path / "a" / "recipe.json").write_text("{}")       # not a spectrum: skipped
