@@ -90,6 +90,10 @@ class EnvelopeResult:
         span of the extrema).
     n_envelope : ndarray of shape (K,)
         First-pass n_1 from the envelopes (eq. A), before the order refinement.
+    alpha_cm : ndarray of shape (K,)
+        Absorption coefficient at the extrema from the upper envelope and the
+        refined n, d (Swanepoel's x from T_M); 0 where the film is clear within
+        the data's accuracy.
     thickness_first_nm : float
         Median of the first-pass thicknesses d_1 from adjacent extrema.
     """
@@ -106,6 +110,7 @@ class EnvelopeResult:
     T_min_env: np.ndarray = field(default_factory=lambda: _EMPTY)
     n_envelope: np.ndarray = field(default_factory=lambda: _EMPTY)
     thickness_first_nm: float = math.nan
+    alpha_cm: np.ndarray = field(default_factory=lambda: _EMPTY)
 
     def __bool__(self) -> bool:
         return self.ok
@@ -347,6 +352,7 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
     d2 = float(np.mean(d_i))
     d2_sigma = float(np.std(d_i, ddof=1)) if d_i.size > 1 else math.nan
     n2 = m * lam / (2 * d2)
+    alpha = _alpha_from_TM(n2, s_e, TM, d2)
 
     # Envelopes on the caller's grid, NaN outside the extrema's span.
     nu_grid = 1.0 / wl
@@ -361,7 +367,25 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
            f"d = {d2:.1f} ± {d2_sigma:.1f} nm, n = {n2[asc][-1]:.3f} at {lam.max():.0f} nm "
            f"to {n2[asc][0]:.3f} at {lam.min():.0f} nm")
     return EnvelopeResult(True, msg, d2, d2_sigma, lam[asc], n2[asc], m[asc], kinds[asc],
-                          env_M, env_m, n1[asc], d1)
+                          env_M, env_m, n1[asc], d1, alpha[asc])
+
+
+def _alpha_from_TM(n, s, TM, d_nm):
+    """α (cm⁻¹) from the upper envelope: eq. (1) at cos φ = 1 solved for x = exp(-αd).
+
+    x = [E_M - (E_M² - (n²-1)³(n²-s⁴))^½] / [(n-1)³(n-s²)],
+    E_M = 8n²s/T_M + (n²-1)(n²-s²) (Swanepoel 1983, weak and medium absorption).
+    """
+    EM = 8 * n ** 2 * s / TM + (n ** 2 - 1) * (n ** 2 - s ** 2)
+    D = (n - 1) ** 3 * (n - s ** 2)
+    BD = (n ** 2 - 1) ** 3 * (n ** 2 - s ** 4)
+    root = np.sqrt(np.maximum(EM ** 2 - BD, 0.0))
+    # Near n = s² the quadratic degenerates; its root tends to B / (2 E_M).
+    small = np.abs(D) < 1e-9 * np.abs(EM)
+    B = (n + 1) ** 3 * (n + s ** 2)
+    x = np.where(small, B / (2 * EM), (EM - root) / np.where(small, 1.0, D))
+    x = np.clip(x, 1e-300, 1.0)
+    return -np.log(x) / d_nm * 1e7
 
 
 # ----------------------------------------------------------------------------------------
