@@ -281,6 +281,18 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, w
     the reflectance r' seen from inside the substrate. The incoherent sum is
     Harbecke's (1986): T = T_f τ T_b/(1 - R_f' R_b τ²) and
     R = R_f + T_f T_f' R_b τ²/(1 - R_f' R_b τ²), with T_f' = g T_f.
+
+    Examples
+    --------
+    A quarter-wave film of n = sqrt(1.5) on a lossless n = 1.5 slab removes the
+    front reflection, leaving only the back face's 4 % (Macleod 2010, sec. 3.2):
+
+    >>> wl = np.array([600.0])
+    >>> one = np.ones(1, complex)
+    >>> outer = outer_media(wl, one, 1.5 * one, 1e6, one)
+    >>> R, T = films_RT(outer, [np.sqrt(1.5) * one], [600.0 / (4 * np.sqrt(1.5))])
+    >>> round(float(T[0]), 4), round(float(R[0]), 4)
+    (0.96, 0.04)
     """
     L = len(N_films)
     q, r_if, t2 = _interfaces(outer, N_films)
@@ -303,7 +315,7 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, w
 
 def _interfaces(outer: OuterMedia, N_films):
     """N cos θ of the films (L, W), interface r (P, L+1, W) and Π|1 + r|² (P, W)."""
-    if N_films:
+    if len(N_films):
         N = np.array(N_films, dtype=complex)                  # (L, W)
         if outer.normal:
             q = N                                              # cos θ = 1
