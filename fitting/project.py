@@ -38,8 +38,8 @@ from .errors import RecipeError
 from .recipe import Recipe, recipe_from_dict
 from .spectrum import sha256_of_file
 
-__all__ = ["Project", "SpectrumRef", "load_project", "save_project", "PROJECT_FORMAT",
-           "PROJECT_VERSION"]
+__all__ = ["Project", "SpectrumRef", "load_project", "save_project", "project_from_batch",
+           "PROJECT_FORMAT", "PROJECT_VERSION"]
 
 PROJECT_FORMAT = "pellucid-project"
 PROJECT_VERSION = 1
@@ -169,3 +169,28 @@ def load_project(path) -> Project:
         raise RecipeError("(file)", f"not valid JSON at line {e.lineno}, column {e.colno}: "
                                     f"{e.msg}", path=path) from None
     return Project.from_dict(d, base=path.resolve().parent, path=path)
+
+
+def project_from_batch(out_dir) -> Project:
+    """A project from a batch output folder (its recipe.json and summary.json).
+
+    Every spectrum of the summary with a known SHA-256 becomes a reference, and
+    the summary rows become the project's results, so a finished overnight run
+    can be opened and browsed in the app.
+    """
+    out_dir = Path(out_dir)
+    summary_path = out_dir / "summary.json"
+    try:
+        summary = json.loads(summary_path.read_text(encoding="utf-8"))
+        recipe_d = json.loads((out_dir / "recipe.json").read_text(encoding="utf-8"))
+    except FileNotFoundError as e:
+        raise RecipeError("(file)", "not a batch output folder (missing "
+                                    f"{Path(e.filename).name})", path=out_dir) from None
+    except (OSError, ValueError) as e:
+        raise RecipeError("(file)", f"cannot be read: {e}", path=out_dir) from None
+    recipe = recipe_from_dict(recipe_d, path=out_dir / "recipe.json")
+    rows = summary.get("rows", []) if isinstance(summary, dict) else []
+    refs = [SpectrumRef(Path(r["file"]), r["sha256"]) for r in rows
+            if isinstance(r, dict) and r.get("sha256") and r.get("file")]
+    return Project(recipe, refs, [dict(r) for r in rows if isinstance(r, dict)],
+                   name=recipe.name)

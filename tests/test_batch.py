@@ -261,3 +261,15 @@ def test_exit_codes():
     assert mk(2, 3).exit_code == 1
     assert mk(0, 3).exit_code == 2
     assert mk(2, 3, stopped=True).exit_code == 1
+
+
+def test_batch_output_opens_as_a_project(batch27, tmp_path):
+    from fitting.project import load_project, project_from_batch, save_project
+    root, truth, recipe, steps, summary = batch27
+    proj = project_from_batch(root / "out")
+    assert proj.recipe.to_dict() == recipe.to_dict()
+    assert len(proj.results) == 30
+    assert len(proj.spectra) == 30              # broken files too: their bytes have a hash
+    assert proj.check_spectra() == []
+    back = load_project(save_project(proj, tmp_path / "p.pellucid.json"))
+    assert back.results == proj.results
