@@ -10,6 +10,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.integrate import quad
 
 from fitting.dispersion import (MODEL_KINDS, Bruggeman, Cauchy, Constant, Drude, Lorentz,
@@ -276,6 +278,22 @@ def test_bruggeman_dilute_limit_is_maxwell_garnett():
     assert errs[1] / errs[0] == pytest.approx(0.25, abs=0.03)  # ... and only there
 
 
+@settings(max_examples=60, deadline=None)
+@given(n1=st.floats(1.0, 4.0), k1=st.floats(0.0, 3.0), n2=st.floats(0.05, 4.0),
+       k2=st.floats(0.0, 6.0), f=st.floats(0.0, 1.0))
+def test_bruggeman_properties_for_any_passive_pair(n1, k1, n2, k2, f):
+    # For any two passive media (including metals, n < 1 < κ): the result solves the
+    # Bruggeman equation, is passive (κ >= 0, n >= 0) and is symmetric (Aspnes 1982).
+    a, b = Constant(n1, k1), Constant(n2, k2)
+    wl = np.array([550.0])
+    N = Bruggeman(a, b, f).N(wl)
+    e, ea, eb = N ** 2, a.N(wl) ** 2, b.N(wl) ** 2
+    res = f * (eb - e) / (eb + 2 * e) + (1 - f) * (ea - e) / (ea + 2 * e)
+    assert abs(res[0]) < 1e-10
+    assert N.real[0] >= 0 and N.imag[0] >= 0
+    assert np.allclose(N, Bruggeman(b, a, 1 - f).N(wl), rtol=1e-10, atol=1e-12)
+
+
 def test_bruggeman_within_wiener_bounds_for_lossless_parts():
     # Any isotropic mixture lies between the series and parallel (Wiener 1912) bounds
     # (Aspnes 1982).
@@ -394,6 +412,14 @@ def test_bad_parameters_are_refused(make, match):
     with pytest.raises(ParameterError, match=match) as info:
         make()
     assert isinstance(info.value, PellucidError) and isinstance(info.value, ValueError)
+
+
+def test_scalar_wavelength_gives_scalar_index():
+    # Every model is vectorised and also takes a plain float (common practice for numpy APIs).
+    for m in _every_kind().values():
+        N = m.N(600.0)
+        assert np.shape(N) == () and np.isfinite(N)
+        assert N == m.N(np.array([600.0]))[0]
 
 
 def test_set_refuses_nan_and_out_of_bounds():
