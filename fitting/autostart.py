@@ -6,19 +6,25 @@ lands in whichever basin is nearest. The automatic start avoids that:
 
 1. **Seed.** If the spectrum shows fringes, their extrema give the film index
    in the transparent region and a rough thickness. The envelope method of
-   :mod:`fitting.envelope` (Swanepoel 1983) is used when it is available and
-   succeeds; otherwise :func:`fringe_seed` does the simplest version of the same
-   thing (extrema spacing for the thickness, the quarter-wave extrema against
-   the bare substrate for n).
+   :mod:`fitting.envelope` (Swanepoel 1983) is used when it succeeds;
+   otherwise :func:`fringe_seed` does the simplest version of the same thing
+   (extrema spacing for the thickness, the quarter-wave extrema against the
+   bare substrate for n). The seed sets the film's index level (and, for
+   Cauchy and Sellmeier, the dispersion) by :func:`apply_seed`.
 2. **Scan.** χ² is evaluated on a grid of thicknesses finer than one fringe
    order: the step Δd keeps the phase 4πnΔd/λ_min below π/4. The dispersion
-   parameters stay at their start, except for the film's index level, tried at
-   three values around the seed. Scale and offset, if fitted, are solved in
-   closed form at every grid point (they enter the model linearly). The scan is
-   vectorised over thicknesses and runs on a subsample of the data that still
-   resolves the densest fringes.
-3. **Basins.** The lowest local minima of the scanned χ²(d) are the starts the
-   fit engine polishes with a local least-squares minimiser.
+   parameters stay at their start, except for the film's index level, tried
+   at three values around the seed (at four typical film indices when there
+   are no fringes). Scale and offset, if fitted, are solved in closed form at
+   every grid point (they enter the model linearly). The scan is vectorised
+   over thicknesses, looks only at the nearly transparent fringe region
+   (:func:`fringe_region`; the long-wavelength half of it when there are many
+   fringes, where a dispersion error shifts the phase least) and runs on a
+   subsample that still resolves the densest fringes.
+3. **Basins.** The lowest distinct minima of the scanned χ²(d)
+   (:func:`pick_basins`), plus the seed's own thickness, are the starts the
+   fit engine polishes: first on the fringe region with the absorption edge
+   held (:func:`edge_params`), then on all points with everything free.
 
 References
 ----------

@@ -13,10 +13,18 @@ The default method ``"auto"`` is
 
 1. a fringe seed and a scan over the first film's thickness
    (:mod:`fitting.autostart`), which finds the interference order;
-2. a bounded local least-squares polish (trust-region reflective, numerical
-   2-point Jacobian) of all varied parameters from the best few basins;
-3. the best basin wins; others that fit almost as well are reported as
-   alternatives.
+2. a staged, bounded local least-squares polish (trust-region reflective,
+   numerical 2-point Jacobian) from the best few basins and the seed: first
+   thickness and index on the transparent fringe region (its long-wavelength
+   half first when there are many fringes), with the film's absorption edge
+   held; a basin far worse than the best (χ² ratio > 3) is dropped after each
+   stage; then all varied parameters on all points;
+3. the best basin wins; others within a χ² ratio of 1.5 are reported as
+   alternatives (and warned about).
+
+If the spectrum carries no σ, the points are weighted equally and σ is
+estimated afterwards from the residuals (1.4826·MAD), which rescales χ² but
+not the fitted values or the (reduced-χ²-scaled) covariance.
 
 Uncertainties are the usual linearised ones: C = (JᵀWJ)⁻¹ scaled by the reduced
 χ², and 1σ bands of n, κ and α propagate C through the numerical Jacobian of

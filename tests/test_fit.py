@@ -324,6 +324,20 @@ def test_warning_for_negative_cauchy_B():
     assert any("film_B" in w and "negative" in w for w in res.warnings)
 
 
+def test_warning_for_index_below_one_in_the_visible():
+    # A 15 nm free-electron metal film (Drude, E_p = 6 eV): n < 1 in the visible
+    # (Fox, Optical Properties of Solids, 2nd ed., sec. 7.2), which the fit reports
+    # as unusual for a dielectric film.
+    params, d = {"eps_inf": 1.0, "Ep": 6.0, "gamma": 0.3}, 15.0
+    spec = _measured("drude", params, d, scale=1.0)
+    stack = _default_stack("drude", 14.0)
+    stack.set_values({"film_o1_Ep": 5.7, "film_o1_gamma": 0.32})
+    stack.layers[0].material.params["eps_inf"].vary = False
+    res = fit_spectrum(spec, stack, FitOptions(method="least_squares"))
+    assert res.thickness()[0] == pytest.approx(d, rel=0.05)
+    assert any("n drops below 1 in the visible" in w for w in res.warnings)
+
+
 # -- cancel, limits, progress ------------------------------------------------------------------
 def _slow_setup():
     params, d = {"A": 2.0, "B": 0.02, "k0": 0.005, "Eu": 0.25}, 900.0
@@ -380,6 +394,8 @@ def test_progress_is_reported_and_generator_form_yields_result_last():
     stages = [p.stage for p in seen]
     assert "scan" in stages and "polish" in stages and stages[-1] == "done"
     assert all(0.0 <= p.fraction <= 1.0 for p in seen)
+    fr = [p.fraction for p in seen]
+    assert all(b >= a - 1e-12 for a, b in zip(fr, fr[1:])), fr
     assert seen[-1].nfev == res.nfev
     items = list(iter_fit(spec, stack, FitOptions(fit_scale=True)))
     assert all(isinstance(x, FitProgress) for x in items[:-1]) and len(items) > 1
