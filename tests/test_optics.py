@@ -44,7 +44,10 @@ def _strong_substrate(seed, wl):
 
 
 def _tmm_reference(pol, wl, films, d, sub, angle, sub_d_nm):
-    """(R, T) from tmm; 'u' is the mean of s and p (natural light: an incoherent equal mix; common practice)."""
+    """(R, T) from tmm; 'u' is the mean of s and p.
+
+    Natural light is an incoherent equal mix of s and p (common practice).
+    """
     if pol == "u":
         return tuple(np.mean([_tmm_reference(p, wl, films, d, sub, angle, sub_d_nm)
                               for p in "sp"], axis=0))

@@ -227,7 +227,8 @@ def _brute_slit(stack, wl, fwhm, n_nodes=1601):
 @pytest.mark.parametrize("d,fwhm,tol", [
     # The engine's slit rule is Gauss-Jacobi on each half of the triangle, exact for
     # polynomials of degree 11 on either side of the kink: for fringe periods
-    # P = λ²/(2nd) (Swanepoel 1983) much wider than the slit it is exact to the brute force's own error ...
+    # P = λ²/(2nd) (Swanepoel 1983) much wider than the slit it is exact to the brute
+    # force's own error ...
     (1000.0, 2.0, 1e-7),
     (1000.0, 5.0, 1e-7),
     (3000.0, 2.0, 1e-7),
