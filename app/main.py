@@ -37,6 +37,9 @@ def main(argv=None) -> int:
     parser.add_argument("path", nargs="?", help="project or spectrum file to open")
     parser.add_argument("--theme", choices=("system", "light", "dark"), default=None,
                         help="colour theme (default: the last one used)")
+    parser.add_argument("--settings", metavar="FILE", default=None,
+                        help="keep window layout, recent files and folders in this INI file "
+                             "instead of the user's settings (portable use, tests)")
     args = parser.parse_args(argv)
 
     from PySide6.QtCore import QSettings
@@ -48,7 +51,8 @@ def main(argv=None) -> int:
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setApplicationName("Pellucid")
     app.setOrganizationName("Pellucid")
-    settings = QSettings("Pellucid", "Pellucid")
+    settings = (QSettings(args.settings, QSettings.IniFormat) if args.settings
+                else QSettings("Pellucid", "Pellucid"))
     apply_theme(app, args.theme or str(settings.value("theme", "system")))
     win = MainWindow(settings)
     install_excepthook(lambda: win)
@@ -58,7 +62,9 @@ def main(argv=None) -> int:
             win.open_project(args.path)
         else:
             win.open_spectrum(args.path, ask=None)
-    return app.exec()
+    code = app.exec()
+    win.shutdown_jobs()
+    return int(code or 0)
 
 
 if __name__ == "__main__":

@@ -450,7 +450,13 @@ class MainWindow(QMainWindow):
         d = QFileDialog.getExistingDirectory(self, "Export the result into folder",
                                              self.folder("export"))
         if d:
-            self.export_to(d)
+            self._interactive_export = True
+            try:
+                self.export_to(d)
+            finally:
+                self._interactive_export = False
+
+    _interactive_export = False
 
     def export_to(self, out_dir) -> list:
         from fitting.export import make_provenance, export_result
@@ -463,12 +469,16 @@ class MainWindow(QMainWindow):
         try:
             prov = make_provenance(r, recipe_hash=recipe.hash(), recipe_name=recipe.name)
             files = export_result(r, out_dir, stem=stem, provenance=prov,
-                                  plots=tuple(recipe.plot_formats))
+                                  plots=tuple(recipe.plot_formats),
+                                  parts=tuple(recipe.exports))
         except (PellucidError, OSError, ValueError) as exc:
             show_error(self, "Export failed", exc)
             return []
         self._remember_folder("export", out_dir)
         self.status(f"Exported {len(files)} files to {out_dir}")
+        if self.isVisible() and self._interactive_export:
+            show_info(self, "Export done", f"{len(files)} files written to {out_dir}.",
+                      details="\n".join(str(f) for f in files))
         return files
 
     def _project_object(self):
