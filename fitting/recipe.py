@@ -40,6 +40,18 @@ File format ``pellucid-recipe``, version 1
       }
     }
 
+A layer in ``stack.layers`` (ambient side first) looks like::
+
+    {"name": "film",                        # letters and digits
+     "material": {"kind": "cauchy", "urbach": false,
+                  "params": {"A": {"value": 2.0, "min": 1.0, "max": 4.0, "vary": true},
+                             "B": {"value": 0.02, "min": -0.05, "max": 0.5, "vary": true}}},
+     "thickness": {"value": 500.0, "min": 0.0, "max": 5000.0, "vary": true}}
+
+and the substrate is ``{"library": "fused_silica", "thickness_mm": 1.0}`` or
+``{"material": {...}, "thickness_mm": ...}``. Model kinds and their parameters
+are those of :data:`fitting.dispersion.MODEL_KINDS`; ``null`` bounds are open.
+
 Each parameter in the stack is ``{"value", "min", "max", "vary"}`` plus an
 optional ``"expr"``: an lmfit constraint tying it to other parameters by their
 global names (``film2_thickness = "2 * film1_thickness"``). Ties are checked
@@ -68,8 +80,10 @@ the method a top-level ``"method"``.
 Loading validates everything and raises :class:`~fitting.errors.RecipeError`
 naming the field (``stack.layers[0].material.kind``) and the problem; unknown
 format versions are refused. Saving is atomic. :func:`recipe_hash` is the
-SHA-256 of the canonical JSON (sorted keys, no whitespace) and is written into
-every result as provenance; the batch runner's ``--resume`` compares it.
+SHA-256 of the canonical JSON (sorted keys, no whitespace, after validation,
+so key order and number spelling do not matter; name and notes count too) and
+is written into every result as provenance; the batch runner's ``--resume``
+compares it.
 """
 
 from __future__ import annotations

@@ -261,3 +261,17 @@ def test_round_trip_gives_identical_fit_results(tmp_path):
         {k: (p.value, p.stderr) for k, p in b.params.items()}
     assert a.chisqr == b.chisqr and "offset" in a.params
     assert a.thickness()[0] == pytest.approx(575.0, rel=0.01)
+
+
+def test_documented_layer_example_is_valid():
+    # The layer shown in the module docstring must load as written.
+    import re
+    import fitting.recipe as module
+    doc = module.__doc__
+    block = doc[doc.index('{"name": "film"'):doc.index("and the substrate")]
+    layer = json.loads(re.sub(r"#.*", "", block))
+    d = make_recipe().to_dict()
+    d["stack"]["layers"] = [layer]
+    d["limits"] = {}
+    r = recipe_from_dict(d)
+    assert r.stack.layers[0].thickness.max == 5000.0
