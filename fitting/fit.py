@@ -308,6 +308,7 @@ def _run(obj: Objective, options: FitOptions):
     start = obj.params.valuesdict()
     info: dict = {}
     polished: list[_Polished] = []
+    fallback: list = []          # best (label, values) of the fringe stages so far
     try:
         obj.set_stage("start", 0.0, 0.05, message="preparing")
         obj.check()
@@ -316,29 +317,7 @@ def _run(obj: Objective, options: FitOptions):
             yield FitProgress("scan", 0.3, obj.nfev, obj.best_chisqr,
                               f"{len(starts)} start(s) from the thickness scan")
             if plan is not None:
-                # Stage A: thickness and index on the transparent fringe region, the
-                # absorption edge held at its start. Each stage runs for every surviving basin; a basin far worse than
-                # the best after a stage is dropped (ratio 3, common practice).
-                pool = [(math.inf, label, values) for label, values in starts]
-                n_st = len(plan["stages"])
-                for j, masks in enumerate(plan["stages"]):
-                    done = []
-                    for i, (_, label, values) in enumerate(pool):
-                        lo = 0.3 + 0.25 * (j + i / len(pool)) / n_st
-                        obj.set_stage("polish", lo, lo + 0.25 / (n_st * len(pool)),
-                                      10 * (len(obj.var_names) + 1), f"fringe fit of {label}")
-                        # A right basin converges in a few Jacobians; one that needs more
-                        # than this cap is not the one.
-                        res = obj.minimize("least_squares", values, fixed=plan["fixed"],
-                                           masks=masks, x_scale="jac",
-                                           max_nfev=10 * (len(obj.var_names) + 1))
-                        done.append((float(res.chisqr), label, res.params.valuesdict()))
-                        obj.check()
-                    best_a = min(c for c, *_ in done)
-                    pool = sorted((t for t in done if t[0] <= 3.0 * best_a), key=lambda t: t[0])
-                    info.setdefault("stage_a", []).append(
-                        [{"label": label, "chisqr": c} for c, label, _ in done])
-                starts = [(label, v) for _, label, v in pool]
+                starts = _fringe_stages(obj, starts, plan, info, fallback)
             for i, (label, values) in enumerate(starts):
                 lo = 0.55 + 0.4 * i / len(starts)
                 obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
@@ -357,11 +336,44 @@ def _run(obj: Objective, options: FitOptions):
             obj.set_stage("polish", 0.8, 0.95, 60 * len(obj.var_names), "local polish")
             polished.append(_polish(obj, polished[-1].values, f"{method} + polish"))
     except _Stop:
-        pass
+        if not polished and fallback:
+            # Stopped during the fringe stages: their best point beats the start.
+            label, values = fallback[0]
+            polished.append(_Polished(values, obj.chisqr_of(values), None, label))
     result = _finish(obj, options, start, polished, info)
     if obj.progress_cb is not None:
         obj.progress_cb(FitProgress("done", 1.0, obj.nfev, result.chisqr, result.message))
     yield result
+
+
+def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: list):
+    """Polish every start on the fringe region(s) with the absorption edge held.
+
+    Each stage runs for every surviving start; one whose χ² is more than 3 times
+    the best after a stage is dropped (common practice: a wrong order never
+    recovers). A right basin converges in a few Jacobians, so each run is capped
+    at 10 (P + 1) evaluations. Returns the surviving (label, values), best first.
+    """
+    pool = [(math.inf, label, values) for label, values in starts]
+    n_st = len(plan["stages"])
+    cap = 10 * (len(obj.var_names) + 1)
+    for j, masks in enumerate(plan["stages"]):
+        done = []
+        for i, (_, label, values) in enumerate(pool):
+            lo = 0.3 + 0.25 * (j + i / len(pool)) / n_st
+            obj.set_stage("polish", lo, lo + 0.25 / (n_st * len(pool)), cap,
+                          f"fringe fit of {label}")
+            res = obj.minimize("least_squares", values, fixed=plan["fixed"], masks=masks,
+                               x_scale="jac", max_nfev=cap)
+            done.append((float(res.chisqr), label, res.params.valuesdict()))
+            best = min(done, key=lambda t: t[0])
+            fallback[:] = [(best[1], best[2])]
+            obj.check()
+        best_a = min(c for c, *_ in done)
+        pool = sorted((t for t in done if t[0] <= 3.0 * best_a), key=lambda t: t[0])
+        info.setdefault("stage_a", []).append(
+            [{"label": label, "chisqr": c} for c, label, _ in done])
+    return [(label, v) for _, label, v in pool]
 
 
 def _polish(obj: Objective, values: dict, label: str, method: str = "least_squares"):
