@@ -19,6 +19,9 @@ __all__ = ["FitPanel"]
 _BAND_GAP = {"none": (None, "No band gap"), "direct": ("direct", "Tauc, direct gap"),
              "indirect": ("indirect", "Tauc, indirect gap")}
 _POL = {"u": "Unpolarised", "s": "s (TE)", "p": "p (TM)"}
+_METHODS = {"auto": "Automatic start (recommended)",
+            "least_squares": "From the values in the table (local fit)",
+            "differential_evolution": "Global search within the bounds (slow)"}
 
 
 class FitPanel(QWidget):
@@ -82,6 +85,15 @@ class FitPanel(QWidget):
         self.band_gap.currentIndexChanged.connect(
             lambda _i: self._set("band_gap", _BAND_GAP[self.band_gap.currentData()][0]))
 
+        self.method = QComboBox()
+        for k, label in _METHODS.items():
+            self.method.addItem(label, k)
+        self.method.setToolTip("Where the fit starts: 'automatic' finds the thickness from the "
+                               "fringes first; 'from the values' refines what is in the table; "
+                               "'global search' tries the whole range between the bounds")
+        self.method.currentIndexChanged.connect(
+            lambda _i: self._set("method", self.method.currentData()))
+
         self.mask_list = QListWidget()
         self.mask_list.setMaximumHeight(40)
         self.mask_list.setToolTip("Wavelength windows left out of the fit. Add one with "
@@ -129,6 +141,7 @@ class FitPanel(QWidget):
         extras.addWidget(self.fit_scale)
         extras.addWidget(self.fit_offset)
         form.addRow("Corrections:", extras)
+        form.addRow("Start:", self.method)
         form.addRow("Band gap:", self.band_gap)
         masks = QHBoxLayout()
         masks.addWidget(self.mask_list, 1)
@@ -171,6 +184,11 @@ class FitPanel(QWidget):
             self.polarization.setEnabled(o.get("angle_deg", 0.0) > 0)
             self.fit_scale.setChecked(bool(o.get("fit_scale")))
             self.fit_offset.setChecked(bool(o.get("fit_offset")))
+            i = self.method.findData(o.get("method", "auto"))
+            if i < 0:
+                self.method.addItem(o.get("method"), o.get("method"))
+                i = self.method.findData(o.get("method"))
+            self.method.setCurrentIndex(i)
             bg = o.get("band_gap") or "none"
             self.band_gap.setCurrentIndex(self.band_gap.findData(bg))
             self.mask_list.clear()

@@ -330,3 +330,19 @@ def test_dark_theme_recolours_canvas(window, demo_csv):
     finally:
         from app.theme import apply_theme
         apply_theme(QApplication.instance(), "system")
+
+
+def test_local_fit_method_from_the_table_values(window, qtbot, demo_csv):
+    window.open_spectrum(demo_csv)
+    fp = window.fit_panel
+    fp.method.setCurrentIndex(fp.method.findData("least_squares"))
+    assert window.session.options["method"] == "least_squares"
+    # Start close to the answer so a local fit finds it (the data were made with 650 nm).
+    window.stack_panel.table_model.setData(window.stack_panel.table_model.index(0, 1), "648")
+    window.stack_panel.table_model.setData(window.stack_panel.table_model.index(1, 1), "2.0")
+    _fit(window, qtbot)
+    r = window.session.result
+    assert r.method == "least_squares"
+    assert r.thickness()[0] == pytest.approx(650.0, abs=2.0)
+    window.act_undo.trigger()                      # undo "Apply fit result"
+    assert window.session.param("film_thickness").value == 648
