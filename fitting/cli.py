@@ -12,6 +12,7 @@ import argparse
 import importlib
 import math
 import os
+import shutil
 import sys
 import time
 from datetime import datetime, timezone
@@ -209,7 +210,9 @@ class _Progress:
             bad = self.counts.get("failed", 0) + self.counts.get("error", 0)
             line = (f"\r[{'#' * fill}{'.' * (width - fill)}] {step.done}/{step.total}  "
                     f"{rate:.2f} spectra/s  ETA {eta}  failed {bad}  {name[:30]}")
-            self.stream.write(line.ljust(110)[:110])
+            # Never wider than the terminal, or the bar wraps onto new lines.
+            cols = max(40, shutil.get_terminal_size((100, 24)).columns - 1)
+            self.stream.write(line.ljust(cols)[:cols])
             if step.done == step.total:
                 self.stream.write("\n")
         else:
