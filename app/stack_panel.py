@@ -20,6 +20,8 @@ from .session import MODEL_CHOICES, SUBSTRATE_NAMES, model_choice_of
 
 __all__ = ["StackPanel"]
 
+_TABLE = "__table__"       # combo entry: a substrate material read from an n, κ file
+
 
 class StackPanel(QWidget):
     """Substrate chooser, layer list with add/remove/reorder, model chooser, parameter table.
@@ -42,6 +44,7 @@ class StackPanel(QWidget):
         self.substrate_combo = QComboBox()
         for key in SUBSTRATE_LIBRARY:
             self.substrate_combo.addItem(SUBSTRATE_NAMES.get(key, key), key)
+        self.substrate_combo.addItem("n, κ table from file…", _TABLE)
         self.substrate_combo.setToolTip("Substrate material (thick, incoherent; its "
                                         "back-side reflection is included)")
         self.substrate_combo.currentIndexChanged.connect(self._on_substrate)
@@ -141,8 +144,10 @@ class StackPanel(QWidget):
             i = self.substrate_combo.findData(sub.library)
             if i < 0:
                 if self.substrate_combo.findData("") < 0:
-                    self.substrate_combo.addItem("Custom material", "")
+                    self.substrate_combo.insertItem(self.substrate_combo.count() - 1,
+                                                    "Custom material", "")
                 i = self.substrate_combo.findData("")
+                self.substrate_combo.setItemText(i, f"Custom: {sub.name}")
             self.substrate_combo.setCurrentIndex(i)
             self.substrate_thickness.setValue(sub.thickness_mm)
             is_glass = sub.library == "generic_glass"
@@ -197,8 +202,27 @@ class StackPanel(QWidget):
         if self._updating:
             return
         key = self.substrate_combo.currentData()
-        if key:
+        if key == _TABLE:
+            path = self._table_file()
+            if path is None:
+                self.refresh()
+                return
+            self.set_substrate_table(path)
+        elif key:
             self._guard("Substrate not changed", self.session.set_substrate, key)
+
+    def set_substrate_table(self, path):
+        """Use a measured or handbook n, κ table as the substrate material."""
+        from fitting.dispersion import Tabulated
+        try:
+            material = Tabulated.from_file(path)
+        except PellucidError as exc:
+            self.error.emit("Substrate not changed", str(exc))
+            self.refresh()
+            return False
+        return self._guard("Substrate not changed", self.session.set_substrate,
+                           material=material) is None and \
+            self.session.stack.substrate.material is material
 
     def _on_substrate_thickness(self, v):
         if not self._updating:

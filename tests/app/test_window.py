@@ -346,3 +346,18 @@ def test_local_fit_method_from_the_table_values(window, qtbot, demo_csv):
     assert r.thickness()[0] == pytest.approx(650.0, abs=2.0)
     window.act_undo.trigger()                      # undo "Apply fit result"
     assert window.session.param("film_thickness").value == 648
+
+
+def test_substrate_from_an_nk_table(window, tmp_path, dialogs):
+    table = tmp_path / "slide.nk"
+    table.write_text("# wavelength n k\n250 1.52 0\n800 1.50 0\n2000 1.48 0\n")
+    assert window.stack_panel.set_substrate_table(table)
+    sub = window.session.stack.substrate
+    assert sub.library == "" and sub.material.kind == "tabulated"
+    assert window.stack_panel.substrate_combo.currentText().startswith("Custom")
+    bad = tmp_path / "bad.nk"
+    bad.write_text("400 abc\n")
+    assert not window.stack_panel.set_substrate_table(bad)
+    assert dialogs[-1]["title"] == "Substrate not changed"
+    window.act_undo.trigger()
+    assert window.session.stack.substrate.library == "fused_silica"
