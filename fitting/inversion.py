@@ -203,7 +203,7 @@ def _envelope_prior(stack, model, wl, T):
 def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
                           n_start: float | None = None, n_prior=None, angle_deg: float = 0.0,
                           polarization: str = "u", min_T: float = 1e-4,
-                          residual_tol: float = 1e-4, kk_check: bool = True
+                          residual_tol: float = 1e-3, kk_check: bool = True
                           ) -> InversionResult:
     """Solve n(λ), κ(λ) of one film at every wavelength from measured T (and R).
 
@@ -231,7 +231,10 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
         Points with T below this carry no information on the film bulk and
         are marked not ok.
     residual_tol : float
-        Largest RMS residual (fraction) for a point to count as solved.
+        Largest RMS residual (fraction) for a point to count as solved. The
+        default 1e-3 is about the photometric noise of a good spectrophotometer:
+        with noise, R + T can exceed what any κ >= 0 allows, and no exact
+        solution exists.
     kk_check : bool
         Run :func:`~fitting.kramers_kronig.kk_consistency` on the ok points.
 
@@ -301,7 +304,11 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
             jump = min(0.3 * spacing, 0.5)
             fun = _residual_TR(model, i, T[i], R[i])
             x, res = _solve(fun, (n_pred, k_pred))
-            if T[i] >= min_T and not (res <= residual_tol and abs(x[0] - n_pred) <= jump):
+            # Look for other solutions unless this one is close to the prediction: at
+            # fringe extrema the physical and the mirror branch touch, and the solver
+            # may land on either.
+            if T[i] >= min_T and not (res <= residual_tol
+                                      and abs(x[0] - n_pred) <= 0.1 * spacing):
                 best = (x, res)
                 for start in _candidate_starts(model, i, T[i], R[i], n_pred, k_pred, spacing):
                     xc, rc = _solve(fun, start)
@@ -393,15 +400,22 @@ def _candidate_starts(model, i, Tm, Rm, n_pred, k_pred, spacing, keep=3):
     return starts
 
 
-def _predict(hist, lam, n_start):
+def _predict(hist, lam, n_start, window: int = 8):
+    """(n, κ) expected at ``lam``: straight line through the last accepted points.
+
+    A least-squares line through up to ``window`` points, not the two latest:
+    extrapolating from two noisy points turns noise into slope, and a wrong
+    slope is exactly what leads the walk onto the mirror branch at a fringe
+    extremum (where the two solutions touch).
+    """
     if not hist:
         return n_start, 1e-6
-    if len(hist) == 1:
+    if len(hist) < 3:
         return hist[-1][1], hist[-1][2]
-    (l1, n1, k1), (l2, n2, k2) = hist[-2], hist[-1]
-    f = (lam - l2) / (l2 - l1)
-    n = n2 + f * (n2 - n1)
-    k = max(k2 + f * (k2 - k1), 0.0)
+    h = np.array(hist[-window:])
+    x = h[:, 0] - lam
+    n = np.polyfit(x, h[:, 1], 1)[-1]
+    k = max(np.polyfit(x, h[:, 2], 1)[-1], 0.0)
     return float(np.clip(n, *_N_BOUNDS)), float(min(k, _K_BOUNDS[1]))
 
 
