@@ -60,7 +60,8 @@ Y_KINDS = ("T_fraction", "T_percent", "absorbance", "R_fraction", "R_percent", "
 #: Column separators; " " means any run of spaces or tabs.
 DELIMITERS = ("\t", ";", ",", " ")
 DECIMALS = (".", ",")
-ENCODINGS = ("utf-8", "utf-8-sig", "utf-16-le", "utf-16-be", "latin-1", "cp1252")
+ENCODINGS = ("utf-8", "utf-8-sig", "utf-16-le", "utf-16-be", "utf-32-le", "utf-32-be",
+             "latin-1", "cp1252")
 #: How metadata lines look: "Key: value", "Key=value", "# Key: value",
 #: "Key<delimiter>value", or no metadata block at all.
 METADATA_STYLES = ("colon", "equals", "comment", "delimited", "none")
@@ -73,6 +74,8 @@ _DELIMITER_ALIASES = {"tab": "\t", "\\t": "\t", "semicolon": ";", "comma": ",",
 _ENCODING_ALIASES = {"utf8": "utf-8", "utf-8": "utf-8", "utf-8-sig": "utf-8-sig",
                      "utf-16-le": "utf-16-le", "utf-16le": "utf-16-le",
                      "utf-16-be": "utf-16-be", "utf-16be": "utf-16-be",
+                     "utf-32-le": "utf-32-le", "utf-32le": "utf-32-le",
+                     "utf-32-be": "utf-32-be", "utf-32be": "utf-32-be",
                      "latin-1": "latin-1", "latin1": "latin-1", "iso-8859-1": "latin-1",
                      "cp1252": "cp1252", "windows-1252": "cp1252"}
 
@@ -553,17 +556,44 @@ def _fail(path, line, reason, expected="", found=""):
     return SpectrumFormatError(path, line, reason, expected=expected, found=found)
 
 
+#: Magic numbers of files technicians mistake for spectrum tables, with what to do.
+_SIGNATURES = (
+    (b"PK\x03\x04", "a ZIP archive, e.g. an Excel workbook (.xlsx)",
+     "open it in the spreadsheet program and save the sheet as CSV"),
+    (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1", "an old Office file, e.g. an Excel workbook (.xls)",
+     "open it in the spreadsheet program and save the sheet as CSV"),
+    (b"%PDF", "a PDF document", "export the spectrum as a text table (CSV or TXT) instead"),
+    (b"\x89PNG", "a PNG image", "export the spectrum as a text table (CSV or TXT) instead"),
+    (b"\xff\xd8\xff", "a JPEG image", "export the spectrum as a text table (CSV or TXT) "
+     "instead"),
+    (b"\x1f\x8b", "a gzip-compressed file", "unpack it first"),
+)
+_EXPORT_AS_TEXT = ("export the spectrum from the instrument software as a text table "
+                   "(CSV or TXT)")
+
+
 def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
     """Bytes to text with normalised newlines, and the encoding's name."""
     if not raw.strip():
-        raise _fail(path, 1, "the file is empty", expected="a table of wavelength and T or R "
-                    "values")
+        raise _fail(path, 1, "the file is empty (no text at all); check that the export "
+                    "from the instrument finished, then export the spectrum again",
+                    expected="a table of wavelength and T or R values")
+    for magic, what, todo in _SIGNATURES:
+        if raw.startswith(magic):
+            raise _fail(path, None, f"this is {what}, not a text table; {todo}",
+                        expected="a text table of wavelength and T or R values")
     boms = {"utf-8-sig": codecs.BOM_UTF8, "utf-8": codecs.BOM_UTF8,
-            "utf-16-le": codecs.BOM_UTF16_LE, "utf-16-be": codecs.BOM_UTF16_BE}
+            "utf-16-le": codecs.BOM_UTF16_LE, "utf-16-be": codecs.BOM_UTF16_BE,
+            "utf-32-le": codecs.BOM_UTF32_LE, "utf-32-be": codecs.BOM_UTF32_BE}
     if encoding != "auto":
         used = encoding
     elif raw.startswith(codecs.BOM_UTF8):
         used = "utf-8-sig"
+    # UTF-32-LE before UTF-16-LE: its mark FF FE 00 00 starts with UTF-16-LE's FF FE.
+    elif raw.startswith(codecs.BOM_UTF32_LE):
+        used = "utf-32-le"
+    elif raw.startswith(codecs.BOM_UTF32_BE):
+        used = "utf-32-be"
     elif raw.startswith(codecs.BOM_UTF16_LE):
         used = "utf-16-le"
     elif raw.startswith(codecs.BOM_UTF16_BE):
@@ -572,8 +602,9 @@ def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
         used = _utf16_without_bom(raw[:4096])
         if used is None:
             at = raw.index(b"\x00")
-            raise _fail(path, raw[:at].count(b"\n") + 1, "this is a binary file, not a text "
-                        "table", expected="text", found=f"byte 0x00 at offset {at}")
+            raise _fail(path, None, "this is a binary file (perhaps the instrument's own "
+                        f"format), not a text table; {_EXPORT_AS_TEXT}",
+                        expected="text", found=f"byte 0x00 at byte {at}")
     else:
         used = "utf-8"
     skip = len(boms[used]) if used in boms and raw.startswith(boms[used]) else 0
@@ -592,19 +623,23 @@ def _decode(raw: bytes, encoding: str, path) -> tuple[str, str]:
             except UnicodeDecodeError:
                 used, text = "latin-1", body.decode("latin-1")
     except UnicodeDecodeError as exc:
-        newline = {"utf-16-le": b"\n\x00", "utf-16-be": b"\x00\n"}.get(used, b"\n")
+        newline = {"utf-16-le": b"\n\x00", "utf-16-be": b"\x00\n",
+                   "utf-32-le": b"\n\x00\x00\x00", "utf-32-be": b"\x00\x00\x00\n"
+                   }.get(used, b"\n")
         line = body[:exc.start].count(newline) + 1
-        raise _fail(path, line, f"the file cannot be decoded as {used}",
-                    expected=f"{used} text (or set the encoding)",
-                    found=repr(body[exc.start:exc.start + 4])) from None
+        raise _fail(path, line, f"the file cannot be read as {used} text; set the reader's "
+                    "encoding to the one the file was saved in (or 'auto')",
+                    expected=f"{used} text", found=repr(body[exc.start:exc.start + 4])) from None
     if text.startswith("\ufeff"):
         text = text[1:]
     text = text.replace("\r\n", "\n").replace("\r", "\n").rstrip("\x1a")  # DOS end-of-file
     bad = _CONTROL.search(text)
     if bad:
         line = text.count("\n", 0, bad.start()) + 1
-        raise _fail(path, line, "this is a binary or corrupted file, not a text table",
-                    expected="printable text", found=f"control character U+{ord(bad.group()):04X}")
+        raise _fail(path, line, "this is a binary or damaged file, or text in an encoding "
+                    f"Pellucid does not know, not a text table; {_EXPORT_AS_TEXT} in UTF-8, "
+                    "UTF-16 or Latin-1", expected="printable text",
+                    found=f"control character U+{ord(bad.group()):04X}")
     return text, used
 
 
@@ -620,7 +655,7 @@ def _utf16_without_bom(head: bytes) -> str | None:
 
 def _newline_of(raw: bytes, encoding: str) -> str:
     head = raw[:8192]
-    if encoding.startswith("utf-16"):
+    if encoding.startswith(("utf-16", "utf-32")):
         head = head.replace(b"\x00", b"")
     if b"\r\n" in head:
         return "\r\n"
@@ -806,12 +841,21 @@ def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
     if choice is None:
         single = _find_single(lines, options)
         if single is not None:
-            raise _fail(path, single + 1, "only one numeric column was found",
-                        expected="two columns (wavelength and T or R) separated by tab, ';', "
-                                 "',' or spaces", found=lines[single].strip()[:80])
-        raise _fail(path, first_content + 1, "no rows of two or more numbers were found",
-                    expected="rows like '450.5<tab>87.2' or '450,5;87,2'",
+            raise _one_column(path, single + 1, lines[single])
+        if _garbled(lines):
+            raise _fail(path, first_content + 1, "the text is unreadable: the file is saved "
+                        "in a character encoding Pellucid does not know (it reads UTF-8, "
+                        "UTF-16, UTF-32, Latin-1 and Windows-1252); save or export it again "
+                        "as UTF-8 text, or set the reader's encoding",
+                        expected="readable text")
+        raise _fail(path, first_content + 1, "no rows of two or more numbers were found; "
+                    "check that this is a spectrum table with a wavelength column and a T or "
+                    "R column", expected="rows like '450.5<tab>87.2' or '450,5;87,2'",
                     found=lines[first_content].strip()[:80])
+    if options.delimiter == "auto" and options.decimal == "auto":
+        single = _decimal_comma_column(lines, kinds, delim, dec)
+        if single is not None:
+            raise _one_column(path, single + 1, lines[single])
     if start is None:
         data_rows = [i for i, (k, _) in enumerate(kinds) if k == _DATA]
         if len(data_rows) >= MIN_POINTS:
@@ -856,6 +900,54 @@ def _first_run(kinds, complete: bool) -> int | None:
             j -= 1
         return content[j][0]
     return None
+
+
+def _one_column(path, line: int, text: str) -> SpectrumFormatError:
+    return _fail(path, line, "only one column of numbers was found; a spectrum needs the "
+                 "wavelength and the T or R value on each line: export both columns",
+                 expected="two columns (wavelength and T or R) separated by tab, ';', ',' or "
+                          "spaces", found=text.strip()[:80])
+
+
+def _garbled(lines) -> bool:
+    """Text decoded with the wrong codec: C1 control characters or mostly non-ASCII."""
+    head = "".join(lines[:50])
+    chars = [c for c in head if not c.isspace()]
+    if not chars:
+        return False
+    if any("\x80" <= c <= "\x9f" for c in chars):
+        return True
+    return sum(1 for c in chars if ord(c) > 127) > 0.3 * len(chars)
+
+
+_DIGITS = re.compile(r"\d+\Z")
+
+
+def _decimal_comma_column(lines, kinds, delim, dec) -> int | None:
+    """Index of the first data line if the "two columns" are one column of decimal-comma
+    numbers ("450,5" read as 450 and 5), else None.
+
+    Only a comma-separated table of bare digits is ambiguous. It is taken as one column
+    when the digits after the comma are fractional digits (a leading zero, as in
+    "87,05") or the part before it is no abscissa (it repeats or goes back and forth).
+    """
+    if delim != "," or dec != ".":
+        return None
+    rows = [(i, lines[i].strip()) for i, (k, nf) in enumerate(kinds) if k == _DATA]
+    if not rows or any(nf != 2 for k, nf in kinds if k == _DATA):
+        return None
+    pairs = []
+    for _, line in rows:
+        left, _, right = line.partition(",")
+        left, right = left.strip(), right.strip()
+        if not (_DIGITS.match(left) and _DIGITS.match(right)):
+            return None
+        pairs.append((left, right))
+    leading_zero = any(len(r) > 1 and r.startswith("0") for _, r in pairs)
+    x = np.array([float(a) for a, _ in pairs])
+    d = np.diff(x)
+    not_abscissa = d.size > 0 and not (np.all(d > 0) or np.all(d < 0))
+    return rows[0][0] if leading_zero or not_abscissa else None
 
 
 def _find_single(lines, options) -> int | None:
@@ -1216,9 +1308,29 @@ def _infer_y_kind(y: np.ndarray, lines: np.ndarray, name: str, metadata: dict, p
         return f"{what}_percent", origin
     at = int(np.flatnonzero(finite & (y == top))[0])
     raise _fail(path, int(lines[at]), f"values up to {top:g} are neither a fraction (0-1) nor "
-                "percent (0-100) of T or R; for a raw detector signal read the file with "
-                "y_kind='counts' and apply reference_correct()",
-                expected="transmittance or reflectance", found=f"{top:g}")
+                "percent (0-100) of T or R; if the file holds raw detector counts, set the "
+                "reader's y_kind='counts' and correct the counts with dark and 100 % "
+                "reference scans first", expected="transmittance or reflectance",
+                found=f"{top:g}")
+
+
+_QUANTITY_WORDS = {"T": "transmittance T", "R": "reflectance R"}
+
+
+def _check_stated_quantity(name: str, column: int, y_kind: str, header_line, path):
+    """Refuse a y kind of T (or R) for a column whose name says R (or T): fitting a
+    reflectance spectrum as a transmittance one gives a wrong answer without a sign."""
+    want = y_kind[0] if y_kind in ("T_fraction", "T_percent", "R_fraction", "R_percent") \
+        else ("T" if y_kind == "absorbance" else None)
+    stated = _ordinate_label(name) if name else None
+    have = stated[0] if stated else None
+    if want is None or have not in ("T", "R") or have == want:
+        return
+    raise _fail(path, header_line, f"column {column + 1} ({name!r}) holds "
+                f"{_QUANTITY_WORDS[have]}, but the reader is set to read "
+                f"{_QUANTITY_WORDS[want]} (y_kind={y_kind!r}); use a {_QUANTITY_WORDS[want]} "
+                "file, or set y_kind='auto' in the recipe's reader section",
+                expected=f"a {_QUANTITY_WORDS[want]} column", found=name)
 
 
 def _order_of(x: np.ndarray) -> str:
@@ -1288,6 +1400,7 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     order = _order_of(x[keep])
     if options.y_kind != "auto":
         y_kind, y_from = options.y_kind, "option"
+        _check_stated_quantity(names[yc], yc, y_kind, layout.header_line, path)
     else:
         y_kind, y_from = _infer_y_kind(y[keep], line_no[keep], names[yc], layout.metadata,
                                        path, warn)
@@ -1601,6 +1714,9 @@ def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
             data = codecs.BOM_UTF16_LE + text.encode("utf-16-le")
         elif d.encoding == "utf-16-be":
             data = codecs.BOM_UTF16_BE + text.encode("utf-16-be")
+        elif d.encoding in ("utf-32-le", "utf-32-be"):
+            bom = codecs.BOM_UTF32_LE if d.encoding == "utf-32-le" else codecs.BOM_UTF32_BE
+            data = bom + text.encode(d.encoding)
         else:
             data = text.encode(d.encoding)
     except UnicodeEncodeError as exc:

@@ -359,7 +359,7 @@ def test_latin1_header_and_forced_encoding(tmp_path):
     assert sniff(p).encoding == "latin-1"
     s = read_spectrum(p)
     np.testing.assert_allclose(s.wavelength_nm, [400, 500, 600, 700, 800])
-    with pytest.raises(SpectrumFormatError, match=r"l1.txt, line 1: .*decoded as utf-8"):
+    with pytest.raises(SpectrumFormatError, match=r"l1.txt, line 1: .*read as utf-8 text"):
         read_spectrum(p, options=ReaderOptions(encoding="utf-8"))
 
 
@@ -417,11 +417,14 @@ def test_preview_shows_lines_and_problem(tmp_path):
 BROKEN = [
     ("empty", b"", r"line 1: the file is empty"),
     ("blank", b"  \n\n \n", r"line 1: the file is empty"),
-    ("binary", b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR" + bytes(range(256)),
-     r"line 3: this is a binary file"),          # \r\n, then \n: NUL on line 3
-    ("control", b"400;50\n401;51\n402\x01;52\n", r"line 3: this is a binary or corrupted"),
+    ("control", b"400;50\n401;51\n402\x01;52\n", r"line 3: this is a binary or damaged"),
     ("one column", b"Wavelength\n400\n401\n402\n403\n404\n405\n",
-     r"line 2: only one numeric column"),
+     r"line 2: only one column of numbers"),
+    # "450,5" per line is one column of decimal-comma numbers, not "450" and "5"
+    ("decimal-comma column", b"T (%)\n87,05\n87,2\n86,95\n87,4\n87,1\n",
+     r"line 2: only one column of numbers.*export both columns"),
+    ("decimal-comma column, no header", b"12,5\n13,5\n12,75\n13,25\n12,5\n",
+     r"line 1: only one column of numbers"),
     ("text only", b"hello\nworld\n", r"line 1: no rows of two or more numbers"),
     ("text in data", b"x;y\n400;50\n401;51\n402;52\n403;5O\n404;54\n405;55\n",
      r"line 5: column 1 \('y'\) holds text.*found '5O'"),
@@ -429,7 +432,7 @@ BROKEN = [
     ("four points", b"400;50\n401;51\n402;52\n403;53\n\n", r"line 1: only 4 usable data points"),
     ("nonpositive x", b"0;50\n401;51\n402;52\n403;53\n404;54\n", r"line 1: the abscissa must"),
     ("odd utf-16", codecs.BOM_UTF16_LE + "400;50\n".encode("utf-16-le") + b"4",
-     r"line 2: the file cannot be decoded as utf-16-le"),
+     r"line 2: the file cannot be read as utf-16-le text"),
     ("jcamp compressed", b"##TITLE=x\n##XYDATA=(X++(Y..Y))\n400 1 2 3\n404 1 2 3\n"
      b"408 1 2 3\n412 1 2 3\n416 1 2 3\n", r"line 2: compressed JCAMP-DX"),
 ]
@@ -443,6 +446,65 @@ def test_broken_input_names_file_and_line(tmp_path, name, content, message):
         read_spectrum(path)
     assert str(info.value).startswith(f"{path}, line ")
     assert info.value.line is not None and isinstance(info.value, PellucidError)
+
+
+# Whole-file problems: no line to point at, but what the file is and what to do.
+NOT_TEXT = [
+    ("png", b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR" + bytes(range(256)),
+     r"this is a PNG image, not a text table; export the spectrum as a text table"),
+    ("xlsx", b"PK\x03\x04\x14\x00\x06\x00" + bytes(200),
+     r"Excel workbook \(\.xlsx\).*save the sheet as CSV"),
+    ("pdf", b"%PDF-1.4\n%\xe2\xe3\xcf\xd3\n1 0 obj\n", r"this is a PDF document"),
+    ("instrument binary", b"SPC1" + bytes(range(256)) * 4,
+     r"this is a binary file \(perhaps the instrument's own format\).*export the spectrum "
+     r"from the instrument software as a text table"),
+]
+
+
+@pytest.mark.parametrize("name, content, message", NOT_TEXT, ids=[b[0] for b in NOT_TEXT])
+def test_files_that_are_not_text_say_what_they_are(tmp_path, name, content, message):
+    path = tmp_path / "export.csv"
+    path.write_bytes(content)
+    with pytest.raises(SpectrumFormatError, match=message) as info:
+        read_spectrum(path)
+    assert str(info.value).startswith(f"{path}: ") and info.value.line is None
+
+
+def test_decimal_comma_pairs_that_are_a_real_table_still_read():
+    # Bare integers "wavelength,percent" with a rising first column and no leading-zero
+    # digits after the comma are a two-column table (common practice in old exports).
+    s = parse_spectrum("".join(f"{400 + 5 * i},{50 + i % 7}\n" for i in range(20)))
+    np.testing.assert_allclose(s.wavelength_nm[:3], [400, 405, 410])
+    np.testing.assert_allclose(s.values[:3], [0.50, 0.51, 0.52])
+
+
+def test_utf32_with_byte_order_mark_reads(tmp_path):
+    text = "Wellenlänge (nm);T (%)\n" + table([(400 + i, 50 + i) for i in range(8)])
+    for enc, bom in (("utf-32-le", codecs.BOM_UTF32_LE), ("utf-32-be", codecs.BOM_UTF32_BE)):
+        p = tmp_path / f"{enc}.txt"
+        p.write_bytes(bom + text.encode(enc))
+        s = read_spectrum(p)
+        assert sniff(p).encoding == enc
+        np.testing.assert_allclose(s.values[:2], [0.50, 0.51])
+
+
+def test_unknown_encoding_says_so(tmp_path):
+    # EBCDIC (code page 500) is none of the encodings the reader tries.
+    p = tmp_path / "mainframe.txt"
+    p.write_bytes(("Wavelength (nm);T (%)\n" + table([(400 + i, 50) for i in range(8)]))
+                  .encode("cp500"))
+    with pytest.raises(SpectrumFormatError, match=r"mainframe.txt, line 1: .*character "
+                       r"encoding Pellucid does not know.*save or export it again as UTF-8"):
+        read_spectrum(p)
+
+
+def test_forced_transmittance_refuses_a_reflectance_column():
+    text = "Wavelength (nm);R (%)\n" + table([(400 + i, 12) for i in range(8)])
+    with pytest.raises(SpectrumFormatError, match=r"line 1: column 2 \('R \(%\)'\) holds "
+                       r"reflectance R, but the reader is set to read transmittance T"):
+        parse_spectrum(text, options=ReaderOptions(y_kind="T_percent"))
+    assert parse_spectrum(text).quantity == "R"       # auto: read as what it says
+    assert parse_spectrum(text, options=ReaderOptions(y_kind="R_percent")).quantity == "R"
 
 
 def test_missing_file_and_bad_columns(tmp_path):
