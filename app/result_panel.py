@@ -30,6 +30,10 @@ def _pm(value, sigma, unit="", digits=2):
     return f"{value:.{digits}f} {unit} (σ not estimated)".rstrip()
 
 
+_NUISANCE = {"scale": "scale of the 100 % line", "offset": "offset (stray light)",
+             "angle_deg": "angle of incidence", "thickness_spread": "thickness spread"}
+
+
 def _label(name: str, r) -> str:
     """``film_o1_E0`` -> ``film: term 1: E₀``; nuisance names (scale, offset) as they are."""
     from .param_table import pretty_name
@@ -37,9 +41,7 @@ def _label(name: str, r) -> str:
         pre = f"{layer.get('name')}_"
         if name.startswith(pre):
             return f"{layer.get('name')}: {pretty_name(name[len(pre):])}"
-    return {"scale": "scale of the 100 % line", "offset": "offset (stray light)",
-            "angle_deg": "angle of incidence", "thickness_spread":
-            "thickness spread"}.get(name, name)
+    return _NUISANCE.get(name, name)
 
 
 class _FigureTab(QWidget):
@@ -271,19 +273,24 @@ class ResultPanel(QTabWidget):
         fig.clear()
         ax = fig.subplots()
         c = np.asarray(r.correl, dtype=float)
-        im = ax.imshow(c, vmin=-1, vmax=1, cmap="RdBu_r")
-        names = list(r.var_names)
+        # aspect="auto": the cells fill the tall, narrow tab instead of a small square
+        im = ax.imshow(c, vmin=-1, vmax=1, cmap="RdBu_r", aspect="auto")
+        n_layers = len((r.stack or {}).get("layers", []))
+        names = [v if v in _NUISANCE else
+                 (_label(v, r).split(": ", 1)[-1] if n_layers == 1 else _label(v, r))
+                 for v in r.var_names]
         ax.set_xticks(range(len(names)), names, rotation=60, ha="right", fontsize=8)
         ax.set_yticks(range(len(names)), names, fontsize=8)
         col = figure_colors()
         if len(names) <= 10:
             for i in range(len(names)):
                 for j in range(len(names)):
-                    ax.text(j, i, f"{c[i, j]:+.2f}", ha="center", va="center", fontsize=7,
+                    ax.text(j, i, f"{c[i, j]:.2f}", ha="center", va="center", fontsize=7,
                             color="#000000" if abs(c[i, j]) < 0.6 else "#ffffff")
-        cb = fig.colorbar(im, ax=ax, shrink=0.8)
-        cb.set_label("correlation", color=col["text"])
-        cb.ax.tick_params(colors=col["text"])
+        cb = fig.colorbar(im, ax=ax, orientation="horizontal", shrink=0.7, aspect=30,
+                          location="bottom")
+        cb.set_label("correlation (±1: not separable)", color=col["text"], fontsize=8)
+        cb.ax.tick_params(colors=col["text"], labelsize=8)
         ax.set_title("Parameter correlations", fontsize=10)
         style_figure(fig)
         self.corr_tab.canvas.draw_idle()

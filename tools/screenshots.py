@@ -4,7 +4,7 @@
 
 States: ``empty`` (just started), ``loaded`` (a demo spectrum with its recipe and a
 masked window, the live model curve), ``fitted`` (after Fit: summary), ``optical``
-(n, κ, α tab), ``tauc`` (Tauc tab), ``batch`` (batch dialog after a small run),
+(n, κ, α tab), ``tauc`` (Tauc tab), ``correlation`` (heat map), ``batch`` (batch dialog after a small run),
 ``import`` (the import preview) and ``dark`` (fitted, dark theme). Uses the
 synthetic spectra in ``demo_data/`` (invented scenario). Each PNG is written with
 an adaptive palette if Pillow is installed, so it stays well below 300 kB.
@@ -100,7 +100,8 @@ def main(argv=None) -> int:
         _settle(app, 600)
         written.append(_save(win, out / "fitted.png"))
         for name, tab in (("optical", win.results.optical_tab),
-                          ("tauc", win.results.tauc_tab)):
+                          ("tauc", win.results.tauc_tab),
+                          ("correlation", win.results.corr_tab)):
             win.results.setCurrentWidget(tab)
             _settle(app, 600)
             written.append(_save(win, out / f"{name}.png"))
