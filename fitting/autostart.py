@@ -74,6 +74,7 @@ class Seed:
     message: str = ""
     n_extrema: int = 0
     fringe_range_nm: tuple | None = None   # wavelengths spanned by the extrema
+    below_substrate: bool = False          # film index below the substrate's (AR-like)
 
 
     def to_dict(self) -> dict:
@@ -81,7 +82,7 @@ class Seed:
                 "n_ref": self.n_ref, "wl_ref": self.wl_ref, "source": self.source,
                 "message": self.message, "n_extrema": self.n_extrema,
                 "fringe_range_nm": None if self.fringe_range_nm is None
-                else list(self.fringe_range_nm)}
+                else list(self.fringe_range_nm), "below_substrate": self.below_substrate}
 
 
 def _noise(y: np.ndarray) -> float:
@@ -115,6 +116,7 @@ def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.nd
     s = np.asarray(substrate_n, dtype=float)
     n_ref = wl_ref = None
     n_points: tuple = ()
+    high = True
     if quantity == "T":
         Ts = 2 * s / (s * s + 1)
         # Use the long-wavelength half of the extrema, where films absorb least.
@@ -137,7 +139,7 @@ def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.nd
     d = k / (4 * n_use * (1 / lam[0] - 1 / lam[-1]))
     return Seed(True, float(d), n_ref, wl_ref, n_points, "fringes",
                 f"{ext.size} fringe extrema between {lam[0]:.0f} and {lam[-1]:.0f} nm",
-                int(ext.size), (float(lam[0]), float(lam[-1])))
+                int(ext.size), (float(lam[0]), float(lam[-1])), below_substrate=not high)
 
 
 def envelope_seed(wl, y, quantity, substrate_n) -> Seed | None:

@@ -431,8 +431,12 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     sub_n = part.stack.substrate.N(part.wl).real
     # Seeds read T against the bare-substrate line; a baseline error biases n a little,
     # which the scan's index levels absorb.
-    seed = autostart.envelope_seed(part.wl, part.y, part.quantity, sub_n) or \
-        autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
+    # The envelope method assumes a film index above the substrate's; when the
+    # fringes say otherwise (maxima above the bare-substrate line), the simple
+    # fringe seed, which knows both cases, is used.
+    simple = autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
+    seed = simple if simple.below_substrate else (
+        autostart.envelope_seed(part.wl, part.y, part.quantity, sub_n) or simple)
     info["seed"] = seed.to_dict()
     # Fringes closer than ~4 data points are not resolved: their extrema heights (and
     # so the seed's n there) are wrong, and a fit there can slip orders.
@@ -459,7 +463,14 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     level = autostart.n_level_param(mat)
     if level is not None and gmap[pre + level] not in obj.var_names:
         level = None
-    if seed.n_ref:
+    if seed.n_ref and seed.below_substrate:
+        # Fringes of a film below the substrate index are faint, and a baseline error
+        # biases their n a lot: try the seed, the usual low-index films (fluorides,
+        # silica) and up to the substrate.
+        s_ref = float(np.interp(seed.wl_ref, part.wl, sub_n))
+        n_try = sorted({seed.n_ref, 1.38, 0.5 * (seed.n_ref + s_ref), s_ref})
+        n_ref, wl_ref = max(n_try), seed.wl_ref
+    elif seed.n_ref:
         n_ref, wl_ref, n_try = seed.n_ref, seed.wl_ref, seed.n_ref
     elif level is not None:
         # No fringes, so no index from the data: try the usual range of films.

@@ -4,7 +4,8 @@ Reference spectra are computed with the independent transfer-matrix package
 ``tmm`` (S. J. Byrnes, "Multilayer optical calculations", arXiv:1603.02720),
 ``tmm.inc_tmm`` per wavelength with a coherent film on an incoherent 1 mm
 substrate, never with Pellucid's own optics. The fused-silica index passed to
-tmm as numbers is Malitson's Sellmeier (J. Opt. Soc. Am. 55, 1205, 1965), the
+tmm as numbers is Malitson's Sellmeier (J. Opt. Soc. Am. 55, 1205, 1965; sapphire:
+Malitson & Dodge, J. Opt. Soc. Am. 62, 1405, 1972), the
 film index comes from the named dispersion formula at the true parameters.
 Noise of 0.2 % T and a 1 % error of the 100 % line are common practice for
 double-beam UV-Vis-NIR spectrometers.
@@ -26,7 +27,7 @@ from fitting.fit import FitOptions, fit_spectrum, iter_fit
 from fitting.result import FitProgress, FitResult
 from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
-from fitting.substrates import fused_silica, library_substrate
+from fitting.substrates import library_substrate
 
 tmm = pytest.importorskip("tmm")
 
@@ -57,11 +58,11 @@ def _material(kind: str, p: dict | None = None):
 
 @functools.lru_cache(maxsize=None)
 def _tmm_RT(kind: str, params: tuple, d_nm: float, grid: str, pol: str = "s",
-            angle_deg: float = 0.0):
-    """R and T of film | 1 mm fused silica from tmm.inc_tmm, cached per case."""
+            angle_deg: float = 0.0, substrate: str = "fused_silica"):
+    """R and T of film | 1 mm substrate from tmm.inc_tmm, cached per case."""
     wl = GRIDS[grid]
     Nf = _material(kind, dict(params)).N(wl)
-    Ns = fused_silica().N(wl)
+    Ns = library_substrate(substrate).N(wl)
     R, T = np.empty(wl.size), np.empty(wl.size)
     for i, lam in enumerate(wl):
         out = tmm.inc_tmm(pol, [1.0, Nf[i], Ns[i], 1.0], [np.inf, d_nm, 1e6, np.inf],
@@ -146,6 +147,22 @@ def test_auto_fit_very_thin_and_very_thick_films(kind, params, d, grid):
     # Every pair of parameters correlated beyond 0.95 is named in a warning.
     for a, b, c in res.correlations(0.95):
         assert any(a in w and b in w and "correlated" in w for w in res.warnings)
+
+
+@pytest.mark.parametrize("n_film,d,substrate", [
+    (1.38, 1000.0, "fused_silica"),      # a fluoride-like film, below the substrate index
+    (1.46, 800.0, "sapphire_o"),         # silica on sapphire
+])
+def test_auto_fit_film_below_the_substrate_index(n_film, d, substrate):
+    # Quarter-wave points are maxima above the bare-substrate line here (an
+    # antireflection film): the envelope formulas for n > s do not apply.
+    params = {"A": n_film - 0.004 / 0.4, "B": 0.004}
+    R, T = _tmm_RT("cauchy", tuple(sorted(params.items())), d, "dense", "s", 0.0, substrate)
+    y = SCALE_ERROR * T + NOISE * np.random.default_rng(21).standard_normal(T.size)
+    stack = Stack([Layer("film", Cauchy(), 500.0)], library_substrate(substrate, 1.0))
+    res = fit_spectrum(Spectrum(WL_DENSE, y), stack, FitOptions(fit_scale=True))
+    assert abs(res.thickness()[0] - d) < 0.01 * d, res.extra["seed"]
+    assert abs(res.optical["film"].at(633.0)[0] - _n633("cauchy", params)) < 0.01
 
 
 def test_thickness_sigma_matches_scatter_of_repeats():
