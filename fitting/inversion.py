@@ -50,7 +50,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from .dispersion import Dispersion, check_wavelengths
-from .errors import FitError, ParameterError
+from .errors import FitError, ParameterError, PellucidError
 from .kramers_kronig import KKCheck, kk_consistency
 from .optics import stack_RT
 
@@ -70,7 +70,7 @@ class InversionResult:
     ----------
     wavelength_nm, n, k : ndarray of shape (N,)
         On the input grid (input order). Points not ok hold the best solution
-        found (or the prediction), so curves stay plottable; use ``ok``.
+        found, so curves stay plottable; use ``ok`` to select.
     residual : ndarray of shape (N,)
         RMS of (model - data) over the quantities used, per point.
     ok : ndarray of bool, shape (N,)
@@ -323,10 +323,9 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
             good = res <= residual_tol and abs(x[0] - n_pred) <= jump and T[i] >= min_T
             ok[i] = good
             if good:
+                # Only accepted points steer the prediction: after a failure (opaque,
+                # no solution, jump) the walk goes on from the smooth curve so far.
                 hist.append((lam, x[0], x[1]))
-            elif T[i] < min_T:
-                # Opaque: the solution there is unreliable; continue from the prediction.
-                n_out[i], k_out[i] = x[0], x[1]
     else:
         k_prev = 0.0
         for i in order:
@@ -365,9 +364,14 @@ def _default_n_start(stack, layer_name, model, wl, T, i0):
     from .envelope import swanepoel_envelope
     env = swanepoel_envelope(wl, T, np.real(model.N_sub))
     if env.ok:
-        # n at the longest extremum, carried to the grid end with the envelope's slope.
+        # n at the longest extremum (np.interp holds the end value beyond it).
         return float(np.interp(wl[i0], env.wavelength_nm, env.n))
-    return float(np.real(stack.layer(layer_name).material.N(wl[i0:i0 + 1]))[0])
+    try:
+        return float(np.real(stack.layer(layer_name).material.N(wl[i0:i0 + 1]))[0])
+    except PellucidError:
+        raise FitError("point-by-point inversion needs a start value: the envelope method "
+                       f"found none ({env.message}) and the film's model cannot give n at "
+                       f"{wl[i0]:g} nm; pass n_start") from None
 
 
 def _candidate_starts(model, i, Tm, Rm, n_pred, k_pred, spacing, keep=3):

@@ -123,3 +123,16 @@ def test_bad_input():
         invert_point_by_point(stack(), "film", WL, np.full(3, 0.8))
     with pytest.raises(ParameterError, match="percent"):
         invert_point_by_point(stack(), "film", WL, np.full(WL.size, 80.0))
+
+
+def test_thickness_spread_and_oblique_incidence_follow_the_stack_engine():
+    # Self-consistency with fitting.stack (itself checked against tmm in test_stack):
+    # the inversion must use the same thickness-spread average and geometry.
+    wl = WL[::3]
+    true = Stack([Layer("film", FILM, D)], SUB, thickness_spread=0.01)
+    R, T = true.RT(wl, angle_deg=8.0, polarization="p")
+    guess = Stack([Layer("film", Cauchy(2.0, 0.02), D)], SUB, thickness_spread=0.01)
+    res = invert_point_by_point(guess, "film", wl, T, R, angle_deg=8.0, polarization="p")
+    N = FILM.N(wl)
+    good = (np.abs(res.n - N.real) < 1e-3) & (np.abs(res.k - N.imag) < 1e-3)
+    assert good.mean() > 0.9, res.message
