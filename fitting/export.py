@@ -4,7 +4,7 @@
 
 =========================  ==========================================================
 ``<stem>_nk_<layer>.csv``  n, κ, α with 1σ per wavelength, one file per film layer
-``<stem>_curves.csv``      measured, fitted and residual spectrum, per-point σ, mask
+``<stem>_curves.csv``      measured, fitted and residual T or R (fractions), σ, mask
 ``<stem>_result.json``     parameters with σ, correlation matrix, curves, provenance
 ``<stem>_report.txt``      the fixed-section text report (:meth:`FitResult.report`)
 ``<stem>_fit.<fmt>``       measured vs fitted with residuals (:func:`plots.fit_figure`)
@@ -41,12 +41,24 @@ from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
            "read_table_csv", "read_nk_csv", "read_curves_csv", "NK_COLUMNS", "CURVE_COLUMNS",
+           "curve_columns",
            "PLOT_FORMATS", "PARTS"]
 
 #: Column names (with units) of the optical-constants CSV.
 NK_COLUMNS = ("wavelength_nm", "n", "n_sigma", "k", "k_sigma", "alpha_cm-1", "alpha_sigma_cm-1")
-#: Column names of the curves CSV; measured values are fractions (1.0 = 100 %).
-CURVE_COLUMNS = ("wavelength_nm", "measured", "fitted", "residual", "sigma", "used")
+
+
+def curve_columns(quantity: str = "T") -> tuple[str, ...]:
+    """Column names of the curves CSV for a fit of ``quantity`` ("T" or "R"): the
+    measured, fitted, residual and σ columns carry the quantity and ``_fraction``
+    (1.0 = 100 %); ``used`` is 1 for a point that took part in the fit, else 0."""
+    q = str(quantity or "T")
+    return ("wavelength_nm", *(f"{c}_{q}_fraction" for c in ("measured", "fitted", "residual",
+                                                            "sigma")), "used")
+
+
+#: Column names of the curves CSV of a transmittance fit (see :func:`curve_columns`).
+CURVE_COLUMNS = curve_columns("T")
 PLOT_FORMATS = ("png", "svg", "pdf")
 #: The parts :func:`export_result` can write (the names of a recipe's ``outputs.exports``).
 PARTS = ("nk", "curves", "json", "report", "plots")
@@ -217,7 +229,7 @@ def _write_curves(result, path, prov, name):
                                            f"(measured - fitted) and sigma of {result.quantity} "
                                            "as fractions (1.0 = 100 %); used = 1 if the point "
                                            "took part in the fit"})
-    atomic_write_text(path, _csv_text(CURVE_COLUMNS, data, header))
+    atomic_write_text(path, _csv_text(curve_columns(result.quantity), data, header))
 
 
 def export_result(result, out_dir, *, stem: str, provenance: Mapping,
@@ -332,12 +344,31 @@ def read_nk_csv(path) -> dict:
             "alpha_cm": col.get("alpha_cm-1"), "meta": meta}
 
 
+_CURVE_NAME = re.compile(r"^(measured|fitted|residual|sigma)(?:_([TR])_fraction)?$")
+
+
 def read_curves_csv(path) -> dict:
     """The fitted spectrum from ``<stem>_curves.csv`` as a mapping for
-    :func:`fitting.plots.fit_figure`."""
+    :func:`fitting.plots.fit_figure`.
+
+    Reads the column names of :func:`curve_columns` and also the bare ``measured``,
+    ``fitted``, ``residual``, ``sigma`` of files from earlier builds of this version.
+    """
     meta, names, data = read_table_csv(path)
-    col = {c: data[:, i] for i, c in enumerate(names)}
-    return {"name": meta.get("spectrum", Path(path).stem), "quantity": meta.get("quantity", "T"),
+    col, quantity = {}, None
+    for i, c in enumerate(names):
+        m = _CURVE_NAME.match(c)
+        if m:
+            col[m.group(1)] = data[:, i]
+            quantity = quantity or m.group(2)
+        else:
+            col[c] = data[:, i]
+    missing = [c for c in ("wavelength_nm", "measured", "fitted") if c not in col]
+    if missing:
+        raise ValueError(f"{path}: not a curves file of Pellucid; column(s) {missing} missing "
+                         f"(found {names})")
+    return {"name": meta.get("spectrum", Path(path).stem),
+            "quantity": meta.get("quantity") or quantity or "T",
             "wavelength_nm": col["wavelength_nm"], "measured": col["measured"],
             "fitted": col["fitted"], "residuals": col.get("residual"),
             "sigma": col.get("sigma"), "used": col["used"] > 0.5 if "used" in col else None,

@@ -157,7 +157,10 @@ def test_nk_csv_reads_back_with_units_header(exported):
 def test_curves_csv_reads_back(exported):
     res, _, _, out = exported
     meta, header, data = read_csv(out / "sample_01_curves.csv")
-    assert header == ["wavelength_nm", "measured", "fitted", "residual", "sigma", "used"]
+    # Units in the names: a spreadsheet user sees T as a fraction, not percent.
+    assert header == ["wavelength_nm", "measured_T_fraction", "fitted_T_fraction",
+                      "residual_T_fraction", "sigma_T_fraction", "used"]
+    assert tuple(header) == export.CURVE_COLUMNS == export.curve_columns("T")
     np.testing.assert_array_equal(data[:, 0], res.wavelength_nm)
     np.testing.assert_array_equal(data[:, 1], res.measured)
     np.testing.assert_array_equal(data[:, 2], res.fitted)
@@ -166,6 +169,33 @@ def test_curves_csv_reads_back(exported):
     assert meta["quantity"] == "T"
     back = export.read_curves_csv(out / "sample_01_curves.csv")
     np.testing.assert_array_equal(back["used"], res.used)
+    np.testing.assert_array_equal(back["measured"], res.measured)
+    np.testing.assert_array_equal(back["residuals"], data[:, 3])
+    assert back["quantity"] == "T"
+
+
+def test_curves_csv_of_a_reflectance_fit_names_r(tmp_path):
+    res = make_result(band_gap=False)
+    res = FitResult(**{**res.__dict__, "quantity": "R"})
+    export.export_result(res, tmp_path, stem="r", provenance={}, plots=(), parts=("curves",))
+    _, header, _ = read_csv(tmp_path / "r_curves.csv")
+    assert header[1:5] == ["measured_R_fraction", "fitted_R_fraction", "residual_R_fraction",
+                           "sigma_R_fraction"]
+    assert export.read_curves_csv(tmp_path / "r_curves.csv")["quantity"] == "R"
+
+
+def test_read_curves_csv_takes_the_old_bare_names(tmp_path):
+    p = tmp_path / "old_curves.csv"
+    p.write_text("# quantity: T\nwavelength_nm,measured,fitted,residual,sigma,used\n"
+                 "400.0,0.5,0.49,0.01,0.002,1.0\n401.0,0.6,0.61,-0.01,0.002,0.0\n",
+                 encoding="utf-8")
+    back = export.read_curves_csv(p)
+    np.testing.assert_array_equal(back["fitted"], [0.49, 0.61])
+    np.testing.assert_array_equal(back["used"], [True, False])
+    bad = tmp_path / "nk.csv"
+    bad.write_text("wavelength_nm,n\n400.0,2.0\n", encoding="utf-8")
+    with pytest.raises(ValueError, match="not a curves file.*'measured'"):
+        export.read_curves_csv(bad)
 
 
 def test_json_has_parameters_correlations_and_true_sha256(exported, spectrum_file):
