@@ -14,12 +14,11 @@ ROOT = Path(__file__).resolve().parents[2]
 REFS = ROOT / "demo_data" / "references"
 
 
-def _semicolon_file(path):
-    # Decimal comma and values as a fraction: the detector must be told.
-    rows = [f"{400 + 2 * i};{0.5 + 0.3 * np.sin(i / 9):.4f}".replace(".", ",", 1)
-            for i in range(200)]
-    rows = [r.split(";")[0] + ";" + r.split(";")[1] for r in rows]
-    path.write_text("Wavelength;Signal\n" + "\n".join(rows) + "\n", encoding="utf-8")
+def _bare_table(path):
+    """Two unlabelled columns: the reader cannot know whether they hold T or R."""
+    wl = np.linspace(400, 900, 200)
+    y = 0.5 + 0.3 * np.sin(wl / 40)
+    path.write_text("\n".join(f"{a:.1f}\t{b:.5f}" for a, b in zip(wl, y)) + "\n")
     return path
 
 
@@ -31,9 +30,16 @@ def test_import_dialog_shows_lines_detection_and_applies_corrections(qtbot, tmp_
     assert "Wavelength (nm)" in dlg.lines.toPlainText()
     assert "Detected:" in dlg.detected.text() and "nm" in dlg.detected.text()
     assert dlg.spectrum is not None and "400 points" in dlg.result_label.text()
-    # Correct the detection: say the values are reflectance in percent.
+    # A correction that contradicts the file's own column name is refused with the reason.
     dlg.y_kind.setCurrentIndex(dlg.y_kind.findData("R_percent"))
-    assert dlg.options().y_kind == "R_percent"
+    assert dlg.spectrum is None
+    assert "reflectance" in dlg.detected.text() + dlg.result_label.text()
+    # An unlabelled table: the user says the values are reflectance (fraction).
+    dlg = ImportDialog(_bare_table(tmp_path / "bare.txt"))
+    qtbot.addWidget(dlg)
+    assert dlg.spectrum is not None and dlg.spectrum.quantity == "T"
+    dlg.y_kind.setCurrentIndex(dlg.y_kind.findData("R_fraction"))
+    assert dlg.options().y_kind == "R_fraction"
     assert dlg.spectrum.quantity == "R"
     # An impossible correction is refused in the dialog, Load is disabled.
     dlg.x_column.setValue(2)
@@ -42,18 +48,18 @@ def test_import_dialog_shows_lines_detection_and_applies_corrections(qtbot, tmp_
     assert not dlg.buttons.button(dlg.buttons.StandardButton.Ok).isEnabled()
 
 
-def test_open_with_preview_uses_the_corrected_options(window, monkeypatch, demo_csv):
+def test_open_with_preview_uses_the_corrected_options(window, monkeypatch, tmp_path):
     from app.import_dialog import ImportDialog
 
     def accept(self):
-        self.y_kind.setCurrentIndex(self.y_kind.findData("R_percent"))
+        self.y_kind.setCurrentIndex(self.y_kind.findData("R_fraction"))
         self.every_time.setChecked(False)
         return ImportDialog.Accepted
 
     monkeypatch.setattr(ImportDialog, "exec", accept)
-    assert window.open_spectrum(demo_csv, ask=True)
+    assert window.open_spectrum(_bare_table(tmp_path / "bare.txt"), ask=True)
     assert window.session.spectrum.quantity == "R"
-    assert window.session.reader_options.y_kind == "R_percent"
+    assert window.session.reader_options.y_kind == "R_fraction"
     assert not window._preview_every_time()          # remembered in settings
     assert "Reflectance" in window.plot.ax.get_ylabel()
 
