@@ -20,6 +20,9 @@ What the runner guarantees:
   A killed run (Ctrl-C, SIGKILL, power cut) keeps every finished spectrum; ``resume=True`` skips those whose marker carries the same
   recipe hash, input SHA-256 and Pellucid version, so the rerun's summary
   equals an uninterrupted run's.
+* **One batch per folder.** A lock file (``.pellucid-batch.lock``) refuses a
+  second batch writing into the same output folder; a lock left by a killed
+  run on this machine is taken over.
 * **Provenance.** Software version, recipe hash, input SHA-256 and the time
   (UTC) are in every row, every marker and every export.
 * **Flat memory.** Only the small summary rows are kept, never fit results.
@@ -60,6 +63,7 @@ import math
 import multiprocessing
 import os
 import re
+import socket
 import time
 import traceback
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -553,6 +557,58 @@ def iter_batch(paths, recipe: Recipe, out_dir, *, jobs: int | None = None,
     if jobs is not None and (isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1):
         raise BatchInputError(f"jobs = {jobs!r}: must be a whole number of at least 1")
     out_dir.mkdir(parents=True, exist_ok=True)
+    lock = _acquire_lock(out_dir)
+    try:
+        return (yield from _batch(paths, recipe, out_dir, jobs, resume, stop, scheduler,
+                                  report, t0))
+    finally:
+        lock.unlink(missing_ok=True)
+
+
+LOCK_NAME = ".pellucid-batch.lock"
+
+
+def _acquire_lock(out_dir: Path) -> Path:
+    """Refuse a second batch writing into the same folder; take over a dead one's lock."""
+    lock = out_dir / LOCK_NAME
+    me = {"pid": os.getpid(), "host": socket.gethostname(),
+          "started_utc": datetime.now(timezone.utc).isoformat(timespec="seconds")}
+    for _ in range(2):
+        try:
+            fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            try:
+                other = json.loads(lock.read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                other = {}
+            pid, host = other.get("pid"), other.get("host")
+            if host == me["host"] and isinstance(pid, int) and not _alive(pid):
+                lock.unlink(missing_ok=True)         # left by a killed run: take over
+                continue
+            raise BatchInputError(
+                f"{out_dir}: another batch (process {pid} on {host}, started "
+                f"{other.get('started_utc')}) is writing to this folder; wait for it to end "
+                f"or choose another output folder. If no batch is running, delete "
+                f"{lock}") from None
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(me, fh)
+        return lock
+    raise BatchInputError(f"{out_dir}: cannot take the batch lock {lock}")
+
+
+def _alive(pid: int) -> bool:
+    if pid == os.getpid() or os.name == "nt":
+        return True              # (on Windows os.kill would end the process; be safe)
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError):
+        return True              # exists (another user's) or cannot tell: assume running
+    return True
+
+
+def _batch(paths, recipe, out_dir, jobs, resume, stop, scheduler, report, t0):
     rdict, rhash = recipe.to_dict(), recipe_hash(recipe)
     columns = summary_columns(recipe)
     header = {"software": {"name": "pellucid", "version": __version__}, "recipe_hash": rhash,

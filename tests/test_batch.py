@@ -202,6 +202,29 @@ def test_rerun_with_another_recipe_leaves_no_stale_exports(tmp_path):
     assert sorted(p.name for p in folder.iterdir()) == [MARKER_NAME, "s000_curves.csv"]
 
 
+def test_one_batch_per_output_folder(tmp_path):
+    import socket
+    import subprocess
+    import sys
+    from fitting.batch import LOCK_NAME
+    write_spectra(tmp_path / "in", [450.0, 500.0], seed=7)
+    first = iter_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                       report=False)
+    next(first)                                        # running, holds the lock
+    with pytest.raises(BatchInputError, match="another batch"):
+        next(iter_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1))
+    first.close()                                      # released when it ends
+    assert not (tmp_path / "out" / LOCK_NAME).exists()
+    # A lock left by a killed run (its process is gone) is taken over.
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True).stdout.strip()
+    (tmp_path / "out" / LOCK_NAME).write_text(json.dumps(
+        {"pid": int(dead), "host": socket.gethostname()}))
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 2 and not (tmp_path / "out" / LOCK_NAME).exists()
+
+
 def test_expand_inputs(tmp_path):
     write_spectra(tmp_path / "a", [400, 500], seed=1)
     (tmp_path / "a" / "recipe.json").write_text("{}")       # not a spectrum: skipped
