@@ -6,15 +6,18 @@ p = 2 for indirect allowed transitions (Tauc, Grigorovici & Vancu 1966; Davis &
 Mott 1970). Plotted as y = (α hν)^r with r = 1/p, the edge is a straight line
 whose intercept with y = 0 is E_g.
 
-:func:`tauc_gap` picks the straight part itself: it scans every window of
-consecutive points, keeps those that are linear (R² >= 0.99) and rising, and
-takes the largest lower 95 % confidence bound of the slope among them,
-a_ref = max(a - t σ_a) (Student t, so a short run whose few points happen to
-scatter little does not set it). Of the windows at least that steep it chooses
-the longest. Windows whose line meets zero above their first point are refused:
-they reach down into the Urbach tail below the gap. So the chosen window is the
-longest steep straight part of the edge, which is the usual hand construction;
-the user can give the range instead.
+:func:`tauc_gap` picks the straight part itself. It scans every window of
+consecutive points (prefix sums make each window's regression O(1)) and keeps
+those that are straight (R² >= 0.99), rising, and whose line meets zero below
+their first point (a window reaching down into the Urbach tail fails this).
+The edge's slope a_edge is the best lower 2σ bound of the slope among kept
+windows of at least a tenth of the points; a window's σ is never taken below
+the point noise measured from second differences, so a few points that line
+up by chance do not set it. Of the kept windows with slope >= 0.85 a_edge it
+chooses the longest. So the chosen window is the longest steep straight part
+of the edge, the usual hand construction. On curved edges (a Tauc-Lorentz
+film, saturation at high α) the result depends on that choice; the user can
+give the range instead.
 
 References
 ----------
@@ -37,14 +40,15 @@ from .errors import ParameterError, PellucidError
 from .result import BandGap
 from .units import HC_EV_NM
 
-__all__ = ["tauc_gap", "tauc_curve", "NoAbsorptionEdgeError", "TAUC_EXPONENTS"]
+__all__ = ["tauc_gap", "tauc_curve", "NoAbsorptionEdgeError", "TAUC_EXPONENTS", "R2_MIN"]
 
 #: Exponent r of (α hν)^r for each transition type.
 TAUC_EXPONENTS = {"direct": 2.0, "indirect": 0.5}
 
-_R2_MIN = 0.99
+#: Default straightness test of a window (R² of the line).
+R2_MIN = 0.99
 #: A window counts as part of the edge if its slope is at least this share of the
-#: edge's largest local slope (common practice: the steepest straight part).
+#: edge's slope a_edge (common practice: the steepest straight part).
 _STEEP_FRACTION = 0.85
 _MAX_NODES = 300          # windows start/end on at most this many nodes (O(nodes²) scan)
 
@@ -130,8 +134,8 @@ def _point_noise_sq(y, half: int = 5):
     return num / den
 
 
-def _scan_windows(E, y, min_points):
-    """Best window (i, j) (inclusive) by the slope's lower confidence bound; None if none."""
+def _scan_windows(E, y, min_points, r2_min):
+    """Longest straight steep window (i, j), inclusive; None if there is none."""
     n = E.size
     nodes = np.unique(np.linspace(0, n - 1, min(n, _MAX_NODES)).round().astype(int))
     # Prefix sums give every window's regression in O(1).
@@ -164,7 +168,7 @@ def _scan_windows(E, y, min_points):
     x_lo = X[I]
     # A window qualifies if it is straight, rising, and its intercept lies below its
     # first point (the line runs down into the gap, not back up into the tail).
-    valid = (np.isfinite(r2) & (r2 >= _R2_MIN) & (a > 0) & np.isfinite(Eg)
+    valid = (np.isfinite(r2) & (r2 >= r2_min) & (a > 0) & np.isfinite(Eg)
              & (Eg <= x_lo + 1e-12) & (sxx > 0))
     if not np.any(valid):
         return None
@@ -186,7 +190,7 @@ def _scan_windows(E, y, min_points):
 
 def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",
              energy_range_eV: tuple[float, float] | None = None, min_points: int = 5,
-             layer: str = "") -> BandGap:
+             r2_min: float = R2_MIN, layer: str = "") -> BandGap:
     """Tauc optical gap of a film from its absorption coefficient.
 
     Parameters
@@ -202,6 +206,8 @@ def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",
         part automatically.
     min_points : int
         Fewest points a straight-line window may have (>= 3).
+    r2_min : float
+        Straightness a window needs in automatic mode (R² of its line).
     layer : str
         Layer name recorded in the result.
 
@@ -224,8 +230,8 @@ def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",
     -----
     The intercept's σ follows from E_g = -b/a with the covariance of the slope a
     and intercept b (first-order propagation). In automatic mode the window is
-    the longest straight rising window whose slope reaches the best lower
-    confidence bound of the slope; see the module docstring.
+    the longest straight rising window at least 0.85 times as steep as the
+    edge; see the module docstring.
 
     References
     ----------
@@ -252,10 +258,10 @@ def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",
             raise NoAbsorptionEdgeError(
                 f"α is zero throughout {E[0]:.2f}-{E[-1]:.2f} eV: the film is transparent "
                 "there; measure further into the UV to see the absorption edge")
-        win = _scan_windows(E, y, min_points)
+        win = _scan_windows(E, y, min_points, float(r2_min))
         if win is None:
             raise NoAbsorptionEdgeError(
-                f"no straight rising absorption edge (R² >= {_R2_MIN}) in "
+                f"no straight rising absorption edge (R² >= {r2_min}) in "
                 f"{E[0]:.2f}-{E[-1]:.2f} eV; choose the energy range by hand or check the "
                 f"transition type ({transition})")
         i, j = win

@@ -113,3 +113,18 @@ def test_tauc_curve_is_ascending_in_energy():
     Ec, y = tauc_curve(WL, direct_alpha(E), transition="direct")
     assert np.all(np.diff(Ec) > 0)
     assert np.allclose(y, (direct_alpha(Ec) * Ec) ** 2)
+
+
+def test_stricter_straightness_narrows_the_window_on_a_curved_edge():
+    # A Tauc-Lorentz film (Jellison & Modine, Appl. Phys. Lett. 69, 371 (1996)): its ε2
+    # follows Tauc's (E - Eg)² law only near Eg and bends above, so (αhν)^½ is curved.
+    from fitting.dispersion import Oscillators, TaucLorentz
+    from fitting.units import alpha_per_cm
+    wl = np.arange(200.0, 700.0, 1.0)
+    k = Oscillators(2.0, [TaucLorentz(120.0, 4.5, 1.8, 3.0)]).N(wl).imag
+    loose = tauc_gap(wl, alpha_per_cm(k, wl), transition="indirect")
+    strict = tauc_gap(wl, alpha_per_cm(k, wl), transition="indirect", r2_min=0.999)
+    width = lambda g: g.fit_range_eV[1] - g.fit_range_eV[0]  # noqa: E731
+    assert strict.r_squared >= 0.999 > loose.r_squared
+    assert width(strict) < width(loose)
+    assert 3.0 <= loose.Eg_eV < 3.2          # above the model's Eg: the bend, not an error
