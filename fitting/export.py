@@ -341,7 +341,8 @@ def read_nk_csv(path) -> dict:
     return {"name": meta.get("spectrum", Path(path).stem), "layer": meta.get("layer", ""),
             "wavelength_nm": col["wavelength_nm"], "n": col["n"], "k": col["k"],
             "n_sigma": col.get("n_sigma"), "k_sigma": col.get("k_sigma"),
-            "alpha_cm": col.get("alpha_cm-1"), "meta": meta}
+            "alpha_cm": col.get("alpha_cm-1"), "alpha_sigma": col.get("alpha_sigma_cm-1"),
+            "meta": meta}
 
 
 _CURVE_NAME = re.compile(r"^(measured|fitted|residual|sigma)(?:_([TR])_fraction)?$")

@@ -195,12 +195,23 @@ def _thickness_of(result):
     return _get(result, "thickness_nm"), _get(result, "thickness_sigma_nm")
 
 
-def _band(ax, x, y, s, color, label):
+def _two_digits(x) -> str:
+    """Two significant digits without exponent where plain digits read better (400, not
+    4e+02)."""
+    return f"{float(f'{x:.2g}'):g}"
+
+
+def _band(ax, x, y, s, color, label, *, unit="", floor=None):
     ax.plot(x, y, color=color, lw=1.4, label=label)
     if s is not None and np.any(np.isfinite(s)):
+        lower = y - s
+        if floor is not None:
+            # On a log axis a lower edge at or below zero is drawn at the panel's floor:
+            # the band then says "consistent with zero" instead of vanishing.
+            lower = np.where(np.isfinite(y), np.maximum(lower, floor), np.nan)
         # The largest σ goes in the legend: a band thinner than the line is still shown.
-        ax.fill_between(x, y - s, y + s, color=color, alpha=0.22, lw=0,
-                        label=f"±1σ (at most {np.nanmax(s):.2g})")
+        ax.fill_between(x, lower, y + s, color=color, alpha=0.22, lw=0,
+                        label=f"±1σ (at most {_two_digits(np.nanmax(s))}{unit})")
         ax.legend(loc="best", frameon=False, fontsize="small")
 
 
@@ -240,11 +251,19 @@ def optical_figure(result, *, layer: str | None = None, alpha: bool = False,
         a = _arr(_get(oc, "alpha_cm"))
         if a is None:
             a = 4 * np.pi * k / wl * 1e7
+        sa = _arr(_get(oc, "alpha_sigma"))
+        if sa is None and ks is not None:
+            sa = 4 * np.pi * ks / wl * 1e7      # α = 4πκ/λ is linear in κ
         a = np.where(a > 0, a, np.nan)
-        axes[2].plot(wl, a, color=PALETTE["alpha"], lw=1.4)
         if np.any(np.isfinite(a)):
             axes[2].set_yscale("log")
-        axes[2].set_ylabel("α (cm⁻¹)")
+            floor = 0.5 * float(np.nanmin(a))
+            _band(axes[2], wl, a, sa, PALETTE["alpha"], "α", unit=" cm⁻¹", floor=floor)
+        else:
+            axes[2].plot(wl, a, color=PALETTE["alpha"], lw=1.4)
+            axes[2].text(0.5, 0.5, "κ = 0: no absorption in this range", ha="center",
+                         transform=axes[2].transAxes, color="#666666")
+        axes[2].set_ylabel("Absorption coeff. α (cm⁻¹)")
     for ax in axes:
         _style(ax)
     axes[-1].set_xlabel("Wavelength (nm)")
@@ -290,10 +309,17 @@ def tauc_figure(result, *, fig: Figure | None = None) -> Figure:
         xs = np.array([max(min(x0, lo), E[0]), hi])
         ax.plot(xs, slope * xs + icpt, "--", color=PALETTE["fitted"], lw=1.2,
                 label=f"linear range {lo:.2f}–{hi:.2f} eV")
-    ax.axvline(gap.Eg_eV, color="#666666", lw=0.8, ls=":")
-    ax.annotate(f"Eg = {gap.Eg_eV:.3f} ± {gap.sigma_eV:.3f} eV", (gap.Eg_eV, 0),
-                xytext=(6, 12), textcoords="offset points", fontsize="small")
+    # The gap goes in the legend: a note beside the line would sit on the rising curve.
+    ax.axvline(gap.Eg_eV, color="#666666", lw=0.8, ls=":",
+               label=f"Eg = {gap.Eg_eV:.3f} ± {gap.sigma_eV:.3f} eV")
     ax.set_ylim(bottom=0)
+    # Start the axis a little below the absorption edge, not at the data's low-energy
+    # end, so the edge and the extrapolated line fill the plot.
+    finite = np.isfinite(y)
+    if finite.any() and np.nanmax(y) > 0:
+        rise = E[np.flatnonzero(finite & (y > 0.01 * np.nanmax(y)))[0]]
+        left = max(float(E[0]), min(float(rise), float(gap.Eg_eV), float(lo)) - 0.5)
+        ax.set_xlim(left, float(E[-1]) + 0.02 * (float(E[-1]) - left))
     power = "2" if r == 2 else "1/2"
     ax.set_xlabel(r"Photon energy $h\nu$ (eV)")
     ax.set_ylabel(rf"$(\alpha h\nu)^{{{power}}}$  ((eV cm$^{{-1}}$)$^{{{power}}}$)")
@@ -399,8 +425,10 @@ def thickness_trend_figure(rows: Sequence[Mapping], spec: Mapping | None = None,
     for lim, name in ((lo, "min"), (hi, "max")):
         if lim is not None:
             ax.axhline(lim, color=PALETTE["spec"], lw=1.2, ls="--")
+            # max above its line, min below: close limits do not print over each other
             ax.annotate(f"spec {name} {lim:g}", (1, lim), xycoords=("axes fraction", "data"),
-                        xytext=(-4, 3), textcoords="offset points", ha="right",
+                        xytext=(-4, 3 if name == "max" else -3), textcoords="offset points",
+                        ha="right", va="bottom" if name == "max" else "top",
                         fontsize="x-small", color="#7a5300")
     failed = ~ok
     if failed.any():
@@ -434,7 +462,7 @@ def thickness_histogram_figure(rows: Sequence[Mapping], spec: Mapping | None = N
         ax.hist(vals, bins=bins, color=PALETTE["ok"], alpha=0.85, edgecolor="white", lw=0.5)
         title += f":  N = {vals.size},  mean {vals.mean():.1f} nm"
         if vals.size > 1:
-            title += f",  std {vals.std(ddof=1):.2f} nm"
+            title += f",  std {vals.std(ddof=1):.3g} nm"
     else:
         ax.text(0.5, 0.5, "no successful fits", transform=ax.transAxes, ha="center",
                 color="#666666")

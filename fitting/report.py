@@ -346,8 +346,9 @@ def _overview(fig, rows, key, spec, info):
                ("in spec", f"{n_pass} of {n_pass + states.count('fail')}"
                 if spec or any(s for s in states) else "no limits given")]
     if d.size:
+        std = d.std(ddof=1) if d.size > 1 else 0.0
         summary.append((key.replace("_", " "),
-                        f"mean {d.mean():.1f} nm, std {d.std(ddof=1) if d.size > 1 else 0:.2f} nm,"
+                        f"mean {d.mean():.1f} nm, std {std:.3g} nm,"
                         f" range {d.min():.1f}–{d.max():.1f} nm"))
     for q in (spec or {}):
         lo, hi = spec_bounds(spec, q)

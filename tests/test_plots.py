@@ -56,6 +56,33 @@ def test_optical_figure_has_bands_and_log_alpha(result):
     assert "layer film" in fig.get_suptitle()
 
 
+def test_alpha_panel_has_a_sigma_band(result):
+    # σα = 4πσκ/λ (α = 4πκ/λ is linear in κ; Born & Wolf §14.1): the band's upper edge
+    # is α + σα from the result's own arrays.
+    fig = plots.optical_figure(result, alpha=True)
+    axa = fig.axes[2]
+    bands = [c for c in axa.collections if isinstance(c, PolyCollection)]
+    assert len(bands) == 1
+    oc = result.optical["film"]
+    top = bands[0].get_paths()[0].vertices[:, 1]
+    assert np.nanmax(top) == pytest.approx(np.nanmax(oc.alpha_cm + oc.alpha_sigma), rel=1e-9)
+    label = [t.get_text() for t in axa.get_legend().get_texts()][1]
+    assert label.startswith("±1σ (at most") and label.endswith("cm⁻¹)")
+
+
+def test_alpha_band_from_kappa_sigma_when_no_alpha_sigma_is_given():
+    wl = np.linspace(300, 500, 30)
+    k = np.linspace(0.2, 0.0, 30)
+    curves = {"wavelength_nm": wl, "n": np.full(30, 2.0), "k": k, "n_sigma": np.full(30, 1e-3),
+              "k_sigma": np.full(30, 1e-3), "name": "csv"}
+    axa = plots.optical_figure(curves, alpha=True).axes[2]
+    band = [c for c in axa.collections if isinstance(c, PolyCollection)][0]
+    verts = band.get_paths()[0].vertices
+    expect = 4 * np.pi * (k[0] + 1e-3) / wl[0] * 1e7
+    assert np.nanmax(verts[:, 1]) == pytest.approx(expect, rel=1e-9)
+    assert np.nanmin(verts[:, 1]) > 0          # a log axis: the band stays above zero
+
+
 def test_optical_figure_without_sigma_has_no_band():
     wl = np.linspace(400, 800, 20)
     oc = OpticalConstants("f", wl, np.full(20, 2.0), np.zeros(20), np.zeros(20))
@@ -78,6 +105,24 @@ def test_tauc_line_meets_zero_at_the_gap():
     line = [ln for ln in fig.axes[0].lines if ln.get_linestyle() == "--"][0]
     x, y = line.get_xdata(), line.get_ydata()
     assert x[0] == pytest.approx(Eg, abs=1e-6) and y[0] == pytest.approx(0, abs=1e-3 * y[-1])
+    assert "Eg = 3.300 ± 0.010 eV" in [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    # The axis starts just below the edge, not at the data's low-energy end (3.1 eV).
+    left, right = fig.axes[0].get_xlim()
+    assert Eg - 0.6 < left < Eg and right >= E.max()
+
+
+def test_tauc_axis_skips_the_long_transparent_range():
+    base = make_result(npts=40)
+    oc = base.optical["film"]
+    wl = np.linspace(300, 1100, 400)         # 1.1-4.1 eV; absorbing only above 3.3 eV
+    E = HC_EV_NM / wl
+    alpha = np.sqrt(2e11 * np.clip(E - 3.3, 0, None)) / E
+    oc = OpticalConstants("film", wl, np.full(wl.size, 2.2), alpha * wl * 1e-7 / (4 * np.pi),
+                          alpha)
+    res = type(base)(**{**base.__dict__, "optical": {"film": oc},
+                        "band_gap": BandGap(3.3, 0.01, "direct", (3.45, 4.0), 0.999, "film")})
+    left, _ = plots.tauc_figure(res).axes[0].get_xlim()
+    assert left > 2.5
 
 
 def test_tauc_figure_needs_a_band_gap():
@@ -104,6 +149,18 @@ def test_trend_marks_spec_violations_and_failures():
     ax.figure.canvas.draw()
     pts = {c.get_label(): c for c in ax.containers}
     assert len(pts["outside spec"].lines[0].get_xdata()) == 2       # 470 and 530
+
+
+def test_trend_spec_labels_do_not_overlap_when_limits_are_close():
+    # A batch spanning 60-1800 nm puts limits 475 and 525 a few pixels apart.
+    rows = rows_for([62, 150, 500, 505, 960, 1835])
+    fig = plots.thickness_trend_figure(rows, {"film_thickness": {"min": 475, "max": 525}})
+    fig.canvas.draw()
+    notes = {t.get_text(): t for t in fig.axes[0].texts}
+    r = fig.canvas.get_renderer()
+    above = notes["spec max 525"].get_window_extent(r)
+    below = notes["spec min 475"].get_window_extent(r)
+    assert below.y1 <= above.y0
 
 
 def test_histogram_counts_only_finished_fits():
