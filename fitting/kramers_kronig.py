@@ -233,7 +233,8 @@ class KKCheck:
     message : str
         One sentence for the user.
     compared : ndarray of bool, shape (N,)
-        The points compared (the outer edges of the range are left out).
+        The points compared: not the outer edges of the range, nor points where
+        the unknown κ outside the range could move n_kk by more than tol/2.
     tolerance : float
         The RMS tolerance used.
     """
@@ -246,9 +247,6 @@ class KKCheck:
     compared: np.ndarray
     tolerance: float
 
-    def __bool__(self) -> bool:
-        return self.consistent
-
 
 def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
                    tol: float = 2e-3, edge_fraction: float = 0.05) -> KKCheck:
@@ -260,7 +258,8 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     anchor_nm : float, optional
         Where the subtractive KK is anchored to the given n (default: the middle
         of the range in photon energy). n there is taken from a local straight
-        line through ±5 points so one noisy point does not shift the whole curve.
+        line through ±5 points, and the offset is refined with the out-of-range
+        terms (see Notes), so one noisy point does not shift the whole curve.
     tol : float
         RMS tolerance on |n - n_kk| beyond the numerical error estimate.
     edge_fraction : float
