@@ -535,7 +535,9 @@ def iter_batch(paths, recipe: Recipe, out_dir, *, jobs: int | None = None,
         Checked between spectra (and inside fits when ``jobs=1``); when set, no
         new spectrum is started and the generator ends after writing the summary.
     scheduler : str, optional
-        Address of a Dask distributed scheduler to run on instead of local processes.
+        Address of a Dask distributed scheduler to run on instead of local
+        processes (``jobs`` is then ignored). The workers need the same Pellucid
+        version and must see ``paths`` and ``out_dir`` at the same locations.
     report : bool
         Write ``report.pdf`` at the end (when :mod:`fitting.report` is installed).
 
@@ -548,6 +550,18 @@ def iter_batch(paths, recipe: Recipe, out_dir, *, jobs: int | None = None,
     -------
     BatchSummary
         As the generator's return value (``StopIteration.value``); see :func:`run_batch`.
+
+    Raises
+    ------
+    BatchInputError
+        Before any work: an input matches no file, ``out_dir`` is not a folder,
+        ``jobs`` is invalid, another batch is writing into ``out_dir``, or the
+        Dask scheduler cannot be reached.
+
+    Examples
+    --------
+    >>> for step in iter_batch(["runs/"], load_recipe("r.json"), "out"):  # doctest: +SKIP
+    ...     print(step.done, step.total, step.path.name, step.status)
     """
     t0 = time.perf_counter()
     out_dir = Path(out_dir)
