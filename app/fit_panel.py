@@ -206,13 +206,12 @@ class FitPanel(QWidget):
             self.progress.setValue(0)
             self.progress.setFormat("starting…")
             self.stage.setText("")
-            self.stage.setVisible(True)
 
     def show_progress(self, p):
         frac = float(getattr(p, "fraction", 0.0) or 0.0)
         self.progress.setValue(int(1000 * min(max(frac, 0.0), 1.0)))
         stage = getattr(p, "stage", "")
-        self.progress.setFormat(f"{stage}  %p%")
+        self.progress.setFormat(f"{stage}  %p%  ·  {getattr(p, 'nfev', 0)} evaluations")
         chi = getattr(p, "best_chisqr", None)
         msg = getattr(p, "message", "")
         txt = f"{getattr(p, 'nfev', 0)} model evaluations"
@@ -221,6 +220,8 @@ class FitPanel(QWidget):
         if msg:
             txt += f" — {msg}"
         self.stage.setText(txt)
+        # The details sit in the bar's tooltip: the column has no room for another line.
+        self.progress.setToolTip(txt)
 
     # -- edits ------------------------------------------------------------------------------
     def _set(self, name, value):

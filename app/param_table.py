@@ -198,6 +198,13 @@ class ParamTableView(QTableView):
                         "edit it; tick 'Fit' to let the fit adjust it.")
         model.refused.connect(self._show_refusal)
 
+    def sizeHint(self):
+        # A modest hint: the stack section's stretch gives the table whatever room is
+        # left, and the left column then needs no scroll bar at 1400x900.
+        hint = super().sizeHint()
+        hint.setHeight(140)
+        return hint
+
     def _show_refusal(self, reason: str, index):
         rect = self.visualRect(index)
         QToolTip.showText(self.viewport().mapToGlobal(rect.bottomLeft()), reason, self)

@@ -106,7 +106,7 @@ class StackPanel(QWidget):
 
         self.table_model = ParamTableModel(session, self)
         self.table = ParamTableView(self.table_model)
-        self.table.setMinimumHeight(120)
+        self.table.setMinimumHeight(100)
         self.table_model.refused.connect(lambda msg, _i: self.status.emit(msg, True))
 
         # Layout -----------------------------------------------------------------------

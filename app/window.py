@@ -406,6 +406,7 @@ class MainWindow(QMainWindow):
         if self.fit_job is not None and self.fit_job.is_running():
             self.fit_job.cancel()
             self.fit_panel.stage.setText("Stopping…")
+            self.fit_panel.progress.setFormat("stopping…")
             self.status("Stopping the fit…")
         elif self.batch_dialog is not None and self.batch_dialog.is_running():
             self.batch_dialog.cancel()
@@ -434,12 +435,13 @@ class MainWindow(QMainWindow):
         self._set_running(False)
         r = self.session.result
         if r is not None:
-            self.fit_panel.stage.setText(
-                f"{'Stopped' if r.aborted else 'Done'} after {r.nfev} model evaluations, "
-                f"{r.elapsed_s:.1f} s.")
-        self.fit_panel.progress.setFormat("done" if self.session.result is not None else "idle")
-        if self.session.result is not None:
+            text = (f"{'stopped' if r.aborted else 'done'}: {r.nfev} model evaluations, "
+                    f"{r.elapsed_s:.1f} s")
+            self.fit_panel.stage.setText(text)
+            self.fit_panel.progress.setFormat(text)
             self.fit_panel.progress.setValue(1000)
+        else:
+            self.fit_panel.progress.setFormat("idle")
 
     # -- export, project, recipe -------------------------------------------------------------
     def export_dialog(self):
