@@ -1140,7 +1140,7 @@ def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path)
             v = numbers.parse(toks[c])
             if v is None:
                 name = layout.names[c] if c < len(layout.names) and layout.names[c] else ""
-                label = f"column {c}" + (f" ({name!r})" if name else "")
+                label = f"column {c + 1}" + (f" ({name!r})" if name else "")
                 raise _fail(path, first_line + i, f"{label} holds text where a number is "
                             f"expected", expected=f"a number with decimal mark "
                             f"{layout.decimal!r}, columns separated by "

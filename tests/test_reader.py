@@ -285,7 +285,7 @@ def test_text_between_data_rows_is_reported():
     with pytest.raises(SpectrumFormatError, match=r"line 2: a line of text interrupts.*'x;3'"):
         parse_spectrum(text)
     damaged_first = "400;5O\n401;51\n402;52\n403;53\n404;54\n405;55\n"
-    with pytest.raises(SpectrumFormatError, match=r"line 1: column 1 holds text.*'5O'"):
+    with pytest.raises(SpectrumFormatError, match=r"line 1: column 2 holds text.*'5O'"):
         parse_spectrum(damaged_first)
 
 
@@ -426,8 +426,9 @@ BROKEN = [
     ("decimal-comma column, no header", b"12,5\n13,5\n12,75\n13,25\n12,5\n",
      r"line 1: only one column of numbers"),
     ("text only", b"hello\nworld\n", r"line 1: no rows of two or more numbers"),
+    # Columns are counted from 1, as a spreadsheet user counts them (the second is the value).
     ("text in data", b"x;y\n400;50\n401;51\n402;52\n403;5O\n404;54\n405;55\n",
-     r"line 5: column 1 \('y'\) holds text.*found '5O'"),
+     r"line 5: column 2 \('y'\) holds text.*found '5O'"),
     ("too few", b"x;y\n400;50\n401;51\n402;52\n", r"line 2: only 3 data rows"),
     ("four points", b"400;50\n401;51\n402;52\n403;53\n\n", r"line 1: only 4 usable data points"),
     ("nonpositive x", b"0;50\n401;51\n402;52\n403;53\n404;54\n", r"line 1: the abscissa must"),
@@ -541,7 +542,7 @@ def test_big_file_with_a_bad_row_reports_its_line(tmp_path):
     rows[31_234] = "712.34\tERR"
     path = tmp_path / "bad.tsv"
     path.write_text("\n".join(rows) + "\n")
-    with pytest.raises(SpectrumFormatError, match=r"line 31235: column 1 holds text.*'ERR'"):
+    with pytest.raises(SpectrumFormatError, match=r"line 31235: column 2 holds text.*'ERR'"):
         read_spectrum(path)
 
 
