@@ -72,7 +72,7 @@ ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickn
 A4_INCHES = (8.27, 11.69)
 ROWS_FIRST_PAGE = 36      # table rows under the overview block
 ROWS_PER_PAGE = 52        # table rows on continuation pages
-FAILED_PER_PAGE = 40
+FAILED_PER_PAGE = 20      # each with up to three lines of reason
 MAX_OVERLAY = 60          # n/κ curves drawn at most (evenly subsampled)
 _MONO = "DejaVu Sans Mono"
 
@@ -161,6 +161,20 @@ def _clip(text, width) -> str:
     """Cut prose at the end (a sentence reads from its start)."""
     text = " ".join(str(text).split())
     return text if len(text) <= width else text[: width - 1] + "…"
+
+
+def _reason(row) -> str:
+    """Why a row failed, without the file name it usually starts with: the report
+    names the file beside it, and the space goes to what to do about it."""
+    reason = " ".join(str(row.get("reason") or row.get("message")
+                          or "no reason recorded").split())
+    f = str(row.get("file") or "")
+    for prefix in dict.fromkeys((f, Path(f).name, Path(f).stem)):
+        if prefix and reason.startswith(prefix) and reason[len(prefix):len(prefix) + 1] in ",:":
+            rest = reason[len(prefix) + 1:].strip()
+            if rest:
+                return rest
+    return reason
 
 
 def _input_folder(rows) -> str:
@@ -320,8 +334,7 @@ def _draw_table(fig, top, rows, start, key, spec, info):
                     family=_MONO if name in ("sha256", "thickness (nm)", "n(633)", "χ²_red")
                     else None)
         if not ok:
-            reason = str(row.get("reason") or row.get("message") or "no reason recorded")
-            ax.text(0.56, y, _clip(reason, 68), ha="left", va="center", fontsize=6.5,
+            ax.text(0.56, y, _clip(_reason(row), 68), ha="left", va="center", fontsize=6.5,
                     color=PALETTE["fail"], style="italic")
 
 
@@ -367,12 +380,15 @@ def _failed_page(fig, items, info):
     ax.set_axis_off()
     h = 1.0 / (FAILED_PER_PAGE + 0.5)
     for j, (i, row) in enumerate(items):
-        y = 1 - (j + 0.5) * h
+        y = 1 - (j + 0.2) * h
         ax.text(0.0, y, f"{i + 1}", fontsize=7.5, ha="left", va="center", color="#555555")
         ax.text(0.06, y, _short(_display_name(row, info), 60), fontsize=7.5, va="center")
-        reason = str(row.get("reason") or row.get("message") or "no reason recorded")
-        ax.text(0.06, y - 0.42 * h, _clip(f"{row.get('status', 'failed')}: {reason}", 125),
-                fontsize=6.8, va="center", color=PALETTE["fail"])
+        # The whole reason, wrapped: its end usually says what to do.
+        lines = textwrap.wrap(f"{row.get('status', 'failed')}: {_reason(row)}", 115)
+        if len(lines) > 3:
+            lines = lines[:2] + [_clip(" ".join(lines[2:]), 115)]
+        ax.text(0.06, y - 0.2 * h, "\n".join(lines), fontsize=6.8, va="top",
+                color=PALETTE["fail"], linespacing=1.25)
     ax.set_xlim(0, 1)
     ax.set_ylim(0, 1)
 
@@ -398,8 +414,7 @@ def _worst_page(fig, items, results_dir, key, info, heading):
         texts = _warn_texts(row)
         nw = _warn_count(row)
         if not row_ok(row):
-            reason = row.get("reason") or "no reason recorded"
-            title += "\n" + _two_lines(f"{row.get('status', 'failed')}: {reason}")
+            title += "\n" + _two_lines(f"{row.get('status', 'failed')}: {_reason(row)}")
         elif texts:
             sentences = [t if t[-1] in ".!?" else t + "." for t in texts]
             title += "\n" + _two_lines("warnings: " + " ".join(sentences))
