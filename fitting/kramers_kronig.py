@@ -40,6 +40,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.optimize import minimize_scalar
 
 from .errors import ParameterError
 from .units import HC_EV_NM
@@ -53,23 +54,22 @@ _TAIL_SPAN = 30.0          # continue the tail up to 30 E_max (κ down by 27000)
 _TAIL_NODES = 60
 
 
-def _seg_pv(a, b, fa, fb, x):
-    """PV ∫_a^b f(E')/(E' - x) dE' for f linear on each segment [a, b].
+def _seg_pv(E_nodes, k, x):
+    """Σ over segments of PV ∫_a^b f(E')/(E' - x) dE', f linear on each segment.
 
-    Broadcasts segments (last axis) against targets x (first axis). Uses
-    f(E') = f(x) + s (E' - x): the integral is s (b - a) + f(x) ln|(b - x)/(a - x)|.
-    Where x coincides with a node, the ln 0 of the two neighbouring segments
-    carries the same coefficient f(x) and cancels in the principal value, so
-    ln 0 is taken as 0.
+    Targets x run along the first axis. With f(E') = f(x) + s (E' - x) each
+    segment gives s (b - a) + f(x) ln|(b - x)/(a - x)|. Where x coincides with a
+    node, the ln 0 of the two neighbouring segments carries the same coefficient
+    f(x) and cancels in the principal value, so ln 0 is taken as 0. The logs
+    are taken once per node and shared by the two segments meeting there.
     """
-    s = (fb - fa) / (b - a)
-    fx = fa + s * (x - a)
+    a, b = E_nodes[:-1], E_nodes[1:]
+    s = (k[1:] - k[:-1]) / (b - a)
     with np.errstate(divide="ignore"):
-        lb = np.log(np.abs(b - x))
-        la = np.log(np.abs(a - x))
-    lb = np.where(np.isfinite(lb), lb, 0.0)
-    la = np.where(np.isfinite(la), la, 0.0)
-    return s * (b - a) + fx * (lb - la)
+        L = np.log(np.abs(E_nodes[None, :] - x))
+    L[~np.isfinite(L)] = 0.0
+    fx = k[None, :-1] + s[None, :] * (x - a[None, :])
+    return np.sum(s * (b - a)) + np.sum(fx * (L[:, 1:] - L[:, :-1]), axis=1)
 
 
 def kk_integral(E_nodes, kappa_nodes, E_eval) -> np.ndarray:
@@ -95,11 +95,7 @@ def kk_integral(E_nodes, kappa_nodes, E_eval) -> np.ndarray:
     E_nodes = np.asarray(E_nodes, float)
     k = np.asarray(kappa_nodes, float)
     x = np.asarray(E_eval, float)[:, None]
-    a, b = E_nodes[None, :-1], E_nodes[None, 1:]
-    fa, fb = k[None, :-1], k[None, 1:]
-    minus = _seg_pv(a, b, fa, fb, x)
-    plus = _seg_pv(a, b, fa, fb, -x)
-    return 0.5 * np.sum(minus + plus, axis=1)
+    return 0.5 * (_seg_pv(E_nodes, k, x) + _seg_pv(E_nodes, k, -x))
 
 
 def _energy_grid(wavelength_nm, kappa, extend: bool, shape: str = "decay"):
@@ -120,25 +116,37 @@ def _energy_grid(wavelength_nm, kappa, extend: bool, shape: str = "decay"):
         raise ParameterError("wavelength_nm", "duplicates", "wavelengths must be distinct")
     En, kn = E, kk
     if extend:
-        # High side: power-law decay. Low side: κ falls linearly to 0 at E = 0
-        # (a dielectric's κ vanishes in the far infrared; for conductors this is
-        # only a guess, and its error is a smooth 1/E² term in band).
+        # High side: power-law decay. Low side: κ continued as the power law of its
+        # last points (a dielectric's tail falls towards the infrared, a conductor's
+        # Drude κ rises), down to E_min/30; what lies below that acts in band as a
+        # smooth -1/E² term, which the consistency check allows for.
         # ``shape="flat"`` is the other plausible guess, used to measure how much
         # the unknown continuation matters: κ held at its end value over a factor
-        # 1.5 in energy before it decays (or falls to zero).
+        # 1.5 in energy before it decays or follows the power law.
         hold = 1.5 if shape == "flat" else 1.0
         hi = E[-1] * np.geomspace(1.0, _TAIL_SPAN, _TAIL_NODES + 1)[1:]
         k_hi = kk[-1] * np.minimum(1.0, (hold * E[-1] / hi) ** _TAIL_POWER)
-        e_lo = E[0] / hold
-        lo = np.linspace(0.0, e_lo, 9)[1:-1 if hold == 1.0 else None] if kk[0] > 0 else \
-            np.zeros(0)
-        k_lo = kk[0] * lo / e_lo
-        if kk[0] > 0 and hold > 1:
-            lo = np.concatenate((lo, np.linspace(e_lo, E[0], 8)[1:-1]))
-            k_lo = np.concatenate((k_lo, np.full(6, kk[0])))
+        if kk[0] > 0:
+            p = _low_end_power(E, kk)
+            lo = E[0] * np.geomspace(1.0 / _TAIL_SPAN, 1.0, _TAIL_NODES + 1)[:-1]
+            k_lo = kk[0] * np.minimum(1.0, (lo * hold / E[0]) ** p) if p > 0 else \
+                kk[0] * np.where(lo * hold >= E[0], 1.0, (lo * hold / E[0]) ** p)
+        else:
+            lo = k_lo = np.zeros(0)
         En = np.concatenate((lo, E, hi))
         kn = np.concatenate((k_lo, kk, k_hi))
     return E, kk, order, En, kn
+
+
+def _low_end_power(E, kk):
+    """Log-log slope p of κ ∝ E^p over the lowest-energy points, clipped to [-2, 3]."""
+    m = max(5, E.size // 30)
+    e, k = E[:m], kk[:m]
+    use = k > 0
+    if use.sum() < 3:
+        return 1.0
+    p = np.polyfit(np.log(e[use]), np.log(k[use]), 1)[0]
+    return float(np.clip(p, -2.0, 3.0))
 
 
 def kk_n_from_kappa(wavelength_nm, kappa, *, n_anchor, extend: bool = True) -> np.ndarray:
@@ -157,7 +165,7 @@ def kk_n_from_kappa(wavelength_nm, kappa, *, n_anchor, extend: bool = True) -> n
         the contribution of absorption above the range.
     extend : bool
         Continue κ beyond the range: above it as κ_end (E_end/E)³ up to 30 E_max,
-        below it linearly to zero at E = 0. Off, κ is taken as zero outside,
+        below it as the power law of the lowest points down to E_min/30. Off, κ is taken as zero outside,
         which with a non-zero κ at an end leaves a logarithmic error near that end.
 
     Returns
@@ -201,20 +209,33 @@ def kk_n_from_kappa(wavelength_nm, kappa, *, n_anchor, extend: bool = True) -> n
 def _out_of_range_terms(E, diff, inner):
     """Least-squares smooth terms that absorption outside the range can add in band.
 
-    A constant (the anchor's own error), an infrared term -1/E² (absorption far
-    below) and one ultraviolet pole 1/(E_p² - E²) above the range (the usual
-    Sellmeier "UV pole"; for E_p far above it becomes the E² term). E_p is
-    chosen on a grid from 1.05 to 20 E_max for the smallest residual.
+    A constant (the anchor's own error), one infrared pole -1/(E² - E_ir²) below
+    the range (E_ir = 0 is the -1/E² of free carriers or far-infrared phonons)
+    and one ultraviolet pole 1/(E_p² - E²) above it (the usual Sellmeier "UV
+    pole"; for E_p far above it becomes the E² term). E_p and E_ir are chosen
+    on grids (1.05-20 E_max, 0-0.9 E_min) for the smallest residual.
     """
+    y = diff[inner]
+    one = np.ones_like(E)
+
+    def fit(Eir, Ep):
+        basis = np.column_stack((one, -1.0 / (E ** 2 - Eir ** 2), 1.0 / (Ep ** 2 - E ** 2)))
+        coef, *_ = np.linalg.lstsq(basis[inner], y, rcond=None)
+        return float(np.sum((y - basis[inner] @ coef) ** 2)), basis @ coef
+
+    ratios = np.geomspace(1.05, 20.0, 24)
     best = None
-    for Ep in E[-1] * np.geomspace(1.05, 20.0, 30):
-        basis = np.column_stack((np.ones_like(E), 1.0 / E ** 2, 1.0 / (Ep ** 2 - E ** 2)))
-        coef, *_ = np.linalg.lstsq(basis[inner], diff[inner], rcond=None)
-        fit = basis @ coef
-        r = float(np.sum((diff - fit)[inner] ** 2))
-        if best is None or r < best[0]:
-            best = (r, fit)
-    return best[1]
+    for Eir in E[0] * np.array([0.0, 0.3, 0.5, 0.65, 0.75, 0.82, 0.87, 0.9]):
+        for j, q in enumerate(ratios):
+            r = fit(Eir, q * E[-1])[0]
+            if best is None or r < best[0]:
+                best = (r, Eir, j)
+    # Refine the UV pole between the grid neighbours of the best one.
+    _, Eir, j = best
+    lo, hi = np.log(ratios[max(j - 1, 0)]), np.log(ratios[min(j + 1, ratios.size - 1)])
+    opt = minimize_scalar(lambda t: fit(Eir, np.exp(t) * E[-1])[0], bounds=(lo, hi),
+                          method="bounded", options={"xatol": 1e-4})
+    return fit(Eir, np.exp(opt.x) * E[-1])[1]
 
 
 @dataclass(frozen=True)
@@ -276,10 +297,11 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     cannot be measured, but far from the range it only adds smooth terms to n in
     band (Aspnes 1985; Lucarini et al. 2005, sec. 4.2): absorption above the
     range acts like a pole c_p/(E_p² - E²) with E_p above the range (the E²
-    term when far), absorption far below like -c_ir/E². These terms and a
+    term when far), absorption below it like -c_ir/(E² - E_ir²) (-c_ir/E² when
+    far, as for free carriers). These terms and a
     constant (which refines the anchor, so one noisy point cannot shift the
-    curve) are fitted by least squares to n - n_kk and removed, with E_p
-    chosen on a grid above the range; whatever remains cannot come from
+    curve) are fitted by least squares to n - n_kk and removed, with E_p and
+    E_ir chosen on grids outside the range; whatever remains cannot come from
     absorption outside the range, and is an inconsistency. In addition:
 
     * κ is continued past the ends (see :func:`kk_n_from_kappa`) and the outer

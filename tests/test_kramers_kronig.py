@@ -11,7 +11,7 @@ evaluated by fitting.dispersion, whose formulas are checked in test_dispersion.
 import numpy as np
 import pytest
 
-from fitting.dispersion import Cauchy, Lorentz, Oscillators, TaucLorentz
+from fitting.dispersion import Cauchy, Drude, Lorentz, Oscillators, TaucLorentz
 from fitting.errors import ParameterError
 from fitting.kramers_kronig import kk_consistency, kk_integral, kk_n_from_kappa
 
@@ -75,6 +75,20 @@ def test_consistency_passes_causal_models(model):
     assert check.consistent, check.message
     assert check.rms_dev < 1e-3
     assert check.n_kk.shape == WL.shape and check.compared.sum() > 0.8 * WL.size
+
+
+def test_consistency_passes_transparent_conductor():
+    # Drude free carriers (causal: Fox 2010, ch. 7) plus a Tauc-Lorentz gap, as for a
+    # transparent conducting oxide: κ rises towards the infrared end of the range, so
+    # the unmeasured infrared matters; the infrared pole term must allow for it.
+    wl = np.arange(300.0, 2501.0, 3.0)
+    N = Oscillators(3.8, [Drude(1.8, 0.12), TaucLorentz(60.0, 5.5, 1.5, 3.6)]).N(wl)
+    check = kk_consistency(wl, N.real, N.imag)
+    assert check.consistent, check.message
+    assert check.compared.sum() > 0.3 * wl.size
+    # ... while the same κ with the carriers' dispersion left out of n is flagged.
+    n_wrong = Oscillators(3.8, [TaucLorentz(60.0, 5.5, 1.5, 3.6)]).N(wl).real
+    assert not kk_consistency(wl, n_wrong, N.imag).consistent
 
 
 def test_consistency_passes_cauchy_in_transparent_region():
