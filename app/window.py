@@ -401,6 +401,10 @@ class MainWindow(QMainWindow):
         for box in self.boxes[:2]:
             box.setEnabled(not running)
         self.act_fit.setEnabled(not running)
+        # The fit works on a copy and writes its result back at the end: no stack edits
+        # (and no undo of them) meanwhile. QUndoStack re-enables these on its next change.
+        self.act_undo.setEnabled(not running and self.session.undo.canUndo())
+        self.act_redo.setEnabled(not running and self.session.undo.canRedo())
 
     def cancel(self):
         if self.fit_job is not None and self.fit_job.is_running():
@@ -585,6 +589,8 @@ class MainWindow(QMainWindow):
 
     def load_recipe(self, path) -> bool:
         from fitting.recipe import load_recipe
+        if self._busy("loading a recipe"):
+            return False
         try:
             recipe = load_recipe(path)
         except (PellucidError, OSError) as exc:

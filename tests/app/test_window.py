@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 pytest.importorskip("PySide6")
-from PySide6.QtCore import QPoint, Qt, QTimer  # noqa: E402
+from PySide6.QtCore import Qt, QTimer  # noqa: E402
 
 from tests.app.conftest import synthetic_spectrum  # noqa: E402
 
@@ -361,3 +361,21 @@ def test_substrate_from_an_nk_table(window, tmp_path, dialogs):
     assert dialogs[-1]["title"] == "Substrate not changed"
     window.act_undo.trigger()
     assert window.session.stack.substrate.library == "fused_silica"
+
+
+def test_no_edits_while_a_fit_runs(window, qtbot, tmp_path):
+    path = synthetic_spectrum(tmp_path / "slow.csv", points=1500)
+    window.open_spectrum(path)
+    s = window.session
+    s.set_layer_model(0, "tauc_lorentz")
+    s.stack.thickness_spread = 0.02
+    s.stack.bandwidth_nm = 2.0
+    assert window.start_fit()
+    assert not window.act_undo.isEnabled() and not window.act_fit.isEnabled()
+    assert not window.start_fit()                       # a second fit is refused
+    assert not window.open_spectrum(path)               # so is opening a file
+    assert "cancel it (Esc)" in window.statusBar().currentMessage()
+    window.cancel()
+    qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=10000)
+    qtbot.wait(50)
+    assert window.act_undo.isEnabled() and window.act_fit.isEnabled()
