@@ -343,38 +343,25 @@ def _airy(outer: OuterMedia, r_if, t2, arg):
         np.maximum(arg.real, -2 * _MAX_IM_PHASE, out=arg.real)
         E2 = np.exp(arg)
         loss = np.exp(arg.real.sum(axis=0))                    # Π |e^{2iδ}|
-
-    # Airy recursion from the substrate towards the ambient. The last step (the
-    # ambient interface) stays as numerator/denominator: only |r|² and |Π den|²
-    # are needed from it, in real arithmetic.
-    r, D = r_if[:, L], None
-    for k in range(L - 1, 0, -1):
-        x = r * E2[k]
-        den = 1 + r_if[:, k] * x
-        r = (r_if[:, k] + x) / den
-        D = den if D is None else D * den
-    if L:
-        x = r * E2[0]
-        den2 = _abs2(1 + r_if[:, 0] * x)
-        Rf = _abs2(r_if[:, 0] + x) / den2
-        Tf = outer.t_scale * t2 * loss / (den2 if D is None else den2 * _abs2(D))
     else:
-        Rf = _abs2(r)
-        Tf = outer.t_scale * t2
+        E2 = loss = None
+
+    # Forward pass, substrate side first: r = A/B with Π den = B (see _airy_pass).
+    A, B = _airy_pass(r_if, E2, range(L - 1, -1, -1), first=L, shift=0)
+    den2 = 1.0 if B is None else _abs2(B)
+    Rf = _abs2(A) / den2
+    Tf = outer.t_scale * t2 * loss / den2 if L else outer.t_scale * t2
 
     if outer.back is None:
         R, T = Rf, Tf
     else:
-        # From the substrate side the interfaces change sign: r_{f,i} = -r_{i,f}.
-        # Carrying s = -r' keeps the same step, and |r'| = |s|.
+        # Seen from the substrate the interfaces change sign, r_{f,i} = -r_{i,f};
+        # carrying s = -r' keeps the same step, and |r'| = |s|.
         if L == 1:  # one film: the same denominator 1 + r01 r12 e^{2iδ} as forward
             Rr = _abs2(r_if[:, 1] + r_if[:, 0] * E2[0]) / den2
         else:
-            s = r_if[:, 0]
-            for k in range(L):
-                x = s * E2[k]
-                s = (r_if[:, k + 1] + x) / (1 + r_if[:, k + 1] * x)
-            Rr = _abs2(s)
+            A, B = _airy_pass(r_if, E2, range(L), first=0, shift=1)
+            Rr = _abs2(A) / (1.0 if B is None else _abs2(B))
         Rb_tau2, gRb_tau2, tau_Tb = outer.back
         den = 1 - Rr * Rb_tau2
         T = Tf * tau_Tb / den
@@ -382,3 +369,21 @@ def _airy(outer: OuterMedia, r_if, t2, arg):
     if len(outer.pols) == 2:
         return (R[0] + R[1]) / 2, (T[0] + T[1]) / 2
     return R[0], T[0]
+
+
+def _airy_pass(r_if, E2, layers, *, first: int, shift: int):
+    """One Airy recursion through the films, as numerator and denominator.
+
+    The step r <- (ρ + r e^{2iδ})/(1 + ρ r e^{2iδ}) is carried as r = A/B:
+    A <- ρB + A e^{2iδ}, B <- B + ρ A e^{2iδ} (the 2x2 matrix product of
+    Born & Wolf 1999, sec. 1.6, in Airy's variables), so no step divides, and
+    B ends as the product of the step denominators that |t|² needs. Starts
+    from interface ``first``; layer j meets interface j + ``shift``. Returns
+    (A, B), B None when there is no film.
+    """
+    A, B = r_if[:, first], None
+    for j in layers:
+        rho = r_if[:, j + shift]
+        AE = A * E2[j]
+        A, B = (rho + AE, 1 + rho * AE) if B is None else (rho * B + AE, B + rho * AE)
+    return A, B
