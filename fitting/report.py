@@ -72,7 +72,7 @@ ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickn
 A4_INCHES = (8.27, 11.69)
 ROWS_FIRST_PAGE = 36      # table rows under the overview block
 ROWS_PER_PAGE = 52        # table rows on continuation pages
-FAILED_PER_PAGE = 20      # each with up to three lines of reason
+FAILED_PER_PAGE = 16      # each with up to three lines of reason
 MAX_OVERLAY = 60          # n/κ curves drawn at most (evenly subsampled)
 _MONO = "DejaVu Sans Mono"
 

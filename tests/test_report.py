@@ -233,3 +233,21 @@ def test_unconverged_fit_with_curves_is_plotted_first(batch, tmp_path):
     text = page_text(pdf, 5)
     assert "did not converge" in text and "stuck.csv" in text and "2000 evaluations" in text
     assert "coupon_02" in page_text(pdf, 6)          # then the worst finished fit
+
+
+@needs_pdftotext
+def test_failed_page_gives_the_whole_reason_without_the_file_name(tmp_path):
+    # The reader's messages end with what to do; a one-line cut would lose exactly that.
+    advice = "save or export it again as UTF-8 text, or set the reader's encoding"
+    rows = [{"file": "/lab/run4/mainframe.csv", "status": "error",
+             "reason": "/lab/run4/mainframe.csv, line 1: the text is unreadable: the file is "
+                       "saved in a character encoding Pellucid does not know (it reads UTF-8, "
+                       f"UTF-16, UTF-32, Latin-1 and Windows-1252); {advice}"},
+            {"file": "runs/ir.csv", "status": "error",
+             "reason": "ir: no data point lies in the fit range 330-1100 nm; widen the fit range"}]
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec={})
+    text = " ".join(page_text(pdf, 4).split())     # overview, thickness, optical, failed
+    assert "error: line 1: the text is unreadable" in text
+    assert advice in text
+    assert "error: no data point lies" in text      # "ir: " (the spectrum name) dropped
+    assert "mainframe.csv, line 1" not in text
