@@ -287,15 +287,38 @@ def demo_data_dir() -> Path:
     return Path(__file__).resolve().parent.parent / "demo_data"
 
 
+def _demo_sets(root: Path) -> list[tuple[str, Path, Path]]:
+    """(label, spectra folder, recipe) of the main demo set and of each sub-set folder."""
+    sets = []
+    for folder in [root, *sorted(p for p in root.iterdir() if p.is_dir())]:
+        recipe = folder / "recipe.json"
+        if recipe.is_file():
+            spectra = folder / "spectra" if (folder / "spectra").is_dir() else folder
+            sets.append(("" if folder == root else folder.name, spectra, recipe))
+    return sets
+
+
 def _demo(args, out, err) -> int:
     root = demo_data_dir()
     recipe = root / "recipe.json"
     if not recipe.is_file():
         raise PellucidError(f"the demo data are not installed: {recipe} is missing. Run the "
                             f"demo from a Pellucid source checkout that has demo_data/.")
-    spectra = root / "spectra" if (root / "spectra").is_dir() else root
-    out.write(f"demo: fitting the spectra in {spectra} with {recipe}\n")
-    return _batch(args, out, err, inputs=[spectra], recipe_path=recipe, outdir=args.out)
+    # The main set goes to --out itself; each further set (a demo_data/ sub-folder with
+    # its own recipe, e.g. another film on another glass) to a sub-folder of it.
+    codes, reports = [], []
+    for label, spectra, recipe in _demo_sets(root):
+        outdir = Path(args.out) / label if label else Path(args.out)
+        out.write(f"demo: fitting the spectra in {spectra} with {recipe}\n")
+        codes.append(_batch(args, out, err, inputs=[spectra], recipe_path=recipe,
+                            outdir=outdir))
+        if codes[-1] == EXIT_INTERRUPTED:
+            return EXIT_INTERRUPTED
+        if (outdir / "report.pdf").is_file():
+            reports.append(outdir / "report.pdf")
+    if len(reports) > 1:
+        out.write("demo reports:\n" + "".join(f"  {p}\n" for p in reports))
+    return max(codes)
 
 
 def _gui(argv_rest, err) -> int:

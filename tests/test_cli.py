@@ -172,6 +172,22 @@ def test_demo_runs_the_batch_on_demo_data(tmp_path, monkeypatch):
     assert (tmp_path / "o" / "report.pdf").is_file()
 
 
+def test_demo_runs_every_set_with_its_own_recipe(tmp_path, monkeypatch):
+    demo = tmp_path / "demo_data"
+    write_spectra(demo / "spectra", [480.0], seed=8)
+    save_recipe(make_recipe(), demo / "recipe.json")
+    write_spectra(demo / "second" / "spectra", [510.0], seed=9)
+    save_recipe(make_recipe(), demo / "second" / "recipe.json")
+    (demo / "references").mkdir()          # a folder without a recipe is not a set
+    monkeypatch.setattr(cli, "demo_data_dir", lambda: demo)
+    code, out, err = run(["demo", "--out", str(tmp_path / "o"), "--jobs", "1"])
+    assert code == 0, err
+    assert out.count("1 ok") == 2
+    assert (tmp_path / "o" / "report.pdf").is_file()
+    assert (tmp_path / "o" / "second" / "report.pdf").is_file()
+    assert not (tmp_path / "o" / "references").exists()
+
+
 def test_gui_is_loaded_by_name(monkeypatch, tmp_path):
     calls = []
     fake = types.ModuleType("app.main")
