@@ -233,6 +233,18 @@ def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",
     the longest straight rising window at least 0.85 times as steep as the
     edge; see the module docstring.
 
+    Examples
+    --------
+    A direct-gap edge α ∝ (hν - 3.2 eV)^½ / hν:
+
+    >>> import numpy as np
+    >>> from fitting.units import HC_EV_NM
+    >>> wl = np.linspace(250, 500, 251)
+    >>> E = HC_EV_NM / wl
+    >>> alpha = 1e5 * np.sqrt(np.clip(E - 3.2, 0, None)) / E
+    >>> round(tauc_gap(wl, alpha, transition="direct").Eg_eV, 3)
+    3.2
+
     References
     ----------
     .. [1] J. Tauc, R. Grigorovici and A. Vancu, Phys. Status Solidi 15, 627 (1966).

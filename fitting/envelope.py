@@ -290,6 +290,21 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
     (contrast ~3 %) gives d and n to about 3 %, and a film with only three
     extrema to 1-2 %. That is still a good start for the full fit.
 
+    Examples
+    --------
+    A 900 nm Cauchy film on glass, its T from the stack engine:
+
+    >>> import numpy as np
+    >>> from fitting.dispersion import Cauchy
+    >>> from fitting.stack import Layer, Stack
+    >>> from fitting.substrates import Substrate, generic_glass
+    >>> wl = np.arange(450.0, 1500.0, 1.0)
+    >>> glass = Substrate(generic_glass(1.52))
+    >>> sample = Stack([Layer("film", Cauchy(2.0, 0.02), 900.0)], glass)
+    >>> env = swanepoel_envelope(wl, sample.transmittance(wl), 1.52)
+    >>> env.ok, round(env.thickness_nm)
+    (True, 900)
+
     References
     ----------
     .. [1] R. Swanepoel, J. Phys. E: Sci. Instrum. 16, 1214 (1983), eqs. (1), (A),

@@ -128,3 +128,10 @@ def test_stricter_straightness_narrows_the_window_on_a_curved_edge():
     assert strict.r_squared >= 0.999 > loose.r_squared
     assert width(strict) < width(loose)
     assert 3.0 <= loose.Eg_eV < 3.2          # above the model's Eg: the bend, not an error
+
+
+def test_docstring_examples():
+    import doctest
+
+    import fitting.bandgap as mod
+    assert doctest.testmod(mod).failed == 0

@@ -163,3 +163,10 @@ def test_absorption_at_extrema_from_upper_envelope():
     assert lossy.sum() >= 5
     assert np.allclose(env.alpha_cm[lossy], a_true[lossy], rtol=0.1)
     assert np.all(env.alpha_cm[env.wavelength_nm > 1200] < 10.0)
+
+
+def test_docstring_examples():
+    import doctest
+
+    import fitting.envelope as mod
+    assert doctest.testmod(mod).failed == 0

@@ -124,3 +124,10 @@ def test_bad_input():
         kk_consistency(WL, np.ones(3), np.zeros_like(WL))
     with pytest.raises(ParameterError, match="n_anchor"):
         kk_n_from_kappa(WL, np.zeros_like(WL), n_anchor="one")
+
+
+def test_docstring_examples():
+    import doctest
+
+    import fitting.kramers_kronig as mod
+    assert doctest.testmod(mod).failed == 0
