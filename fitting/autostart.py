@@ -9,8 +9,11 @@ lands in whichever basin is nearest. The automatic start avoids that:
    :mod:`fitting.envelope` (Swanepoel 1983) is used when it succeeds;
    otherwise :func:`fringe_seed` does the simplest version of the same thing
    (extrema spacing for the thickness, the quarter-wave extrema against the
-   bare substrate for n). The seed sets the film's index level (and, for
-   Cauchy and Sellmeier, the dispersion) by :func:`apply_seed`.
+   bare substrate for n). The simple seed is preferred when the envelope
+   method sees far fewer extrema (its envelopes need clear, resolved fringes)
+   and for films below the substrate index (its formulas assume n > s). The
+   seed sets the film's index level (and, for Cauchy and Sellmeier, the
+   dispersion) by :func:`apply_seed`.
 2. **Scan.** χ² is evaluated on a grid of thicknesses finer than one fringe
    order: the step Δd keeps the phase 4πnΔd/λ_min below π/4. The dispersion
    parameters stay at their start, except for the film's index level, tried
@@ -18,13 +21,16 @@ lands in whichever basin is nearest. The automatic start avoids that:
    are no fringes). Scale and offset, if fitted, are solved in closed form at
    every grid point (they enter the model linearly). The scan is vectorised
    over thicknesses, looks only at the nearly transparent fringe region
-   (:func:`fringe_region`; the long-wavelength half of it when there are many
-   fringes, where a dispersion error shifts the phase least) and runs on a
-   subsample that still resolves the densest fringes.
+   (:func:`fringe_region`; with 12 or more extrema only its long-wavelength
+   half in wavenumber, with 24 or more its long third, where a dispersion
+   error of the start shifts the fringe phase least) and runs on a subsample
+   that still resolves the densest fringes.
 3. **Basins.** The lowest distinct minima of the scanned χ²(d)
    (:func:`pick_basins`), plus the seed's own thickness, are the starts the
-   fit engine polishes: first on the fringe region with the absorption edge
-   held (:func:`edge_params`), then on all points with everything free.
+   fit engine polishes: on the growing fringe regions of the scan (long
+   third, long half, all of it: a continuation in wavelength that keeps the
+   interference order) with the absorption edge held (:func:`edge_params`),
+   then on all points with everything free.
 
 References
 ----------

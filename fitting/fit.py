@@ -15,9 +15,9 @@ The default method ``"auto"`` is
    (:mod:`fitting.autostart`), which finds the interference order;
 2. a staged, bounded local least-squares polish (trust-region reflective,
    numerical 2-point Jacobian) from the best few basins and the seed: first
-   thickness and index on the transparent fringe region (its long-wavelength
-   half first when there are many fringes), with the film's absorption edge
-   held; a basin far worse than the best (χ² ratio > 3) is dropped after each
+   on the transparent fringe region (its long-wavelength third and half
+   first when there are many fringes), with the film's absorption edge held;
+   a basin far worse than the best (χ² ratio > 3) is dropped after each
    stage; then all varied parameters on all points;
 3. the best basin wins; others within a χ² ratio of 1.5 are reported as
    alternatives (and warned about).
@@ -388,7 +388,7 @@ def _polish(obj: Objective, values: dict, label: str, method: str = "least_squar
 
 def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     method = options.method
-    obj.set_stage("global", 0.05, 0.8, min(options.max_nfev, 5000), method)
+    obj.set_stage("scan", 0.05, 0.8, min(options.max_nfev, 5000), f"global search ({method})")
     if method == "differential_evolution":
         open_ = [k for k in obj.var_names
                  if not (np.isfinite(obj.params[k].min) and np.isfinite(obj.params[k].max))]
@@ -434,9 +434,12 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     # The envelope method assumes a film index above the substrate's; when the
     # fringes say otherwise (maxima above the bare-substrate line), the simple
     # fringe seed, which knows both cases, is used.
+    # It also needs clear envelopes: when it sees far fewer extrema than the simple
+    # count (strong dispersion, absorption), the simple seed is the better one.
     simple = autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
-    seed = simple if simple.below_substrate else (
-        autostart.envelope_seed(part.wl, part.y, part.quantity, sub_n) or simple)
+    env = None if simple.below_substrate else autostart.envelope_seed(
+        part.wl, part.y, part.quantity, sub_n)
+    seed = env if env is not None and 1.5 * env.n_extrema + 2 >= simple.n_extrema else simple
     info["seed"] = seed.to_dict()
     # Fringes closer than ~4 data points are not resolved: their extrema heights (and
     # so the seed's n there) are wrong, and a fit there can slip orders.
@@ -509,14 +512,18 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     # Many fringes: scan on the long-wavelength half (in wavenumber) only, where the
     # start's dispersion error shifts the fringe phase least; the staged polish then
     # extends to the whole fringe region (continuation in wavelength).
-    long_range = None
+    ranges = [wl_range]           # continuation: longest wavelengths first
     if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
         w_lo = max(wl_range[0], float(part.wl.min()))
         w_hi = min(seed.fringe_range_nm[1], float(part.wl.max()))
-        long_range = (2.0 / (1.0 / w_lo + 1.0 / w_hi), wl_range[1])
+        nu_lo, nu_hi = 1.0 / w_hi, 1.0 / w_lo
+        # The long half in wavenumber (half the fringes), and for many fringes first
+        # the long third: each holds enough fringes to fix the order.
+        fracs = (1 / 3, 1 / 2) if seed.n_extrema >= 24 else (1 / 2,)
+        ranges = [(1.0 / (nu_lo + f * (nu_hi - nu_lo)), wl_range[1]) for f in fracs] + ranges
     scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
                                     options.fit_scale, options.fit_offset, check=obj.check,
-                                    wl_range=long_range or wl_range, d_typical=d_typ)
+                                    wl_range=ranges[0], d_typical=d_typ)
     n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
     basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
                                    same_nd=float(part.wl.min()) / 8)
@@ -566,7 +573,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     edge = set(autostart.edge_params(mat))
     fixed = [gmap[pre + k] for k in mat.params if k in edge and gmap[pre + k] in obj.var_names]
     stages = []
-    for rng in ([long_range] if long_range else []) + [wl_range]:
+    for rng in ranges:
         masks = []
         for p in obj.parts:
             m = autostart.fringe_region(p, mat, local, rng, d_typ) if p in scan_parts else None
@@ -659,7 +666,10 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
                        for g, h in zip(gnames, same)):
                     continue          # the same material as in the first part
                 key = f"p{part.index + 1}_{layer.name}"
-            optical[key] = _optical(part, layer, local, gmap, covar, cov_index)
+            try:
+                optical[key] = _optical(part, layer, local, gmap, covar, cov_index)
+            except PellucidError as e:   # a model undefined at the fitted values
+                info.setdefault("optical_errors", []).append(f"{key}: {e}")
 
     alternatives = []
     found = _scanned_film(obj)
@@ -835,13 +845,14 @@ def _warnings(params, var_names, correl, optical, alternatives, success, aborted
                  "parameters are not all determined by the data).")
     if correl is not None:
         n = len(var_names)
-        for i in range(n):
-            for j in range(i + 1, n):
-                c = correl[i, j]
-                if abs(c) > 0.95:
-                    w.append(f"{var_names[i]} and {var_names[j]} are strongly correlated "
-                             f"({c:+.3f}): the data hardly separate them; consider fixing "
-                             f"one or fitting a wider wavelength range.")
+        pairs = sorted(((correl[i, j], var_names[i], var_names[j]) for i in range(n)
+                        for j in range(i + 1, n) if abs(correl[i, j]) > 0.95),
+                       key=lambda t: -abs(t[0]))
+        if pairs:
+            listed = ", ".join(f"{a} and {b} ({c:+.3f})" for c, a, b in pairs)
+            w.append(f"Strongly correlated (|c| > 0.95): {listed}. The data hardly separate "
+                     f"them, so their error bars are large; consider fixing one of a pair "
+                     f"or fitting a wider wavelength range.")
     for name, oc in optical.items():
         vis = (oc.wavelength_nm >= 380) & (oc.wavelength_nm <= 780)
         if vis.any() and np.nanmin(oc.n[vis]) < 1.0:

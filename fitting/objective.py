@@ -115,9 +115,13 @@ def build_part(index: int, spectrum, stack: Stack, options) -> Part:
     FitError
         If no usable point remains, or the stack cannot be evaluated there.
     """
-    stack = Stack.from_dict(stack.to_dict())
-    wl = spectrum.wavelength_nm
     name = spectrum.name or f"spectrum {index + 1}"
+    try:
+        stack = Stack.from_dict(stack.to_dict())
+    except PellucidError as e:
+        raise FitError(f"{name}: the start values cannot be computed: {e}; change them "
+                       f"before fitting") from e
+    wl = spectrum.wavelength_nm
     if wl.size == 0:
         raise FitError(f"{name}: the spectrum holds no data points")
     in_range = np.ones(wl.shape, dtype=bool)
@@ -188,6 +192,12 @@ class Objective:
         if not self.var_names:
             raise FitError("no parameter is free to vary: tick 'fit' for at least one "
                            "thickness or material parameter")
+        for part in parts:
+            try:
+                part.evaluate(self.local_values(part, self.params))
+            except PellucidError as e:
+                raise FitError(f"the start values cannot be computed: {e}; change them "
+                               f"before fitting") from e
         if self.ndata <= len(self.var_names):
             raise FitError(f"{self.ndata} usable data points cannot determine "
                            f"{len(self.var_names)} free parameters; widen the fit range or "

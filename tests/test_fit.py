@@ -394,6 +394,24 @@ def test_time_limit_is_honoured():
     assert res.aborted and "time limit" in res.message
 
 
+def test_time_limit_is_honoured_by_the_automatic_start():
+    spec, stack = _slow_setup()
+    t0 = time.perf_counter()
+    res = fit_spectrum(spec, stack, FitOptions(time_limit_s=0.02))
+    assert time.perf_counter() - t0 < 1.0
+    assert res.aborted and "time limit" in res.message
+    assert np.isfinite(res.chisqr)
+
+
+def test_user_thickness_range_bounds_the_scan():
+    params, d = {"A": 2.0, "B": 0.02}, 800.0
+    res = fit_spectrum(_measured("cauchy", params, d, scale=1.0), _default_stack("cauchy"),
+                       FitOptions(thickness_range_nm=(600.0, 1000.0)))
+    assert res.extra["scan"]["thickness_range_nm"] == [600.0, 1000.0]
+    assert all(600.0 <= b <= 1000.0 for b in res.extra["scan"]["basins_nm"])
+    assert abs(res.thickness()[0] - d) < 0.01 * d
+
+
 def test_evaluation_budget_is_honoured():
     spec, stack = _slow_setup()
     res = fit_spectrum(spec, stack, FitOptions(method="least_squares", max_nfev=40))
@@ -451,6 +469,16 @@ def test_stack_undefined_on_the_data_is_refused():
     spec = Spectrum(np.linspace(150, 400, 50), np.full(50, 0.9))   # fused silica from 210 nm
     with pytest.raises(FitError, match="valid from 210"):
         fit_spectrum(spec, _default_stack("cauchy"))
+
+
+def test_start_values_outside_the_model_domain_are_refused():
+    # Tauc-Lorentz needs C < 2 E0 (Jellison & Modine 1996): C = 8 eV with E0 = 3.5 eV
+    # cannot be computed at all.
+    spec, _ = _slow_setup()
+    stack = _default_stack("tauc_lorentz")
+    stack.set_values({"film_o1_C": 8.0, "film_o1_E0": 3.5})
+    with pytest.raises(FitError, match="start values cannot be computed"):
+        fit_spectrum(spec, stack)
 
 
 def test_differential_evolution_needs_finite_bounds():
