@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import copy
 import math
+import re
 from dataclasses import replace
 
 from PySide6.QtCore import QObject, Signal
@@ -126,6 +127,28 @@ def model_choice_of(model) -> str:
     if isinstance(model, Bruggeman):
         return "roughness"
     return "constant"
+
+
+def tie_roughness(layer: Layer, host_layer: Layer) -> None:
+    """Tie a Bruggeman roughness layer's film part to the film below, and fix the voids.
+
+    The roughness layer mixes the *same* material with voids (Aspnes 1982), so its
+    ``host_*`` parameters follow the film's (lmfit tie expressions, which recipes
+    save and validate) instead of adding free copies the data cannot separate.
+    """
+    m = layer.material
+    if not isinstance(m, Bruggeman):
+        return
+    for name, p in list(m.params.items()):
+        if name.startswith("host_"):
+            local = name[len("host_"):]
+            if local in host_layer.material.params:
+                m.params[name] = p.copy(expr=f"{host_layer.name}_{local}", vary=False,
+                                        value=host_layer.material.params[local].value,
+                                        min=min(p.min, host_layer.material.params[local].value),
+                                        max=max(p.max, host_layer.material.params[local].value))
+        elif name.startswith("incl_"):
+            m.params[name] = p.copy(vary=False)
 
 
 def default_stack() -> Stack:
@@ -290,6 +313,7 @@ class Session(QObject):
         """Add a film (ambient side first; default on top). Returns its name."""
         layers = self.stack.layers
         index = 0 if index is None else max(0, min(index, len(layers)))
+        below = None
         if choice == "roughness":
             if not layers:
                 raise ParameterError("roughness", "no film",
@@ -298,13 +322,17 @@ class Session(QObject):
             model = make_model(choice, host=below.material)
             name = self._new_layer_name("rough")
             thickness = Param("thickness", 10.0, 0.0, 200.0, "nm", "roughness layer thickness")
+            new = Layer(name, model, thickness)
+            tie_roughness(new, below)
         else:
             model = make_model(choice, table_path=table_path)
             name = self._new_layer_name("film")
             thickness = Param("thickness", 500.0, 0.0, 50000.0, "nm", "physical film thickness")
 
+        new_layer = Layer(name, model, thickness) if below is None else new
+
         def apply():
-            self.stack.layers.insert(index, Layer(name, model, thickness))
+            self.stack.layers.insert(index, new_layer)
 
         self._edit(f"Add layer {name}", apply)
         self.stack_changed.emit()
@@ -312,7 +340,12 @@ class Session(QObject):
 
     def remove_layer(self, index: int) -> None:
         name = self.stack.layers[index].name
-        self._edit(f"Remove layer {name}", lambda: self.stack.layers.pop(index))
+
+        def apply():
+            self.stack.layers.pop(index)
+            self._repair_ties()
+
+        self._edit(f"Remove layer {name}", apply)
         self.stack_changed.emit()
 
     def move_layer(self, index: int, delta: int) -> int:
@@ -338,6 +371,9 @@ class Session(QObject):
 
         def apply():
             layer.material = model
+            if choice == "roughness" and index + 1 < len(layers):
+                tie_roughness(layer, layers[index + 1])
+            self._repair_ties()
 
         self._edit(f"Model of {layer.name}: {MODEL_CHOICES[choice]}", apply)
         self.stack_changed.emit()
@@ -348,11 +384,33 @@ class Session(QObject):
         if any(x.name == name for i, x in enumerate(self.stack.layers) if i != index):
             raise ParameterError("layer name", name, "another layer already has this name")
 
+        old = layer.name
+        pattern = re.compile(rf"\b{re.escape(old)}_")
+
         def apply():
             layer.name = name
+            for p in self.stack.parameters().values():   # ties follow the new name
+                if p.expr:
+                    p.expr = pattern.sub(f"{name}_", p.expr)
 
         self._edit(f"Rename layer to {name}", apply)
         self.stack_changed.emit()
+
+    def _repair_ties(self) -> list[str]:
+        """Drop tie expressions that name parameters no longer in the stack (and say so)."""
+        names = set(self.stack.parameters())
+        dropped = []
+        for layer in self.stack.layers:
+            for k, p in list(layer.material.params.items()):
+                if p.expr and any(t not in names for t in re.findall(r"[A-Za-z_]\w*", p.expr)
+                                  if t not in ("sqrt", "exp", "log", "log10", "sin", "cos",
+                                               "tan", "abs", "pi")):
+                    layer.material.params[k] = p.copy(expr=None, vary=True)
+                    dropped.append(f"{layer.name}_{k}")
+        if dropped:
+            self.message.emit("Ties removed (their parameters no longer exist): "
+                              + ", ".join(dropped), True)
+        return dropped
 
     def set_substrate(self, key: str | None = None, *, thickness_mm: float | None = None,
                       n: float | None = None, material=None) -> None:

@@ -379,3 +379,22 @@ def test_no_edits_while_a_fit_runs(window, qtbot, tmp_path):
     qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=10000)
     qtbot.wait(50)
     assert window.act_undo.isEnabled() and window.act_fit.isEnabled()
+
+
+def test_roughness_layer_follows_the_film(window, qtbot, demo_csv):
+    s = window.session
+    s.add_layer("roughness", index=0)
+    rough = s.stack.layers[0].material
+    assert rough.params["host_A"].expr == "film_A" and not rough.params["host_A"].vary
+    assert not rough.params["incl_n"].vary
+    s.rename_layer(1, "oxide")
+    assert s.stack.layers[0].material.params["host_A"].expr == "oxide_A"
+    s.recipe()                                   # the ties validate as recipe expressions
+    window.open_spectrum(demo_csv)
+    _fit(window, qtbot)
+    r = s.result
+    assert r.params["rough_host_A"].value == pytest.approx(r.params["oxide_A"].value)
+    assert "rough_host_A" not in r.var_names
+    s.set_layer_model(1, "constant")             # the tied parameters disappear
+    assert s.stack.layers[0].material.params["host_A"].expr is None
+    assert "Ties removed" in window.statusBar().currentMessage()
