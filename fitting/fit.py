@@ -417,6 +417,24 @@ def _scanned_film(obj: Objective):
     return None
 
 
+def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
+    """The envelope seed, or the simple fringe seed where the envelope method is weak.
+
+    The envelope method assumes a film index above the substrate's; when the
+    fringes say otherwise (maxima above the bare-substrate line) the simple seed,
+    which knows both cases, is used. It also needs clear envelopes: when it sees
+    far fewer extrema than the simple count (strong dispersion or absorption),
+    the simple seed is the better one. (Both read T against the bare-substrate
+    line, so a baseline error biases n a little; the scan's index levels absorb it.)
+    """
+    simple = autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
+    env = None if simple.below_substrate else autostart.envelope_seed(
+        part.wl, part.y, part.quantity, sub_n)
+    if env is not None and 1.5 * env.n_extrema + 2 >= simple.n_extrema:
+        return env
+    return simple
+
+
 def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     """Seed, scan and basins: a list of (label, start values) to polish."""
     found = _scanned_film(obj)
@@ -429,17 +447,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     mat = layer.material
     gmap = dict((loc, g) for g, loc in part.names)
     sub_n = part.stack.substrate.N(part.wl).real
-    # Seeds read T against the bare-substrate line; a baseline error biases n a little,
-    # which the scan's index levels absorb.
-    # The envelope method assumes a film index above the substrate's; when the
-    # fringes say otherwise (maxima above the bare-substrate line), the simple
-    # fringe seed, which knows both cases, is used.
-    # It also needs clear envelopes: when it sees far fewer extrema than the simple
-    # count (strong dispersion, absorption), the simple seed is the better one.
-    simple = autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
-    env = None if simple.below_substrate else autostart.envelope_seed(
-        part.wl, part.y, part.quantity, sub_n)
-    seed = env if env is not None and 1.5 * env.n_extrema + 2 >= simple.n_extrema else simple
+    seed = _choose_seed(part, sub_n)
     info["seed"] = seed.to_dict()
     # Fringes closer than ~4 data points are not resolved: their extrema heights (and
     # so the seed's n there) are wrong, and a fit there can slip orders.
@@ -509,10 +517,10 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         nxt = f_hi + 1.2 * f_hi ** 2 / (4 * (seed.n_ref or 2.0) * (seed.thickness_nm or 1e3))
         wl_range = (max(0.97 * f_lo, wl_res), nxt if nxt < float(part.wl.max()) else math.inf)
     d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
-    # Many fringes: scan on the long-wavelength half (in wavenumber) only, where the
+    # Many fringes: scan on the long-wavelength part (in wavenumber) only, where the
     # start's dispersion error shifts the fringe phase least; the staged polish then
     # extends to the whole fringe region (continuation in wavelength).
-    ranges = [wl_range]           # continuation: longest wavelengths first
+    ranges = [wl_range]
     if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
         w_lo = max(wl_range[0], float(part.wl.min()))
         w_hi = min(seed.fringe_range_nm[1], float(part.wl.max()))
@@ -567,16 +575,17 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         if b:
             for _, v in starts:
                 v[g2] = b[0][0]
-    # The staged polish: which points are the transparent fringe region (first its
-    # long-wavelength half if there are many fringes), and which parameters (the
-    # film's absorption edge) wait for the full fit.
+    # The staged polish: which points make up each fringe stage (the ranges above,
+    # nearly transparent points only), and which parameters (the film's absorption
+    # edge) wait for the full fit.
     edge = set(autostart.edge_params(mat))
     fixed = [gmap[pre + k] for k in mat.params if k in edge and gmap[pre + k] in obj.var_names]
     stages = []
     for rng in ranges:
         masks = []
         for p in obj.parts:
-            m = autostart.fringe_region(p, mat, local, rng, d_typ) if p in scan_parts else None
+            m = (autostart.fringe_region(p, mat, local, rng, d_typ)
+                 if any(p is q for q in scan_parts) else None)
             masks.append(np.ones(p.wl.size, bool) if m is None else m)
         if all(m.all() for m in masks):
             if not fixed:

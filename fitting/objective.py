@@ -71,7 +71,7 @@ def robust_sigma(residual: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(r - np.median(r))))
 
 
-@dataclass
+@dataclass(eq=False)
 class Part:
     """One measured spectrum and the stack that models it, bound to its used points."""
 
