@@ -309,15 +309,19 @@ def _run(obj: Objective, options: FitOptions):
     info: dict = {}
     polished: list[_Polished] = []
     fallback: list = []          # best (label, values) of the fringe stages so far
+    times: dict = {}             # wall time of each stage, s (for the benchmark)
+    info["stage_times_s"] = times
     try:
         obj.set_stage("start", 0.0, 0.05, message="preparing")
         obj.check()
         if method == "auto":
             starts, plan = _auto_starts(obj, options, start, info)
+            times["seed_and_scan"] = obj.elapsed
             yield FitProgress("scan", 0.3, obj.nfev, obj.best_chisqr,
                               f"{len(starts)} start(s) from the thickness scan")
             if plan is not None:
                 starts = _fringe_stages(obj, starts, plan, info, fallback)
+            times["fringe_stages"] = obj.elapsed - sum(times.values())
             for i, (label, values) in enumerate(starts):
                 lo = 0.55 + 0.4 * i / len(starts)
                 obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
@@ -340,6 +344,7 @@ def _run(obj: Objective, options: FitOptions):
             # Stopped during the fringe stages: their best point beats the start.
             label, values = fallback[0]
             polished.append(_Polished(values, obj.chisqr_of(values), None, label))
+    times["polish"] = obj.elapsed - sum(times.values())
     result = _finish(obj, options, start, polished, info)
     if obj.progress_cb is not None:
         obj.progress_cb(FitProgress("done", 1.0, obj.nfev, result.chisqr, result.message))
