@@ -1,1 +1,24 @@
-"""Pellucid desktop app (PySide6). Views and controllers only: all physics is in ``fitting``."""
+"""Pellucid desktop app (PySide6). Views and controllers only: all physics is in ``fitting``.
+
+Where things live:
+
+=====================  ====================================================================
+``main.py``            ``main(argv)``: entry point of ``pellucid gui``, exception hook
+``window.py``          ``MainWindow``: sections 1-4 left to right, menus, shortcuts, settings,
+                       file dialogs, fit start/cancel, export, projects, recipes
+``session.py``         ``Session``: spectrum, stack, options, masks, result + change signals;
+                       every edit is an undoable command
+``worker.py``          ``Job``: the only module that touches threads (fit and batch)
+``spectrum_panel.py``  section 1: the loaded file
+``import_dialog.py``   import preview with correctable detection
+``reference_dialog.py`` 100 % line and dark correction
+``stack_panel.py``     section 2: substrate, layers, models
+``param_table.py``     the parameter table (QAbstractTableModel) with refusals
+``fit_panel.py``       section 3: range, geometry, corrections, start, band gap, Fit/Cancel
+``plot_panel.py``      the central plot: measured, model, residuals, masks, cursor read-out
+``result_panel.py``    section 4: summary, n κ α, Tauc, correlation, report
+``batch_dialog.py``    batch run of a folder with progress and summary table
+``dialogs.py``         error boxes that say what to do
+``theme.py``           light/dark palettes and matplotlib colours from the palette
+=====================  ====================================================================
+"""

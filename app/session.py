@@ -18,7 +18,6 @@ from __future__ import annotations
 import copy
 import math
 import re
-from dataclasses import replace
 
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
@@ -421,7 +420,6 @@ class Session(QObject):
             new = Substrate(material, d, old.kappa, old.internal_transmittance, "")
         else:
             key = key or old.library or "fused_silica"
-            kw = {}
             if key == "generic_glass":
                 from fitting.substrates import generic_glass
                 nn = n if n is not None else (old.material.params["n"].value
@@ -430,7 +428,7 @@ class Session(QObject):
                                 old.kappa, old.internal_transmittance, key)
             else:
                 new = library_substrate(key, d, kappa=old.kappa,
-                                        internal_transmittance=old.internal_transmittance, **kw)
+                                        internal_transmittance=old.internal_transmittance)
 
         def apply():
             self.stack.substrate = new
@@ -561,8 +559,3 @@ class Session(QObject):
         if self.masks:
             s = s.masked_windows(self.masks)
         return s
-
-    def replace_spectrum_values(self, **changes) -> None:
-        if self.spectrum is not None:
-            self.set_spectrum(replace(self.spectrum, **changes), path=self.spectrum_path,
-                              reader_options=self.reader_options)

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtCore import QSettings, Qt
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import (QApplication, QFileDialog, QGroupBox, QLabel, QMainWindow,
                                QMenu, QScrollArea, QSplitter, QVBoxLayout, QWidget)
@@ -634,4 +634,3 @@ class MainWindow(QMainWindow):
             if job is not None and job.is_running():
                 job.cancel()
                 job.wait(60000)
-        QTimer.singleShot(0, lambda: None)
