@@ -91,10 +91,8 @@ class PlotPanel(QWidget):
         lay.addWidget(self.canvas, 1)
         lay.addWidget(self.toolbar)
 
-        self.span = SpanSelector(self.ax, self._on_span, "horizontal", useblit=True,
-                                 props={"alpha": 0.25, "facecolor": "#8a8f98"},
-                                 interactive=False, drag_from_anywhere=False)
-        self.span.set_active(False)
+        self.span = None
+        self._make_span()
         self.canvas.mpl_connect("motion_notify_event", self._on_motion)
         self.canvas.mpl_connect("button_press_event", self._on_press)
 
@@ -104,6 +102,15 @@ class PlotPanel(QWidget):
         session.masks_changed.connect(self.redraw)
         session.result_changed.connect(self._on_result)
         self.redraw()
+
+    def _make_span(self):
+        """(Re)create the drag selector: ``Axes.cla`` removes its artists on every redraw."""
+        if self.span is not None:
+            self.span.disconnect_events()
+        self.span = SpanSelector(self.ax, self._on_span, "horizontal", useblit=True,
+                                 props={"alpha": 0.25, "facecolor": "#8a8f98"},
+                                 interactive=False, drag_from_anywhere=False)
+        self.span.set_active(self.mask_button.isChecked())
 
     # -- reactions ----------------------------------------------------------------------
     def _on_data(self):
@@ -256,6 +263,13 @@ class PlotPanel(QWidget):
             if keep is not None and not reset_view:
                 ax.set_xlim(keep[0])
                 ax.set_ylim(keep[1])
+        # Fix the view before the selector adds its (hidden) rectangle, which would
+        # otherwise stretch the autoscaled limits to x = 0.
+        ax.get_xlim(), ax.get_ylim(), axr.get_ylim()
+        ax.set_autoscale_on(False)
+        self._make_span()
+        if reset_view:
+            self.toolbar.update()          # "Home" returns to this view
         style_figure(self.figure)
         self.canvas.draw_idle()
 

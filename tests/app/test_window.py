@@ -398,3 +398,28 @@ def test_roughness_layer_follows_the_film(window, qtbot, demo_csv):
     s.set_layer_model(1, "constant")             # the tied parameters disappear
     assert s.stack.layers[0].material.params["host_A"].expr is None
     assert "Ties removed" in window.statusBar().currentMessage()
+
+
+def test_mask_by_real_mouse_drag_and_right_click(window, demo_csv):
+    from matplotlib.backend_bases import MouseEvent
+    window.open_spectrum(demo_csv)
+    plot = window.plot
+    plot.canvas.draw()
+    plot.mask_button.setChecked(True)
+    canvas, ax = plot.canvas, plot.ax
+    (x0, _), (x1, _) = ax.transData.transform([(600.0, 0.0), (700.0, 0.0)])
+    y = ax.transAxes.transform((0.5, 0.5))[1]        # half-way up the spectrum axes
+
+    def ev(kind, x, button):
+        MouseEvent(kind, canvas, x, y, button=button)._process()
+
+    ev("button_press_event", x0, 1)
+    ev("motion_notify_event", (x0 + x1) / 2, 1)
+    ev("motion_notify_event", x1, 1)
+    ev("button_release_event", x1, 1)
+    assert len(window.session.masks) == 1
+    lo, hi = window.session.masks[0]
+    assert lo == pytest.approx(600.0, abs=3) and hi == pytest.approx(700.0, abs=3)
+    plot.mask_button.setChecked(False)
+    ev("button_press_event", (x0 + x1) / 2, 3)       # right click inside the window
+    assert window.session.masks == []
