@@ -423,3 +423,54 @@ def test_mask_by_real_mouse_drag_and_right_click(window, demo_csv):
     plot.mask_button.setChecked(False)
     ev("button_press_event", (x0 + x1) / 2, 3)       # right click inside the window
     assert window.session.masks == []
+
+
+def test_batch_can_be_cancelled_and_resumed(window, qtbot, tmp_path):
+    src = tmp_path / "spectra"
+    src.mkdir()
+    for i in range(4):
+        synthetic_spectrum(src / f"s{i}.csv", thickness_nm=600.0 + 20 * i, seed=i)
+    dlg = window.batch()
+    dlg.input_edit.setText(str(src))
+    dlg.output_edit.setText(str(tmp_path / "out"))
+    assert dlg.start()
+    dlg.job.stepped.connect(lambda _s: dlg.cancel())      # stop after the first spectrum
+    qtbot.waitUntil(lambda: not dlg.is_running(), timeout=60000)
+    qtbot.wait(50)
+    assert dlg.summary is not None and dlg.summary.stopped
+    done = dlg.table.rowCount()
+    assert 1 <= done < 4
+    assert "stopped early" in dlg.state.text()
+    # Resume: the finished spectra are skipped, the rest are fitted.
+    dlg.resume.setChecked(True)
+    with qtbot.waitSignal(dlg.finished_run, timeout=60000):
+        assert dlg.start()
+    qtbot.waitUntil(lambda: not dlg.is_running(), timeout=10000)
+    assert dlg.table.rowCount() == 4 and not dlg.summary.stopped
+    assert sorted(dlg.table.item(i, 1).text() for i in range(4)) == ["ok"] * 4
+    dlg.close()
+
+
+def test_file_dialog_paths_save_recipe_project_and_export(window, qtbot, demo_csv, tmp_path,
+                                                          monkeypatch, dialogs):
+    from PySide6.QtWidgets import QFileDialog
+    window.open_spectrum(demo_csv)
+    monkeypatch.setattr(QFileDialog, "getSaveFileName",
+                        staticmethod(lambda *a, **k: (str(tmp_path / "line3"), "")))
+    window.save_recipe_dialog()
+    assert (tmp_path / "line3.recipe.json").is_file()
+    window.save_project(ask=True)
+    assert (tmp_path / "line3.pellucid.json").is_file()
+    assert window.folder("project") == str(tmp_path)
+    window.export_dialog()                                # nothing to export yet
+    assert dialogs[-1]["title"] == "Nothing to export"
+    _fit(window, qtbot)
+    monkeypatch.setattr(QFileDialog, "getExistingDirectory",
+                        staticmethod(lambda *a, **k: str(tmp_path / "exports")))
+    window.export_dialog()
+    assert dialogs[-1]["title"] == "Export done"
+    assert any(p.suffix == ".png" for p in (tmp_path / "exports").iterdir())
+    monkeypatch.setattr(QFileDialog, "getOpenFileName",
+                        staticmethod(lambda *a, **k: (str(tmp_path / "line3.recipe.json"), "")))
+    window.load_recipe_dialog()
+    assert "line3.recipe.json loaded" in window.statusBar().currentMessage()
