@@ -509,12 +509,15 @@ def pick_basins(scan: ScanResult, n_max: int = 3, *, n_of_level=None,
         for i in np.flatnonzero((row <= left) & (row <= right) & np.isfinite(row)):
             cands.append((float(row[i]), float(scan.thickness_nm[i]), li))
     cands.sort()
-    out, nds = [], []
+    out, nds, ds = [], [], []
+    step = float(np.ptp(scan.thickness_nm)) / max(K - 1, 1)
     for chi, d, li in cands:
         nd = d * (n_of_level[li] if n_of_level is not None else 1.0)
-        if any(abs(nd - x) < same_nd for x in nds):
+        # Same order at another level, or the same thickness at another level.
+        if any(abs(nd - x) < same_nd for x in nds) or any(abs(d - x) < 1.5 * step for x in ds):
             continue
         nds.append(nd)
+        ds.append(d)
         out.append((d, scan.levels[li], chi))
         if len(out) >= n_max:
             break

@@ -528,12 +528,23 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     ranges = [wl_range]
     if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
         w_lo = max(wl_range[0], float(part.wl.min()))
-        w_hi = min(seed.fringe_range_nm[1], float(part.wl.max()))
+        w_hi = min(seed.fringe_range_nm[1], wl_range[1], float(part.wl.max()))
         nu_lo, nu_hi = 1.0 / w_hi, 1.0 / w_lo
-        # The long half in wavenumber (half the fringes), and for many fringes first
-        # the long third: each holds enough fringes to fix the order.
+        # Half the fringes (in wavenumber), and for many fringes first a third: each
+        # holds enough fringes to fix the order. The side is where the start model
+        # disperses least, so its dispersion error matters least: the long end for
+        # films with UV resonances (Cauchy, Tauc-Lorentz), the short end for free
+        # carriers (Drude), whose index falls towards the infrared.
         fracs = (1 / 3, 1 / 2) if seed.n_extrema >= 24 else (1 / 2,)
-        ranges = [(1.0 / (nu_lo + f * (nu_hi - nu_lo)), wl_range[1]) for f in fracs] + ranges
+        long_side = [(1.0 / (nu_lo + f * (nu_hi - nu_lo)), wl_range[1]) for f in fracs]
+        short_side = [(wl_range[0], 1.0 / (nu_hi - f * (nu_hi - nu_lo))) for f in fracs]
+
+        def spread(r):
+            sel = (part.wl >= r[0]) & (part.wl <= r[1])
+            return float(np.ptp(n_film[sel])) if sel.sum() > 1 else math.inf
+
+        side = long_side if spread(long_side[0]) <= spread(short_side[0]) else short_side
+        ranges = side + ranges
     scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
                                     options.fit_scale, options.fit_offset, check=obj.check,
                                     wl_range=ranges[0], d_typical=d_typ)
