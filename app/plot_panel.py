@@ -62,6 +62,7 @@ class PlotPanel(QWidget):
         self.axis_combo = QComboBox()
         for key, (label, *_rest) in AXES.items():
             self.axis_combo.addItem(label.split(" (")[0], key)
+        self.axis_combo.setSizeAdjustPolicy(QComboBox.AdjustToContents)
         self.axis_combo.setToolTip("Show the spectrum against wavelength, photon energy or "
                                    "wavenumber")
         self.axis_combo.currentIndexChanged.connect(self._on_axis)
