@@ -52,6 +52,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from .dispersion import Dispersion, check_wavelengths
+from .params import check_finite
 from .errors import FitError, ParameterError, PellucidError
 from .kramers_kronig import KKCheck, kk_consistency
 from .optics import stack_RT
@@ -84,6 +85,11 @@ class InversionResult:
     thickness_nm : float
     kk : KKCheck or None
         Kramers-Kronig check of the ok points (None if too few).
+    n_sigma, k_sigma : ndarray of shape (N,)
+        1σ of n and κ for a photometric noise ``sigma_data`` on T (and R), from
+        the local Jacobian (first order). Large where the data barely depend on
+        n, as at fringe extrema of a clear film; n_sigma is NaN in "T" mode
+        (n is the prior there).
     """
 
     wavelength_nm: np.ndarray
@@ -96,6 +102,8 @@ class InversionResult:
     layer: str
     thickness_nm: float
     kk: KKCheck | None = None
+    n_sigma: np.ndarray | None = None
+    k_sigma: np.ndarray | None = None
 
 
 class _PointModel:
@@ -141,19 +149,22 @@ class _PointModel:
         R, T = self.RT_many(i, N)
         return R[0], T[0]
 
-    def T_grid(self, idx, N):
-        """T at grid points ``idx`` with the film index N (array over idx)."""
+    def RT_grid(self, idx, N):
+        """R, T at grid points ``idx`` with the film index N (array over idx)."""
         Ns = [N if f is None else f[idx] for f in self.N_films]
         args = (self.wl[idx], self.N_amb[idx])
         tail = (self.N_sub[idx], self.sub_d, self.N_exit[idx])
         if self.spread > 0:
-            T = 0.0
+            R = T = 0.0
             for x, w in zip(_GH_X, _GH_W):
-                T = T + w * stack_RT(*args, Ns, [d * (1 + self.spread * x) for d in self.d],
-                                     *tail, angle_rad=self.angle, polarization=self.pol)[1]
-            return T
-        return stack_RT(*args, Ns, self.d, *tail, angle_rad=self.angle,
-                        polarization=self.pol)[1]
+                Ri, Ti = stack_RT(*args, Ns, [d * (1 + self.spread * x) for d in self.d],
+                                  *tail, angle_rad=self.angle, polarization=self.pol)
+                R, T = R + w * Ri, T + w * Ti
+            return R, T
+        return stack_RT(*args, Ns, self.d, *tail, angle_rad=self.angle, polarization=self.pol)
+
+    def T_grid(self, idx, N):
+        return self.RT_grid(idx, N)[1]
 
 
 def _prior_on_grid(n_prior, wl):
@@ -205,8 +216,8 @@ def _envelope_prior(stack, model, wl, T):
 def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
                           n_start: float | None = None, n_prior=None, angle_deg: float = 0.0,
                           polarization: str = "u", min_T: float = 1e-4,
-                          residual_tol: float = 1e-3, kk_check: bool = True
-                          ) -> InversionResult:
+                          residual_tol: float = 1e-3, kk_check: bool = True,
+                          sigma_data: float = 1e-3) -> InversionResult:
     """Solve n(λ), κ(λ) of one film at every wavelength from measured T (and R).
 
     Parameters
@@ -239,6 +250,8 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
         solution exists.
     kk_check : bool
         Run :func:`~fitting.kramers_kronig.kk_consistency` on the ok points.
+    sigma_data : float
+        Photometric 1σ noise of T and R (fraction) for ``n_sigma``/``k_sigma``.
 
     Returns
     -------
@@ -297,11 +310,13 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
 
     if mode == "T+R":
         if n_start is None:
-            n_start = _default_n_start(stack, layer_name, model, wl, T, order[0])
+            n0 = _default_n_start(stack, layer_name, model, wl, T, order[0])
+        else:
+            n0 = np.full(wl.shape, check_finite("n_start", n_start))
         hist: list[tuple[float, float, float]] = []    # (λ, n, κ) of accepted points
         for i in order:
             lam = wl[i]
-            n_pred, k_pred = _predict(hist, lam, float(n_start))
+            n_pred, k_pred = _predict(hist, lam, float(n0[i]))
             spacing = lam / (2 * d)
             jump = min(0.3 * spacing, 0.5)
             fun = _residual_TR(model, i, T[i], R[i])
@@ -362,18 +377,44 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
     if stack.bandwidth_nm > 0:
         parts.append(f"the instrument bandwidth ({stack.bandwidth_nm:g} nm) is not applied "
                      "point by point")
+    n_sig, k_sig = _sigmas(model, n_out, k_out, mode, float(sigma_data))
     return InversionResult(wl, n_out, k_out, res_out, ok, "; ".join(parts), mode, layer_name, d,
-                           kk)
+                           kk, n_sig, k_sig)
+
+
+def _sigmas(model, n, k, mode, sigma):
+    """First-order 1σ of (n, κ) from the Jacobian of (T, R) at every point at once."""
+    idx = np.arange(n.size)
+    good = np.isfinite(n) & np.isfinite(k)
+    n0, k0 = np.where(good, n, 2.0), np.where(good, np.maximum(k, 0.0), 0.0)
+    hn, hk = 1e-6 * np.maximum(1.0, n0), 1e-7 + 1e-6 * k0
+    R0, T0 = model.RT_grid(idx, n0 + 1j * k0)
+    Rn, Tn = model.RT_grid(idx, n0 + hn + 1j * k0)
+    Rk, Tk = model.RT_grid(idx, n0 + 1j * (k0 + hk))
+    dTn, dTk = (Tn - T0) / hn, (Tk - T0) / hk
+    dRn, dRk = (Rn - R0) / hn, (Rk - R0) / hk
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if mode == "T":
+            return np.full(n.shape, np.nan), np.where(good, sigma / np.abs(dTk), np.nan)
+        # Square 2x2 system: cov = σ² J⁻¹ J⁻ᵀ.
+        det = dTn * dRk - dTk * dRn
+        inv = np.array([[dRk, -dTk], [-dRn, dTn]]) / det
+        n_s = sigma * np.sqrt(inv[0, 0] ** 2 + inv[0, 1] ** 2)
+        k_s = sigma * np.sqrt(inv[1, 0] ** 2 + inv[1, 1] ** 2)
+    bad = ~good | ~np.isfinite(n_s)
+    return np.where(bad, np.inf, n_s), np.where(bad, np.inf, k_s)
 
 
 def _default_n_start(stack, layer_name, model, wl, T, i0):
+    """Start value (as an array on the grid): the envelope's n at the longest extremum."""
     from .envelope import swanepoel_envelope
     env = swanepoel_envelope(wl, T, np.real(model.N_sub))
     if env.ok:
         # n at the longest extremum (np.interp holds the end value beyond it).
-        return float(np.interp(wl[i0], env.wavelength_nm, env.n))
+        return np.full(wl.shape, float(np.interp(wl[i0], env.wavelength_nm, env.n)))
     try:
-        return float(np.real(stack.layer(layer_name).material.N(wl[i0:i0 + 1]))[0])
+        return np.full(wl.shape, float(np.real(
+            stack.layer(layer_name).material.N(wl[i0:i0 + 1]))[0]))
     except PellucidError:
         raise FitError("point-by-point inversion needs a start value: the envelope method "
                        f"found none ({env.message}) and the film's model cannot give n at "

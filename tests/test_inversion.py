@@ -136,3 +136,22 @@ def test_thickness_spread_and_oblique_incidence_follow_the_stack_engine():
     N = FILM.N(wl)
     good = (np.abs(res.n - N.real) < 1e-3) & (np.abs(res.k - N.imag) < 1e-3)
     assert good.mean() > 0.9, res.message
+
+
+def test_sigma_bands_match_noise_scatter(measured):
+    # First-order σ(n) from the Jacobian against the actual scatter of repeated noisy
+    # inversions (0.01 % noise keeps the walk on one branch): the median ratio per
+    # point is near 1. (At fringe extrema of the clear film the linear σ overstates
+    # the error, which grows there as the square root of the noise.)
+    N, T, R = measured
+    wl, n_true = WL, N.real
+    runs = []
+    for seed in range(4):
+        rng = np.random.default_rng(seed)
+        res = invert_point_by_point(stack(), "film", wl, T + rng.normal(0, 1e-4, wl.size),
+                                    R + rng.normal(0, 1e-4, wl.size), sigma_data=1e-4,
+                                    kk_check=False)
+        runs.append(res.n - n_true)
+    spread = np.sqrt(np.mean(np.square(runs), axis=0))
+    assert 0.6 < np.median(spread / res.n_sigma) < 1.5
+    assert np.all(res.n_sigma > 0)
