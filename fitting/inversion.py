@@ -272,6 +272,12 @@ def invert_point_by_point(stack, layer_name: str, wavelength_nm, T, R=None, *,
     n is least certain there (its error grows as the square root of the data
     error) although the continuation still keeps the right branch.
 
+    Known limit: the physical and the mirror solution touch at every fringe
+    extremum of a clear film. With noisy data on a coarse grid (fewer than
+    about 20 points per fringe) the walk can leave there on the mirror branch;
+    the result then shows branch jumps or fails the Kramers-Kronig check.
+    Sample more densely, or use a model fit.
+
     References
     ----------
     .. [1] D. P. Arndt et al., Appl. Opt. 23, 3571 (1984).
