@@ -325,11 +325,20 @@ def read_table_csv(path) -> tuple[dict, list[str], np.ndarray]:
     if i >= len(lines):
         raise ValueError(f"{path}: no column header line after the '#' lines")
     names = [c.strip() for c in lines[i].split(",")]
-    body = [ln for ln in lines[i + 1:] if ln.strip()]
-    data = (np.array([[float(x) for x in ln.split(",")] for ln in body], dtype=float)
-            if body else np.empty((0, len(names))))
-    if data.ndim != 2 or data.shape[1] != len(names):
-        raise ValueError(f"{path}: rows do not match the {len(names)} header columns")
+    rows = []
+    for j, ln in enumerate(lines[i + 1:], start=i + 2):
+        if not ln.strip():
+            continue
+        cells = ln.split(",")
+        if len(cells) != len(names):
+            raise ValueError(f"{path}, line {j}: {len(cells)} values where the header has "
+                             f"{len(names)} columns; the file was cut short or edited")
+        try:
+            rows.append([float(x) for x in cells])
+        except ValueError:
+            raise ValueError(f"{path}, line {j}: a value is not a number ({ln[:60]!r}); "
+                             "the file was edited by hand or damaged") from None
+    data = np.array(rows, dtype=float) if rows else np.empty((0, len(names)))
     return meta, names, data
 
 

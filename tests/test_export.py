@@ -334,3 +334,15 @@ def test_export_of_a_real_fit(tmp_path):
     assert doc["params"]["film_thickness"]["value"] == pytest.approx(res.thickness()[0])
     _, _, data = read_csv(tmp_path / "syn_nk_film.csv")
     np.testing.assert_array_equal(data[:, 1], res.optical["film"].n)
+
+
+def test_read_table_csv_names_the_line_of_a_damaged_export(tmp_path):
+    p = tmp_path / "cut_curves.csv"
+    p.write_text("# quantity: T\nwavelength_nm,measured_T_fraction,fitted_T_fraction\n"
+                 "400.0,0.5,0.49\n401.0,0.6\n", encoding="utf-8")
+    with pytest.raises(ValueError, match=r"cut_curves.csv, line 4: 2 values where the header "
+                                         r"has 3 columns"):
+        export.read_table_csv(p)
+    p.write_text("wavelength_nm,n\n400.0,2.0\n401.0,#REF!\n", encoding="utf-8")
+    with pytest.raises(ValueError, match=r"line 3: a value is not a number"):
+        export.read_table_csv(p)
