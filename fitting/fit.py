@@ -696,6 +696,8 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
             except PellucidError as e:   # a model undefined at the fitted values
                 info.setdefault("optical_errors", []).append(f"{key}: {e}")
 
+    info["kk"] = _kk_checks(optical)
+
     alternatives = []
     found = _scanned_film(obj)
     if found is not None and best is not None:
@@ -752,6 +754,28 @@ def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Po
         method=options.method if len(obj.parts) == 1 else f"joint {options.method}",
         spectrum={"name": sp.name, "source": sp.source, "sha256": sp.sha256},
         extra=extra)
+
+
+def _kk_checks(optical: dict) -> dict:
+    """Kramers-Kronig consistency of each fitted layer's n, κ on the data grid.
+
+    Oscillator models are consistent by construction, so this mainly tells
+    whether a Cauchy/Urbach or tabulated result is physically self-consistent
+    (see :func:`fitting.kramers_kronig.kk_consistency`).
+    """
+    from .kramers_kronig import kk_consistency
+    out = {}
+    for key, oc in optical.items():
+        if oc.wavelength_nm.size < 10:
+            continue
+        try:
+            chk = kk_consistency(oc.wavelength_nm, oc.n, oc.k)
+        except (PellucidError, ValueError) as e:
+            out[key] = {"consistent": None, "message": f"not checked: {e}"}
+            continue
+        out[key] = {"consistent": bool(chk.consistent), "rms_dev": float(chk.rms_dev),
+                    "max_dev": float(chk.max_dev), "message": chk.message}
+    return out
 
 
 def _plain_message(success: bool, msg: str) -> str:

@@ -124,6 +124,10 @@ def build_part(index: int, spectrum, stack: Stack, options) -> Part:
     wl = spectrum.wavelength_nm
     if wl.size == 0:
         raise FitError(f"{name}: the spectrum holds no data points")
+    if (spectrum.metadata or {}).get("ordinate") == "counts":
+        # Raw detector counts are not a transmittance: they need the 100 % line first.
+        raise FitError(f"{name}: the file holds raw detector counts, not T or R; divide it by "
+                       f"a 100 % line (reference correction with baseline and dark) first")
     in_range = np.ones(wl.shape, dtype=bool)
     if options.fit_range_nm is not None:
         lo, hi = options.fit_range_nm

@@ -245,6 +245,10 @@ class FitResult:
             lines.append("[[Band gap]]")
             lines.append(f"    Tauc {g.transition}: Eg = {g.Eg_eV:.3f} +/- {g.sigma_eV:.3f} eV "
                          f"(linear range {g.fit_range_eV[0]:.2f}-{g.fit_range_eV[1]:.2f} eV)")
+        kk = self.extra.get("kk") or {}
+        if kk:
+            lines.append("[[Kramers-Kronig check]]")
+            lines += [f"    {layer}: {c.get('message', '')}" for layer, c in kk.items()]
         if self.alternatives:
             lines.append("[[Other thickness basins]]")
             lines += [f"    d = {a.thickness_nm:.1f} nm: chi-sq. = {a.chisqr:.6g} "
