@@ -21,6 +21,7 @@ from .session import MODEL_CHOICES, SUBSTRATE_NAMES, model_choice_of
 __all__ = ["StackPanel"]
 
 _TABLE = "__table__"       # combo entry: a substrate material read from an n, κ file
+_BARE = "__bare__"         # combo entry: a measured T spectrum of the bare slide
 
 
 class StackPanel(QWidget):
@@ -45,6 +46,7 @@ class StackPanel(QWidget):
         for key in SUBSTRATE_LIBRARY:
             self.substrate_combo.addItem(SUBSTRATE_NAMES.get(key, key), key)
         self.substrate_combo.addItem("n, κ table from file…", _TABLE)
+        self.substrate_combo.addItem("Measured bare slide (T spectrum)…", _BARE)
         self.substrate_combo.setToolTip("Substrate material (thick, incoherent; its "
                                         "back-side reflection is included)")
         self.substrate_combo.currentIndexChanged.connect(self._on_substrate)
@@ -208,6 +210,12 @@ class StackPanel(QWidget):
                 self.refresh()
                 return
             self.set_substrate_table(path)
+        elif key == _BARE:
+            path = self._bare_file()
+            if path is None:
+                self.refresh()
+                return
+            self.set_substrate_bare(path)
         elif key:
             self._guard("Substrate not changed", self.session.set_substrate, key)
 
@@ -223,6 +231,33 @@ class StackPanel(QWidget):
         return self._guard("Substrate not changed", self.session.set_substrate,
                            material=material) is None and \
             self.session.stack.substrate.material is material
+
+    def set_substrate_bare(self, path):
+        """Use a measured T spectrum of the bare slide as the substrate.
+
+        With a library glass selected, its n is kept and the spectrum gives the slide's
+        own absorption κ(λ); otherwise the slide is taken as lossless and gives n(λ).
+        """
+        from fitting.bare_substrate import substrate_from_bare_spectrum
+        from fitting.reader import read_spectrum
+        old = self.session.stack.substrate
+        base = old.material if old.library and old.library != "generic_glass" else None
+        try:
+            sub = substrate_from_bare_spectrum(read_spectrum(path),
+                                               thickness_mm=old.thickness_mm, material=base)
+        except PellucidError as exc:
+            self.error.emit("Substrate not changed", str(exc))
+            self.refresh()
+            return False
+        return self._guard("Substrate not changed", self.session.set_substrate,
+                           material=sub.material) is None and \
+            self.session.stack.substrate.material is sub.material
+
+    def _bare_file(self):
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Open the transmission spectrum of a bare slide", "",
+            "Spectra (*.csv *.txt *.dat *.asc *.tsv);;All files (*)")
+        return path or None
 
     def _on_substrate_thickness(self, v):
         if not self._updating:
