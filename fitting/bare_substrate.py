@@ -71,16 +71,19 @@ def substrate_from_bare_spectrum(spectrum: Spectrum, *, thickness_mm: float = 1.
     """
     if spectrum.quantity != "T":
         raise ParameterError("bare substrate spectrum", spectrum.quantity,
-                             "must be a transmittance spectrum (T), not reflectance")
+                             f"{spectrum.source or spectrum.name or 'the spectrum'} is a "
+                             "reflectance spectrum; measure the bare slide in transmission")
     if len(spectrum) < 5:
         raise ParameterError("bare substrate spectrum", len(spectrum),
                              "needs at least 5 points")
     wl = spectrum.wavelength_nm
     T = _smooth(np.asarray(spectrum.values, float), int(smooth_points))
     if np.any(T <= 0.05):
+        dark = wl[T <= 0.05]
         raise ParameterError("bare substrate spectrum", float(T.min()),
-                             "the slide is nearly opaque somewhere (T <= 5 %); crop the range "
-                             "to where it transmits")
+                             f"{spectrum.source or spectrum.name or 'the spectrum'}: the slide "
+                             f"is nearly opaque (T <= 5 %) at {dark[0]:g}-{dark[-1]:g} nm; "
+                             "crop the range to where it transmits")
     d_nm = float(thickness_mm) * 1e6
     if material is None:
         # Lossless slab: T <= 2n/(n²+1) < 1; values above the n = 1 limit are noise.

@@ -53,7 +53,10 @@ def test_noise_above_the_lossless_limit_gives_zero_kappa_not_nan():
 
 def test_opaque_or_reflectance_spectra_are_refused():
     wl = np.linspace(400, 800, 60)
-    with pytest.raises(ParameterError, match="opaque"):
-        substrate_from_bare_spectrum(Spectrum(wl, np.full(wl.shape, 0.01)))
-    with pytest.raises(ParameterError, match="transmittance"):
+    T = np.where(wl < 500, 0.01, 0.9)        # a UV-blocking slide, opaque below 500 nm
+    with pytest.raises(ParameterError, match=r"slide.csv: the slide is nearly opaque "
+                                             r"\(T <= 5 %\) at 400-494.9\d* nm; crop"):
+        substrate_from_bare_spectrum(Spectrum(wl, T, source="slide.csv"), smooth_points=1)
+    with pytest.raises(ParameterError, match="reflectance spectrum; measure the bare slide "
+                                             "in transmission"):
         substrate_from_bare_spectrum(Spectrum(wl, np.full(wl.shape, 0.04), quantity="R"))
