@@ -22,7 +22,7 @@ from typing import ClassVar, Iterable, Mapping
 import numpy as np
 
 from .errors import ParameterError, WavelengthRangeError
-from .params import Param, check_finite
+from .params import PARAM_FIELDS, Param, check_finite, refuse_unknown_fields
 from .units import HC_EV_NM
 
 __all__ = [
@@ -630,6 +630,7 @@ def _apply_saved_params(model: _HasParams, saved: Mapping, where: str) -> None:
                               f"unknown parameter; known: {', '.join(model.params)}")
         p = model.params[name]
         if isinstance(entry, Mapping):
+            refuse_unknown_fields(entry, PARAM_FIELDS, f"{where}.params.{name}")
             lo = entry.get("min", p.min)
             hi = entry.get("max", p.max)
             try:

@@ -59,7 +59,7 @@ from .objective import DEFAULT_SIGMA, Objective, Part, _Stop, build_part, robust
 from .result import (Alternative, FitProgress, FitResult, OpticalConstants,
                      ParamResult)
 from .stack import POLARIZATIONS, Stack, StackModel
-from .units import alpha_per_cm
+from .units import HC_EV_NM, alpha_per_cm
 
 __all__ = ["FitOptions", "fit_spectrum", "fit_joint", "iter_fit", "iter_fit_joint",
            "FitResult", "FitProgress", "METHODS"]
@@ -870,6 +870,13 @@ def _band_gap(optical: dict, transition: str):
                 g = tauc_gap(oc.wavelength_nm, oc.alpha_cm, transition=transition, layer=name)
             except PellucidError as e:
                 return None, f"band gap of {name} not computed: {e}"
+            # A straight part that ends at the short-wavelength end of the data may
+            # continue beyond it: the gap is then less certain than its σ says.
+            E_max = float(HC_EV_NM / np.min(oc.wavelength_nm))
+            if g.fit_range_eV[1] >= E_max - 0.02:
+                return g, (f"the Tauc line of {name} reaches the short-wavelength end of the "
+                           f"data ({E_max:.2f} eV): the band gap {g.Eg_eV:.2f} eV may be off by "
+                           f"more than its σ; measure or fit further into the UV to confirm it")
             return g, None
     return None, ("band gap not computed: no film absorbs in the fitted range "
                   "(κ is zero everywhere)")

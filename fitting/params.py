@@ -9,9 +9,26 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, replace
 
-from .errors import ParameterError
+from .errors import ParameterError, RecipeError
 
-__all__ = ["Param", "check_finite"]
+__all__ = ["Param", "check_finite", "refuse_unknown_fields", "PARAM_FIELDS"]
+
+#: Fields of a saved parameter entry.
+PARAM_FIELDS = ("value", "min", "max", "vary", "expr")
+
+
+def refuse_unknown_fields(d, known, where: str) -> None:
+    """Raise :class:`RecipeError` for a key of ``d`` not in ``known``, suggesting the closest.
+
+    A typo in a saved file must not be silently ignored: it would leave a default value.
+    """
+    import difflib
+    for key in d:
+        if key not in known:
+            close = difflib.get_close_matches(str(key), known, n=1)
+            hint = f"; did you mean {close[0]!r}?" if close else \
+                f"; known fields: {', '.join(known)}"
+            raise RecipeError(f"{where}.{key}", "unknown field" + hint)
 
 
 def check_finite(name: str, value) -> float:

@@ -35,7 +35,7 @@ from scipy.special import roots_jacobi
 from .dispersion import Constant, Dispersion, check_wavelengths, model_from_dict
 from .errors import ParameterError, RecipeError
 from .optics import films_RT, outer_media
-from .params import Param, check_finite
+from .params import PARAM_FIELDS, Param, check_finite, refuse_unknown_fields
 from .substrates import Substrate
 
 __all__ = ["Layer", "Stack", "StackModel", "POLARIZATIONS"]
@@ -229,6 +229,9 @@ class Stack:
             w = f"{where}.layers[{i}]"
             if not isinstance(ld, Mapping) or "material" not in ld:
                 raise RecipeError(w, "must be an object with 'name', 'material', 'thickness'")
+            refuse_unknown_fields(ld, ("name", "material", "thickness"), w)
+            if isinstance(ld.get("thickness"), Mapping):
+                refuse_unknown_fields(ld["thickness"], PARAM_FIELDS, f"{w}.thickness")
             th = ld.get("thickness", {})
             try:
                 if isinstance(th, Mapping):
