@@ -167,12 +167,20 @@ def _fit(args, out) -> int:
     if read_spectrum is None or fit_spectrum is None:
         raise PellucidError("this installation has no spectrum reader or fit engine")
     path = Path(args.spectrum)
+    if path.is_dir():
+        raise _UsageError(f"{path} is a folder; 'pellucid fit' takes one spectrum file, "
+                          f"use 'pellucid batch {path} --recipe ... --out ...' for a folder")
     if not path.is_file():
-        raise _UsageError(f"{path}: no such file")
+        raise _UsageError(f"{path}: no such file; check the path")
+    outdir = Path(args.out)
+    if outdir.exists() and not outdir.is_dir():
+        raise _UsageError(f"--out {outdir} is a file; give a folder for the exports")
     spectrum = read_spectrum(path, options=recipe.reader_options())
     result = fit_spectrum(spectrum, recipe.new_stack(), recipe.make_fit_options(spectrum))
-    outdir = Path(args.out)
     outdir.mkdir(parents=True, exist_ok=True)
+    # Say what was fitted: a reflectance file fits as R under an "auto" reader setting.
+    out.write(f"fitted {'transmittance T' if spectrum.quantity == 'T' else 'reflectance R'} "
+              f"of {path.name} ({len(spectrum)} points)\n")
     prov = batch._provenance(recipe_hash(recipe), recipe, path, sha256_of_file(path))
     files = batch._export(result, outdir, path.stem, prov, recipe)
     out.write(result.report() + "\n")

@@ -170,3 +170,30 @@ def test_batch_of_broken_files_records_each_reason_and_goes_on(tmp_path):
         tail = parts[0].split(name, 1)[1].lstrip(",: ")
         assert tail in rows[name]["reason"] and parts[-1] in rows[name]["reason"]
         assert any(name in line and parts[-1] in line for line in err.splitlines())
+
+
+def test_fit_refuses_a_folder_and_an_out_that_is_a_file(tmp_path):
+    import io
+    from fitting import cli
+    folder = tmp_path / "spectra"
+    folder.mkdir()
+    err = io.StringIO()
+    code = cli.main(["fit", str(folder), "--recipe", str(_demo_recipe()), "--out",
+                     str(tmp_path / "o")], stdout=io.StringIO(), stderr=err)
+    assert code == 2 and "is a folder" in err.getvalue() and "pellucid batch" in err.getvalue()
+    spec = next((_demo_root() / "spectra").iterdir())
+    blocker = tmp_path / "out.txt"
+    blocker.write_text("x", encoding="utf-8")
+    err = io.StringIO()
+    code = cli.main(["fit", str(spec), "--recipe", str(_demo_recipe()), "--out", str(blocker)],
+                    stdout=io.StringIO(), stderr=err)
+    assert code == 2 and "is a file" in err.getvalue()
+
+
+def _demo_root():
+    import pathlib
+    return pathlib.Path(__file__).resolve().parents[1] / "demo_data"
+
+
+def _demo_recipe():
+    return _demo_root() / "recipe.json"
