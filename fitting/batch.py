@@ -55,7 +55,6 @@ from __future__ import annotations
 
 import csv
 import glob
-import importlib
 import inspect
 import io
 import json
@@ -284,14 +283,8 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
 
 # ---------------------------------------------------------------------------------
 # One spectrum (runs in a worker process, a Dask worker or in-process)
-def _optional(module: str, name: str):
-    try:
-        mod = importlib.import_module(f"fitting.{module}")
-    except ModuleNotFoundError as e:
-        if e.name == f"fitting.{module}":
-            return None
-        raise
-    return getattr(mod, name, None)
+# Optional parts are looked up by name, the same way recipes resolve their sections.
+from .recipe import _optional  # noqa: E402
 
 
 _RECIPES: dict[str, Recipe] = {}
