@@ -163,15 +163,19 @@ def test_mask_drag_axis_and_cursor(window, qtbot, demo_csv):
     assert len(window.session.masks) == 2
 
 
-def test_fit_cancel_and_gui_stays_responsive(window, qtbot, tmp_path):
-    # A deliberately slow setup: Tauc-Lorentz film, thickness spread and slit width
-    # make every evaluation 49 transfer-matrix passes.
-    path = synthetic_spectrum(tmp_path / "slow.csv", points=1500)
-    window.open_spectrum(path)
+def _open_slow_setup(window, tmp_path):
+    """A deliberately slow fit: a Tauc-Lorentz film with thickness spread and slit width,
+    so every evaluation runs many transfer-matrix passes (spread x slit nodes)."""
+    window.open_spectrum(synthetic_spectrum(tmp_path / "slow.csv", points=1500))
     s = window.session
     s.set_layer_model(0, "tauc_lorentz")
     s.stack.thickness_spread = 0.02
     s.stack.bandwidth_nm = 2.0
+    return s
+
+
+def test_fit_cancel_and_gui_stays_responsive(window, qtbot, tmp_path):
+    s = _open_slow_setup(window, tmp_path)
     qtbot.wait(300)                      # let the pending plot redraw happen first
     ticks = []
     timer = QTimer()
@@ -364,12 +368,8 @@ def test_substrate_from_an_nk_table(window, tmp_path, dialogs):
 
 
 def test_no_edits_while_a_fit_runs(window, qtbot, tmp_path):
-    path = synthetic_spectrum(tmp_path / "slow.csv", points=1500)
-    window.open_spectrum(path)
-    s = window.session
-    s.set_layer_model(0, "tauc_lorentz")
-    s.stack.thickness_spread = 0.02
-    s.stack.bandwidth_nm = 2.0
+    _open_slow_setup(window, tmp_path)
+    path = tmp_path / "slow.csv"
     assert window.start_fit()
     assert not window.act_undo.isEnabled() and not window.act_fit.isEnabled()
     assert not window.start_fit()                       # a second fit is refused
