@@ -22,13 +22,13 @@ import re
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
 
-from fitting.dispersion import (Bruggeman, Cauchy, Constant, Drude, Lorentz, Oscillators,
-                                Sellmeier, Tabulated, TaucLorentz)
 from fitting.errors import FitError, ParameterError, PellucidError
 # Imported at start-up, not on the first Fit: importing the fit engine (lmfit, scipy)
 # takes a second or more, which must not freeze the window when the user clicks Fit.
 from fitting.fit import FitOptions
 from fitting.params import Param, check_finite
+from fitting.presets import (MODEL_CHOICES, SUBSTRATE_NAMES, default_fit_options,
+                             default_stack, make_model, model_choice_of, tie_roughness)
 from fitting.recipe import Recipe
 from fitting.stack import Layer, Stack
 from fitting.substrates import Substrate, library_substrate
@@ -36,123 +36,13 @@ from fitting.substrates import Substrate, library_substrate
 __all__ = ["Session", "MODEL_CHOICES", "make_model", "model_choice_of", "default_options",
            "SUBSTRATE_NAMES"]
 
-#: Dispersion models a user can pick for a film, in menu order: key -> label.
-MODEL_CHOICES = {
-    "cauchy": "Cauchy (transparent film)",
-    "cauchy_urbach": "Cauchy + Urbach tail (weak absorption edge)",
-    "sellmeier": "Sellmeier (1 term)",
-    "lorentz": "Lorentz oscillator",
-    "drude": "Drude (free carriers)",
-    "drude_lorentz": "Drude + Lorentz (transparent conductor)",
-    "tauc_lorentz": "Tauc-Lorentz (amorphous semiconductor)",
-    "constant": "Constant n, κ",
-    "tabulated": "Tabulated n, κ from file…",
-    "roughness": "Surface roughness (Bruggeman, film + voids)",
-}
-
-#: Display names of the substrate library keys.
-SUBSTRATE_NAMES = {
-    "fused_silica": "Fused silica",
-    "n_bk7": "N-BK7 borosilicate glass",
-    "sapphire_o": "Sapphire (ordinary ray)",
-    "caf2": "Calcium fluoride (CaF₂)",
-    "generic_glass": "Glass, constant n",
-}
-
-_OPTION_DEFAULTS = {
-    "method": "auto",
-    "fit_range_nm": None,
-    "angle_deg": 0.0,
-    "polarization": "u",
-    "fit_scale": False,
-    "fit_offset": False,
-    "band_gap": None,
-}
-
-
 def default_options() -> dict:
-    """The fit options a new session starts with (keys of ``fitting.fit.FitOptions``)."""
-    return dict(_OPTION_DEFAULTS)
-
-
-def make_model(choice: str, *, host=None, table_path=None):
-    """A fresh dispersion model for a :data:`MODEL_CHOICES` key.
-
-    ``host`` is the material a roughness layer mixes with voids; ``table_path``
-    the n, κ file of a tabulated material.
-    """
-    if choice == "cauchy":
-        return Cauchy()
-    if choice == "cauchy_urbach":
-        return Cauchy(urbach=True)
-    if choice == "sellmeier":
-        return Sellmeier(1)
-    if choice == "lorentz":
-        return Oscillators(1.0, [Lorentz(1.5, 6.0, 0.5)])
-    if choice == "drude":
-        return Oscillators(3.5, [Drude(1.5, 0.1)])
-    if choice == "drude_lorentz":
-        return Oscillators(3.5, [Drude(1.5, 0.1), Lorentz(1.0, 6.0, 0.5)])
-    if choice == "tauc_lorentz":
-        return Oscillators(2.0, [TaucLorentz()])
-    if choice == "constant":
-        return Constant(1.8, 0.0)
-    if choice == "tabulated":
-        if table_path is None:
-            raise ParameterError("table file", None, "choose an n, κ table file")
-        return Tabulated.from_file(table_path)
-    if choice == "roughness":
-        return Bruggeman(host.copy() if host is not None else Cauchy(), Constant(1.0, 0.0), 0.5)
-    raise ParameterError("model", choice, f"choose one of {', '.join(MODEL_CHOICES)}")
-
-
-def model_choice_of(model) -> str:
-    """The :data:`MODEL_CHOICES` key that best describes an existing model."""
-    if isinstance(model, Cauchy):
-        return "cauchy_urbach" if model.urbach else "cauchy"
-    if isinstance(model, Sellmeier):
-        return "sellmeier"
-    if isinstance(model, Oscillators):
-        kinds = [t.kind for t in model.terms]
-        if kinds == ["lorentz"]:
-            return "lorentz"
-        if kinds == ["drude"]:
-            return "drude"
-        if kinds == ["tauc_lorentz"]:
-            return "tauc_lorentz"
-        return "drude_lorentz"
-    if isinstance(model, Tabulated):
-        return "tabulated"
-    if isinstance(model, Bruggeman):
-        return "roughness"
-    return "constant"
-
-
-def tie_roughness(layer: Layer, host_layer: Layer) -> None:
-    """Tie a Bruggeman roughness layer's film part to the film below, and fix the voids.
-
-    The roughness layer mixes the *same* material with voids (Aspnes 1982), so its
-    ``host_*`` parameters follow the film's (lmfit tie expressions, which recipes
-    save and validate) instead of adding free copies the data cannot separate.
-    """
-    m = layer.material
-    if not isinstance(m, Bruggeman):
-        return
-    for name, p in list(m.params.items()):
-        if name.startswith("host_"):
-            local = name[len("host_"):]
-            if local in host_layer.material.params:
-                m.params[name] = p.copy(expr=f"{host_layer.name}_{local}", vary=False,
-                                        value=host_layer.material.params[local].value,
-                                        min=min(p.min, host_layer.material.params[local].value),
-                                        max=max(p.max, host_layer.material.params[local].value))
-        elif name.startswith("incl_"):
-            m.params[name] = p.copy(vary=False)
-
-
-def default_stack() -> Stack:
-    """One Cauchy film of 500 nm on 1 mm fused silica: a sensible first guess."""
-    return Stack([Layer("film", Cauchy())], library_substrate("fused_silica", 1.0))
+    """The fit options a new session starts with: every ``FitOptions`` field but the
+    masked windows (kept in :attr:`Session.masks`), so a recipe's options survive
+    a load and save through the app unchanged."""
+    d = default_fit_options()
+    d.pop("mask_windows_nm", None)
+    return d
 
 
 class _StateCommand(QUndoCommand):
@@ -445,8 +335,8 @@ class Session(QObject):
 
     # -- options and masks ------------------------------------------------------------
     def set_option(self, name: str, value) -> None:
-        if name not in _OPTION_DEFAULTS:
-            raise ParameterError("fit option", name, f"known: {', '.join(_OPTION_DEFAULTS)}")
+        if name not in self.options:
+            raise ParameterError("fit option", name, f"known: {', '.join(self.options)}")
         if name == "angle_deg":
             value = check_finite("angle of incidence", value)
             if not 0 <= value < 90:
@@ -493,9 +383,8 @@ class Session(QObject):
         exactly what a batch run of the same file would give.
         """
         o = self.options
-        fit = FitOptions(method=o["method"], angle_deg=o["angle_deg"],
-                         polarization=o["polarization"], fit_scale=o["fit_scale"],
-                         fit_offset=o["fit_offset"], band_gap=o["band_gap"])
+        fit = FitOptions.from_dict({k: v for k, v in o.items() if k != "fit_range_nm"},
+                                   where="fit options")
         reader = self.reader_options.to_dict() if self.reader_options is not None else {}
         rng = o.get("fit_range_nm") or (None, None)
         return Recipe(Stack.from_dict(self.stack.to_dict()), name=name, reader=reader,
@@ -515,7 +404,7 @@ class Session(QObject):
         options = default_options()
         for k in options:
             if k in fo and k != "fit_range_nm":
-                options[k] = fo[k]
+                options[k] = copy.deepcopy(fo[k])
         lo, hi = recipe.range_nm
         if lo is not None or hi is not None:
             options["fit_range_nm"] = (lo if lo is not None else 1.0,

@@ -259,6 +259,35 @@ def test_recipe_save_and_load(window, tmp_path):
     assert load_recipe(path).stack.layers[0].material.kind == "sellmeier"
 
 
+def test_recipe_options_survive_load_and_save_through_the_app(window, tmp_path):
+    """Options the app has no control for (time limit, budget, thickness spread,
+    thickness scan range) are kept, not reset to defaults, by a load and save."""
+    from fitting.presets import default_stack
+    from fitting.recipe import Recipe, load_recipe, save_recipe
+    opts = {"time_limit_s": 7.5, "max_nfev": 1234, "fit_spread": True,
+            "thickness_range_nm": [100.0, 900.0], "fit_offset": True}
+    src = tmp_path / "src.recipe.json"
+    save_recipe(Recipe(default_stack(), name="src", fit_options=opts), src)
+    assert window.load_recipe(src)
+    out = tmp_path / "out.recipe.json"
+    save_recipe(window.session.recipe(name="out"), out)
+    saved = load_recipe(out).fit_options
+    for k, v in opts.items():
+        assert saved[k] == v, k
+
+
+def test_new_session_and_a_new_recipe_fit_the_same_way(window):
+    """The app's fresh setup and a recipe made with no options agree (issue: the app had
+    scale off while recipes had it on)."""
+    from fitting.fit import FitOptions
+    from fitting.presets import default_stack
+    from fitting.recipe import Recipe
+    fresh = Recipe(default_stack())
+    app_opts = window.session.recipe().fit_options
+    assert FitOptions.from_dict(app_opts) == FitOptions.from_dict(fresh.fit_options)
+    assert window.session.stack.to_dict() == default_stack().to_dict()
+
+
 def test_batch_from_the_app(window, qtbot, tmp_path):
     src = tmp_path / "spectra"
     src.mkdir()
