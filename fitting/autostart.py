@@ -54,7 +54,7 @@ from .optics import films_RT, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
            "apply_seed", "scan_thickness", "fringe_region", "ScanResult", "pick_basins",
-           "scan_range", "edge_params"]
+           "scan_range", "edge_params", "Nuisance"]
 
 # Largest number of thickness grid points of one scan; beyond it the step grows
 # (a 50 µm film on a UV grid would otherwise need ~10⁴ points).
@@ -378,8 +378,8 @@ def fringe_region(part, material, local: dict, wl_range, d_typical) -> np.ndarra
 
 
 def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
-                   level_name: str | None, n_ref: float, wl_ref: float, fit_scale: bool,
-                   fit_offset: bool, check=None, chunk: int = 256,
+                   level_name: str | None, n_ref: float, wl_ref: float,
+                   nuisance: "Nuisance | None" = None, check=None, chunk: int = 256,
                    wl_range: tuple | None = None, d_typical: float | None = None
                    ) -> ScanResult:
     """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
@@ -399,8 +399,9 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
         Index level at the seed (tried at ±6 %), or the list of levels to try.
     wl_ref : float
         Wavelength the index levels refer to.
-    fit_scale, fit_offset : bool
-        Solve scale and offset in closed form at every grid point.
+    nuisance : Nuisance or None
+        Scale, tilt and offset solved in closed form at every grid point (with
+        their priors); None: none of them.
     check : callable or None
         Called between chunks; may raise to abort.
     wl_range : (float, float) or None
@@ -438,6 +439,7 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
             ds.append(start[p + "thickness"])
         angle = math.radians(start.get("angle_deg", part.angle_deg))
         scale0, offset0 = start.get("scale", 1.0), start.get("offset", 0.0)
+        tilt0, u = start.get("tilt", 0.0), part.u[idx]
         mat = st.layers[layer_index].material
         # Vectorised over thickness: the grid is tiled k times, so one films_RT call
         # evaluates k thicknesses at once (outer media bound once per chunk size).
@@ -461,33 +463,95 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
                 with np.errstate(all="ignore"):
                     R, T = films_RT(outer[kk], Nt, dd)
                 m = (T if part.quantity == "T" else R).reshape(kk, W)
-                chi[li, a:a + kk] += _profiled_chi2(m, y, w, fit_scale, fit_offset,
-                                                    scale0, offset0)
+                chi[li, a:a + kk] += _profiled_chi2(m, y, w, u, nuisance or Nuisance(),
+                                                    scale0, tilt0, offset0)
     chi[~np.isfinite(chi)] = np.inf
     return ScanResult(d_grid, chi, levels)
 
 
-def _profiled_chi2(m, y, w, fit_scale, fit_offset, s0, o0):
-    """χ² of each row of ``m`` with scale s and offset o solved by weighted linear LSQ."""
-    if fit_scale and fit_offset:
-        Sw, Sm, Smm = w.sum(), m @ w, (m * m) @ w
-        Sy, Smy = y @ w, (m * y) @ w
-        det = Sw * Smm - Sm * Sm
-        s = np.where(det > 0, (Sw * Smy - Sm * Sy) / np.where(det > 0, det, 1), s0)
-        s = np.clip(s, 0.7, 1.3)
-        o = np.clip((Sy - s * Sm) / Sw, -0.2, 0.2)
-    elif fit_scale:
-        s = np.clip(((m * (y - o0)) @ w) / np.maximum((m * m) @ w, 1e-300), 0.7, 1.3)
-        o = o0
-    elif fit_offset:
-        s = s0
-        o = np.clip(((y - s0 * m) @ w) / w.sum(), -0.2, 0.2)
+@dataclass(frozen=True)
+class Nuisance:
+    """Which linear nuisance terms a scan solves for, and their priors.
+
+    The model is (s + t·u)·M + o (see :mod:`fitting.objective`); scale s, tilt t
+    and offset o enter linearly, so at every scanned thickness they are solved in
+    closed form (weighted linear least squares, with the Gaussian priors of the
+    fit as extra rows), which is what profiling them out of χ² means.
+    """
+
+    scale: bool = False
+    tilt: bool = False
+    offset: bool = False
+    scale_sigma: float | None = None
+    tilt_sigma: float | None = None
+
+    @classmethod
+    def from_options(cls, options) -> "Nuisance":
+        return cls(bool(options.fit_scale), bool(getattr(options, "fit_tilt", False)),
+                   bool(options.fit_offset), getattr(options, "scale_sigma", None),
+                   getattr(options, "tilt_sigma", None))
+
+
+# Bounds the closed-form nuisance solution is clipped to (those of fitting.objective).
+_NUISANCE_BOUNDS = {"scale": (0.7, 1.3), "tilt": (-0.1, 0.1), "offset": (-0.2, 0.2)}
+
+
+def _profiled_chi2(m, y, w, u, nuis: Nuisance, s0=1.0, t0=0.0, o0=0.0):
+    """χ² of each row of ``m`` with the free nuisance terms solved by weighted linear LSQ.
+
+    Parameters
+    ----------
+    m : ndarray of shape (K, W)
+        Modelled T or R of K candidate films on W wavelengths.
+    y, w, u : ndarray of shape (W,)
+        Measured values, weights 1/σ² and the tilt abscissa (-1/2 ... 1/2).
+    nuis : Nuisance
+    s0, t0, o0 : float
+        Values of the terms that are not solved for.
+    """
+    m = np.atleast_2d(m)
+    K = m.shape[0]
+    cols, prior = [], []             # design columns (K, W) and (mean, 1σ) per column
+    fixed = np.zeros_like(m) + o0 * (not nuis.offset)
+    if nuis.scale:
+        cols.append(("scale", m))
+        prior.append((1.0, nuis.scale_sigma))
     else:
-        s, o = s0, o0
-    s = np.reshape(s, (-1, 1)) if np.ndim(s) else s
-    o = np.reshape(o, (-1, 1)) if np.ndim(o) else o
-    r = y - s * m - o
-    return (r * r) @ w
+        fixed = fixed + s0 * m
+    if nuis.tilt:
+        cols.append(("tilt", m * u))
+        prior.append((0.0, nuis.tilt_sigma))
+    else:
+        fixed = fixed + t0 * m * u
+    if nuis.offset:
+        cols.append(("offset", np.ones_like(m)))
+        prior.append((0.0, None))
+    target = y - fixed
+    if not cols:
+        r = target
+        return (r * r) @ w
+    X = np.stack([c for _, c in cols], axis=1)          # (K, P, W)
+    P = X.shape[1]
+    A = np.einsum("kpw,kqw,w->kpq", X, X, w)
+    b = np.einsum("kpw,kw,w->kp", X, target, w)
+    for i, (mu, sd) in enumerate(prior):
+        if sd:
+            A[:, i, i] += 1.0 / sd ** 2
+            b[:, i] += mu / sd ** 2
+    # Regularise degenerate rows (a film giving M = 0) so the solve never fails.
+    A += 1e-12 * np.eye(P)[None]
+    try:
+        beta = np.linalg.solve(A, b[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        beta = np.array([[mu for mu, _ in prior]] * K, dtype=float)
+    for i, (name, _) in enumerate(cols):
+        beta[:, i] = np.clip(beta[:, i], *_NUISANCE_BOUNDS[name])
+    r = target - np.einsum("kpw,kp->kw", X, beta)
+    chi = (r * r) @ w
+    for i, (mu, sd) in enumerate(prior):
+        if sd:
+            chi = chi + ((beta[:, i] - mu) / sd) ** 2
+    return chi
 
 
 def pick_basins(scan: ScanResult, n_max: int = 3, *, n_of_level=None,

@@ -54,22 +54,18 @@ from typing import Iterator, Mapping
 import numpy as np
 
 from . import autostart
-from .errors import FitError, PellucidError, RecipeError
-from .objective import DEFAULT_SIGMA, Objective, Part, _Stop, build_part, robust_sigma
-from .result import (Alternative, FitProgress, FitResult, OpticalConstants,
-                     ParamResult)
-from .stack import POLARIZATIONS, Stack, StackModel
-from .units import HC_EV_NM, alpha_per_cm
+from .errors import FitError, RecipeError
+from .finish import finish, scanned_film
+from .objective import Objective, Part, _Stop, build_part
+from .result import FitProgress, FitResult
+from .stack import POLARIZATIONS, Stack
 
 __all__ = ["FitOptions", "fit_spectrum", "fit_joint", "iter_fit", "iter_fit_joint",
            "FitResult", "FitProgress", "METHODS"]
 
 METHODS = ("auto", "leastsq", "least_squares", "differential_evolution", "basinhopping")
-#: Other basins are reported when their χ² is below this multiple of the best.
-ALT_CHI2_RATIO = 1.5
 #: How many scan basins the automatic start polishes.
 N_POLISH = 3
-_NUISANCE_UNITS = {"scale": "", "offset": "", "angle_deg": "deg", "thickness_spread": ""}
 
 
 @dataclass(frozen=True)
@@ -90,11 +86,22 @@ class FitOptions:
         Windows excluded from the fit (detector changeover, lamp lines ...).
     angle_deg, polarization : float, {"s", "p", "u"}
         Geometry of the measurement.
-    fit_scale, fit_offset : bool
-        Fit a 100 % line scale and a baseline offset (parameters "scale", "offset").
-    fit_angle, fit_spread : bool
-        Fit the incidence angle ("angle_deg") and the thickness non-uniformity
-        ("thickness_spread").
+    fit_scale, fit_tilt, fit_offset : bool
+        Fit a 100 % line scale, its tilt across the range and a baseline offset
+        (parameters "scale", "tilt", "offset"). Scale and tilt are fitted by
+        default, each with a Gaussian prior (below): an ordinary spectrophotometer's
+        100 % line is good to about 1 % (common practice), and a fit that ignores
+        that error biases thickness and n.
+    scale_sigma, tilt_sigma : float or None
+        1σ of the priors of scale (around 1) and tilt (around 0); None fits them
+        freely. Defaults 0.01 and 0.005.
+    fit_angle : bool
+        Fit the incidence angle ("angle_deg").
+    fit_spread : bool or "auto"
+        Fit the thickness non-uniformity ("thickness_spread", relative 1σ).
+        "auto" (the default) decides from the data: after the fit, a refit with
+        the spread free is kept when it lowers χ² by more than the Bayesian
+        information criterion asks for (washed-out fringes).
     thickness_range_nm : (float, float) or None
         Range of the thickness scan; default from the fringes and the bounds.
     max_nfev : int
@@ -110,10 +117,13 @@ class FitOptions:
     mask_windows_nm: tuple[tuple[float, float], ...] = ()
     angle_deg: float = 0.0
     polarization: str = "u"
-    fit_scale: bool = False
+    fit_scale: bool = True
     fit_offset: bool = False
     fit_angle: bool = False
-    fit_spread: bool = False
+    fit_spread: bool | str = "auto"
+    fit_tilt: bool = True
+    scale_sigma: float | None = 0.01
+    tilt_sigma: float | None = 0.005
     thickness_range_nm: tuple[float, float] | None = None
     max_nfev: int = 20000
     time_limit_s: float = 60.0
@@ -152,6 +162,17 @@ class FitOptions:
             fail("time_limit_s", "must be a positive number of seconds")
         if self.band_gap not in (None, "direct", "indirect"):
             fail("band_gap", "must be None, 'direct' or 'indirect'")
+        for name in ("fit_scale", "fit_offset", "fit_angle", "fit_tilt"):
+            if not isinstance(getattr(self, name), bool):
+                fail(name, "must be true or false")
+        if self.fit_spread not in (True, False, "auto") or isinstance(self.fit_spread, int) \
+                and not isinstance(self.fit_spread, bool):
+            fail("fit_spread", "must be true, false or 'auto'")
+        for name in ("scale_sigma", "tilt_sigma"):
+            v = getattr(self, name)
+            if v is not None and not (isinstance(v, (int, float)) and not isinstance(v, bool)
+                                      and math.isfinite(v) and 0 < v <= 1):
+                fail(name, "must be a number in (0, 1] (a relative 1σ) or null for no prior")
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -283,7 +304,7 @@ def iter_fit_joint(spectra, stacks, shared, options=None, *, progress=None, stop
                        f"and {len(stacks)} stacks")
     shared = set(shared)
     known = set().union(*(set(s.parameters()) for s in stacks)) | {
-        "scale", "offset", "angle_deg", "thickness_spread"}
+        "scale", "tilt", "offset", "angle_deg", "thickness_spread"}
     unknown = sorted(shared - known)
     if unknown:
         raise FitError(f"shared parameter {unknown[0]!r} is in none of the stacks; known: "
@@ -300,6 +321,7 @@ class _Polished:
     chisqr: float
     lm: object | None            # lmfit MinimizerResult
     label: str
+    note: str = ""               # what kind of solution it is (shown with alternatives)
 
 
 def _run(obj: Objective, options: FitOptions):
@@ -326,7 +348,10 @@ def _run(obj: Objective, options: FitOptions):
                 lo = 0.55 + 0.4 * i / len(starts)
                 obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
                               f"polishing {label}")
-                polished.append(_polish(obj, values, label))
+                # Starts come best first: the others only need to show whether they
+                # are real alternatives, so a slow crawl along a valley is cut short.
+                cap = None if i == 0 else 50 * (len(obj.var_names) + 1)
+                polished.append(_polish(obj, values, label, max_nfev=cap))
                 yield FitProgress("polish", lo + 0.4 / len(starts), obj.nfev, obj.best_chisqr,
                                   f"polished {label}")
                 obj.check()
@@ -339,16 +364,53 @@ def _run(obj: Objective, options: FitOptions):
             obj.check()
             obj.set_stage("polish", 0.8, 0.95, 60 * len(obj.var_names), "local polish")
             polished.append(_polish(obj, polished[-1].values, f"{method} + polish"))
+        if method == "auto" and options.fit_spread == "auto":
+            _auto_spread(obj, polished)
     except _Stop:
         if not polished and fallback:
             # Stopped during the fringe stages: their best point beats the start.
             label, values = fallback[0]
             polished.append(_Polished(values, obj.chisqr_of(values), None, label))
     times["polish"] = obj.elapsed - sum(times.values())
-    result = _finish(obj, options, start, polished, info)
+    result = finish(obj, options, start, polished, info)
     if obj.progress_cb is not None:
         obj.progress_cb(FitProgress("done", 1.0, obj.nfev, result.chisqr, result.message))
     yield result
+
+
+def _auto_spread(obj: Objective, polished: list) -> None:
+    """Fit the thickness non-uniformity too, if the data ask for it (``fit_spread="auto"``).
+
+    A spread washes out the fringes of thick films; a model without it then
+    misses their contrast and biases n. Only when the best fit leaves a misfit
+    (χ²_red > 1.5 against the data's own noise) is a refit with the spread free
+    tried, and it is kept when it lowers χ² by more than ln N, the Bayesian
+    information criterion's price of one more parameter (Schwarz 1978).
+    """
+    if "thickness_spread" not in obj.params or scanned_film(obj) is None or not polished:
+        return
+    best = min(polished, key=lambda q: q.chisqr)
+    dof = max(obj.ndata - len(obj.var_names), 1)
+    if best.chisqr / dof <= 1.5:
+        return
+    obj.set_stage("polish", 0.95, 0.99, 60 * len(obj.var_names),
+                  "trying a thickness non-uniformity")
+    trial = _polish(obj, {**best.values, "thickness_spread": 0.005},
+                    best.label + " with non-uniformity", free=("thickness_spread",),
+                    max_nfev=60 * (len(obj.var_names) + 2))
+    if trial.chisqr < best.chisqr - math.log(obj.ndata):
+        obj.release("thickness_spread")
+        trial.lm = _refit_free(obj, trial)
+        polished.append(trial)
+
+
+def _refit_free(obj: Objective, trial):
+    """A short final polish with the spread now among the varied parameters."""
+    res = obj.minimize("least_squares", trial.values, x_scale="jac",
+                       max_nfev=40 * (len(obj.var_names) + 1))
+    trial.values = res.params.valuesdict()
+    trial.chisqr = obj.chisqr_of(trial.values)
+    return res
 
 
 def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: list):
@@ -375,18 +437,35 @@ def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: lis
             fallback[:] = [(best[1], best[2])]
             obj.check()
         best_a = min(c for c, *_ in done)
-        pool = sorted((t for t in done if t[0] <= 3.0 * best_a), key=lambda t: t[0])
+        pool = _distinct(sorted((t for t in done if t[0] <= 3.0 * best_a),
+                                key=lambda t: t[0]), scanned_film(obj))
         info.setdefault("stage_a", []).append(
             [{"label": label, "chisqr": c} for c, label, _ in done])
     return [(label, v) for _, label, v in pool]
 
 
-def _polish(obj: Objective, values: dict, label: str, method: str = "least_squares"):
+def _distinct(pool, film):
+    """Drop starts that a stage brought to the same thickness as a better one (0.1 %)."""
+    if film is None:
+        return pool
+    tname = film[0]
+    out = []
+    for t in pool:
+        d = t[2][tname]
+        if all(abs(d - u[2][tname]) > 1e-3 * max(abs(d), 1.0) for u in out):
+            out.append(t)
+    return out
+
+
+def _polish(obj: Objective, values: dict, label: str, method: str = "least_squares",
+            max_nfev: int | None = None, free=()):
     kws = {"x_scale": "jac"} if method == "least_squares" else {}
-    res = obj.minimize(method, values, **kws)
+    res = obj.minimize(method, values, max_nfev=max_nfev, free=free, **kws)
     vals = res.params.valuesdict()
     chi2 = obj.chisqr_of(vals)
-    if res.aborted and obj.best_values is not None and obj.best_chisqr < chi2:
+    if res.aborted and obj.stop_reason and obj.best_values is not None \
+            and obj.best_chisqr < chi2:
+        # The whole fit was stopped: the best point of all runs stands for this one.
         vals, chi2 = dict(obj.best_values), obj.best_chisqr
     return _Polished(vals, chi2, res, label)
 
@@ -401,7 +480,11 @@ def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
             raise FitError(f"differential evolution needs finite bounds on every varied "
                            f"parameter; {open_[0]!r} has "
                            f"[{obj.params[open_[0]].min:g}, {obj.params[open_[0]].max:g}]")
-        res = obj.minimize(method, start, seed=0, polish=False)
+        # A global search over the whole bounds of a parameter with a prior (the 100 %
+        # line scale: 0.7-1.3) wastes its population: ±5σ of the prior is enough.
+        narrow = {k: (mu - 5 * sd, mu + 5 * sd) for k, mu, sd in obj.priors
+                  if k in obj.var_names}
+        res = obj.minimize(method, start, seed=0, polish=False, bounds=narrow)
     else:
         res = obj.minimize(method, start, niter=25, seed=0)
     vals = res.params.valuesdict()
@@ -409,17 +492,6 @@ def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     if obj.best_values is not None and obj.best_chisqr < chi2:
         vals, chi2 = dict(obj.best_values), obj.best_chisqr
     return _Polished(vals, chi2, None, method)
-
-
-def _scanned_film(obj: Objective):
-    """(lmfit name, layer index) of the first film whose thickness is fitted, or None."""
-    part = obj.parts[0]
-    gmap = dict((loc, g) for g, loc in part.names)
-    for i, layer in enumerate(part.stack.layers):
-        g = gmap[f"{layer.name}_thickness"]
-        if g in obj.var_names:
-            return g, i
-    return None
 
 
 def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
@@ -442,7 +514,7 @@ def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
 
 def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     """Seed, scan and basins: a list of (label, start values) to polish."""
-    found = _scanned_film(obj)
+    found = scanned_film(obj)
     if found is None:
         info["scan"] = "no film thickness is fitted: a single local fit from the start values"
         return [("start values", start)], None
@@ -546,7 +618,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         side = long_side if spread(long_side[0]) <= spread(short_side[0]) else short_side
         ranges = side + ranges
     scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
-                                    options.fit_scale, options.fit_offset, check=obj.check,
+                                    autostart.Nuisance.from_options(options), check=obj.check,
                                     wl_range=ranges[0], d_typical=d_typ)
     n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
     basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
@@ -586,7 +658,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
                      max(8, math.ceil((hi2 - lo2) / (float(p.wl.min()) / (16 * n_hi))) + 1)))
         sc = autostart.scan_thickness([p], li, [{loc: values[g] for g, loc in p.names}],
                                       np.linspace(lo2, hi2, K2), None, n_ref, wl_ref,
-                                      options.fit_scale, options.fit_offset, check=obj.check)
+                                      autostart.Nuisance.from_options(options), check=obj.check)
         b = autostart.pick_basins(sc, 1)
         if b:
             for _, v in starts:
@@ -610,322 +682,3 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         stages.append(masks)
     plan = {"stages": stages, "fixed": fixed} if stages else None
     return starts or [("start values", values)], plan
-
-
-# ----------------------------------------------------------------------------------------
-def _finish(obj: Objective, options: FitOptions, start: dict, polished: list[_Polished],
-            info: dict) -> FitResult:
-    """Turn the best polished point into a FitResult (statistics, bands, warnings)."""
-    stopped = obj.stop_reason
-    if polished:
-        order = sorted(range(len(polished)), key=lambda i: polished[i].chisqr)
-        best = polished[order[0]]
-        values, lm = best.values, best.lm
-        if obj.best_values is not None and obj.best_chisqr < best.chisqr * (1 - 1e-9):
-            values, lm = dict(obj.best_values), None
-    else:
-        order, best, lm = [], None, None
-        values = dict(obj.best_values) if obj.best_values is not None else dict(start)
-
-    # Residuals, χ² and (if no σ was given) the noise estimate, per part.
-    parts_out, chisqr, sig_note = [], 0.0, []
-    for part in obj.parts:
-        local = obj.local_values(part, values)
-        with np.errstate(all="ignore"):
-            model_used = part.evaluate(local)
-        res_used = part.y - model_used
-        sigma = part.sigma
-        if not part.sigma_given:
-            s = robust_sigma(res_used)
-            if s > 0:
-                sigma = np.full(part.y.size, s)
-                sig_note.append(f"σ = {s:.2g} estimated from the fit residuals (MAD)")
-        chisqr += float(np.sum((res_used / sigma) ** 2))
-        parts_out.append((part, local, sigma))
-    nv = len(obj.var_names)
-    dof = max(obj.ndata - nv, 1)
-    redchi = chisqr / dof
-
-    # Covariance from the local polish of the best point.
-    covar = correl = None
-    var_names = tuple(obj.var_names)
-    stderr: dict[str, float] = {}
-    if lm is not None and getattr(lm, "covar", None) is not None and not lm.aborted:
-        C = np.asarray(lm.covar, dtype=float)
-        names = tuple(lm.var_names)
-        if C.shape == (len(names), len(names)) and np.all(np.isfinite(C)) \
-                and np.all(np.diag(C) > 0):
-            idx = [names.index(k) for k in var_names]
-            covar = C[np.ix_(idx, idx)]
-            sd = np.sqrt(np.diag(covar))
-            correl = covar / np.outer(sd, sd)
-            stderr = {k: float(s) for k, s in zip(var_names, sd)}
-            for k, p in lm.params.items():
-                if p.expr and p.stderr is not None and np.isfinite(p.stderr):
-                    stderr[k] = float(p.stderr)
-
-    params = {}
-    units = _units(obj)
-    for k, p in obj.params.items():
-        params[k] = ParamResult(k, float(values[k]), stderr.get(k), float(start[k]),
-                                float(p.min), float(p.max), bool(p.vary and not p.expr),
-                                units.get(k, ""), p.expr)
-
-    # Write the fitted values into each part's stack, then curves and optical constants.
-    for part, local, _ in parts_out:
-        part.stack.set_values(local)
-        if "thickness_spread" in local:
-            part.stack.thickness_spread = float(local["thickness_spread"])
-    cov_index = {k: i for i, k in enumerate(var_names)}
-    curves = [_curves(part, local, sigma) for part, local, sigma in parts_out]
-    optical: dict = {}
-    for part, local, _ in parts_out:
-        gmap = dict((loc, g) for g, loc in part.names)
-        for layer in part.stack.layers:
-            gnames = [gmap[f"{layer.name}_{k}"] for k in layer.material.params]
-            key = layer.name
-            if part.index > 0:
-                g0 = dict((loc, g) for g, loc in obj.parts[0].names)
-                same = [g0.get(f"{layer.name}_{k}") for k in layer.material.params]
-                if all(g == h or (h is not None and values[g] == values[h])
-                       for g, h in zip(gnames, same)):
-                    continue          # the same material as in the first part
-                key = f"p{part.index + 1}_{layer.name}"
-            try:
-                optical[key] = _optical(part, layer, local, gmap, covar, cov_index)
-            except PellucidError as e:   # a model undefined at the fitted values
-                info.setdefault("optical_errors", []).append(f"{key}: {e}")
-
-    info["kk"] = _kk_checks(optical)
-
-    alternatives = []
-    found = _scanned_film(obj)
-    if found is not None and best is not None:
-        tname = found[0]
-        d_best = values[tname]
-        tol = max(0.005 * abs(d_best), 2 * (stderr.get(tname) or 0.0), 1.0)
-        seen = [d_best]
-        for i in order[1:]:
-            q = polished[i]
-            d = q.values[tname]
-            if q.chisqr < ALT_CHI2_RATIO * best.chisqr and all(abs(d - s) > tol for s in seen):
-                f = chisqr / best.chisqr if best.chisqr > 0 else 1.0
-                alternatives.append(Alternative(float(d), float(q.chisqr * f),
-                                                float(q.chisqr * f / dof)))
-                seen.append(d)
-
-    band_gap, bg_warn = None, None
-    if options.band_gap:
-        band_gap, bg_warn = _band_gap(optical, options.band_gap)
-
-    aborted = bool(stopped)
-    if aborted:
-        success, message = False, stopped
-    elif lm is None and options.method in ("differential_evolution", "basinhopping"):
-        success, message = False, "the local polish after the global search did not finish"
-    elif lm is None:
-        success, message = False, "no local fit finished"
-    else:
-        success = bool(lm.success)
-        message = _plain_message(success, str(getattr(lm, "message", "") or ""))
-
-    warnings = _warnings(params, var_names, correl, optical, alternatives, success, aborted,
-                         message, covar, redchi, all(p.sigma_given for p in obj.parts), values)
-    if bg_warn:
-        warnings.append(bg_warn)
-    part0, c0 = obj.parts[0], curves[0]
-    sp = part0.spectrum
-    extra = {**info,
-             "sigma_source": "; ".join(sig_note) if sig_note else "given with the spectrum",
-             "starts": [{"label": q.label, "chisqr": q.chisqr} for q in polished]}
-    if len(obj.parts) > 1:
-        extra["parts"] = [{"name": p.spectrum.name, "quantity": p.quantity,
-                           "wavelength_nm": c["wl"].tolist(), "measured": c["y"].tolist(),
-                           "fitted": c["fit"].tolist(), "used": c["used"].tolist(),
-                           "stack": p.stack.to_dict()} for p, c in zip(obj.parts, curves)]
-    return FitResult(
-        success=success, aborted=aborted, message=message, params=params,
-        var_names=var_names, covar=covar, correl=correl, chisqr=float(chisqr),
-        redchi=float(redchi), ndata=int(obj.ndata), nvarys=nv, nfev=int(obj.nfev),
-        elapsed_s=float(obj.elapsed), wavelength_nm=c0["wl"], measured=c0["y"],
-        fitted=c0["fit"], residuals=c0["y"] - c0["fit"], sigma=c0["sigma"], used=c0["used"],
-        quantity=part0.quantity, optical=optical, alternatives=tuple(alternatives),
-        band_gap=band_gap, warnings=tuple(warnings), stack=part0.stack.to_dict(),
-        method=options.method if len(obj.parts) == 1 else f"joint {options.method}",
-        spectrum={"name": sp.name, "source": sp.source, "sha256": sp.sha256},
-        extra=extra)
-
-
-def _kk_checks(optical: dict) -> dict:
-    """Kramers-Kronig consistency of each fitted layer's n, κ on the data grid.
-
-    Oscillator models are consistent by construction, so this mainly tells
-    whether a Cauchy/Urbach or tabulated result is physically self-consistent
-    (see :func:`fitting.kramers_kronig.kk_consistency`).
-    """
-    from .kramers_kronig import kk_consistency
-    out = {}
-    for key, oc in optical.items():
-        if oc.wavelength_nm.size < 10:
-            continue
-        try:
-            chk = kk_consistency(oc.wavelength_nm, oc.n, oc.k)
-        except (PellucidError, ValueError) as e:
-            out[key] = {"consistent": None, "message": f"not checked: {e}"}
-            continue
-        out[key] = {"consistent": bool(chk.consistent), "rms_dev": float(chk.rms_dev),
-                    "max_dev": float(chk.max_dev), "message": chk.message}
-    return out
-
-
-def _plain_message(success: bool, msg: str) -> str:
-    """The minimiser's termination message in words a technician can read."""
-    why = []
-    if "ftol" in msg:
-        why.append("χ² stopped improving")
-    if "xtol" in msg:
-        why.append("the parameters stopped changing")
-    if "gtol" in msg:
-        why.append("the gradient vanished")
-    if success:
-        return " and ".join(why) if why else msg.strip() or "minimum found"
-    return "the local minimiser gave up: " + (msg.strip() or "no reason given")
-
-
-def _units(obj: Objective) -> dict:
-    out = {}
-    for part in obj.parts:
-        lp = part.stack.parameters()
-        for g, loc in part.names:
-            out[g] = lp[loc].unit if loc in lp else _NUISANCE_UNITS.get(loc, "")
-    return out
-
-
-def _curves(part: Part, local: dict, sigma_used: np.ndarray) -> dict:
-    """Fitted curve on every point of the fit range (NaN where the model is undefined)."""
-    sp = part.spectrum
-    wl = sp.wavelength_nm
-    fit = np.full(wl.shape, np.nan)
-    sel = part.in_range.copy()
-    try:
-        sm = StackModel(part.stack, wl[sel], angle_deg=part.angle_deg,
-                        polarization=part.polarization)
-    except PellucidError:
-        sel = part.used.copy()
-        sm = part.model
-    with np.errstate(all="ignore"):
-        fit[sel] = part.evaluate(local, sm)
-    sigma = np.full(wl.shape, np.nan)
-    if part.sigma_given:
-        sigma = np.where(np.isfinite(sp.sigma), sp.sigma, np.nan)
-    else:
-        sigma[sel] = sigma_used[0] if sigma_used.size else DEFAULT_SIGMA
-    sigma[part.used] = sigma_used
-    return {"wl": wl, "y": sp.values, "fit": fit, "sigma": sigma, "used": part.used.copy()}
-
-
-def _optical(part: Part, layer, local: dict, gmap: dict, covar, cov_index) -> OpticalConstants:
-    """n, κ, α of one layer on the data grid with 1σ bands from the covariance."""
-    wl = part.spectrum.wavelength_nm[part.in_range]
-    mat = layer.material
-    pre = layer.name + "_"
-    lv = {k: local[pre + k] for k in mat.params}
-    with np.errstate(all="ignore"):
-        N = mat.N_unchecked(wl, lv)
-    n_sig = k_sig = a_sig = None
-    cols = [(k, cov_index[gmap[pre + k]]) for k in mat.params if gmap[pre + k] in cov_index]
-    if covar is not None and cols:
-        J = np.empty((wl.size, len(cols)), dtype=complex)
-        for j, (k, _) in enumerate(cols):
-            p = mat.params[k]
-            x = lv[k]
-            h = 1e-6 * max(abs(x), 1e-3)
-            if x + h > p.max:      # step inwards at an upper bound
-                h = -h
-            with np.errstate(all="ignore"):
-                try:
-                    J[:, j] = (mat.N_unchecked(wl, {**lv, k: x + h}) - N) / h
-                except PellucidError:
-                    J[:, j] = (N - mat.N_unchecked(wl, {**lv, k: x - h})) / h
-        idx = [i for _, i in cols]
-        C = covar[np.ix_(idx, idx)]
-        var_n = np.einsum("ij,jk,ik->i", J.real, C, J.real)
-        var_k = np.einsum("ij,jk,ik->i", J.imag, C, J.imag)
-        n_sig = np.sqrt(np.maximum(var_n, 0.0))
-        k_sig = np.sqrt(np.maximum(var_k, 0.0))
-        a_sig = alpha_per_cm(k_sig, wl)
-    k = np.maximum(N.imag, 0.0)
-    return OpticalConstants(layer.name, wl, N.real, k, alpha_per_cm(k, wl), n_sig, k_sig, a_sig)
-
-
-def _band_gap(optical: dict, transition: str):
-    """Tauc gap of the first absorbing film, or (None, warning)."""
-    try:
-        from .bandgap import tauc_gap
-    except ImportError:
-        return None, "band gap not computed: the Tauc analysis module is not available"
-    for name, oc in optical.items():
-        if np.nanmax(oc.k) > 1e-5:
-            try:
-                g = tauc_gap(oc.wavelength_nm, oc.alpha_cm, transition=transition, layer=name)
-            except PellucidError as e:
-                return None, f"band gap of {name} not computed: {e}"
-            # A straight part that ends at the short-wavelength end of the data may
-            # continue beyond it: the gap is then less certain than its σ says.
-            E_max = float(HC_EV_NM / np.min(oc.wavelength_nm))
-            if g.fit_range_eV[1] >= E_max - 0.02:
-                return g, (f"the Tauc line of {name} reaches the short-wavelength end of the "
-                           f"data ({E_max:.2f} eV): the band gap {g.Eg_eV:.2f} eV may be off by "
-                           f"more than its σ; measure or fit further into the UV to confirm it")
-            return g, None
-    return None, ("band gap not computed: no film absorbs in the fitted range "
-                  "(κ is zero everywhere)")
-
-
-def _warnings(params, var_names, correl, optical, alternatives, success, aborted, message,
-              covar, redchi, sigma_given, values) -> list[str]:
-    w = []
-    if aborted:
-        w.append(f"The fit ended early ({message}); the values are the best found so far.")
-    elif not success:
-        w.append(f"The fit did not converge ({message}); treat the values with care.")
-    for p in params.values():
-        if p.at_bound:
-            side = "lower" if abs(p.value - p.min) <= abs(p.max - p.value) else "upper"
-            bound = p.min if side == "lower" else p.max
-            w.append(f"{p.name} ended at its {side} bound ({bound:g} {p.unit}".rstrip()
-                     + "): the best value may lie beyond it; widen the bound or check "
-                       "the model.")
-    if covar is None and var_names:
-        w.append("Uncertainties could not be estimated (the fit stopped early, or the "
-                 "parameters are not all determined by the data).")
-    if correl is not None:
-        n = len(var_names)
-        pairs = sorted(((correl[i, j], var_names[i], var_names[j]) for i in range(n)
-                        for j in range(i + 1, n) if abs(correl[i, j]) > 0.95),
-                       key=lambda t: -abs(t[0]))
-        if pairs:
-            listed = ", ".join(f"{a} and {b} ({c:+.3f})" for c, a, b in pairs)
-            w.append(f"Strongly correlated (|c| > 0.95): {listed}. The data hardly separate "
-                     f"them, so their error bars are large; consider fixing one of a pair "
-                     f"or fitting a wider wavelength range.")
-    for name, oc in optical.items():
-        vis = (oc.wavelength_nm >= 380) & (oc.wavelength_nm <= 780)
-        if vis.any() and np.nanmin(oc.n[vis]) < 1.0:
-            w.append(f"{name}: n drops below 1 in the visible (min {np.nanmin(oc.n[vis]):.3f}), "
-                     f"which no ordinary dielectric film does; check the model and the data.")
-    for k, v in values.items():
-        if k.endswith("_B") and k in params and params[k].vary and v < 0:
-            w.append(f"{k} = {v:.4g} is negative: a Cauchy film with normal dispersion has "
-                     f"B > 0; the index is probably compensating for something else.")
-    if "scale" in values and abs(values["scale"] - 1) > 0.05:
-        w.append(f"The 100 % line scale came out at {values['scale']:.3f}; more than 5 % off "
-                 f"usually means a baseline or reference problem in the measurement.")
-    for a in alternatives:
-        w.append(f"Another thickness, {a.thickness_nm:.1f} nm, fits almost as well "
-                 f"(χ² {a.chisqr:.4g}); the thickness may not be unique. A wider "
-                 f"wavelength range or a known index helps decide.")
-    if sigma_given and np.isfinite(redchi) and redchi > 25:
-        w.append(f"Reduced χ² = {redchi:.3g}: the model does not describe the data within "
-                 f"their noise; check the model and the stack.")
-    return w

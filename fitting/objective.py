@@ -8,10 +8,17 @@ inner loop never re-validates or re-interpolates anything.
 
 The residual of one part is
 
-    r_i = (y_i - s·M_i(p) - o) / σ_i,
+    r_i = (y_i - (s + t·u_i)·M_i(p) - o) / σ_i,
 
-with M the modelled T or R, s the 100 % line scale and o the baseline offset
-(both fixed at 1 and 0 unless fitted). :class:`Objective` concatenates the
+with M the modelled T or R, s the 100 % line scale, t its tilt (the change of
+the scale from the short to the long end of the fitted range, u_i running from
+-1/2 to +1/2 over it) and o the baseline offset (fixed at 1, 0 and 0 unless
+fitted). A scale or tilt fitted with a prior (the default: 1 ± 1 % and
+0 ± 0.5 %, the photometric accuracy of an ordinary double-beam
+spectrophotometer, common practice) adds one residual each,
+(s - 1)/σ_s and t/σ_t: the Gaussian prior of a maximum a posteriori fit, which
+keeps a very thin film, whose spectrum barely separates scale from index,
+from trading one for the other. :class:`Objective` concatenates the
 parts, counts evaluations, remembers the best point seen, and enforces the
 evaluation budget, the time limit and the user's stop request through lmfit's
 ``iter_cb`` (a True return ends the minimiser cleanly).
@@ -36,6 +43,7 @@ import lmfit
 import numpy as np
 
 from .errors import FitError, PellucidError
+from .reference import estimate_noise
 from .result import FitProgress
 from .stack import Stack, StackModel
 
@@ -50,9 +58,12 @@ DEFAULT_SIGMA = 0.002
 _NUISANCE = {
     "scale": (1.0, 0.7, 1.3, "", "100 % line scale of the measured spectrum"),
     "offset": (0.0, -0.2, 0.2, "", "baseline offset of the measured spectrum"),
+    "tilt": (0.0, -0.1, 0.1, "", "change of the 100 % line scale across the fitted range"),
     "angle_deg": (0.0, 0.0, 80.0, "deg", "angle of incidence"),
     "thickness_spread": (0.0, 0.0, 0.3, "", "relative thickness non-uniformity (1σ)"),
 }
+#: Gaussian priors of nuisance parameters: name -> (mean, FitOptions field holding 1σ).
+PRIORS = {"scale": (1.0, "scale_sigma"), "tilt": (0.0, "tilt_sigma")}
 _NAME_TOKEN = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 
@@ -85,11 +96,20 @@ class Part:
     sigma: np.ndarray              # used 1σ
     sigma_given: bool
     model: StackModel
+    u: np.ndarray                  # used wavelengths mapped to [-1/2, 1/2] (tilt abscissa)
     quantity: str
     angle_deg: float
     polarization: str
     # lmfit name -> local name ("film_A", "scale", ...); filled by Objective
     names: list = field(default_factory=list)
+
+    def u_at(self, wavelength_nm) -> np.ndarray:
+        """Tilt abscissa at any wavelengths (linear in λ, -1/2 and +1/2 at the used ends)."""
+        wl = np.asarray(wavelength_nm, dtype=float)
+        span = float(self.wl[-1] - self.wl[0]) if self.wl.size > 1 else 0.0
+        if span <= 0:
+            return np.zeros(wl.shape)
+        return (wl - 0.5 * (self.wl[0] + self.wl[-1])) / span
 
     def evaluate(self, local: dict, model: StackModel | None = None) -> np.ndarray:
         """Modelled quantity (scale and offset applied) for local parameter values."""
@@ -104,7 +124,11 @@ class Part:
             self.stack.thickness_spread = local["thickness_spread"]
         R, T = sm.RT(local)
         m = T if self.quantity == "T" else R
-        return local.get("scale", 1.0) * m + local.get("offset", 0.0)
+        scale = local.get("scale", 1.0)
+        if "tilt" in local:
+            u = self.u if sm.wavelength_nm.size == self.u.size else self.u_at(sm.wavelength_nm)
+            scale = scale + local["tilt"] * u
+        return scale * m + local.get("offset", 0.0)
 
 
 def build_part(index: int, spectrum, stack: Stack, options) -> Part:
@@ -144,14 +168,28 @@ def build_part(index: int, spectrum, stack: Stack, options) -> Part:
     if not used.any():
         raise FitError(f"{name}: no usable data points remain after the mask, the fit range "
                        f"and the excluded windows; check the fit range and the mask")
-    sig = spectrum.sigma[used] if sigma_given else np.full(int(used.sum()), DEFAULT_SIGMA)
+    if sigma_given:
+        sig = spectrum.sigma[used]
+    elif used.sum() >= 12:
+        # Noise from the spectrum itself (4th differences), before any model: χ² then
+        # compares the misfit with the data's own noise. Estimated over the whole fit
+        # range, so masked windows do not put steps into the differences.
+        pool = in_range & np.isfinite(spectrum.values)
+        noise = np.full(wl.shape, np.nan)
+        noise[pool] = estimate_noise(spectrum.values[pool], order=4)
+        sig = noise[used]
+    else:
+        sig = np.full(int(used.sum()), DEFAULT_SIGMA)
+    wl_used = wl[used]
+    span = float(wl_used[-1] - wl_used[0]) if wl_used.size > 1 else 1.0
+    u = (wl_used - 0.5 * (wl_used[0] + wl_used[-1])) / (span if span > 0 else 1.0)
     try:
         model = StackModel(stack, wl[used], angle_deg=options.angle_deg,
                            polarization=options.polarization)
     except PellucidError as e:
         raise FitError(f"{name}: the stack cannot be computed on the data: {e}") from e
-    return Part(index, spectrum, stack, used, in_range, wl[used], spectrum.values[used], sig,
-                sigma_given, model, spectrum.quantity, options.angle_deg, options.polarization)
+    return Part(index, spectrum, stack, used, in_range, wl_used, spectrum.values[used], sig,
+                sigma_given, model, u, spectrum.quantity, options.angle_deg, options.polarization)
 
 
 class _Stop(Exception):
@@ -190,12 +228,15 @@ class Objective:
         self._masks = None          # per-part point selections of a staged fit
         self._stage_limit = math.inf  # evaluation cap of the current minimiser run
         self._run_best = (math.inf, None)  # best point of the current minimiser run
+        self.priors: list[tuple[str, float, float]] = []   # (name, mean, 1σ)
         self.params = self._make_params(shared)
         self.ndata = sum(p.y.size for p in parts)
         self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
-        if not self.var_names:
+        if not [k for k in self.var_names if k not in _NUISANCE
+                and not any(k == f"p{p.index + 1}_{n}" for p in parts for n in _NUISANCE)]:
             raise FitError("no parameter is free to vary: tick 'fit' for at least one "
-                           "thickness or material parameter")
+                           "thickness or material parameter (the 100 % line scale and "
+                           "tilt alone are not a fit)")
         for part in parts:
             try:
                 part.evaluate(self.local_values(part, self.params))
@@ -213,15 +254,23 @@ class Objective:
         opts = self.options
         multi = shared is not None and len(self.parts) > 1
         pending_expr = []
+        hold: set = set()
         for part in self.parts:
             local_params = dict(part.stack.parameters())
-            for key, flag in (("scale", opts.fit_scale), ("offset", opts.fit_offset),
-                              ("angle_deg", opts.fit_angle), ("thickness_spread",
-                                                              opts.fit_spread)):
+            for key, flag in (("scale", opts.fit_scale), ("tilt", opts.fit_tilt),
+                              ("offset", opts.fit_offset), ("angle_deg", opts.fit_angle),
+                              ("thickness_spread", opts.fit_spread in (True, "auto"))):
                 if flag:
                     value, lo, hi = _NUISANCE[key][:3]
+                    if key == "thickness_spread" and opts.fit_spread == "auto":
+                        # Held until the fit asks for it (see fitting.fit, "auto").
+                        hold.add(key)
                     if key == "angle_deg":
                         value = min(max(part.angle_deg, lo), hi)
+                    elif key in hold:
+                        # Auto: at the stack's value (usually 0, the fast model) and at
+                        # most 10 % (wider is a wedge, not a non-uniformity).
+                        value, hi = min(part.stack.thickness_spread, 0.1), 0.1
                     elif key == "thickness_spread":
                         value = min(max(part.stack.thickness_spread, 0.002), hi)
                     local_params[key] = (value, lo, hi)
@@ -237,8 +286,11 @@ class Objective:
                 part.names.append((g, local))
                 if g in params:
                     continue
+                prior = PRIORS.get(local)
+                if prior is not None and getattr(opts, prior[1]) is not None:
+                    self.priors.append((g, prior[0], float(getattr(opts, prior[1]))))
                 if isinstance(p, tuple):
-                    params.add(g, value=p[0], min=p[1], max=p[2], vary=True)
+                    params.add(g, value=p[0], min=p[1], max=p[2], vary=local not in hold)
                 else:
                     params.add(g, value=p.value, min=p.min, max=p.max, vary=p.vary)
                     if p.expr:
@@ -256,6 +308,18 @@ class Objective:
                                f"evaluated ({e}); it may name only parameters of this fit, "
                                f"numbers and arithmetic") from None
         return params
+
+    def tied_values(self, values: dict) -> dict:
+        """``values`` with every tied parameter recomputed from its tie expression."""
+        tied = [k for k, p in self.params.items() if p.expr]
+        if not tied:
+            return values
+        params = self.params.copy()
+        for k, v in values.items():
+            if k in params and not params[k].expr:
+                params[k].value = v
+        params.update_constraints()
+        return {**values, **{k: params[k].value for k in tied}}
 
     def local_values(self, part: Part, values) -> dict:
         """Local parameter values of one part from an lmfit Parameters or a plain dict."""
@@ -282,6 +346,8 @@ class Objective:
         masks = self._masks
         if masks is not None:
             out = [r[m] for r, m in zip(out, masks)]
+        if self.priors:
+            out.append(self.prior_residual(params))
         r = out[0] if len(out) == 1 else np.concatenate(out)
         self.nfev += 1
         chi2 = float(r @ r)
@@ -292,9 +358,15 @@ class Objective:
                 self.best_chisqr, self.best_values = chi2, self._run_best[1]
         return r
 
+    def prior_residual(self, values) -> np.ndarray:
+        """(x - mean)/σ of each parameter with a Gaussian prior (an empty array if none)."""
+        get = (lambda k: values[k].value) if isinstance(values, lmfit.Parameters) \
+            else values.__getitem__
+        return np.array([(get(k) - mu) / sd for k, mu, sd in self.priors])
+
     def chisqr_of(self, values: dict) -> float:
         r = np.concatenate([self.part_residual(p, self.local_values(p, values))
-                            for p in self.parts])
+                            for p in self.parts] + [self.prior_residual(values)])
         return float(r @ r)
 
     # -- budget, stop and progress --------------------------------------------------
@@ -346,11 +418,18 @@ class Objective:
     def elapsed(self) -> float:
         return time.perf_counter() - self.t0
 
-    def minimize(self, method: str, values: dict | None = None, *, fixed=(), masks=None,
-                 max_nfev: int | None = None, **kws):
+    def release(self, name: str) -> None:
+        """Make a held parameter (``fit_spread="auto"``) a varied one from now on."""
+        self.params[name].vary = True
+        if name not in self.var_names:
+            self.var_names.append(name)
+
+    def minimize(self, method: str, values: dict | None = None, *, fixed=(), free=(),
+                 masks=None, max_nfev: int | None = None, bounds=None, **kws):
         """Run one lmfit minimiser from ``values`` (default: the current parameters).
 
-        ``fixed`` names varied parameters held at their value for this run;
+        ``fixed`` names varied parameters held at their value for this run, ``free``
+        held ones varied in it; ``bounds`` narrows some parameters' bounds for it;
         ``masks`` (one bool array per part, over its used points) restricts the
         residual to a subset of points. Either makes a *stage* whose χ² is not
         the fit's, so the best-point record is not updated during it.
@@ -366,6 +445,10 @@ class Objective:
             params.update_constraints()
         for k in fixed:
             params[k].vary = False
+        for k in free:
+            params[k].vary = True
+        for k, (lo, hi) in (bounds or {}).items():
+            params[k].set(min=max(lo, params[k].min), max=min(hi, params[k].max))
         mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
                                max_nfev=self.remaining_nfev() + 10 ** 7, scale_covar=True)
         self._masks = None if masks is None else list(masks)

@@ -14,7 +14,12 @@ import numpy as np
 from . import __version__
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
-           "FitProgress"]
+           "FitProgress", "Diagnostics", "BudgetItem", "Uncertainty", "ConsistencyCheck",
+           "VERDICTS"]
+
+#: The verdicts a fit can get, best first: "good" (use it), "check" (look at the
+#: reasons before using it), "poor" (do not use it as it is).
+VERDICTS = ("good", "check", "poor")
 
 
 def _arr(a):
@@ -86,9 +91,11 @@ class Alternative:
     thickness_nm: float
     chisqr: float
     redchi: float
+    note: str = ""
 
     def to_dict(self) -> dict:
-        return {"thickness_nm": self.thickness_nm, "chisqr": self.chisqr, "redchi": self.redchi}
+        return {"thickness_nm": self.thickness_nm, "chisqr": self.chisqr, "redchi": self.redchi,
+                "note": self.note}
 
 
 @dataclass(frozen=True)
@@ -106,6 +113,106 @@ class BandGap:
         return {"Eg_eV": self.Eg_eV, "sigma_eV": self.sigma_eV, "transition": self.transition,
                 "fit_range_eV": list(self.fit_range_eV), "r_squared": self.r_squared,
                 "layer": self.layer}
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    """How well the model describes the data, judged against the data's own noise.
+
+    Attributes
+    ----------
+    noise_sigma : float
+        Median 1σ of the measured points (given with the spectrum or estimated
+        from it before the fit, see ``noise_source``).
+    noise_source : str
+    rms_residual : float
+        RMS of measured - fitted over the used points.
+    redchi : float
+        χ² / degrees of freedom with that noise (about 1 for a model that fits).
+    runs_z : float
+        Wald-Wolfowitz runs test of the residual signs along wavelength: about
+        N(0, 1) for white residuals, strongly negative when the misfit has a
+        shape (Wald & Wolfowitz 1940).
+    lag1 : float
+        Lag-1 autocorrelation of the residuals (0 for white noise).
+    structured_rms : float
+        RMS of the residuals after a running mean over 9 points: the part of the
+        misfit that is not noise.
+    dof : int
+    """
+
+    noise_sigma: float
+    noise_source: str
+    rms_residual: float
+    redchi: float
+    runs_z: float
+    lag1: float
+    structured_rms: float
+    dof: int
+
+    def to_dict(self) -> dict:
+        return {k: (v if not isinstance(v, float) or np.isfinite(v) else None)
+                for k, v in self.__dict__.items()}
+
+
+@dataclass(frozen=True)
+class BudgetItem:
+    """One line of an uncertainty budget: a source and the standard uncertainty it adds."""
+
+    source: str
+    u: float
+    note: str = ""
+
+    def to_dict(self) -> dict:
+        return {"source": self.source, "u": _fin(self.u), "note": self.note}
+
+
+@dataclass(frozen=True)
+class Uncertainty:
+    """Uncertainty budget of one result quantity after the GUM (JCGM 100:2008).
+
+    ``items`` are standard uncertainties from each source (the statistical one
+    first, inflated by √χ²_red when the model does not fit within the noise);
+    they are combined in quadrature (sources taken as independent, GUM 5.1.2)
+    into ``u_combined``, and ``expanded`` = k·u_combined with coverage factor
+    k = 2 (about 95 %, GUM 6.2-6.3).
+    """
+
+    quantity: str
+    value: float
+    unit: str
+    items: tuple
+    u_combined: float
+    k: float = 2.0
+
+    @property
+    def expanded(self) -> float:
+        return self.k * self.u_combined
+
+    def to_dict(self) -> dict:
+        return {"quantity": self.quantity, "value": _fin(self.value), "unit": self.unit,
+                "items": [i.to_dict() for i in self.items],
+                "u_combined": _fin(self.u_combined), "k": self.k,
+                "expanded": _fin(self.expanded)}
+
+
+@dataclass(frozen=True)
+class ConsistencyCheck:
+    """Kramers-Kronig consistency of one fitted layer's n and κ (None: not checked)."""
+
+    layer: str
+    consistent: bool | None
+    message: str
+    rms_dev: float | None = None
+    max_dev: float | None = None
+
+    def to_dict(self) -> dict:
+        return {"consistent": self.consistent, "message": self.message,
+                "rms_dev": _fin(self.rms_dev), "max_dev": _fin(self.max_dev)}
+
+
+def _fin(x):
+    return float(x) if x is not None and np.isfinite(x) else None
 
 
 @dataclass(frozen=True)
@@ -152,6 +259,18 @@ class FitResult:
     band_gap : BandGap or None
     warnings : tuple of str
         Plain-language warnings (at bounds, correlations > 0.95, unphysical, not converged).
+    verdict : {"good", "check", "poor"}
+        The overall judgement of :func:`fitting.verdict.judge`.
+    verdict_reasons : tuple of str
+        Why the verdict is not "good", each with advice, most serious first.
+    diagnostics : Diagnostics or None
+        Misfit statistics against the data's own noise.
+    uncertainty : dict of str -> Uncertainty
+        Expanded uncertainty (GUM) of the film thicknesses and n(633), by quantity.
+    kk : dict of layer -> ConsistencyCheck
+        Kramers-Kronig consistency of each fitted layer.
+    sigma_source : str
+        Where the 1σ of the points came from.
     stack : dict
         The fitted stack as ``Stack.to_dict()``.
     method : str
@@ -189,6 +308,12 @@ class FitResult:
     method: str = ""
     spectrum: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
+    verdict: str = ""
+    verdict_reasons: tuple = ()
+    diagnostics: Diagnostics | None = None
+    uncertainty: dict = field(default_factory=dict)
+    kk: dict = field(default_factory=dict)
+    sigma_source: str = ""
 
     # -- convenience ----------------------------------------------------------------
     def thickness(self, layer: str | None = None) -> tuple[float, float | None]:
@@ -215,7 +340,11 @@ class FitResult:
 
     def report(self) -> str:
         """Plain-text report in fixed sections (statistics, parameters, correlations, warnings)."""
-        lines = ["[[Fit statistics]]",
+        lines = []
+        if self.verdict:
+            lines.append(f"[[Verdict]] {self.verdict.upper()}")
+            lines += [f"    - {r}" for r in self.verdict_reasons]
+        lines += ["[[Fit statistics]]",
                  f"    method          = {self.method}",
                  f"    status          = {'converged' if self.success else 'NOT converged'}"
                  f"{' (stopped)' if self.aborted else ''}: {self.message}",
@@ -224,8 +353,15 @@ class FitResult:
                  f"    evaluations     = {self.nfev}",
                  f"    chi-square      = {self.chisqr:.6g}",
                  f"    reduced chi-sq. = {self.redchi:.6g}",
-                 f"    time            = {self.elapsed_s:.3f} s",
-                 "[[Parameters]]"]
+                 f"    time            = {self.elapsed_s:.3f} s"]
+        if self.sigma_source:
+            lines.append(f"    noise (1 sigma) = {self.sigma_source}")
+        d = self.diagnostics
+        if d is not None:
+            lines.append(f"    residual rms    = {d.rms_residual:.3g} (noise {d.noise_sigma:.3g}; "
+                         f"runs test z = {d.runs_z:+.1f}, lag-1 autocorrelation "
+                         f"{d.lag1:+.2f})")
+        lines.append("[[Parameters]]")
         for p in self.params.values():
             if p.vary and p.stderr is not None and np.isfinite(p.stderr):
                 rel = f" ({100 * p.stderr / abs(p.value):.2f}%)" if p.value else ""
@@ -245,10 +381,17 @@ class FitResult:
             lines.append("[[Band gap]]")
             lines.append(f"    Tauc {g.transition}: Eg = {g.Eg_eV:.3f} +/- {g.sigma_eV:.3f} eV "
                          f"(linear range {g.fit_range_eV[0]:.2f}-{g.fit_range_eV[1]:.2f} eV)")
-        kk = self.extra.get("kk") or {}
-        if kk:
+        if self.uncertainty:
+            lines.append("[[Uncertainty budget]] (GUM; standard uncertainties, "
+                         "expanded U with k = 2)")
+            for u in self.uncertainty.values():
+                lines.append(f"    {u.quantity} = {u.value:.6g} {u.unit}: U = "
+                             f"{u.expanded:.3g} {u.unit} (u_c = {u.u_combined:.3g})".rstrip())
+                lines += [f"        {i.source:<28s} {i.u:.3g}"
+                          + (f"  ({i.note})" if i.note else "") for i in u.items]
+        if self.kk:
             lines.append("[[Kramers-Kronig check]]")
-            lines += [f"    {layer}: {c.get('message', '')}" for layer, c in kk.items()]
+            lines += [f"    {layer}: {c.message}" for layer, c in self.kk.items()]
         if self.alternatives:
             lines.append("[[Other thickness basins]]")
             lines += [f"    d = {a.thickness_nm:.1f} nm: chi-sq. = {a.chisqr:.6g} "
@@ -272,10 +415,16 @@ class FitResult:
             "alternatives": [a.to_dict() for a in self.alternatives],
             "band_gap": None if self.band_gap is None else self.band_gap.to_dict(),
             "warnings": list(self.warnings), "stack": self.stack,
+            "verdict": self.verdict, "verdict_reasons": list(self.verdict_reasons),
+            "diagnostics": None if self.diagnostics is None else self.diagnostics.to_dict(),
+            "uncertainty": {k: u.to_dict() for k, u in self.uncertainty.items()},
+            "kk": {k: c.to_dict() for k, c in self.kk.items()},
+            "sigma_source": self.sigma_source,
             "extra": {k: v for k, v in self.extra.items() if _jsonable(v)},
         }
         if curves:
-            d["curves"] = {"wavelength_nm": _arr(self.wavelength_nm), "measured": _arr(self.measured),
+            d["curves"] = {"wavelength_nm": _arr(self.wavelength_nm),
+                           "measured": _arr(self.measured),
                            "fitted": _arr(self.fitted), "residuals": _arr(self.residuals),
                            "sigma": _arr(self.sigma), "used": _arr(self.used)}
             d["optical"] = {k: v.to_dict() for k, v in self.optical.items()}

@@ -23,6 +23,7 @@ Global parameter names are ``{layer}_{param}``, e.g. ``film_thickness``,
 
 from __future__ import annotations
 
+import copy
 import functools
 import math
 import re
@@ -303,6 +304,19 @@ class StackModel:
         self._names = [(layer, f"{layer.name}_", f"{layer.name}_thickness",
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
+
+    def with_substrate(self, *, dn: float = 0.0, thickness_nm: float | None = None
+                       ) -> "StackModel":
+        """A copy bound to the same grid with the substrate's index shifted by ``dn``
+        (real part) or its thickness replaced: for uncertainty budgets."""
+        out = copy.copy(self)
+        d = self._sub_d if thickness_nm is None else float(thickness_nm)
+        out._N_sub = self._N_sub + dn
+        out._sub_d = d
+        out._outer = outer_media(self._wl, self._N_amb, out._N_sub, d, self._N_exit,
+                                 angle_rad=self.angle_rad, polarization=self.polarization)
+        out._cache = list(self._cache)
+        return out
 
     def layer_values(self, values: Mapping[str, float] | None = None):
         """Per-layer (thickness, local parameter dict), stored values overridden."""

@@ -26,8 +26,8 @@ def test_fitted_oscillator_film_passes_the_kk_check_and_the_report_says_so():
     wl = np.linspace(300, 1000, 351)
     T = _stack().transmittance(wl) + np.random.default_rng(3).normal(0, 0.002, wl.size)
     res = fit_spectrum(Spectrum(wl, T), _stack(420.0), FitOptions(method="least_squares"))
-    kk = res.extra["kk"]["film"]
-    assert kk["consistent"] is True, kk
+    kk = res.kk["film"]
+    assert kk.consistent is True, kk
     assert "[[Kramers-Kronig check]]" in res.report()
 
 
@@ -50,7 +50,7 @@ def _direct_edge(wl, Eg=3.2, saturate_eV=np.inf):
 
 
 def test_band_gap_warns_when_the_tauc_line_runs_into_the_data_end():
-    from fitting.fit import _band_gap
+    from fitting.finish import band_gap as _band_gap
     wl = np.linspace(340, 1000, 661)          # the edge rises up to the last point
     g, warn = _band_gap({"film": _direct_edge(wl)}, "direct")
     assert g is not None and abs(g.Eg_eV - 3.2) < 0.05
