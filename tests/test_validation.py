@@ -79,6 +79,17 @@ def test_quarter_wave_film_transmittance():
     assert T[0] == pytest.approx(expected, abs=1e-12)
 
 
+def test_mirror_index_gives_the_same_quarter_wave_transmittance():
+    # R of a quarter-wave layer, ((s - n²)/(s + n²))² (Macleod, ch. 2), is unchanged by
+    # n -> s/n: the "mirror" solution of a low-index film on higher-index glass that the
+    # SiO2-on-N-BK7 and MgF2 cases probe. Checked on the generator at λ0 = 4nd.
+    s, n, lam0 = 1.515, 1.38, 600.0
+    T = transmittance(_const(n), lam0 / (4 * n), _const(s), [lam0])[0]
+    T_mirror = transmittance(_const(s / n), lam0 / (4 * s / n), _const(s), [lam0])[0]
+    assert T == pytest.approx(T_mirror, abs=1e-12)
+    assert T > 2 * s / (s * s + 1) + 0.01        # and differs from the bare glass
+
+
 def test_s_and_p_coincide_at_normal_incidence():
     # The generator uses the s result as the unpolarised one; at normal incidence the two
     # polarisations are the same physical wave (common practice; checked with tmm here).
@@ -294,3 +305,16 @@ def test_quick_set_from_the_defaults_has_no_silent_failure():
                                                                               "error")]
     assert s["silent"] == [], format_table(rows)
     assert s["ordinary_missed"] == [], format_table(rows)
+
+
+def test_diagnose_fits_every_variant_from_the_same_spectrum():
+    from validation.diagnose import VARIANTS, diagnose
+    case = vcases.Case("Al2O3-600-diag", "Al2O3", 600, "fused_silica", (400.0, 1000.0, 4.0),
+                       "noise", "cauchy", True)
+    rows = diagnose(case)
+    assert [r["variant"] for r in rows] == list(VARIANTS)
+    assert all("error" not in r for r in rows)
+    truth = rows[-1]
+    # a local fit started at the truth on a clean medium-index film stays there
+    assert abs(truth["dd_pct"]) < 1.0 and truth["scale"] is not None
+    assert rows[0]["scale"] is None and rows[1]["scale"] is not None

@@ -21,6 +21,12 @@ fringes to stand well above the noise. The others (50 nm films, 2-3 %
 non-uniformity, absorbing films, low contrast, an absorption edge left in a
 Cauchy fit) are there to check that a wrong answer is never called "good".
 
+A low-index film on a higher-index glass has a "mirror" twin: the quarter-wave
+reflectance ((n_s - n²)/(n_s + n²))² (H. A. Macleod, Thin-Film Optical Filters,
+ch. 2) is unchanged by n -> n_s/n, so a film of index n_s/n and the same optical
+thickness has the same fringe extrema (SiO2 on N-BK7: 1.03; MgF2: 1.10); only
+the fringe shape between the extrema and the dispersion tell them apart.
+
 The ordinary instrument errors follow the issue: 100 % line within ±1 %,
 tilt within ±0.4 %, 0.1-0.3 % T noise, up to 1 % (ordinary) or 3 % (hard)
 thickness non-uniformity; spectrometer grids are 1-2 nm steps (common
@@ -145,7 +151,7 @@ CASES: tuple[Case, ...] = (
     Case("Nb2O5-200-scale+1", "Nb2O5", 200, _FS, (450.0, 1100.0, 1.0), "scale+1", _C, True,
          False, "thin high-index film, 100 % line 1 % high"),
     Case("Nb2O5-700-combined", "Nb2O5", 700, _FS, (450.0, 1100.0, 1.0), "combined", _C, True,
-         True, "all ordinary errors at once"),
+         False, "all ordinary errors at once"),
     Case("Nb2O5-1200-spread1", "Nb2O5", 1200, _FS, (450.0, 1100.0, 1.0), "spread1", _C, True,
          False, "1 % non-uniformity on a high-index film"),
     Case("Nb2O5-400-edge-TL", "Nb2O5", 400, _FS, _UV, "noise", _TL, False, False,
@@ -153,7 +159,7 @@ CASES: tuple[Case, ...] = (
     # --- HfO2 (Al-Kuhaili 2004): transparent far into the UV
     Case("HfO2-150-noise", "HfO2", 150, _FS, _UV, "noise", _C, True, False,
          "thin film, half a fringe"),
-    Case("HfO2-500-combined", "HfO2", 500, _FS, _UV, "combined", _C, True, True,
+    Case("HfO2-500-combined", "HfO2", 500, _FS, _UV, "combined", _C, True, False,
          "all ordinary errors at once"),
     Case("HfO2-1200-scale-1", "HfO2", 1200, _FS, _UV, "scale-1", _C, True, False,
          "100 % line 1 % low"),
@@ -174,9 +180,10 @@ CASES: tuple[Case, ...] = (
          False, "8 µm film, dense fringes (about 10 points per fringe at 450 nm)"),
     # --- SiO2 (Lemarchand 2013): low index
     Case("SiO2-BK7-300-noise", "SiO2", 300, _BK7, (350.0, 1100.0, 1.0), "noise", _C, False,
-         False, "low-index film on higher-index glass: mirror solution above the glass index"),
+         True, "low-index film on higher-index glass: the mirror index n_glass/n_film = 1.03 "
+         "gives the same fringe extrema"),
     Case("SiO2-BK7-800-combined", "SiO2", 800, _BK7, (350.0, 1100.0, 1.0), "combined", _C,
-         False, True, "low-index film on higher-index glass with ordinary errors"),
+         False, False, "low-index film on higher-index glass with ordinary errors"),
     Case("SiO2-BK7-1500-noise", "SiO2", 1500, _BK7, (350.0, 1100.0, 1.0), "noise", _C, False,
          False, "low-index film on higher-index glass, many shallow fringes"),
     Case("SiO2-FS-1000-noise", "SiO2", 1000, _FS, _UV, "noise", _C, False, False,
@@ -196,7 +203,7 @@ CASES: tuple[Case, ...] = (
     Case("MgF2-BK7-250-combined", "MgF2", 250, _BK7, (350.0, 1100.0, 1.0), "combined", _C,
          True, False, "classic anti-reflection layer on glass"),
     Case("MgF2-BK7-600-scale-1", "MgF2", 600, _BK7, (350.0, 1100.0, 1.0), "scale-1", _C, True,
-         True, "low index on glass, 100 % line 1 % low (scale mimics the film)"),
+         True, "low index on glass, 100 % line 1 % low; mirror index n_glass/n_film = 1.10"),
     Case("MgF2-FS-1000-tilt+", "MgF2", 1000, _FS, _UV, "tilt+", _C, True, False,
          "low index on silica, 100 % line tilted"),
     Case("MgF2-BK7-100-noise", "MgF2", 100, _BK7, (350.0, 1100.0, 1.0), "noise", _C, False,
