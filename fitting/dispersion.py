@@ -229,7 +229,9 @@ class Cauchy(Dispersion):
         specs = [
             _spec("A", 1.9, 1.0, 4.0, "", "Cauchy constant term of n"),
             _spec("B", 0.02, -0.05, 0.5, "µm²", "Cauchy 1/λ² coefficient"),
-            _spec("C", 0.0, -0.05, 0.05, "µm⁴", "Cauchy 1/λ⁴ coefficient", vary=False),
+            # Fitted by default: two terms cannot follow a high-index film (titania,
+            # niobia) from the visible into the near UV; the third can.
+            _spec("C", 0.0, -0.05, 0.05, "µm⁴", "Cauchy 1/λ⁴ coefficient"),
         ]
         if self.urbach:
             specs += [

@@ -38,6 +38,8 @@ __all__ = ["finish", "choose", "statistics", "Choice", "Stats", "ALT_CHI2_RATIO"
 
 #: Other basins are reported when their χ² is below this multiple of the best.
 ALT_CHI2_RATIO = 1.5
+#: ... and when their χ² is above the best by less than this (scaled by χ²_red).
+_ALT_DELTA_CHI2 = 25.0
 #: χ² differences below this are rounding (a Jacobian step of the minimiser can land
 #: a hair below the point it converged to): Δχ² = 1 is one standard deviation.
 _CHI2_ROUNDING = 1e-2
@@ -304,7 +306,13 @@ def kk_checks(optical: dict) -> dict:
 
 def alternatives(obj: Objective, polished: list, choice: Choice, stats: Stats,
                  stderr: dict) -> list:
-    """Other polished basins that fit almost as well, at distinct thicknesses."""
+    """Other polished basins that fit almost as well, at distinct thicknesses.
+
+    "Almost as well": χ² above the best by less than 25 (a 5σ difference for
+    one parameter), after dividing by the best χ²_red when the model leaves a
+    misfit (Birge 1932), or by less than ``ALT_CHI2_RATIO`` of it when that is
+    the smaller.
+    """
     found = scanned_film(obj)
     if found is None or choice.index is None:
         return []
@@ -318,7 +326,9 @@ def alternatives(obj: Objective, polished: list, choice: Choice, stats: Stats,
     for i in choice.order[1:]:
         q = polished[i]
         d = q.values[tname]
-        if q.chisqr < ALT_CHI2_RATIO * best.chisqr and all(abs(d - s) > tol for s in seen):
+        close = (q.chisqr - best.chisqr) / max(stats.redchi, 1.0) < _ALT_DELTA_CHI2
+        if close and q.chisqr < ALT_CHI2_RATIO * best.chisqr \
+                and all(abs(d - s) > tol for s in seen):
             out.append(Alternative(float(d), float(q.chisqr * f),
                                    float(q.chisqr * f / stats.dof), getattr(q, "note", "")))
             seen.append(d)

@@ -381,27 +381,50 @@ def _run(obj: Objective, options: FitOptions):
 def _auto_spread(obj: Objective, polished: list) -> None:
     """Fit the thickness non-uniformity too, if the data ask for it (``fit_spread="auto"``).
 
-    A spread washes out the fringes of thick films; a model without it then
-    misses their contrast and biases n. Only when the best fit leaves a misfit
-    (χ²_red > 1.5 against the data's own noise) is a refit with the spread free
-    tried, and it is kept when it lowers χ² by more than ln N, the Bayesian
-    information criterion's price of one more parameter (Schwarz 1978).
+    A spread washes out the fringes of thick films; a model without it reads the
+    lost contrast as a lower index contrast, with no misfit to show for it on a
+    low-contrast film. So for every film with fringes (three or more
+    quarter-wave extrema in the range; on a thinner film a spread cannot be told
+    from the thickness) a refit with the spread free is tried, and it is kept
+    when it lowers χ² by more than 2, the Akaike information criterion's price
+    of one more parameter (Akaike 1974): a spread is expected of real coatings,
+    so the weaker criterion, and its uncertainty then enters the covariance.
     """
     if "thickness_spread" not in obj.params or scanned_film(obj) is None or not polished:
         return
     best = min(polished, key=lambda q: q.chisqr)
-    dof = max(obj.ndata - len(obj.var_names), 1)
-    if best.chisqr / dof <= 1.5:
+    if _extrema(obj, best.values) < 3:
         return
     obj.set_stage("polish", 0.95, 0.99, 60 * len(obj.var_names),
                   "trying a thickness non-uniformity")
     trial = _polish(obj, {**best.values, "thickness_spread": 0.005},
                     best.label + " with non-uniformity", free=("thickness_spread",),
                     max_nfev=60 * (len(obj.var_names) + 2))
-    if trial.chisqr < best.chisqr - math.log(obj.ndata):
+    if trial.chisqr < best.chisqr - 2.0:
         obj.release("thickness_spread")
         trial.lm = _refit_free(obj, trial)
         polished.append(trial)
+
+
+def _extrema(obj: Objective, values: dict) -> int:
+    """Quarter-wave extrema 4nd/m of the scanned film inside the first part's range."""
+    found = scanned_film(obj)
+    if found is None:
+        return 0
+    tname, li = found
+    part = obj.parts[0]
+    layer = part.stack.layers[li]
+    local = obj.local_values(part, values)
+    pre = layer.name + "_"
+    try:
+        with np.errstate(all="ignore"):
+            n = layer.material.N_unchecked(part.wl, {k: local[pre + k]
+                                                     for k in layer.material.params}).real
+    except PellucidError:
+        return 0
+    nd = float(np.median(n)) * values[tname]
+    lo, hi = float(part.wl.min()), float(part.wl.max())
+    return max(0, math.floor(4 * nd / lo) - max(math.ceil(4 * nd / hi), 1) + 1)
 
 
 def _refit_free(obj: Objective, trial):
@@ -494,6 +517,22 @@ def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     return _Polished(vals, chi2, None, method)
 
 
+#: Dispersion terms a film's fringes must support before they are fitted: kind ->
+#: (parameter, fewest fringe extrema). A third Cauchy term follows a high-index film
+#: into the UV, but on a film with few fringes it only trades off against thickness.
+_HIGHER_ORDERS = {"cauchy": (("C", 4),)}
+
+
+def _hold_higher_orders(obj: Objective, layer, gmap: dict, seed, info: dict) -> None:
+    """Hold higher dispersion terms the fringes cannot support (see _HIGHER_ORDERS)."""
+    for local, need in _HIGHER_ORDERS.get(layer.material.kind, ()):
+        g = gmap.get(f"{layer.name}_{local}")
+        if g in obj.var_names and seed.n_extrema < need and obj.params[g].value == 0:
+            obj.hold(g)
+            info.setdefault("held", []).append(
+                f"{g}: held at 0, only {seed.n_extrema} fringe extrema (needs {need})")
+
+
 def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
     """The envelope seed, or the simple fringe seed where the envelope method is weak.
 
@@ -526,6 +565,7 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     sub_n = part.stack.substrate.N(part.wl).real
     seed = _choose_seed(part, sub_n)
     info["seed"] = seed.to_dict()
+    _hold_higher_orders(obj, layer, gmap, seed, info)
     # Fringes closer than ~4 data points are not resolved: their extrema heights (and
     # so the seed's n there) are wrong, and a fit there can slip orders.
     wl_res = 0.0

@@ -424,6 +424,12 @@ class Objective:
         if name not in self.var_names:
             self.var_names.append(name)
 
+    def hold(self, name: str) -> None:
+        """Keep a varied parameter at its start value for the whole fit."""
+        self.params[name].vary = False
+        if name in self.var_names:
+            self.var_names.remove(name)
+
     def minimize(self, method: str, values: dict | None = None, *, fixed=(), free=(),
                  masks=None, max_nfev: int | None = None, bounds=None, **kws):
         """Run one lmfit minimiser from ``values`` (default: the current parameters).

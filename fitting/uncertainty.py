@@ -150,8 +150,7 @@ def _influences(obj, values: dict, options):
                                               if k != "thickness_spread"}))
             finally:
                 p.stack.thickness_spread = old
-        out.append(("thickness non-uniformity", SPREAD_U,
-                    f"not fitted; {100 * SPREAD_U:g} % rms assumed", dr_of(models)))
+        out.append(("thickness non-uniformity", SPREAD_U, "not fitted", dr_of(models)))
     sub = parts[0].stack.substrate
     catalogue = bool(sub.library) and sub.library != "generic_glass"
     u_n = SUBSTRATE_INDEX_U if catalogue else SUBSTRATE_INDEX_U_OTHER
@@ -230,8 +229,22 @@ def budget(obj, values: dict, J: np.ndarray, C: np.ndarray | None, inflation: fl
             pass
     if not quantities:
         return {}
-    shifts = [(src, note, _solve_shift(J, dr)) for src, _, note, dr in
-              _influences(obj, values, options)]
+    redchi = max(inflation, 1.0)
+    shifts = []
+    for src, u, note, dr in _influences(obj, values, options):
+        shift = _solve_shift(J, dr)
+        if src == "thickness non-uniformity":
+            # A spread acts quadratically (T depends on s²), so its derivative at
+            # s = 0 is zero and linear propagation says nothing. Instead: the
+            # largest spread the data allow, where the part of its effect that no
+            # refit absorbs raises χ² by χ²_red (one standard deviation), capped
+            # at the assumed SPREAD_U; its effect scales as (s/SPREAD_U)².
+            left = dr + J @ shift
+            e0 = float(left @ left)
+            s1 = u * min(1.0, (redchi / e0) ** 0.25) if e0 > 0 else u
+            shift = shift * (s1 / u) ** 2
+            note = f"not fitted; the data allow up to {100 * s1:.2g} % rms"
+        shifts.append((src, note, shift))
     fitted_nuis = [k for k in ("scale", "tilt", "thickness_spread") if k in names]
     stat_note = "noise" + (f", with {', '.join(fitted_nuis)} fitted" if fitted_nuis else "")
     if inflation > 1.0:

@@ -158,13 +158,35 @@ def _misfit_advice(result) -> str:
         return (f"the data fall off towards short wavelengths ({lo:.0f}-{hi:.0f} nm) but the "
                 f"model has no absorption there: try a model with an absorption edge "
                 f"(Cauchy + Urbach tail or Tauc-Lorentz), or fit from {hi:.0f} nm up")
-    if short_end:
+    if short_end and absorbs:
         return (f"the misfit is largest at the short-wavelength end ({lo:.0f}-{hi:.0f} nm), "
                 f"where the film absorbs: try a model with a different absorption edge "
                 f"(Tauc-Lorentz), or start the fit range at {hi:.0f} nm")
+    if short_end:
+        return (f"the misfit is largest at the short-wavelength end ({lo:.0f}-{hi:.0f} nm): "
+                f"the model's dispersion or a weak absorption edge there is not described; "
+                f"try a model with an absorption edge (Cauchy + Urbach tail, Tauc-Lorentz) "
+                f"or Sellmeier, or start the fit range at {hi:.0f} nm")
     return (f"the misfit is largest at {lo:.0f}-{hi:.0f} nm: check the substrate choice, the "
             f"film model and thickness non-uniformity, and whether the data there are "
             f"usable (detector change-over, stray light)")
+
+
+def _extrema_in_range(result) -> int | None:
+    """Quarter-wave extrema λ = 4nd/m (m = 1, 2, ...) of the first film inside the used range."""
+    names = [k for k in result.params if k.endswith("_thickness") and result.params[k].vary]
+    if not names or not result.optical:
+        return None
+    layer = names[0][: -len("_thickness")]
+    oc = result.optical.get(layer)
+    used = np.asarray(result.used, bool)
+    if oc is None or not used.any():
+        return None
+    wl = np.asarray(result.wavelength_nm)[used]
+    lo, hi = float(wl.min()), float(wl.max())
+    nd = float(np.median(oc.n)) * result.params[names[0]].value
+    # 4nd/m in [lo, hi]  <=>  4nd/hi <= m <= 4nd/lo
+    return max(0, math.floor(4 * nd / lo) - max(math.ceil(4 * nd / hi), 1) + 1)
 
 
 def _fmt_u(u) -> str:
@@ -203,7 +225,7 @@ def reasons(result) -> list[Reason]:
                                    f"wider wavelength range or a second sample with another "
                                    f"thickness can."))
     for p in result.params.values():
-        if p.at_bound:
+        if p.at_bound and not (p.name.endswith("thickness_spread") and p.value <= p.min):
             side = "lower" if abs(p.value - p.min) <= abs(p.max - p.value) else "upper"
             level = "poor" if p.name.endswith("_thickness") else "check"
             out.append(Reason(level, f"{label(p.name)} ended at its {side} bound "
@@ -213,7 +235,11 @@ def reasons(result) -> list[Reason]:
     if result.correl is not None:
         vn = list(result.var_names)
         for i, a in enumerate(vn):
-            if not a.endswith("_thickness"):
+            u = result.uncertainty.get(a)
+            # A correlation matters where it costs precision: a thickness known to
+            # better than 1 % is fine however correlated with the index it is.
+            if not a.endswith("_thickness") or (
+                    u is not None and u.value > 0 and u.expanded <= 0.01 * u.value):
                 continue
             for j, b in enumerate(vn):
                 c = float(result.correl[i, j])
@@ -229,6 +255,15 @@ def reasons(result) -> list[Reason]:
             out.append(Reason("check", f"{label(u.quantity)} = {_fmt_u(u)} (k = 2): the "
                                        f"uncertainty is more than "
                                        f"{100 * MAX_RELATIVE_U:.0f} % of the value."))
+    few = _extrema_in_range(result)
+    if few is not None and few < 2:
+        what = "one interference extremum" if few else "no interference extremum"
+        out.append(Reason("check", f"The film shows {what} in the fitted range: its "
+                                   f"thickness and index are fixed "
+                                   f"together by the T level, not separately by fringes, and a "
+                                   f"small model or baseline error moves both. Fit with a "
+                                   f"known index, or measure further into the UV or a thicker "
+                                   f"film."))
     s = result.params.get("scale")
     if s is not None and s.vary and abs(s.value - 1) > SCALE_LIMIT:
         out.append(Reason("check", f"The 100 % line scale came out at {s.value:.3f}, far outside "

@@ -87,7 +87,7 @@ def test_two_thicknesses_of_one_material_share_the_dispersion():
     d1, d2 = 420.0, 1350.0
     s1 = _spectra(TRUTH, d1, seed=11)[0]
     s2 = _spectra(TRUTH, d2, seed=12)[0]
-    shared = ["film_A", "film_B", "film_k0", "film_Eu"]
+    shared = ["film_A", "film_B", "film_C", "film_k0", "film_Eu"]   # the whole dispersion
     res = fit_joint([s1, s2], [_start_stack(), _start_stack()], shared,
                     FitOptions(fit_scale=False))
     assert abs(res.params["p1_film_thickness"].value - d1) < 0.01 * d1, res.extra.get("scan")

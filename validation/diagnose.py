@@ -6,18 +6,21 @@ Usage::
 
 For each matching case it fits
 
-* ``default``   - the app's defaults (what :mod:`validation.run` reports);
-* ``+scale``    - the same with the 100 % line scale fitted;
-* ``+scale+spread`` - scale and thickness non-uniformity fitted;
+* ``default``   - the app's defaults (what :mod:`validation.run` reports:
+  100 % line scale and tilt fitted with their priors, non-uniformity decided
+  from the data);
+* ``bare``      - no nuisance terms at all (scale 1, no tilt, no spread);
+* ``+spread``   - the defaults with the thickness non-uniformity always fitted;
 * ``truth-start`` - a local fit (``least_squares``) started at the true
   thickness, with Cauchy A, B started at a least-squares fit of the true n
   (other models at their defaults), scale and spread fitted.
 
 and prints thickness, n(633), the rms residual in %T (comparable between the
-variants, unlike χ², whose σ is estimated per fit) and the fitted scale. A
+variants) and the fitted scale. A
 ``truth-start`` with a clearly lower rms than ``default`` means the automatic
-start missed the right basin; a ``default`` that is only cured by ``+scale`` or
-``+spread`` means a nuisance the defaults leave out; a ``truth-start`` that
+start missed the right basin; a ``default`` that ``bare`` matches means the
+nuisance terms do not matter for that case, and one only cured by ``+spread``
+means a non-uniformity the automatic choice left out; a ``truth-start`` that
 drifts away from the truth with an rms no better means the model or the data
 cannot decide.
 """
@@ -38,7 +41,7 @@ from .synth import grid, measure
 
 __all__ = ["diagnose", "main"]
 
-VARIANTS = ("default", "+scale", "+scale+spread", "truth-start")
+VARIANTS = ("default", "bare", "+spread", "truth-start")
 
 
 def _rms(res) -> float:
@@ -64,9 +67,10 @@ def diagnose(case: Case) -> list[dict]:
     for v in VARIANTS:
         stack = rec.new_stack()
         opts = base
-        if v != "default":
-            opts = dataclasses.replace(opts, fit_scale=True)
-        if v in ("+scale+spread", "truth-start"):
+        if v == "bare":
+            opts = dataclasses.replace(opts, fit_scale=False, fit_tilt=False,
+                                       fit_spread=False)
+        if v in ("+spread", "truth-start"):
             opts = dataclasses.replace(opts, fit_spread=True)
         if v == "truth-start":
             opts = dataclasses.replace(opts, method="least_squares")

@@ -1,0 +1,171 @@
+"""Where a film absorbs, read from the measured spectrum before any model.
+
+A transparent film only redistributes light between T and R: the maxima of
+its fringes touch a smooth line set by the substrate (Swanepoel 1983). Where
+the film absorbs, the whole fringe pattern sinks below that line and, deep in
+the absorption edge, T falls to the noise. :func:`absorption_edge` measures
+that sinking as the film's transparency
+
+    x(λ) = U(λ) / (T_s(λ) · c),
+
+with U the upper envelope of the measured spectrum (a running maximum over one
+fringe period λ²/(2nd) from the fringe seed), T_s = 2s/(s² + 1) the bare
+substrate's transmittance and c the level of U/T_s where the film is clearest.
+Interference averages out of an envelope, so -ln x ≈ αd: a first estimate of
+the absorption coefficient along the edge, good to a factor of order two,
+which is all a starting point needs (Swanepoel 1983, eq. 15-16 with the
+interference terms averaged; Manifacier et al. 1976).
+
+Dispersion models turn these estimates into start values for their absorption
+parameters (:meth:`fitting.dispersion.Dispersion.guess_edge`); the fit engine
+uses the clear part of the spectrum for the thickness scan, where the start
+model's unknown absorption cannot mislead it.
+
+References
+----------
+.. [1] R. Swanepoel, "Determination of the thickness and optical constants of
+       amorphous silicon", J. Phys. E 16, 1214 (1983). :DOI:`10.1088/0022-3735/16/12/023`
+.. [2] J. C. Manifacier, J. Gasiot and J. P. Fillard, "A simple method for the
+       determination of the optical constants n, k and the thickness of a weakly
+       absorbing thin film", J. Phys. E 9, 1002 (1976).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["EdgeData", "absorption_edge", "opaque_floor", "CLEAR", "OPAQUE_AD"]
+
+#: Transparency above which the film counts as clear (the rest of x is the 100 %
+#: line's ±1 % and the envelope's noise).
+CLEAR = 0.93
+#: αd assumed where the spectrum is at its noise floor (T < 3 % of the clear level).
+OPAQUE_AD = 3.5
+
+
+@dataclass(frozen=True)
+class EdgeData:
+    """What the spectrum says about the film's absorption.
+
+    Attributes
+    ----------
+    clear_nm : (float, float) or None
+        The wavelength span where the film is clear (transparency >= 0.93),
+        around the clearest point; None if the film is clear nowhere.
+    opaque_below_nm, opaque_above_nm : float or None
+        T is at the noise floor below / above these wavelengths (None: nowhere).
+    wavelength_nm, alpha_d : ndarray
+        Points on the edges where the film partly absorbs, and αd there.
+    absorbs : bool
+        True if the film absorbs anywhere in the range.
+    """
+
+    clear_nm: tuple | None
+    opaque_below_nm: float | None = None
+    opaque_above_nm: float | None = None
+    wavelength_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    alpha_d: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    absorbs: bool = False
+
+    def to_dict(self) -> dict:
+        return {"clear_nm": None if self.clear_nm is None else list(self.clear_nm),
+                "opaque_below_nm": self.opaque_below_nm, "opaque_above_nm": self.opaque_above_nm,
+                "edge_points": int(self.alpha_d.size), "absorbs": self.absorbs}
+
+
+def opaque_floor(y: np.ndarray, sigma: np.ndarray) -> np.ndarray:
+    """Points where T is indistinguishable from zero: below 4σ of the noise or 0.5 %."""
+    return y < np.maximum(4.0 * sigma, 0.005)
+
+
+def _running_max(wl: np.ndarray, y: np.ndarray, width: np.ndarray) -> np.ndarray:
+    lo = np.searchsorted(wl, wl - width / 2)
+    hi = np.searchsorted(wl, wl + width / 2, side="right")
+    return np.array([y[a:b].max() for a, b in zip(lo, np.maximum(hi, lo + 1))])
+
+
+def absorption_edge(wl, y, sigma, substrate_n, *, thickness_nm: float | None,
+                    n_film: float | None) -> EdgeData:
+    """Transparency of the film along the spectrum, and αd estimates on its edges.
+
+    Parameters
+    ----------
+    wl, y, sigma : ndarray of shape (W,)
+        Wavelengths (nm, increasing), measured T and its 1σ.
+    substrate_n : ndarray of shape (W,)
+        Real index of the substrate.
+    thickness_nm, n_film : float or None
+        Rough thickness and index from the fringes (sets the envelope window);
+        without them a window of 30 nm is used.
+    """
+    wl = np.asarray(wl, float)
+    y = np.asarray(y, float)
+    if wl.size < 12:
+        return EdgeData(None)
+    s = np.asarray(substrate_n, float)
+    Ts = 2 * s / (s * s + 1)
+    if thickness_nm and n_film:
+        width = np.clip(wl * wl / (2 * n_film * thickness_nm), 4 * np.median(np.diff(wl)), 200.0)
+    else:
+        width = np.full(wl.size, 30.0)
+    U = _running_max(wl, y, 1.05 * width)
+    # Smooth the envelope over the same window: the running maximum of noise is
+    # biased up by about 2σ, but evenly.
+    ratio = U / Ts
+    level = float(np.percentile(ratio, 95))
+    if not level > 0:
+        return EdgeData(None)
+    x = np.clip(ratio / level, 1e-6, None)
+    floor = opaque_floor(y, np.asarray(sigma, float)) | (x < 0.03)
+    clear = x >= CLEAR
+    if not clear.any():
+        return EdgeData(None, absorbs=True)
+    # The clear span: the longest run of clear points.
+    edges = np.flatnonzero(np.diff(np.r_[0, clear.astype(int), 0]))
+    runs = edges.reshape(-1, 2)
+    a, b = max(runs, key=lambda r: r[1] - r[0])
+    clear_nm = (float(wl[a]), float(wl[b - 1]))
+    below = wl < clear_nm[0]
+    above = wl > clear_nm[1]
+    opaque_below = float(wl[below & floor].max()) if (below & floor).any() else None
+    opaque_above = float(wl[above & floor].min()) if (above & floor).any() else None
+    part = (below | above) & ~floor & (x < CLEAR)
+    absorbs = bool((below | above).any() and ((x[below | above] < 0.85).any()))
+    ad = -np.log(x[part])
+    return EdgeData(clear_nm, opaque_below, opaque_above, wl[part], ad, absorbs)
+
+
+def alpha_targets(edge: EdgeData, thickness_nm: float, wl_min: float, wl_max: float):
+    """(λ nm, α 1/cm, kind) targets for fitting a model's absorption to the edge.
+
+    kind is "=" on the edge (αd measured), "<" in the clear span (α below
+    0.03/d) and ">" in the opaque part (α above 3.5/d); at most 40 points each.
+    """
+    d_cm = thickness_nm * 1e-7
+    out = []
+    if edge.alpha_d.size:
+        idx = np.unique(np.linspace(0, edge.alpha_d.size - 1, min(40, edge.alpha_d.size))
+                        .astype(int))
+        out += [(float(edge.wavelength_nm[i]), float(edge.alpha_d[i] / d_cm), "=") for i in idx]
+    if edge.clear_nm is not None:
+        for w in np.linspace(edge.clear_nm[0], edge.clear_nm[1], 8):
+            out.append((float(w), 0.03 / d_cm, "<"))
+    if edge.opaque_below_nm is not None:
+        for w in np.geomspace(wl_min, edge.opaque_below_nm, 5):
+            out.append((float(w), OPAQUE_AD / d_cm, ">"))
+    if edge.opaque_above_nm is not None:
+        for w in np.geomspace(edge.opaque_above_nm, wl_max, 5):
+            out.append((float(w), OPAQUE_AD / d_cm, ">"))
+    return out
+
+
+def target_residuals(alpha_model: np.ndarray, targets) -> np.ndarray:
+    """Log-ratio residuals of model α against :func:`alpha_targets` (one-sided for < >)."""
+    r = np.empty(len(targets))
+    for i, ((_, a, kind), am) in enumerate(zip(targets, alpha_model)):
+        q = math.log(max(am, 1e-3) / a)
+        r[i] = q if kind == "=" else (max(q, 0.0) if kind == "<" else min(q, 0.0))
+    return r
