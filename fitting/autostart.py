@@ -54,7 +54,8 @@ from .optics import films_RT, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
            "apply_seed", "scan_thickness", "fringe_region", "ScanResult", "pick_basins",
-           "scan_range", "edge_params", "Nuisance"]
+           "scan_range", "edge_params", "Nuisance", "contrast_levels", "PLAUSIBLE_N_MIN",
+           "edge_candidates"]
 
 # Largest number of thickness grid points of one scan; beyond it the step grows
 # (a 50 µm film on a UV grid would otherwise need ~10⁴ points).
@@ -65,6 +66,20 @@ _N_LEVELS = (-0.06, 0.0, 0.06)
 #: Without a seed: index levels spanning the usual dielectric films (fluorides to
 #: titania, common practice).
 BLIND_LEVELS = (1.45, 1.75, 2.1, 2.5)
+
+
+#: The lowest index a dense film has (magnesium fluoride, 1.38; porous sol-gel films
+#: reach 1.2): below it a result is a mirror of the real film (common practice).
+PLAUSIBLE_N_MIN = 1.2
+
+
+def contrast_levels(n_sub: float) -> list[float]:
+    """Index levels for a film close to a substrate of index ``n_sub``: a ladder from
+    the densest low-index films to 0.35 above the substrate, leaving out ±0.015
+    around it (no fringes there to fit)."""
+    below = np.arange(max(PLAUSIBLE_N_MIN + 0.1, n_sub - 0.3), n_sub - 0.015, 0.03)
+    above = np.arange(n_sub + 0.02, n_sub + 0.35, 0.04)
+    return [float(x) for x in np.round(np.r_[below, above], 4)]
 
 
 @dataclass
@@ -303,6 +318,129 @@ def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
     return out
 
 
+# -- the absorption edge -----------------------------------------------------------------
+#: Shapes of a Tauc-Lorentz edge tried from the data: (Eg below the measured edge,
+#: E0 - Eg, C), all eV - broad amorphous (a-Si-like, Jellison & Modine 1996 give
+#: E0 - Eg ≈ 2.3, C ≈ 2.5), medium (oxides: titania, niobia) and sharp (a nearly
+#: crystalline direct gap, zinc-oxide-like). Common practice, from memory.
+_TL_SHAPES = ((0.45, 2.2, 2.4), (0.25, 1.2, 1.3), (0.05, 0.35, 0.35))
+
+
+def _edge_energy(edge, wl_min: float, wl_max: float) -> float | None:
+    """Photon energy (eV) where αd ≈ 1 on the short-wavelength edge, from the data."""
+    from .units import HC_EV_NM
+    if edge is None or not edge.absorbs:
+        return None
+    lo = edge.clear_nm[0] if edge.clear_nm is not None else wl_max
+    sel = edge.wavelength_nm < lo
+    if sel.any():
+        wl, ad = edge.wavelength_nm[sel], edge.alpha_d[sel]
+        i = int(np.argmin(np.abs(np.log(np.maximum(ad, 1e-3)))))
+        return float(HC_EV_NM / wl[i])
+    if edge.opaque_below_nm is not None:
+        return float(HC_EV_NM / edge.opaque_below_nm)
+    return None
+
+
+def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float,
+                    wl_max: float) -> list[dict]:
+    """Start values of a film's absorption from the measured edge, one per edge shape.
+
+    The model's α is fitted to the edge estimates of
+    :func:`fitting.edge.alpha_targets` (log α; one-sided in the clear and the
+    opaque parts) together with the fringe seed's n, from a few typical edge
+    shapes. Returns copies of ``local``, the best-matching first; the caller
+    chooses between them on the spectrum itself. Models without an absorption
+    edge (Cauchy without a tail, Sellmeier) give ``[local]``.
+    """
+    from scipy.optimize import least_squares
+
+    from .edge import alpha_targets, target_residuals
+    from .units import HC_EV_NM, alpha_per_cm
+    if edge is None or not seed.thickness_nm:
+        return [dict(local)]
+    free = set(free)
+    names, starts = [], []
+    E_edge = _edge_energy(edge, wl_min, wl_max)
+    E_max = HC_EV_NM / wl_min
+    if isinstance(material, Cauchy) and material.urbach:
+        names = [k for k in ("k0", "Eu") if k in free]
+        E_ref = local.get("E_edge", 3.5)
+        if E_edge is None:      # clear everywhere: a tail that stays below αd = 0.03
+            k_max = 0.03 / (seed.thickness_nm * 1e-7) * (wl_min * 1e-7) / (4 * np.pi)
+            starts = [{"Eu": 0.1, "k0": k_max * math.exp((E_ref - E_max) / 0.1)}]
+        else:
+            starts = [{"Eu": eu, "k0": 0.1 * math.exp((E_ref - E_edge) / eu)}
+                      for eu in (0.08, 0.2, 0.4)]
+    elif isinstance(material, Oscillators):
+        for i, t in enumerate(material.terms, start=1):
+            if t.kind != "tauc_lorentz":
+                continue
+            pre = f"o{i}_"
+            names = [pre + k for k in ("A", "E0", "C", "Eg") if pre + k in free]
+            if E_edge is None:
+                starts = [{pre + "Eg": E_max + 0.3, pre + "E0": E_max + 1.5,
+                           pre + "C": 1.5}]
+            else:
+                starts = [{pre + "Eg": max(E_edge - a, 0.3), pre + "E0": max(E_edge - a, 0.3) + b,
+                           pre + "C": c} for a, b, c in _TL_SHAPES]
+            break
+        level = n_level_param(material)
+        if level is not None and level in free:
+            names.append(level)
+    if not names or not starts:
+        return [dict(local)]
+    targets = alpha_targets(edge, seed.thickness_nm, wl_min, wl_max)
+    lam_t = np.array([t[0] for t in targets])
+    lam_n, n_n = (np.asarray(a, float) for a in (seed.n_points or ((), ())))
+    if n_n.size == 0 and seed.n_ref:
+        lam_n, n_n = np.array([seed.wl_ref]), np.array([seed.n_ref])
+    lo = np.array([material.params[k].min for k in names])
+    hi = np.array([material.params[k].max for k in names])
+
+    def resid(x, base):
+        v = {**base, **dict(zip(names, x))}
+        try:
+            with np.errstate(all="ignore"):
+                N_t = material.N_unchecked(lam_t, v)
+                N_n = material.N_unchecked(lam_n, v) if n_n.size else np.zeros(0)
+        except Exception:  # impossible combination while searching
+            return np.full(lam_t.size + n_n.size, 10.0)
+        a = alpha_per_cm(np.maximum(N_t.imag, 0.0), lam_t)
+        # n from the fringes is good to about 0.03, α from the envelope to a factor
+        # of about 2.7 (one unit of log α); weak priors (log-normal) keep an
+        # oscillator typical where the data say little: amplitude near 100 eV, C
+        # and E0 near the shape's.
+        pri = [math.log(max(v[k], 1e-9) / ref) / w for k, ref, w in priors(base)]
+        r = np.r_[target_residuals(a, targets), (N_n.real - n_n) / 0.03, pri]
+        return np.where(np.isfinite(r), r, 10.0)
+
+    def priors(base):
+        out = []
+        for k in names:
+            tail = k.rsplit("_", 1)[-1]
+            if tail == "A" and k != "A":
+                out.append((k, 100.0, 1.5))
+            elif tail in ("C", "E0") and k != "C":
+                out.append((k, base[k], 0.7 if tail == "C" else 0.3))
+        return out
+
+    found = []
+    for st in starts:
+        base = {**local, **st}
+        if level := n_level_param(material):
+            if level in free and seed.n_ref:
+                base[level] = set_n_level(material, base, level, seed.n_ref, seed.wl_ref)
+        x0 = np.clip([base[k] for k in names], lo, hi)
+        try:
+            sol = least_squares(resid, x0, bounds=(lo, hi), args=(base,), x_scale="jac",
+                                max_nfev=300)
+        except ValueError:
+            continue
+        found.append((float(sol.cost), {**base, **dict(zip(names, (float(v) for v in sol.x)))}))
+    return [v for _, v in sorted(found, key=lambda t: t[0])] or [dict(local)]
+
+
 # -- the scan ----------------------------------------------------------------------------
 @dataclass
 class ScanResult:
@@ -380,8 +518,8 @@ def fringe_region(part, material, local: dict, wl_range, d_typical) -> np.ndarra
 def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
                    level_name: str | None, n_ref: float, wl_ref: float,
                    nuisance: "Nuisance | None" = None, check=None, chunk: int = 256,
-                   wl_range: tuple | None = None, d_typical: float | None = None
-                   ) -> ScanResult:
+                   wl_range: tuple | None = None, d_typical: float | None = None,
+                   candidates: list | None = None) -> ScanResult:
     """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
 
     Parameters
@@ -406,6 +544,9 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
         Called between chunks; may raise to abort.
     wl_range : (float, float) or None
         Wavelengths the scan looks at (the fringe region); None: all used points.
+    candidates : list of dict or None
+        Complete local values of the film's material to scan instead of index
+        levels (absorption-edge shapes to choose between).
     d_typical : float or None
         Typical film thickness (the seed's). Where the film at its start values
         would absorb more than 20 % in one pass at this thickness, the scan
@@ -416,7 +557,10 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
     pre = parts[0].stack.layers[layer_index].name + "_"
     base_local = {k: local_start[0][pre + k] for k in mat0.params}
     levels = [base_local]
-    if level_name is not None:
+    if candidates:
+        levels = [dict(c) for c in candidates]
+        n_ref = max(float(np.max(mat0.N_unchecked(parts[0].wl, c).real)) for c in levels)
+    elif level_name is not None:
         targets = n_ref if np.ndim(n_ref) else [n_ref * (1 + dl) for dl in _N_LEVELS]
         levels = [{**base_local, level_name: set_n_level(mat0, base_local, level_name,
                                                         float(t), wl_ref)} for t in targets]

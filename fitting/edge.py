@@ -108,7 +108,9 @@ def absorption_edge(wl, y, sigma, substrate_n, *, thickness_nm: float | None,
     s = np.asarray(substrate_n, float)
     Ts = 2 * s / (s * s + 1)
     if thickness_nm and n_film:
-        width = np.clip(wl * wl / (2 * n_film * thickness_nm), 4 * np.median(np.diff(wl)), 200.0)
+        # One full fringe period (maximum to maximum), however wide.
+        width = np.clip(wl * wl / (2 * n_film * thickness_nm), 4 * np.median(np.diff(wl)),
+                        float(wl[-1] - wl[0]))
     else:
         width = np.full(wl.size, 30.0)
     U = _running_max(wl, y, 1.05 * width)

@@ -110,6 +110,18 @@ def choose(obj: Objective, polished: list, start: dict, method: str) -> Choice:
                           else "no local fit finished")
         return Choice(values, False, why, "best point seen", None, [])
     order = sorted(range(len(polished)), key=lambda i: polished[i].chisqr)
+    # A film index no dense film has yields to a plausible solution that fits
+    # almost as well (see fitting.fit._mirror).
+    if getattr(polished[order[0]], "implausible", False):
+        c0 = polished[order[0]].chisqr
+        rc = c0 / max(obj.ndata - len(obj.var_names), 1)
+        for i in order[1:]:
+            q = polished[i]
+            if not getattr(q, "implausible", False) \
+                    and (q.chisqr - c0) / max(rc, 1.0) < _ALT_DELTA_CHI2:
+                order.remove(i)
+                order.insert(0, i)
+                break
     best = polished[order[0]]
     values = dict(best.values)
     lm = best.lm

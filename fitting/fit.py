@@ -54,7 +54,7 @@ from typing import Iterator, Mapping
 import numpy as np
 
 from . import autostart
-from .errors import FitError, RecipeError
+from .errors import FitError, PellucidError, RecipeError
 from .finish import finish, scanned_film
 from .objective import Objective, Part, _Stop, build_part
 from .result import FitProgress, FitResult
@@ -322,6 +322,7 @@ class _Polished:
     lm: object | None            # lmfit MinimizerResult
     label: str
     note: str = ""               # what kind of solution it is (shown with alternatives)
+    implausible: bool = False    # a film index no dense film has (see _mirror)
 
 
 def _run(obj: Objective, options: FitOptions):
@@ -366,6 +367,8 @@ def _run(obj: Objective, options: FitOptions):
             polished.append(_polish(obj, polished[-1].values, f"{method} + polish"))
         if method == "auto" and options.fit_spread == "auto":
             _auto_spread(obj, polished)
+        if method == "auto":
+            _mirror(obj, polished)
     except _Stop:
         if not polished and fallback:
             # Stopped during the fringe stages: their best point beats the start.
@@ -404,6 +407,69 @@ def _auto_spread(obj: Objective, polished: list) -> None:
         obj.release("thickness_spread")
         trial.lm = _refit_free(obj, trial)
         polished.append(trial)
+
+
+def _film_n(obj: Objective, values: dict, wl_nm: float) -> float:
+    """n of the scanned film at one wavelength for a set of values (NaN if undefined)."""
+    tname, li = scanned_film(obj)
+    part = obj.parts[0]
+    layer = part.stack.layers[li]
+    local = obj.local_values(part, values)
+    pre = layer.name + "_"
+    return autostart._n_at(layer.material, wl_nm, {k: local[pre + k]
+                                                   for k in layer.material.params})
+
+
+def _mirror(obj: Objective, polished: list) -> None:
+    """Try the mirror of a film below the substrate's index, and flag implausible ones.
+
+    In transmission a film of index n on a substrate of index n_s and one of
+    index n' = n_s/n with the same optical thickness are exchanged by swapping
+    the two interface reflections, r01 ↔ r12: at normal incidence and without
+    dispersion their spectra are identical (Macleod, *Thin-Film Optical Filters*,
+    ch. 2, for the quarter-wave case). The fit cannot choose; physics can when
+    one index is below any dense film's (``PLAUSIBLE_N_MIN``). So: the best fit
+    is polished once more from its mirror; a mirror below the floor is not
+    tried, a best fit below it is marked implausible (the plausible mirror is
+    then preferred when it fits as well), and two plausible mirrors are both
+    reported.
+    """
+    found = scanned_film(obj)
+    if found is None or not polished or obj.parts[0].quantity != "T":
+        return
+    tname, li = found
+    part = obj.parts[0]
+    layer = part.stack.layers[li]
+    mat = layer.material
+    gmap = dict((loc, g) for g, loc in part.names)
+    pre = layer.name + "_"
+    level = autostart.n_level_param(mat)
+    if level is None or gmap[pre + level] not in obj.var_names:
+        return
+    best = min(polished, key=lambda q: q.chisqr)
+    wl_ref = float(np.median(part.wl))
+    n = _film_n(obj, best.values, wl_ref)
+    ns = float(np.interp(wl_ref, part.wl, part.stack.substrate.N(part.wl).real))
+    best.implausible = bool(n < autostart.PLAUSIBLE_N_MIN)
+    if not (1.0 < n < ns):
+        return
+    n_m = ns / n
+    if n_m < autostart.PLAUSIBLE_N_MIN or abs(n_m - n) < 0.03:
+        return
+    local = {k: best.values[gmap[pre + k]] for k in mat.params}
+    moved = {**local, level: autostart.set_n_level(mat, local, level, n_m, wl_ref)}
+    v = dict(best.values)
+    for k, x in moved.items():
+        if gmap[pre + k] in obj.var_names:
+            v[gmap[pre + k]] = x
+    v[tname] = best.values[tname] * n / n_m
+    obj.set_stage("polish", 0.97, 0.99, 60 * len(obj.var_names), "trying the mirror solution")
+    q = _polish(obj, v, "mirror of " + best.label, max_nfev=60 * (len(obj.var_names) + 1))
+    n_q = _film_n(obj, q.values, wl_ref)
+    q.implausible = bool(n_q < autostart.PLAUSIBLE_N_MIN)
+    q.note = (f"the mirror solution, n = {n_q:.3f} at {wl_ref:.0f} nm against {n:.3f}: "
+              f"n·n′ ≈ n of the substrate gives nearly the same T")
+    polished.append(q)
 
 
 def _extrema(obj: Objective, values: dict) -> int:
@@ -533,7 +599,80 @@ def _hold_higher_orders(obj: Objective, layer, gmap: dict, seed, info: dict) -> 
                 f"{g}: held at 0, only {seed.n_extrema} fringe extrema (needs {need})")
 
 
-def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
+def _low_contrast(part: Part, seed, sub_n: np.ndarray) -> bool:
+    """Faint fringes: seed index within 0.12 of the substrate's, below it, or a T
+    swing under 2 % in the long-wavelength half (common practice thresholds)."""
+    if part.quantity != "T":
+        return False
+    if seed.below_substrate:
+        return True
+    if seed.n_ref and abs(seed.n_ref - float(np.interp(seed.wl_ref, part.wl, sub_n))) < 0.12:
+        return True
+    half = part.wl >= np.median(part.wl)
+    y = part.y[half]
+    return y.size > 10 and float(np.percentile(y, 95) - np.percentile(y, 5)) < 0.02
+
+
+def _pick_edge(obj: Objective, li: int, tname: str, local: dict, edge, seed, free,
+               start: dict, info: dict) -> dict:
+    """The film's absorption start that best fits the whole spectrum near the seed.
+
+    Candidates are the edge shapes of :func:`autostart.edge_candidates` and the
+    start as it was; each is scanned over the seed thickness ±15 % on all used
+    points (absorption included, nuisance terms solved), and the lowest χ² wins.
+    """
+    part = obj.parts[0]
+    mat = part.stack.layers[li].material
+    cands = autostart.edge_candidates(mat, local, edge, seed, free, float(part.wl.min()),
+                                      float(part.wl.max()))
+    if len(cands) == 1 and cands[0] == local:
+        return local
+    cands.append(dict(local))
+    d0 = seed.thickness_nm
+    pth = obj.params[tname]
+    lo, hi = max(0.85 * d0, pth.min), min(1.15 * d0, pth.max)
+    if not hi > lo:
+        return cands[0]
+    n_hi = max(float(np.max(mat.N_unchecked(part.wl, c).real)) for c in cands)
+    K = int(min(400, max(8, (hi - lo) / (float(part.wl.min()) / (16 * n_hi)))))
+    locs = {loc: start[g] for g, loc in part.names}
+    try:
+        scan = autostart.scan_thickness([part], li, [locs], np.linspace(lo, hi, K), None,
+                                        n_hi, float(np.median(part.wl)),
+                                        autostart.Nuisance.from_options(obj.options),
+                                        check=obj.check, candidates=cands)
+    except PellucidError:
+        return cands[0]
+    best = int(np.argmin(scan.chisqr.min(axis=1)))
+    info["edge_choice"] = {"candidates": len(cands), "chosen": best,
+                           "chisqr": [float(c) for c in scan.chisqr.min(axis=1)]}
+    return cands[best]
+
+
+def _seed_and_edge(part: Part, sub_n: np.ndarray):
+    """Fringe seed and absorption edge of the first part, each from the data alone.
+
+    Points at the noise floor (an opaque film) are left out of the fringe
+    search, where noise would make false extrema; once the edge shows where the
+    film is clear, the seed is taken again from the clear part only, where the
+    extrema heights are those of a transparent film.
+    """
+    from .edge import absorption_edge, opaque_floor
+    if part.quantity != "T":
+        return _choose_seed(part, sub_n), None
+    keep = ~opaque_floor(part.y, part.sigma)
+    seed = _choose_seed(part, sub_n, keep)
+    edge = absorption_edge(part.wl, part.y, part.sigma, sub_n,
+                           thickness_nm=seed.thickness_nm, n_film=seed.n_ref)
+    if edge.absorbs and edge.clear_nm is not None:
+        clear = (part.wl >= edge.clear_nm[0]) & (part.wl <= edge.clear_nm[1])
+        again = _choose_seed(part, sub_n, clear)
+        if again.has_fringes and again.n_ref:
+            seed = again
+    return seed, edge
+
+
+def _choose_seed(part: Part, sub_n: np.ndarray, keep=None) -> autostart.Seed:
     """The envelope seed, or the simple fringe seed where the envelope method is weak.
 
     The envelope method assumes a film index above the substrate's; when the
@@ -543,9 +682,11 @@ def _choose_seed(part: Part, sub_n: np.ndarray) -> autostart.Seed:
     the simple seed is the better one. (Both read T against the bare-substrate
     line, so a baseline error biases n a little; the scan's index levels absorb it.)
     """
-    simple = autostart.fringe_seed(part.wl, part.y, part.quantity, sub_n)
-    env = None if simple.below_substrate else autostart.envelope_seed(
-        part.wl, part.y, part.quantity, sub_n)
+    if keep is None or keep.sum() < 12:
+        keep = np.ones(part.wl.size, bool)
+    wl, y, sn = part.wl[keep], part.y[keep], sub_n[keep]
+    simple = autostart.fringe_seed(wl, y, part.quantity, sn)
+    env = None if simple.below_substrate else autostart.envelope_seed(wl, y, part.quantity, sn)
     if env is not None and 1.5 * env.n_extrema + 2 >= simple.n_extrema:
         return env
     return simple
@@ -563,8 +704,10 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     mat = layer.material
     gmap = dict((loc, g) for g, loc in part.names)
     sub_n = part.stack.substrate.N(part.wl).real
-    seed = _choose_seed(part, sub_n)
+    seed, edge = _seed_and_edge(part, sub_n)
     info["seed"] = seed.to_dict()
+    if edge is not None:
+        info["edge"] = edge.to_dict()
     _hold_higher_orders(obj, layer, gmap, seed, info)
     # Fringes closer than ~4 data points are not resolved: their extrema heights (and
     # so the seed's n there) are wrong, and a fit there can slip orders.
@@ -580,6 +723,8 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     local = {k: start[gmap[pre + k]] for k in mat.params}
     free = [k for k in mat.params if gmap[pre + k] in obj.var_names]
     seeded = autostart.apply_seed(mat, local, seed, free)
+    if edge is not None and part.quantity == "T":
+        seeded = _pick_edge(obj, li, tname, seeded, edge, seed, free, start, info)
     values = dict(start)
     for k, v in seeded.items():
         g = gmap[pre + k]
@@ -591,13 +736,15 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
     level = autostart.n_level_param(mat)
     if level is not None and gmap[pre + level] not in obj.var_names:
         level = None
-    if seed.n_ref and seed.below_substrate:
-        # Fringes of a film below the substrate index are faint, and a baseline error
-        # biases their n a lot: try the seed, the usual low-index films (fluorides,
-        # silica) and up to the substrate.
-        s_ref = float(np.interp(seed.wl_ref, part.wl, sub_n))
-        n_try = sorted({seed.n_ref, 1.38, 0.5 * (seed.n_ref + s_ref), s_ref})
-        n_ref, wl_ref = max(n_try), seed.wl_ref
+    if level is not None and seed.has_fringes and _low_contrast(part, seed, sub_n):
+        # Faint fringes: a film close to the substrate's index, on either side. The
+        # seed's n is unreliable (a 1 % baseline error moves it a lot) and the
+        # fringe amplitude grows fast with |n - n_s|: scan a dense ladder of index
+        # levels on both sides (from dense fluorides up), never n_s itself.
+        wl_ref = seed.wl_ref or wl_mid
+        n_try = autostart.contrast_levels(float(np.interp(wl_ref, part.wl, sub_n)))
+        n_ref = max(n_try)
+        info["low_contrast"] = True
     elif seed.n_ref:
         n_ref, wl_ref, n_try = seed.n_ref, seed.wl_ref, seed.n_ref
     elif level is not None:
@@ -633,6 +780,11 @@ def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
         f_lo, f_hi = seed.fringe_range_nm
         nxt = f_hi + 1.2 * f_hi ** 2 / (4 * (seed.n_ref or 2.0) * (seed.thickness_nm or 1e3))
         wl_range = (max(0.97 * f_lo, wl_res), nxt if nxt < float(part.wl.max()) else math.inf)
+    if edge is not None and edge.clear_nm is not None and edge.absorbs:
+        # Where the data say the film absorbs, the fringes say little about d.
+        c_lo, c_hi = edge.clear_nm
+        wl_range = (max(wl_range[0], c_lo), min(wl_range[1], c_hi if c_hi < float(
+            part.wl.max()) else math.inf))
     d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
     # Many fringes: scan on the long-wavelength part (in wavenumber) only, where the
     # start's dispersion error shifts the fringe phase least; the staged polish then

@@ -40,6 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .autostart import PLAUSIBLE_N_MIN
 from .labels import param_label
 from .result import Diagnostics
 
@@ -225,7 +226,9 @@ def reasons(result) -> list[Reason]:
                                    f"wider wavelength range or a second sample with another "
                                    f"thickness can."))
     for p in result.params.values():
-        if p.at_bound and not (p.name.endswith("thickness_spread") and p.value <= p.min):
+        # No non-uniformity at all is a legitimate answer, not a bound problem.
+        if p.at_bound and not (p.name.endswith("thickness_spread")
+                               and p.value - p.min <= p.max - p.value):
             side = "lower" if abs(p.value - p.min) <= abs(p.max - p.value) else "upper"
             level = "poor" if p.name.endswith("_thickness") else "check"
             out.append(Reason(level, f"{label(p.name)} ended at its {side} bound "
@@ -272,6 +275,13 @@ def reasons(result) -> list[Reason]:
                                    f"model."))
     for name, oc in result.optical.items():
         vis = (oc.wavelength_nm >= 380) & (oc.wavelength_nm <= 780)
+        n_vis = float(np.nanmedian(oc.n[vis])) if vis.any() else math.nan
+        if 1.0 <= n_vis < PLAUSIBLE_N_MIN:
+            out.append(Reason("check", f"{name}: n = {n_vis:.3f} in the visible is below any "
+                                       f"dense film's (magnesium fluoride 1.38); such a "
+                                       f"result is usually the mirror of a film of index "
+                                       f"n_substrate/n. Fix n near its expected value and "
+                                       f"fit again."))
         if vis.any() and np.nanmin(oc.n[vis]) < 1.0:
             out.append(Reason("check", f"{name}: n drops below 1 in the visible (min "
                                        f"{np.nanmin(oc.n[vis]):.3f}), which no ordinary film "

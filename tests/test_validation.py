@@ -297,7 +297,6 @@ def test_counting_of_silent_failures_and_quiet_misses():
 
 # ---------------------------------------------------------------------------------
 # (c) the engine from its defaults on the quick set (issue 11)
-@pytest.mark.xfail(reason="issue 11: fit engine defaults being fixed", strict=False)
 def test_quick_set_from_the_defaults_has_no_silent_failure():
     rows = run(vcases.select(quick=True), jobs=2)
     s = summarise(rows)
