@@ -280,13 +280,47 @@ def test_whitespace_metadata_is_not_taken_for_column_names():
     np.testing.assert_allclose(s.wavelength_nm, 1e7 / (20000 - 100 * np.arange(6)))
 
 
-def test_text_between_data_rows_is_reported():
+def test_text_between_data_rows_is_skipped_and_named():
+    # A note between rows ("Lamp change" at a lamp or detector change-over, common
+    # practice in UV-Vis-NIR exports) is skipped with its line; the rows keep their values.
     text = "400;50\nx;3\n401;51\nNote;x\n402;52\n403;53\n404;54\n"
-    with pytest.raises(SpectrumFormatError, match=r"line 2: a line of text interrupts.*'x;3'"):
-        parse_spectrum(text)
+    s = parse_spectrum(text)
+    np.testing.assert_allclose(s.wavelength_nm, [400, 401, 402, 403, 404])
+    np.testing.assert_allclose(s.values, [0.50, 0.51, 0.52, 0.53, 0.54])
+    assert any("line 2 ('x;3')" in w and "line 4 ('Note;x')" in w and "skipped" in w
+               for w in s.warnings)
+    assert s.metadata["reader"]["skipped_lines"] == [2, 4]
     damaged_first = "400;5O\n401;51\n402;52\n403;53\n404;54\n405;55\n"
     with pytest.raises(SpectrumFormatError, match=r"line 1: column 2 holds text.*'5O'"):
         parse_spectrum(damaged_first)
+
+
+def test_stray_line_in_an_energy_export_changes_nothing():
+    # A stray text line right after the first rows of an eV export, inside the lines
+    # used to detect the layout: the same spectrum as without it, plus a note.
+    rows = [(f"{3.1 - 0.01 * i:.4f}", f"{0.5 + 0.001 * i:.4f}") for i in range(60)]
+    head = "Energy (eV)\tT\n"
+    plain = parse_spectrum(head + table(rows, delim="\t"))
+    for at in (1, 2, 30, 58):
+        lines = table(rows, delim="\t").splitlines()
+        lines.insert(at, "Lamp change")
+        s = parse_spectrum(head + "\n".join(lines) + "\n")
+        np.testing.assert_array_equal(s.wavelength_nm, plain.wavelength_nm)
+        np.testing.assert_array_equal(s.values, plain.values)
+        assert s.metadata["reader"]["x_unit"] == "eV"
+        assert any(f"line {at + 2} ('Lamp change')" in w for w in s.warnings), s.warnings
+        assert s.metadata["reader"]["columns"] == ["Energy (eV)", "T"]
+
+
+def test_several_tables_or_much_text_among_rows_are_refused():
+    rows = table([(400 + i, 50) for i in range(30)])
+    with pytest.raises(SpectrumFormatError, match=r"line 32: column names again: the file "
+                       r"holds more than one table"):
+        parse_spectrum("Wavelength (nm);T (%)\n" + rows + "Wavelength (nm);T (%)\n" + rows)
+    noisy = "".join(f"{400 + i};50\nnote {i}\n" for i in range(40))
+    with pytest.raises(SpectrumFormatError, match=r"line 2: more than 20 lines of text among "
+                       r"the data rows.*'note 0'"):
+        parse_spectrum(noisy)
 
 
 def test_column_choice_auto_and_override():
@@ -393,10 +427,11 @@ def test_options_dict_round_trip_and_validation():
     for bad in ({"x_unit": "furlong"}, {"y_kind": "counts%"}, {"delimiter": "|"},
                 {"range_nm": [900, 400]}, {"sigma": -1}, {"sigma": "guess"},
                 {"mask_windows_nm": [[1, 2, 3]]}, {"x_column": -1}, {"x_column": True},
-                {"x_column": 1, "y_column": 1}, {"encoding": "ebcdic"},
-                {"decimal": ",", "delimiter": ","}):
+                {"x_column": 1, "y_column": 1}, {"encoding": "ebcdic"}):
         with pytest.raises(RecipeError):
             ReaderOptions.from_dict(bad)
+    # Comma as decimal mark and separator is the quoted CSV of spreadsheets ("500,5").
+    assert ReaderOptions.from_dict({"decimal": ",", "delimiter": ","}).decimal == ","
 
 
 def test_preview_shows_lines_and_problem(tmp_path):
