@@ -861,8 +861,13 @@ def _head_lines(text: str, n: int, max_chars: int = _MAX_HEAD_CHARS) -> tuple[li
     return lines, pos >= len(text)
 
 
-def _choose_dialect(lines, options, path):
-    """Score each (delimiter, decimal) by how many lines parse as numeric rows."""
+def _choose_dialect(lines, options, path, evidence: dict | None = None):
+    """Score each (delimiter, decimal) by how many lines parse as numeric rows.
+
+    ``evidence``, if given, receives what a refusal needs without another pass over
+    the lines: "broken", the damaged rows of the candidate with most of them, and
+    "single", per decimal mark, the lines holding one number (whitespace candidates).
+    """
     delims = DELIMITERS if options.delimiter == "auto" else (options.delimiter,)
     decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
     quoted = any('"' in line for line in lines)
@@ -875,6 +880,13 @@ def _choose_dialect(lines, options, path):
                 continue
             numbers = _Numbers(dec)
             kinds = [_row_kind(line, delim, numbers) for line in lines]
+            if evidence is not None:
+                broken = [i for i, (k, _) in enumerate(kinds) if k == _BROKEN]
+                if broken and len(broken) > len(evidence.get("broken", ((),))[0]):
+                    evidence["broken"] = (broken, delim, numbers)
+                if delim == " ":
+                    evidence.setdefault("single", {})[dec] = [
+                        i for i, (k, _) in enumerate(kinds) if k == _SINGLE]
             n_data = sum(1 for k, _ in kinds if k in _NUMERIC_ROWS or k == _WIDE)
             if n_data == 0:
                 continue
@@ -919,7 +931,8 @@ def _layout(text: str, options: "ReaderOptions", path,
     n = _SNIFF_LINES
     while True:
         lines, complete = _head_lines(text, n)
-        choice = _choose_dialect(lines, options, path)
+        evidence: dict = {}
+        choice = _choose_dialect(lines, options, path, evidence)
         start = None
         if choice is not None:
             delim, dec, kinds, numbers = choice
@@ -937,9 +950,16 @@ def _layout(text: str, options: "ReaderOptions", path,
                         "(\"500,5\",\"81,25\"), and this file has no quotes; set the "
                         "delimiter or the decimal mark to 'auto'",
                         expected="quoted numbers", found=lines[first_content].strip()[:80])
-        single = _find_single(lines, options)
+        single = _find_single(lines, options, evidence)
         if single is not None:
             raise _one_column(path, single + 1, lines[single])
+        broken = _first_broken(lines, evidence)
+        if broken is not None and not _garbled(lines):
+            at, token = broken
+            raise _fail(path, at + 1, "rows of numbers were found, but their numbers hold "
+                        "characters that are no digits or decimal mark; export again with "
+                        "'.' or ',' as decimal mark, or correct the file",
+                        expected="numbers like 450.5 or 450,5", found=token[:40])
         if _garbled(lines):
             raise _fail(path, first_content + 1, "the text is unreadable: the file is saved "
                         "in a character encoding Pellucid does not know (it reads UTF-8, "
@@ -977,8 +997,9 @@ def _layout(text: str, options: "ReaderOptions", path,
                     f"least {min_rows} are needed" + _head_note(lines, complete),
                     expected=f"{min_rows} or more rows of numbers",
                     found=lines[data_rows[0]].strip()[:80])
-    if kinds[start][0] == _WIDE:
-        raise _too_wide(path, start + 1, kinds[start][1])
+    run = next(i for i in range(start, len(kinds)) if kinds[i][0] in (_DATA, _MIXED, _WIDE))
+    if kinds[run][0] == _WIDE:
+        raise _too_wide(path, run + 1, kinds[run][1])
     # Field count of the table: the commonest among its first numeric rows (the run
     # found above starts with one, so the list is never empty).
     counts = [nf for k, nf in kinds[start:] if k in _NUMERIC_ROWS][:200]
@@ -1065,12 +1086,15 @@ def _first_run(lines, kinds, complete: bool, delim: str,
                                    for ii, kk in follow):
             continue                 # words and numbers in a header line, not a text column
         if len(follow) < 3 and complete:
-            n_data = sum(1 for _, kk in content[j:] if kk in _NUMERIC_ROWS)
+            n_data = sum(1 for _, kk in content[j:] if kk in _NUMERIC_ROWS or kk == _BROKEN)
             if n_data < min_rows:
                 return None
-        # A damaged first row belongs to the data and must be reported, not skipped.
-        while j > 0 and content[j - 1][1] == _BROKEN:
-            j -= 1
+        # Damaged first rows belong to the data and must be reported, not skipped,
+        # also when rows of missing values ("-nan") sit among them.
+        k = j
+        while k > 0 and content[k - 1][1] in (_BROKEN, _GAP):
+            k -= 1
+        j = next((t for t in range(k, j) if content[t][1] == _BROKEN), j)
         return content[j][0]
     return None
 
@@ -1136,11 +1160,25 @@ def _decimal_comma_column(lines, kinds, delim, dec) -> int | None:
     return rows[0][0] if leading_zero or not_abscissa else None
 
 
-def _find_single(lines, options) -> int | None:
+def _first_broken(lines, evidence: dict) -> tuple[int, str] | None:
+    """(line index, damaged token) of the first damaged row ("300<tab>313·14") under the
+    dialect with most of them, or None."""
+    if "broken" not in evidence:
+        return None
+    rows, delim, numbers = evidence["broken"]
+    toks = _split(lines[rows[0]].strip(), delim)
+    return rows[0], next((t for t in toks if numbers.parse(t) is None), toks[0])
+
+
+def _find_single(lines, options, evidence: dict) -> int | None:
+    """Index of the first line of a one-column table of numbers, or None."""
     decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
     for dec in decs:
-        numbers = _Numbers(dec)
-        hits = [i for i, line in enumerate(lines) if _row_kind(line, " ", numbers)[0] == _SINGLE]
+        hits = evidence.get("single", {}).get(dec)
+        if hits is None:                 # the delimiter was set: not scanned for spaces
+            numbers = _Numbers(dec)
+            hits = [i for i, line in enumerate(lines)
+                    if _row_kind(line, " ", numbers)[0] == _SINGLE]
         if len(hits) >= 2:
             return hits[0]
     return None
@@ -1425,6 +1463,52 @@ def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path)
     return _Rows(arr, np.array(line_no, dtype=np.int64), numbers.seen_thousands, stray)
 
 
+_LETTER_LINE = re.compile(r"^[ \t]*[^\W\d_].*$", re.M)
+
+
+def _parse_fast_around_text(block: str, layout: _Layout, cols: tuple,
+                            first_line: int) -> _Rows | None:
+    """The fast path for a block with a few text lines ("Lamp change") among its rows:
+    each becomes a row of NaN for :func:`numpy.loadtxt` and is then taken out again,
+    so one note in a million rows does not send them all down the slow path. None if
+    this does not apply; the slow path then decides (and reports) exactly."""
+    if 0 in layout.text_columns:
+        return None
+    numbers = _Numbers(layout.decimal)
+    found = []
+    for m in _LETTER_LINE.finditer(block):
+        s = m.group().strip()
+        if _is_comment(s):
+            continue
+        toks = _split(s, layout.delimiter)
+        if all(c < len(toks) and numbers.parse(toks[c]) is not None for c in cols):
+            continue                         # "nan;50": a row, read as usual
+        if len(found) == _MAX_STRAY or _header_like(s, layout.delimiter, layout.header_text):
+            return None
+        found.append(m)
+    if not found:
+        return None
+    filler = ("\t" if layout.delimiter == " " else layout.delimiter).join(
+        ["nan"] * layout.n_columns)
+    pieces, pos = [], 0
+    for m in found:
+        pieces += [block[pos:m.start()], filler]
+        pos = m.end()
+    table = _parse_fast("".join(pieces) + block[pos:], layout, cols)
+    if table is None:
+        return None
+    index, line, pos = [], 0, 0
+    for m in found:                          # line of each, counted in one pass
+        line += block.count("\n", pos, m.start())
+        pos = m.start()
+        index.append(line)
+    keep = np.ones(table.shape[0], dtype=bool)
+    keep[index] = False
+    line_no = first_line + np.arange(table.shape[0], dtype=np.int64)
+    stray = [(int(first_line + i), m.group().strip()) for i, m in zip(index, found)]
+    return _Rows(table[keep], line_no[keep], False, stray)
+
+
 def _stray_note(stray: list) -> str:
     shown = ", ".join(f"line {n} ({t[:30]!r})" for n, t in stray[:5])
     more = f" and {len(stray) - 5} more" if len(stray) > 5 else ""
@@ -1447,7 +1531,8 @@ def _read_rows(text: str, layout: _Layout, cols: tuple, path, notes: list) -> tu
     if table is not None:
         rows = _Rows(table, first_line + np.arange(table.shape[0], dtype=np.int64), False, [])
     else:
-        rows = _parse_slow(block, layout, cols, first_line, path)
+        rows = _parse_fast_around_text(block, layout, cols, first_line) or \
+            _parse_slow(block, layout, cols, first_line, path)
     if rows.stray:
         notes.append(_stray_note(rows.stray))
     return rows, footer
@@ -1827,7 +1912,14 @@ def _finish(parsed: _Parsed, options: ReaderOptions, raw: bytes, path: str,
                     sha256=hashlib.sha256(raw).hexdigest(), metadata=parsed.metadata,
                     warnings=tuple(parsed.warnings))
     if options.sigma == "estimate":
-        spec = replace(spec, sigma=estimate_noise(spec))
+        with np.errstate(over="ignore"):
+            sigma = estimate_noise(spec)
+        if not np.all(np.isfinite(sigma)):
+            top = float(np.max(np.abs(spec.values)))
+            raise _fail(path, None, f"values up to {top:g} are too large to estimate their "
+                        "noise; check the file, or read it without sigma='estimate'",
+                        expected="values below 1e300", found=f"{top:g}")
+        spec = replace(spec, sigma=sigma)
     elif options.sigma is not None:
         spec = replace(spec, sigma=np.full(len(spec), float(options.sigma)))
     if options.range_nm is not None:

@@ -273,7 +273,8 @@ def oracle_problem(spec, want, raw: bytes, oracle, options) -> str:
             j = np.flatnonzero(np.isclose(full.wavelength_nm, extra[0], rtol=1e-9))
             if j.size and np.isclose(full.values[j[0]], spec.values[i], rtol=1e-3, atol=1e-5):
                 return ""
-            return f"cut last line {line!r} read as {spec.values[i]!r} at {extra[0]!r} nm"
+            return (f"cut last line {line!r} read as {float(spec.values[i]):g} at "
+                    f"{float(extra[0]):g} nm")
     return f"{len(spec)} points read, {len(want)} expected (line {drop}, {line[:30]!r}, " \
            "should not count)"
 
