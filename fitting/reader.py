@@ -990,11 +990,13 @@ def _layout(text: str, options: "ReaderOptions", path,
         if len(data_rows) >= min_rows:
             cut = next((i for i, (k, _) in enumerate(kinds)
                         if i > data_rows[0] and k in (_TEXT, _SINGLE)), data_rows[0])
-            raise _fail(path, cut + 1, "a line of text interrupts the rows of numbers",
+            raise _fail(path, cut + 1, "a line of text interrupts the rows of numbers; delete "
+                        "it or move it above the table",
                         expected="one table: only rows of numbers between the first and the "
                                  "last data row", found=lines[cut].strip()[:80])
         raise _fail(path, data_rows[0] + 1, f"only {len(data_rows)} data rows were found, at "
-                    f"least {min_rows} are needed" + _head_note(lines, complete),
+                    f"least {min_rows} are needed" + _head_note(lines, complete) + "; check that "
+                    "the whole spectrum was exported",
                     expected=f"{min_rows} or more rows of numbers",
                     found=lines[data_rows[0]].strip()[:80])
     run = next(i for i in range(start, len(kinds)) if kinds[i][0] in (_DATA, _MIXED, _WIDE))
@@ -1429,7 +1431,8 @@ def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path)
         if not s or _is_comment(s):
             continue
         if len(s) > _MAX_LINE:
-            raise _fail(path, first_line + i, "line is too long for a row of a spectrum table",
+            raise _fail(path, first_line + i, "line is too long for a row of a spectrum table; "
+                        "check that this is a spectrum export",
                         expected=f"at most {_MAX_LINE} characters", found=s[:40] + "...")
         toks = _split(s, layout.delimiter)
         row = []
@@ -1543,12 +1546,14 @@ def _read_rows(text: str, layout: _Layout, cols: tuple, path, notes: list) -> tu
 def _resolve_column(spec, names, n_columns, which, path, header_line):
     if isinstance(spec, int):
         if spec >= n_columns:
-            raise _fail(path, header_line, f"{which} column {spec} does not exist",
+            raise _fail(path, header_line, f"{which} column {spec} does not exist; set the "
+                    f"reader's {which}_column to one of the file's columns",
                         expected=f"an index from 0 to {n_columns - 1}", found=str(spec))
         return spec
     if not any(names):
         raise _fail(path, header_line, f"{which} column {spec!r} was given by name, but the file "
-                    "has no column names", expected="a column index (0, 1, ...)", found=spec)
+                    "has no column names; give the column by its index (0 is the first)",
+                    expected="a column index (0, 1, ...)", found=spec)
     want = _norm_text(spec)
     normed = [_norm_text(n) for n in names]
     if want in normed:
@@ -1556,7 +1561,8 @@ def _resolve_column(spec, names, n_columns, which, path, header_line):
     hits = [i for i, n in enumerate(normed) if want in n]
     if len(hits) == 1:
         return hits[0]
-    raise _fail(path, header_line, f"no single {which} column is named {spec!r}",
+    raise _fail(path, header_line, f"no single {which} column is named {spec!r}; use "
+                f"one of the file's column names for {which}_column",
                 expected="one of " + ", ".join(repr(n) for n in names if n), found=spec)
 
 
@@ -1589,7 +1595,8 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
     if options.y_column is not None:
         y = _resolve_column(options.y_column, names, n, "y", path, layout.header_line)
     if x is not None and x == y:
-        raise _fail(path, layout.header_line, "x and y columns are the same column",
+        raise _fail(path, layout.header_line, "x and y columns are the same column; choose two "
+                    "different columns",
                     expected="two different columns", found=str(x))
     for c, which in ((x, "x"), (y, "y")):
         if c is not None and c in layout.text_columns:
@@ -1601,7 +1608,8 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
     if x is None:
         if not free:
             raise _fail(path, layout.start + 1, "no column of numbers is left for the "
-                        "wavelength", expected="a column of wavelengths",
+                        "wavelength; check the reader's x_column and y_column",
+                        expected="a column of wavelengths",
                         found=f"{n} column(s), {len(layout.text_columns)} of them text")
         x = next((i for i in free if _abscissa_label(names[i])[0]
                   and _ordinate_label(names[i]) is None), None)
@@ -1613,7 +1621,8 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
     if y is None:
         if not free:
             raise _fail(path, layout.start + 1, "only one column of numbers is left for the "
-                        "values", expected="a second column of numbers",
+                        "values; check the reader's x_column and y_column",
+                        expected="a second column of numbers",
                         found=f"{n} column(s)" + (f", {len(layout.text_columns)} of them text"
                                                   if layout.text_columns else ""))
         usable = [i for i in free if np.isfinite(layout.sample[:, i]).mean() >= 0.5
@@ -1774,7 +1783,8 @@ def _source_bytes(source) -> tuple[bytes, str]:
         with open(path, "rb") as fh:
             return fh.read(), str(path)
     except OSError as exc:
-        raise _fail(path, None, f"cannot read the file ({exc.strerror or exc})") from exc
+        raise _fail(path, None, f"cannot read the file ({exc.strerror or exc}); check the "
+                    "path and that you may read the file") from exc
 
 
 def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
@@ -1833,7 +1843,8 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     if wl.size < MIN_POINTS:
         at = int(lines_ok[0]) if lines_ok.size else first_line
         raise _fail(path, at, f"only {wl.size} usable data points, at least {MIN_POINTS} are "
-                    "needed", expected=f"{MIN_POINTS} or more rows with a wavelength and a value",
+                    "needed; check that the right columns are read and that the rows hold "
+                    "numbers", expected=f"{MIN_POINTS} or more rows with a wavelength and a value",
                     found=f"{wl.size} point(s)")
     if order == "unsorted":
         warn.append("the wavelengths were not in order and have been sorted")
@@ -1853,7 +1864,8 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
         wl = uniq
         if wl.size < MIN_POINTS:
             raise _fail(path, first_line, f"only {wl.size} distinct wavelengths, at least "
-                        f"{MIN_POINTS} are needed", expected="distinct wavelengths",
+                        f"{MIN_POINTS} are needed; check that the wavelength column is the "
+                        "right one (x_column)", expected="distinct wavelengths",
                         found=f"{wl.size}")
     if y_kind != "counts":
         _flag_range(wl, val, warn)
@@ -1885,7 +1897,8 @@ def _refuse_compressed_jcamp(text: str, layout: _Layout, path):
         if re.sub(r"[^a-z]", "", key.lower()) == "xydata" and "++" in value:
             m = re.search(r"^.*XYDATA.*$", text, re.M | re.I)
             line = text.count("\n", 0, m.start()) + 1 if m else None
-            raise _fail(path, line, "compressed JCAMP-DX data (X++(Y..Y)) is not supported",
+            raise _fail(path, line, "compressed JCAMP-DX data (X++(Y..Y)) is not supported; "
+                        "export the spectrum as XY pairs or as CSV",
                         expected="a two-column table, e.g. JCAMP-DX (XY..XY) or CSV",
                         found=value[:40])
 
@@ -1926,7 +1939,8 @@ def _finish(parsed: _Parsed, options: ReaderOptions, raw: bytes, path: str,
         lo, hi = options.range_nm
         spec = spec.cropped(lo, hi)
         if len(spec) < MIN_POINTS:
-            raise _fail(path, None, f"the range {lo:g}-{hi:g} nm keeps only {len(spec)} points",
+            raise _fail(path, None, f"the range {lo:g}-{hi:g} nm keeps only {len(spec)} points; "
+                        "widen range_nm",
                         expected=f"a range with at least {MIN_POINTS} points within "
                                  f"{parsed.wavelength_nm[0]:g}-{parsed.wavelength_nm[-1]:g} nm",
                         found=f"{len(spec)} point(s)")
