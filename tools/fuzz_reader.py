@@ -33,6 +33,7 @@ import argparse
 import codecs
 import multiprocessing as mp
 import random
+import re
 import sys
 import tempfile
 import time
@@ -102,7 +103,7 @@ def _line_edit(rng: random.Random, raw: bytes):
     text, codec, bom = _decode(raw)
     lines = text.split("\n")
     op = rng.choice(("delete", "duplicate", "swap", "insert", "replace", "token",
-                     "columns", "separator", "decimal"))
+                     "columns", "separator", "decimal", "quote", "textcol"))
     i = rng.randrange(len(lines))
     if op == "delete":
         del lines[i]
@@ -130,6 +131,18 @@ def _line_edit(rng: random.Random, raw: bytes):
     elif op == "separator":
         a, b = rng.choice(SEPARATORS), rng.choice(SEPARATORS)
         lines = [line.replace(a, b) for line in lines]
+    elif op == "quote":                       # "500,5","81,25" as spreadsheets write it
+        comma = rng.random() < 0.5
+        lines = [",".join(f'"{t.replace(".", ",") if comma else t}"'
+                          for t in re.split(r"[\t;, ]+", line.strip()))
+                 if line[:1].isdigit() else line for line in lines]
+    elif op == "textcol":                     # a detector column of words
+        sep = rng.choice(("\t", ";", ",", " "))
+        words = rng.choice((("PMT", "InGaAs"), ("ok",), ("Si", "PbS", "")))
+        front = rng.random() < 0.3
+        lines = [(f"{rng.choice(words)}{sep}{line}" if front else
+                  f"{line}{sep}{rng.choice(words)}") if line[:1].isdigit() else line
+                 for line in lines]
     else:
         a, b = rng.choice(((".", ","), (",", "."), (".", "·"), (",", "·"), (".", ""),
                            (".", "'")))
