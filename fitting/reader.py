@@ -13,13 +13,20 @@ which recipes store as JSON.
 
 Unreadable input raises :class:`~fitting.errors.SpectrumFormatError` naming the
 file, the line, what was expected and what was found; problems that do not stop
-reading (dropped rows, values above 100 % ...) go into ``Spectrum.warnings``.
+reading go into ``Spectrum.warnings`` with their line numbers: dropped rows,
+values above 100 %, a text line between data rows ("Lamp change", skipped), a
+text column ("PMT" / "InGaAs", ignored), a last row cut off without a line
+break (dropped). Nothing non-finite or non-positive ever reaches a spectrum.
 
 Parsing is two-stage: the dialect is sniffed from the first lines in Python,
 then the data block is parsed in one vectorised call (:func:`numpy.loadtxt`).
 Only files the fast path refuses (missing values, comments or quotes inside the
 data, thousands separators) take the exact line-by-line path, which is also the
-one that reports errors.
+one that reports errors. The work is bounded: the table must start within the
+first :data:`_MAX_HEAD_LINES` lines (a file that is no spectrum is refused
+without reading the rest), rows of more than :data:`_MAX_COLUMNS` fields are
+refused without parsing their cells, and every later step is linear in the size
+of the file. ``tools/fuzz_reader.py`` checks all of this on mutated exports.
 """
 
 from __future__ import annotations
@@ -1973,8 +1980,10 @@ def read_spectrum(path, *, options: ReaderOptions | None = None) -> Spectrum:
     SpectrumFormatError
         The file cannot be read: empty, binary, undecodable, a single column,
         text in a numeric column, fewer than 5 points, values that are neither
-        fraction nor percent, a non-positive abscissa, or unknown column names.
-        The message names the file and line, what was expected and found.
+        fraction nor percent, a non-positive abscissa, unknown column names,
+        more than 256 columns, several tables or more than 20 text lines among
+        the rows, or no table within the head of the file. The message names
+        the file and line, what was expected and found, and what to do.
 
     Examples
     --------
