@@ -1932,13 +1932,16 @@ def _finish(parsed: _Parsed, options: ReaderOptions, raw: bytes, path: str,
                     sha256=hashlib.sha256(raw).hexdigest(), metadata=parsed.metadata,
                     warnings=tuple(parsed.warnings))
     if options.sigma == "estimate":
+        # The estimate scales with the values; raw counts near the largest double would
+        # overflow its differences, so they are estimated in units of their maximum.
+        top = float(np.max(np.abs(spec.values)))
+        scale = top if top > 1e150 else 1.0
         with np.errstate(over="ignore"):
-            sigma = estimate_noise(spec)
+            sigma = estimate_noise(spec.values / scale) * scale
         if not np.all(np.isfinite(sigma)):
-            top = float(np.max(np.abs(spec.values)))
             raise _fail(path, None, f"values up to {top:g} are too large to estimate their "
                         "noise; check the file, or read it without sigma='estimate'",
-                        expected="values below 1e300", found=f"{top:g}")
+                        expected="values below 1e307", found=f"{top:g}")
         spec = replace(spec, sigma=sigma)
     elif options.sigma is not None:
         spec = replace(spec, sigma=np.full(len(spec), float(options.sigma)))

@@ -232,19 +232,15 @@ def estimate_noise(spectrum, *, window: int | None = 201) -> np.ndarray:
     if window is not None and (not isinstance(window, (int, np.integer)) or window < 5):
         raise ParameterError("window", window, "must be an integer of at least 5 or None")
     y = np.where(np.isfinite(y), y, np.nanmedian(y) if np.isfinite(y).any() else 0.0)
-    # Work in units of the largest value: raw counts near 1e308 would overflow d2.
-    scale = float(np.max(np.abs(y)))
-    scale = scale if 0.0 < scale < np.inf else 1.0
-    y = y / scale
     d2 = y[:-2] - 2.0 * y[1:-1] + y[2:]
     factor = MAD_TO_SIGMA / math.sqrt(6.0)
     global_sigma = factor * _mad(d2)
-    floor = max(0.25 * global_sigma, _SIGMA_FLOOR / scale)
+    floor = max(0.25 * global_sigma, _SIGMA_FLOOR)
     if window is None or d2.size < 2 * window:
-        return np.full(y.size, max(global_sigma, floor)) * scale
+        return np.full(y.size, max(global_sigma, floor))
     centre = median_filter(d2, size=window, mode="reflect")
     local = factor * median_filter(np.abs(d2 - centre), size=window, mode="reflect")
     # A running median of |d2| jumps between neighbouring order statistics; the
     # mean over one more window makes the weights it feeds smooth.
     local = uniform_filter1d(local, size=window, mode="reflect")
-    return np.maximum(np.pad(local, 1, mode="edge"), floor) * scale
+    return np.maximum(np.pad(local, 1, mode="edge"), floor)

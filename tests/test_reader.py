@@ -698,6 +698,16 @@ def test_values_are_finite_after_conversion_and_averaging():
     big = table([(400, 1.5e308), (400, 1.7e308)] + [(401 + i, 1e3) for i in range(5)])
     c = parse_spectrum(big, options=ReaderOptions(y_kind="counts"))
     assert c.values[0] == pytest.approx(1.6e308) and np.all(np.isfinite(c.values))
+    # Their noise estimate is finite too (the estimate scales with the values), or the
+    # file is refused by name when even that overflows.
+    huge = table([(400 + i, (1e306, 3e306)[i % 2]) for i in range(12)])
+    h = parse_spectrum(huge, options=ReaderOptions(y_kind="counts", sigma="estimate"))
+    small = parse_spectrum(huge.replace("e+306", "e+06"),
+                           options=ReaderOptions(y_kind="counts", sigma="estimate"))
+    np.testing.assert_allclose(h.sigma, small.sigma * 1e300, rtol=1e-9)
+    swing = table([(400 + i, (1.7e308, -1.7e308)[i % 2]) for i in range(12)])
+    with pytest.raises(SpectrumFormatError, match="too large to estimate their noise"):
+        parse_spectrum(swing, options=ReaderOptions(y_kind="counts", sigma="estimate"))
 
 
 def test_cut_short_last_row_is_dropped_with_a_note():
