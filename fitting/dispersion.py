@@ -531,31 +531,78 @@ class Tabulated(Dispersion):
 
     @classmethod
     def from_file(cls, path) -> "Tabulated":
-        """Read a whitespace/comma/semicolon separated table: wavelength (nm), n, κ."""
-        from .errors import SpectrumFormatError  # local: only this path needs it
-        rows = []
-        with open(path, encoding="utf-8-sig", errors="replace") as fh:
-            for lineno, line in enumerate(fh, start=1):
-                s = line.strip()
-                if not s or s[0] in "#;%" or s[0].isalpha():
-                    continue
-                parts = s.replace(";", " ").replace(",", " ").replace("\t", " ").split()
-                try:
-                    vals = [float(x) for x in parts[:3]]
-                except ValueError:
-                    raise SpectrumFormatError(path, lineno, "not a number in n, κ table",
-                                              expected="wavelength n [κ]", found=s) from None
-                if len(vals) < 2:
-                    raise SpectrumFormatError(path, lineno, "too few columns",
-                                              expected="wavelength n [κ]", found=s)
-                rows.append(vals + [0.0] * (3 - len(vals)))
-        if len(rows) < 2:
-            raise SpectrumFormatError(path, None, "an n, κ table needs at least 2 data rows")
-        a = np.array(rows)
+        """Read a table of wavelength, n and (optionally) κ.
+
+        The table is parsed by the spectrum reader (:func:`fitting.reader.read_table`):
+        tab, ';', ',' or space separated, decimal point or comma (``400;2,10;0,01``),
+        UTF-8/16 or Latin-1, a header and "# key: value" lines above it. Columns named
+        in the header are found by name (wavelength or λ; n; k, κ or kappa), as in
+        Pellucid's own ``*_nk_*.csv`` exports; otherwise they are taken in the order
+        wavelength, n, κ. Wavelengths are in nm unless the column name gives µm, Å,
+        cm⁻¹ or eV. A row without a κ value, or a table without a κ column, has κ = 0.
+
+        Raises
+        ------
+        SpectrumFormatError
+            Naming the file and line: no table, text where a number belongs, a missing
+            wavelength or n, a non-positive wavelength, a negative κ, a repeated
+            wavelength, unitless wavelengths that look like µm, fewer than 2 rows.
+        """
+        import re
+
+        from .reader import abscissa_unit, read_table, to_nm
+        table = read_table(path)
+        names = [re.sub(r"[\s_]*[(\[].*$", "", n).strip().lower() for n in table.names]
+
+        def find(*words):
+            return next((i for i, n in enumerate(names) if n in words), None)
+        wl_i = next((i for i, n in enumerate(table.names)
+                     if re.match(r"\s*(wavelength|wave length|lambda|λ|wl\b)", n, re.I)), None)
+        n_i, k_i = find("n"), find("k", "κ", "kappa")
+        if wl_i is None or n_i is None:          # no names: wavelength, n, κ in that order
+            wl_i, n_i = 0, 1
+            k_i = 2 if table.values.shape[1] > 2 else None
+        if table.values.shape[1] < 2:
+            raise table.fail(0, "an n, κ table needs a wavelength and an n column",
+                             expected="wavelength n [κ]", found=f"{table.values.shape[1]} "
+                             "column(s) of numbers")
+        wl = table.values[:, wl_i]
+        n = table.values[:, n_i]
+        k = np.zeros_like(n) if k_i is None else table.values[:, k_i]
+        k = np.where(np.isnan(k), 0.0, k)
+        for what, col in (("wavelength", wl), ("n", n), ("κ", k)):
+            bad = np.flatnonzero(~np.isfinite(col))
+            if bad.size:
+                raise table.fail(bad[0], f"this row has no finite {what} value; complete or "
+                                 "delete the row", expected="wavelength n [κ]",
+                                 found=f"{col[bad[0]]:g}")
+        unit = abscissa_unit(table.names[wl_i]) if table.names else None
+        if unit is None and wl.max() <= 30:
+            raise table.fail(0, f"wavelengths {wl.min():g}-{wl.max():g} with no unit look "
+                             "like µm (or eV), not nm; state the unit in the column name, "
+                             "e.g. 'Wavelength (µm)'", expected="wavelengths in nm",
+                             found=f"{wl[0]:g}")
+        if (wl <= 0).any():
+            at = int(np.flatnonzero(wl <= 0)[0])
+            raise table.fail(at, "wavelengths must be positive", expected="a wavelength > 0",
+                             found=f"{wl[at]:g}")
+        if (k < 0).any():
+            at = int(np.flatnonzero(k < 0)[0])
+            raise table.fail(at, "κ must not be negative (an absorbing material has κ > 0)",
+                             expected="κ >= 0", found=f"{k[at]:g}")
+        wl = to_nm(wl, unit or "nm")
+        _, first = np.unique(wl, return_index=True)
+        if first.size < wl.size:
+            at = int(np.setdiff1d(np.arange(wl.size), first)[0])
+            raise table.fail(at, "this wavelength appears twice; keep one row per wavelength",
+                             expected="distinct wavelengths", found=f"{wl[at]:g} nm")
+        if wl.size < 2:
+            raise table.fail(None, "an n, κ table needs at least 2 data rows",
+                             expected="2 or more rows", found=f"{wl.size}")
         try:
-            return cls(a[:, 0], a[:, 1], a[:, 2], name=str(path))
+            return cls(wl, n, k, name=str(path))
         except ParameterError as e:
-            raise SpectrumFormatError(path, None, str(e)) from None
+            raise table.fail(None, str(e)) from None
 
     def _N(self, wl, v):
         return np.interp(wl, self.wl, self.n) + 1j * np.interp(wl, self.wl, self.k)

@@ -13,13 +13,20 @@ which recipes store as JSON.
 
 Unreadable input raises :class:`~fitting.errors.SpectrumFormatError` naming the
 file, the line, what was expected and what was found; problems that do not stop
-reading (dropped rows, values above 100 % ...) go into ``Spectrum.warnings``.
+reading go into ``Spectrum.warnings`` with their line numbers: dropped rows,
+values above 100 %, a text line between data rows ("Lamp change", skipped), a
+text column ("PMT" / "InGaAs", ignored), a last row cut off without a line
+break (dropped). Nothing non-finite or non-positive ever reaches a spectrum.
 
 Parsing is two-stage: the dialect is sniffed from the first lines in Python,
 then the data block is parsed in one vectorised call (:func:`numpy.loadtxt`).
 Only files the fast path refuses (missing values, comments or quotes inside the
 data, thousands separators) take the exact line-by-line path, which is also the
-one that reports errors.
+one that reports errors. The work is bounded: the table must start within the
+first :data:`_MAX_HEAD_LINES` lines (a file that is no spectrum is refused
+without reading the rest), rows of more than :data:`_MAX_COLUMNS` fields are
+refused without parsing their cells, and every later step is linear in the size
+of the file. ``tools/fuzz_reader.py`` checks all of this on mutated exports.
 """
 
 from __future__ import annotations
@@ -49,6 +56,7 @@ from .units import ev_to_nm, nm_to_ev, nm_to_wavenumber, wavenumber_to_nm
 __all__ = [
     "Dialect", "Preview", "ReaderOptions", "read_spectrum", "parse_spectrum", "sniff",
     "preview", "write_spectrum", "reference_correct", "estimate_noise", "to_nm", "from_nm",
+    "Table", "read_table", "abscissa_unit",
     "bench_read", "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
 ]
 
@@ -79,10 +87,20 @@ _ENCODING_ALIASES = {"utf8": "utf-8", "utf-8": "utf-8", "utf-8-sig": "utf-8-sig"
                      "latin-1": "latin-1", "latin1": "latin-1", "iso-8859-1": "latin-1",
                      "cp1252": "cp1252", "windows-1252": "cp1252"}
 
-#: Lines scanned to sniff the dialect; grown if the header is longer.
+#: Lines scanned to sniff the dialect; grown (x8) if the header is longer.
 _SNIFF_LINES = 400
+#: The table must start within this head of the file; past it the file is refused
+#: without reading further, so the work spent on a file that is no spectrum is bounded.
+_MAX_HEAD_LINES = 25_600
+_MAX_HEAD_CHARS = 1_000_000
 #: A line this long is not a row of a spectrum table.
 _MAX_LINE = 100_000
+#: More columns than this is no spectrum export (and would make every row costly).
+_MAX_COLUMNS = 256
+#: Text lines between data rows ("Lamp change") skipped with a note; more is refused.
+_MAX_STRAY = 20
+#: Footer lines kept in the metadata.
+_MAX_FOOTER = 200
 
 
 # --------------------------------------------------------------------------- units
@@ -293,6 +311,9 @@ class Dialect:
         "values" (inferred from the numbers) or "option" (given by the user).
     n_rows : int
         Data rows read (before dropping rows without a number).
+    text_columns : tuple of int
+        0-based columns that hold words (e.g. a detector name, "PMT" / "InGaAs"); they
+        are never read as wavelength or values.
     """
 
     delimiter: str = "\t"
@@ -312,6 +333,7 @@ class Dialect:
     x_unit_from: str = ""
     y_kind_from: str = ""
     n_rows: int = 0
+    text_columns: tuple = ()
 
     def __post_init__(self):
         def check(name, allowed):
@@ -327,7 +349,8 @@ class Dialect:
         check("y_kind", Y_KINDS)
         check("metadata_style", METADATA_STYLES)
         check("x_order", X_ORDERS)
-        if self.decimal == self.delimiter:
+        # Decimal comma and comma separator together: every number quoted ("500,5").
+        if self.decimal == self.delimiter and self.delimiter != ",":
             raise ParameterError("dialect.decimal", self.decimal,
                                  "cannot also be the column delimiter")
         if self.thousands == self.decimal:
@@ -335,11 +358,13 @@ class Dialect:
                                  "cannot also be the decimal mark")
         if self.columns is not None:
             object.__setattr__(self, "columns", tuple(str(c) for c in self.columns))
+        object.__setattr__(self, "text_columns", tuple(int(c) for c in self.text_columns))
 
     def to_dict(self) -> dict:
         """Plain, JSON-ready dict of all fields."""
         d = asdict(self)
         d["columns"] = None if self.columns is None else list(self.columns)
+        d["text_columns"] = list(self.text_columns)
         return d
 
     def describe(self) -> str:
@@ -352,12 +377,15 @@ class Dialect:
             return f"column {i + 1}" + (f" '{name}'" if name else "")
 
         decimal = "comma" if self.decimal == "," else "point"
+        if self.decimal == self.delimiter:
+            decimal += " (numbers in quotes)"
         thou = f", thousands separator {self.thousands!r}" if self.thousands else ""
+        text = "".join(f"; {column(c)} holds text and is not read" for c in self.text_columns)
         return (f"columns separated by {_DELIMITER_NAMES[self.delimiter]}, decimal {decimal}"
                 f"{thou}, {self.encoding}; wavelength from {column(self.x_column)} in "
                 f"{_UNIT_NAMES[self.x_unit]} ({_FROM_NAMES.get(self.x_unit_from, 'given')}); "
                 f"values from {column(self.y_column)} as {_KIND_NAMES[self.y_kind]} "
-                f"({_FROM_NAMES.get(self.y_kind_from, 'given')}); data from line "
+                f"({_FROM_NAMES.get(self.y_kind_from, 'given')}){text}; data from line "
                 f"{self.header_lines + 1}, {self.n_rows} rows")
 
 
@@ -383,6 +411,7 @@ class Preview:
     lines: tuple
     dialect: Dialect | None
     problem: str = ""
+    notes: tuple = ()           # what the reader skipped or chose, as Spectrum.warnings
 
 
 # --------------------------------------------------------------------------- options
@@ -414,7 +443,8 @@ class ReaderOptions:
         "auto" or one of :data:`DELIMITERS` (or "tab", "semicolon", "comma",
         "whitespace").
     decimal : str
-        "auto", "." or ",".
+        "auto", "." or ",". A comma as both decimal mark and delimiter is read
+        only with quoted numbers (``"500,5","81,25"``), as spreadsheets write them.
     encoding : str
         "auto" or one of :data:`ENCODINGS`.
     range_nm : (float, float) or None
@@ -476,7 +506,7 @@ class ReaderOptions:
         set_("delimiter", delim)
         if self.decimal not in ("auto", *DECIMALS):
             raise RecipeError("decimal", f"must be 'auto', '.' or ',', got {self.decimal!r}")
-        if self.decimal != "auto" and self.decimal == self.delimiter:
+        if self.decimal != "auto" and self.decimal == self.delimiter != ",":
             raise RecipeError("decimal", f"{self.decimal!r} cannot be both decimal mark and "
                                          f"delimiter")
         if self.encoding != "auto":
@@ -688,6 +718,9 @@ class _Numbers:
     def parse(self, token: str) -> float | None:
         """float; NaN for a missing-value marker; None for text."""
         tok = token.strip().strip('"').strip()
+        if tok[:1].isalpha():            # a word, unless it spells a missing value or inf
+            low = tok.lower()
+            return math.nan if low in _MISSING else _INF.get(low)
         if self.plain.match(tok):
             return float(tok.replace(",", ".") if self.decimal == "," else tok)
         low = tok.lower()
@@ -725,7 +758,22 @@ def _is_comment(stripped: str) -> bool:
 
 # Row kinds while sniffing. _BROKEN: starts with a number but holds text, i.e. a
 # damaged data row (it belongs to the data block and is reported when parsed).
-_BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT, _BROKEN = range(7)
+# _MIXED: two or more numbers beside words, a row of a table with a text column
+# ("400;87.2;PMT"). _WIDE: more than _MAX_COLUMNS fields.
+_BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT, _BROKEN, _MIXED, _WIDE = range(9)
+_NUMERIC_ROWS = (_DATA, _MIXED)
+_HAS_DIGIT = re.compile(r"\d")
+#: Word cells a row of a table with text columns may hold; more is a line of text.
+_MAX_WORDS = 4
+
+
+def _is_missing(v) -> bool:
+    return v is not None and v != v
+
+
+def _is_word(token: str) -> bool:
+    """A text cell ("PMT", "InGaAs"), as opposed to a damaged number ("5O", "1.2.3")."""
+    return token.strip().strip('"')[:1].isalpha()
 
 
 def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
@@ -738,22 +786,50 @@ def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
     if len(s) > _MAX_LINE:
         return _TEXT, 0
     toks = _split(s, delimiter)
-    n_num = n_missing = 0
+    if not _HAS_DIGIT.search(s):         # words, or a row of missing values ("--;--")
+        missing = all(_is_missing(numbers.parse(t)) for t in toks)
+        return (_GAP if missing else _TEXT), len(toks)
+    if len(toks) > _MAX_COLUMNS:
+        return _WIDE, len(toks)
+    n_num = n_words = 0
     for tok in toks:
         v = numbers.parse(tok)
         if v is None:
+            if _is_word(tok):
+                n_words += 1
+                if n_words > _MAX_WORDS:
+                    return _TEXT, len(toks)
+                continue
             if len(toks) > 1 and numbers.parse(toks[0]) is not None:
                 return _BROKEN, len(toks)
             return _TEXT, len(toks)
-        if v != v:
-            n_missing += 1
-        else:
+        if v == v:
             n_num += 1
+    if n_words:
+        if n_num >= 2:
+            return _MIXED, len(toks)
+        if numbers.parse(toks[0]) is not None and n_num:
+            return _BROKEN, len(toks)
+        return _TEXT, len(toks)
     if n_num >= 2:
         return _DATA, len(toks)
     if n_num == 1 and len(toks) == 1:
         return _SINGLE, 1
     return _GAP, len(toks)
+
+
+_ROWLIKE = (_DATA, _GAP, _BROKEN, _MIXED, _WIDE)
+
+
+def _header_like(line: str, delimiter: str, header: str | None = None) -> bool:
+    """Column names ("Wavelength (nm);T (%)"): the detected header line, or an abscissa
+    name followed by an ordinate name."""
+    s = line.strip()
+    if header is not None and s == header.strip():
+        return True
+    toks = _split(s, delimiter)
+    return (len(toks) >= 2 and _abscissa_label(toks[0].strip('"'))[0]
+            and _ordinate_label(toks[1].strip('"')) is not None)
 
 
 # --------------------------------------------------------------------------- sniffing
@@ -772,12 +848,17 @@ class _Layout:
     comments: list
     metadata_style: str
     header_line: int | None     # 1-based line of the column names
+    text_columns: tuple = ()    # 0-based columns holding words ("PMT"), never read
+    text_examples: dict = None  # column -> a few of its distinct words, for the notes
+    notes: list = None          # what sniffing noticed (data-like lines before the table)
+    header_text: str | None = None  # the line of column names as written
 
 
-def _head_lines(text: str, n: int) -> tuple[list[str], bool]:
-    """The first ``n`` lines and whether they are all the text holds."""
+def _head_lines(text: str, n: int, max_chars: int = _MAX_HEAD_CHARS) -> tuple[list[str], bool]:
+    """The first ``n`` lines (at most about ``max_chars`` characters) and whether they
+    are all the text holds."""
     lines, pos = [], 0
-    while len(lines) < n:
+    while len(lines) < n and pos < max_chars:
         end = text.find("\n", pos)
         if end < 0:
             lines.append(text[pos:])
@@ -787,28 +868,49 @@ def _head_lines(text: str, n: int) -> tuple[list[str], bool]:
     return lines, pos >= len(text)
 
 
-def _choose_dialect(lines, options, path):
-    """Score each (delimiter, decimal) by how many lines parse as numeric rows."""
+def _choose_dialect(lines, options, path, evidence: dict | None = None):
+    """Score each (delimiter, decimal) by how many lines parse as numeric rows.
+
+    ``evidence``, if given, receives what a refusal needs without another pass over
+    the lines: "broken", the damaged rows of the candidate with most of them, and
+    "single", per decimal mark, the lines holding one number (whitespace candidates).
+    """
     delims = DELIMITERS if options.delimiter == "auto" else (options.delimiter,)
     decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
+    quoted = any('"' in line for line in lines)
     best, best_key = None, None
     for pri, delim in enumerate(delims):
         for dec in decs:
-            if dec == delim:
+            # Decimal comma and comma separator only together with quoted fields
+            # ("500,5","81,25"), as spreadsheets write them.
+            if dec == delim and not (delim == "," and quoted):
                 continue
             numbers = _Numbers(dec)
             kinds = [_row_kind(line, delim, numbers) for line in lines]
-            n_data = sum(1 for k, _ in kinds if k == _DATA)
+            if evidence is not None:
+                broken = [i for i, (k, _) in enumerate(kinds) if k == _BROKEN]
+                if broken and len(broken) > len(evidence.get("broken", ((),))[0]):
+                    evidence["broken"] = (broken, delim, numbers)
+                if delim == " ":
+                    evidence.setdefault("single", {})[dec] = [
+                        i for i, (k, _) in enumerate(kinds) if k == _SINGLE]
+            n_data = sum(1 for k, _ in kinds if k in _NUMERIC_ROWS or k == _WIDE)
             if n_data == 0:
                 continue
             # A comma inside numbers argues for the decimal comma, its absence for
             # the point; the explicit separators outrank "any whitespace".
-            commas = any("," in tok for line, (k, _) in zip(lines, kinds) if k == _DATA
-                         for tok in _split(line.strip(), delim))
+            commas = any(_comma_in_number(line, delim)
+                         for line, (k, _) in zip(lines, kinds) if k in _NUMERIC_ROWS)
             key = (n_data, (dec == ",") == commas, -pri)
             if best_key is None or key > best_key:
                 best, best_key = (delim, dec, kinds, numbers), key
     return best
+
+
+def _comma_in_number(line: str, delim: str) -> bool:
+    if delim != ",":
+        return "," in line
+    return '"' in line and any("," in tok for tok in _split(line.strip(), delim))
 
 
 #: "100 ms", "2.5 nm": a metadata value with a unit, never a column name.
@@ -825,81 +927,198 @@ def _key_value(s: str):
     return m.group(1).strip(), m.group(3).strip(), ("colon" if m.group(2) == ":" else "equals")
 
 
-def _layout(text: str, options: "ReaderOptions", path) -> _Layout:
+def _layout(text: str, options: "ReaderOptions", path,
+            min_rows: int = MIN_POINTS) -> _Layout:
+    """Dialect, start of the data, columns and preamble, from a bounded head of the text.
+
+    The head grows from 400 lines (x8) only while no table has been found, and never
+    beyond :data:`_MAX_HEAD_LINES` lines or :data:`_MAX_HEAD_CHARS` characters: a file
+    with no table there is refused without reading the rest.
+    """
     n = _SNIFF_LINES
     while True:
         lines, complete = _head_lines(text, n)
-        choice = _choose_dialect(lines, options, path)
+        evidence: dict = {}
+        choice = _choose_dialect(lines, options, path, evidence)
         start = None
         if choice is not None:
             delim, dec, kinds, numbers = choice
-            start = _first_run(kinds, complete)
-        if start is not None or complete:
+            start = _first_run(lines, kinds, complete, delim, min_rows)
+        if start is not None or complete or n >= _MAX_HEAD_LINES \
+                or len(lines) < n:           # stopped by the character limit
             break
         n *= 8
     first_content = next((i for i, line in enumerate(lines) if line.strip()), 0)
     if choice is None:
-        single = _find_single(lines, options)
+        if options.delimiter == options.decimal == "," and \
+                not any('"' in line for line in lines):
+            raise _fail(path, first_content + 1, "the reader is set to decimal comma and "
+                        "comma separator, which only works with quoted numbers "
+                        "(\"500,5\",\"81,25\"), and this file has no quotes; set the "
+                        "delimiter or the decimal mark to 'auto'",
+                        expected="quoted numbers", found=lines[first_content].strip()[:80])
+        single = _find_single(lines, options, evidence)
         if single is not None:
             raise _one_column(path, single + 1, lines[single])
+        broken = _first_broken(lines, evidence)
+        if broken is not None and not _garbled(lines):
+            at, token = broken
+            raise _fail(path, at + 1, "rows of numbers were found, but their numbers hold "
+                        "characters that are no digits or decimal mark; export again with "
+                        "'.' or ',' as decimal mark, or correct the file",
+                        expected="numbers like 450.5 or 450,5", found=token[:40])
         if _garbled(lines):
             raise _fail(path, first_content + 1, "the text is unreadable: the file is saved "
                         "in a character encoding Pellucid does not know (it reads UTF-8, "
                         "UTF-16, UTF-32, Latin-1 and Windows-1252); save or export it again "
                         "as UTF-8 text, or set the reader's encoding",
                         expected="readable text")
-        raise _fail(path, first_content + 1, "no rows of two or more numbers were found; "
-                    "check that this is a spectrum table with a wavelength column and a T or "
-                    "R column", expected="rows like '450.5<tab>87.2' or '450,5;87,2'",
+        raise _fail(path, first_content + 1, "no rows of two or more numbers were found"
+                    + _head_note(lines, complete) + "; check that this is a spectrum table "
+                    "with a wavelength column and a T or R column",
+                    expected="rows like '450.5<tab>87.2' or '450,5;87,2'",
+                    found=lines[first_content].strip()[:80])
+    if start is None and not complete:
+        raise _fail(path, first_content + 1, "no table of numbers was found"
+                    + _head_note(lines, complete) + "; this does not look like a spectrum "
+                    "export: check that this is a spectrum table with a wavelength column "
+                    "and a T or R column", expected="a table of at least "
+                    f"{min_rows} rows like '450.5<tab>87.2'",
                     found=lines[first_content].strip()[:80])
     if options.delimiter == "auto" and options.decimal == "auto":
         single = _decimal_comma_column(lines, kinds, delim, dec)
         if single is not None:
             raise _one_column(path, single + 1, lines[single])
     if start is None:
-        data_rows = [i for i, (k, _) in enumerate(kinds) if k == _DATA]
-        if len(data_rows) >= MIN_POINTS:
+        data_rows = [i for i, (k, _) in enumerate(kinds) if k in _NUMERIC_ROWS]
+        if not data_rows:                    # only rows past the column limit
+            wide = next(i for i, (k, _) in enumerate(kinds) if k == _WIDE)
+            raise _too_wide(path, wide + 1, kinds[wide][1])
+        if len(data_rows) >= min_rows:
             cut = next((i for i, (k, _) in enumerate(kinds)
                         if i > data_rows[0] and k in (_TEXT, _SINGLE)), data_rows[0])
-            raise _fail(path, cut + 1, "a line of text interrupts the rows of numbers",
+            raise _fail(path, cut + 1, "a line of text interrupts the rows of numbers; delete "
+                        "it or move it above the table",
                         expected="one table: only rows of numbers between the first and the "
                                  "last data row", found=lines[cut].strip()[:80])
         raise _fail(path, data_rows[0] + 1, f"only {len(data_rows)} data rows were found, at "
-                    f"least {MIN_POINTS} are needed", expected=f"{MIN_POINTS} or more rows of "
-                    "numbers", found=lines[data_rows[0]].strip()[:80])
-    counts = [nf for (k, nf) in kinds[start:start + 200] if k == _DATA]
+                    f"least {min_rows} are needed" + _head_note(lines, complete) + "; check that "
+                    "the whole spectrum was exported",
+                    expected=f"{min_rows} or more rows of numbers",
+                    found=lines[data_rows[0]].strip()[:80])
+    run = next(i for i in range(start, len(kinds)) if kinds[i][0] in (_DATA, _MIXED, _WIDE))
+    if kinds[run][0] == _WIDE:
+        raise _too_wide(path, run + 1, kinds[run][1])
+    # Field count of the table: the commonest among its first numeric rows (the run
+    # found above starts with one, so the list is never empty).
+    counts = [nf for k, nf in kinds[start:] if k in _NUMERIC_ROWS][:200]
     n_columns = max(set(counts), key=counts.count)
-    rows = [line for line, (k, _) in zip(lines[start:], kinds[start:]) if k in (_DATA, _GAP)]
-    sample = np.full((min(len(rows), 500), n_columns), np.nan)
-    for r, line in enumerate(rows[:500]):
+    rows = [line for line, (k, _) in zip(lines[start:], kinds[start:])
+            if k in (_DATA, _GAP, _MIXED)][:500]
+    sample = np.full((len(rows), n_columns), np.nan)
+    words = np.zeros((len(rows), n_columns), dtype=bool)
+    examples: dict = {}
+    for r, line in enumerate(rows):
         for c, tok in enumerate(_split(line.strip(), delim)[:n_columns]):
             v = numbers.parse(tok)
-            sample[r, c] = math.nan if v is None else v
+            if v is None:
+                words[r, c] = _is_word(tok)
+                if words[r, c] and len(examples.setdefault(c, [])) < 3 \
+                        and tok.strip('"') not in examples[c]:
+                    examples[c].append(tok.strip('"')[:20])
+            else:
+                sample[r, c] = v
+    present = np.maximum((np.isfinite(sample) | words).sum(axis=0), 1)
+    text_columns = tuple(int(c) for c in np.flatnonzero(words.sum(axis=0) > 0.5 * present))
     names, header_line, metadata, comments, style = _preamble(
         lines[:start], delim, numbers, n_columns)
+    notes = _stray_rows_before(lines, kinds, start, n_columns)
     return _Layout(delim, dec, start, names, n_columns, sample, metadata, comments, style,
-                   header_line)
+                   header_line, text_columns, {c: examples.get(c, []) for c in text_columns},
+                   notes, None if header_line is None else lines[header_line - 1])
 
 
-def _first_run(kinds, complete: bool) -> int | None:
-    """First data row followed by 3 more data or gap rows (or by the end of the file)."""
-    content = [(i, k) for i, (k, _) in enumerate(kinds) if k not in (_BLANK, _COMMENT_ROW)]
-    rowlike = (_DATA, _GAP, _BROKEN)
+def _head_note(lines, complete: bool) -> str:
+    if complete:
+        return ""
+    return (f" in the first {len(lines):,} lines (where a spectrum export has its table; "
+            "the rest of the file was not read)")
+
+
+def _too_wide(path, line: int, n_fields: int) -> SpectrumFormatError:
+    return _fail(path, line, f"the table has {n_fields} columns, more than the "
+                 f"{_MAX_COLUMNS} Pellucid reads; export only the wavelength column and the "
+                 "spectrum's T or R column (or split the table into one file per spectrum)",
+                 expected=f"at most {_MAX_COLUMNS} columns", found=f"{n_fields} columns")
+
+
+def _stray_lines(lines, kinds, delim) -> set:
+    """Indices of short runs (up to 3) of text lines between numeric rows: notes such as
+    "Lamp change" inside the data, not the end of a header. Column names never are."""
+    content = [i for i, (k, _) in enumerate(kinds) if k not in (_BLANK, _COMMENT_ROW)]
+    stray: set = set()
+    j = 0
+    while j < len(content):
+        if kinds[content[j]][0] != _TEXT:
+            j += 1
+            continue
+        e = j
+        while e < len(content) and kinds[content[e]][0] == _TEXT:
+            e += 1
+        run = content[j:e]
+        if (j > 0 and e < len(content) and len(run) <= 3
+                and kinds[content[j - 1]][0] in (_DATA, _MIXED, _GAP)
+                and kinds[content[e]][0] in _NUMERIC_ROWS
+                and not any(_header_like(lines[i], delim) for i in run)):
+            stray.update(run)
+        j = e
+    return stray
+
+
+def _first_run(lines, kinds, complete: bool, delim: str,
+               min_rows: int = MIN_POINTS) -> int | None:
+    """First numeric row followed by 3 more row-like rows (or by the end of the file).
+
+    Short runs of text lines between numeric rows (:func:`_stray_lines`) do not break
+    a run: they are skipped, with a note, when the data block is read.
+    """
+    stray = _stray_lines(lines, kinds, delim)
+    content = [(i, k) for i, (k, _) in enumerate(kinds)
+               if k not in (_BLANK, _COMMENT_ROW) and i not in stray]
     for j, (i, k) in enumerate(content):
-        if k != _DATA:
+        if k not in (_DATA, _MIXED, _WIDE):
             continue
         follow = content[j + 1:j + 4]
-        if not all(kk in rowlike for _, kk in follow):
+        if not all(kk in _ROWLIKE for _, kk in follow):
             continue
+        if k == _MIXED and not all(kk == _MIXED and kinds[ii][1] == kinds[i][1]
+                                   for ii, kk in follow):
+            continue                 # words and numbers in a header line, not a text column
         if len(follow) < 3 and complete:
-            n_data = sum(1 for _, kk in content[j:] if kk == _DATA)
-            if n_data < MIN_POINTS:
+            n_data = sum(1 for _, kk in content[j:] if kk in _NUMERIC_ROWS or kk == _BROKEN)
+            if n_data < min_rows:
                 return None
-        # A damaged first row belongs to the data and must be reported, not skipped.
-        while j > 0 and content[j - 1][1] == _BROKEN:
-            j -= 1
+        # Damaged first rows belong to the data and must be reported, not skipped,
+        # also when rows of missing values ("-nan") sit among them.
+        k = j
+        while k > 0 and content[k - 1][1] in (_BROKEN, _GAP):
+            k -= 1
+        j = next((t for t in range(k, j) if content[t][1] == _BROKEN), j)
         return content[j][0]
     return None
+
+
+def _stray_rows_before(lines, kinds, start: int, n_columns: int) -> list:
+    """A note on numeric rows above the table, cut off from it by text: not read."""
+    rows = [i for i, (k, nf) in enumerate(kinds[:start]) if k == _DATA and nf == n_columns]
+    if not rows:
+        return []
+    shown = ", ".join(f"line {i + 1} ({lines[i].strip()[:30]!r})" for i in rows[:3])
+    more = f" and {len(rows) - 3} more" if len(rows) > 3 else ""
+    return [f"{shown}{more} above the table look{'s' if len(rows) == 1 else ''} like data but "
+            f"{'is' if len(rows) == 1 else 'are'} separated from it by text and "
+            f"{'was' if len(rows) == 1 else 'were'} not read; check the file if "
+            f"{'it belongs' if len(rows) == 1 else 'they belong'} to the spectrum"]
 
 
 def _one_column(path, line: int, text: str) -> SpectrumFormatError:
@@ -950,11 +1169,25 @@ def _decimal_comma_column(lines, kinds, delim, dec) -> int | None:
     return rows[0][0] if leading_zero or not_abscissa else None
 
 
-def _find_single(lines, options) -> int | None:
+def _first_broken(lines, evidence: dict) -> tuple[int, str] | None:
+    """(line index, damaged token) of the first damaged row ("300<tab>313·14") under the
+    dialect with most of them, or None."""
+    if "broken" not in evidence:
+        return None
+    rows, delim, numbers = evidence["broken"]
+    toks = _split(lines[rows[0]].strip(), delim)
+    return rows[0], next((t for t in toks if numbers.parse(t) is None), toks[0])
+
+
+def _find_single(lines, options, evidence: dict) -> int | None:
+    """Index of the first line of a one-column table of numbers, or None."""
     decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
     for dec in decs:
-        numbers = _Numbers(dec)
-        hits = [i for i, line in enumerate(lines) if _row_kind(line, " ", numbers)[0] == _SINGLE]
+        hits = evidence.get("single", {}).get(dec)
+        if hits is None:                 # the delimiter was set: not scanned for spaces
+            numbers = _Numbers(dec)
+            hits = [i for i, line in enumerate(lines)
+                    if _row_kind(line, " ", numbers)[0] == _SINGLE]
         if len(hits) >= 2:
             return hits[0]
     return None
@@ -1069,32 +1302,79 @@ def _line_offsets(text: str, start: int) -> int:
     return pos
 
 
-def _data_block(text: str, layout: _Layout) -> tuple[str, list]:
-    """The data lines (as one string) and the footer lines after them."""
+def _data_block(text: str, layout: _Layout) -> tuple[str, list, bool]:
+    """The data lines (as one string), the footer lines after them, and whether the
+    data run to the very end of the file, with no line break after the last row."""
     begin = _line_offsets(text, layout.start)
     block = text[begin:]
     footer: list = []
     sect = re.search(r"\n[ \t]*\[[^\]\n]{0,200}\][ \t]*(?=\n|\Z)", block)
     if sect:
-        footer = block[sect.start() + 1:].split("\n")
+        footer = block[sect.start() + 1:].split("\n", _MAX_FOOTER)
         block = block[:sect.start()]
     numbers = _Numbers(layout.decimal)
-    # Trailing lines that are plainly not data (text, key: value, comments).
+    # Trailing lines that are plainly not data (text, key: value, comments), walked
+    # back by index so that a long tail costs one pass, not one copy per line.
     tail: list = []
-    while block:
-        cut = block.rfind("\n")
-        last = block[cut + 1:]
+    end = len(block)
+    while end > 0 and len(tail) < 5000:
+        cut = block.rfind("\n", 0, end)
+        last = block[cut + 1:end]
         s = last.strip()
-        if s and not (_is_comment(s) or (s[0].isalpha() or s[0] in "[*=_")
-                      and numbers.parse(_split(s, layout.delimiter)[0]) is None):
-            break
+        if s and not _is_comment(s):
+            toks = _split(s, layout.delimiter)
+            if not (s[0].isalpha() or s[0] in "[*=_") or numbers.parse(toks[0]) is not None \
+                    or _is_text_column_row(toks, layout):
+                break
         tail.append(last)
-        if cut < 0:
-            block = ""
-            break
-        block = block[:cut]
-    footer = [t for t in reversed(tail) if t.strip()] + [t for t in footer if t.strip()]
-    return block, footer
+        end = max(cut, 0)
+    open_end = not sect and not tail
+    block = block[:end]
+    footer = [t[:500] for t in reversed(tail) if t.strip()] + \
+        [t[:500] for t in footer if t.strip()]
+    if len(footer) > _MAX_FOOTER:
+        footer = footer[:_MAX_FOOTER] + [f"... (footer cut after {_MAX_FOOTER} lines)"]
+    return block, footer, open_end
+
+
+def _digits(token: str) -> int:
+    return sum(ch.isdigit() for ch in token)
+
+
+def _cut_short_last_line(block: str, layout: _Layout, first_line: int):
+    """``block`` without its last line if the file ends inside that line, and a note.
+
+    A file whose last row has no line break after it and fewer fields, or fewer digits
+    in its last field, than the rows above was cut off while being written ("551,8"
+    after rows of "550,81.49"): reading it would give a wrong point (8 % instead of
+    81 %). Complete last rows without a line break are common and are kept.
+    """
+    cut = block.rfind("\n")
+    last = block[cut + 1:].strip()
+    if cut < 0 or not last or _is_comment(last):
+        return block, None
+    above, end = [], cut
+    while end > 0 and len(above) < 20:
+        prev = block.rfind("\n", 0, end)
+        line = block[prev + 1:end].strip()
+        end = max(prev, 0)
+        if line and not _is_comment(line):
+            above.append(_split(line, layout.delimiter))
+    if not above:
+        return block, None
+    toks = _split(last, layout.delimiter)
+    counts = [len(t) for t in above]
+    usual = max(set(counts), key=counts.count)
+    same = [t for t in above if len(t) == usual]
+    short = len(toks) < usual or (
+        len(toks) == usual and _digits(toks[-1]) < min(_digits(t[-1]) for t in same))
+    if not short:
+        return block, None
+    line = first_line + block.count("\n")
+    return block[:cut], (f"the last line (line {line}, {last[:40]!r}) has no line break after "
+                         "it and is shorter than the rows above it: the file was cut off "
+                         "while being saved, so that line was not read; export the spectrum "
+                         "again if its last point matters")
 
 
 def _parse_fast(block: str, layout: _Layout, cols: tuple) -> np.ndarray | None:
@@ -1120,36 +1400,152 @@ def _parse_fast(block: str, layout: _Layout, cols: tuple) -> np.ndarray | None:
     return arr
 
 
-def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path):
-    """Line by line, exact: missing values, comments, quotes and thousands groups."""
+@dataclass
+class _Rows:
+    """Numbers of the chosen columns of the data block, and what was skipped (internal)."""
+
+    table: np.ndarray                   # (rows, columns), NaN for a missing value
+    line_no: np.ndarray                 # 1-based line of each row
+    thousands: bool = False             # thousands groups seen ("1,234.5")
+    stray: list = None                  # (line, text) of text lines skipped
+
+
+def _column_label(layout: _Layout, c: int) -> str:
+    name = layout.names[c] if c < len(layout.names) and layout.names[c] else ""
+    return f"column {c + 1}" + (f" ({name!r})" if name else "")
+
+
+def _is_text_column_row(toks: list, layout: _Layout) -> bool:
+    """A row of a table whose first column is text ("PMT;400;87.2")."""
+    return 0 in layout.text_columns and len(toks) == layout.n_columns
+
+
+def _is_text_line(s: str, toks: list, layout: _Layout) -> bool:
+    """A note between data rows ("Lamp change"), not a damaged row ("403;5O")."""
+    if _is_text_column_row(toks, layout):
+        return False
+    return s[0].isalpha() or not _HAS_DIGIT.search(s)
+
+
+def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path) -> _Rows:
+    """Line by line, exact: missing values, comments, quotes, thousands groups and text
+    lines between the rows (skipped and listed; column names repeated, or more than
+    :data:`_MAX_STRAY` text lines, mean several tables or damage and are refused)."""
     numbers = _Numbers(layout.decimal)
-    out, line_no = [], []
+    out, line_no, stray = [], [], []
     for i, line in enumerate(block.split("\n")):
         s = line.strip()
         if not s or _is_comment(s):
             continue
         if len(s) > _MAX_LINE:
-            raise _fail(path, first_line + i, "line is too long for a row of a spectrum table",
+            raise _fail(path, first_line + i, "line is too long for a row of a spectrum table; "
+                        "check that this is a spectrum export",
                         expected=f"at most {_MAX_LINE} characters", found=s[:40] + "...")
         toks = _split(s, layout.delimiter)
         row = []
         for c in cols:
-            if c >= len(toks):
-                row.append(math.nan)
-                continue
-            v = numbers.parse(toks[c])
+            v = numbers.parse(toks[c]) if c < len(toks) else math.nan
             if v is None:
-                name = layout.names[c] if c < len(layout.names) and layout.names[c] else ""
-                label = f"column {c + 1}" + (f" ({name!r})" if name else "")
-                raise _fail(path, first_line + i, f"{label} holds text where a number is "
-                            f"expected", expected=f"a number with decimal mark "
-                            f"{layout.decimal!r}, columns separated by "
-                            f"{_DELIMITER_NAMES[layout.delimiter]}", found=toks[c][:60])
+                break
             row.append(v)
+        if len(row) < len(cols):
+            if not _is_text_line(s, toks, layout):
+                c = cols[len(row)]
+                raise _fail(path, first_line + i, f"{_column_label(layout, c)} holds text "
+                            f"where a number is expected; correct or delete that line",
+                            expected=f"a number with decimal mark {layout.decimal!r}, columns "
+                            f"separated by {_DELIMITER_NAMES[layout.delimiter]}",
+                            found=toks[c][:60])
+            if _header_like(s, layout.delimiter, layout.header_text):
+                raise _fail(path, first_line + i, "column names again: the file holds more "
+                            "than one table; save each spectrum in a file of its own",
+                            expected="one table of numbers", found=s[:80])
+            stray.append((first_line + i, s))
+            if len(stray) > _MAX_STRAY:
+                raise _fail(path, stray[0][0], f"more than {_MAX_STRAY} lines of text among "
+                            "the data rows: this is not one spectrum table, or it is damaged; "
+                            "export the spectrum again as one table",
+                            expected="rows of numbers", found=stray[0][1][:80])
+            continue
         out.append(row)
         line_no.append(first_line + i)
     arr = np.array(out, dtype=float).reshape(-1, len(cols))
-    return arr, np.array(line_no, dtype=np.int64), numbers.seen_thousands
+    return _Rows(arr, np.array(line_no, dtype=np.int64), numbers.seen_thousands, stray)
+
+
+_LETTER_LINE = re.compile(r"^[ \t]*[^\W\d_].*$", re.M)
+
+
+def _parse_fast_around_text(block: str, layout: _Layout, cols: tuple,
+                            first_line: int) -> _Rows | None:
+    """The fast path for a block with a few text lines ("Lamp change") among its rows:
+    each becomes a row of NaN for :func:`numpy.loadtxt` and is then taken out again,
+    so one note in a million rows does not send them all down the slow path. None if
+    this does not apply; the slow path then decides (and reports) exactly."""
+    if 0 in layout.text_columns:
+        return None
+    numbers = _Numbers(layout.decimal)
+    found = []
+    for m in _LETTER_LINE.finditer(block):
+        s = m.group().strip()
+        if _is_comment(s):
+            continue
+        toks = _split(s, layout.delimiter)
+        if all(c < len(toks) and numbers.parse(toks[c]) is not None for c in cols):
+            continue                         # "nan;50": a row, read as usual
+        if len(found) == _MAX_STRAY or _header_like(s, layout.delimiter, layout.header_text):
+            return None
+        found.append(m)
+    if not found:
+        return None
+    filler = ("\t" if layout.delimiter == " " else layout.delimiter).join(
+        ["nan"] * layout.n_columns)
+    pieces, pos = [], 0
+    for m in found:
+        pieces += [block[pos:m.start()], filler]
+        pos = m.end()
+    table = _parse_fast("".join(pieces) + block[pos:], layout, cols)
+    if table is None:
+        return None
+    index, line, pos = [], 0, 0
+    for m in found:                          # line of each, counted in one pass
+        line += block.count("\n", pos, m.start())
+        pos = m.start()
+        index.append(line)
+    keep = np.ones(table.shape[0], dtype=bool)
+    keep[index] = False
+    line_no = first_line + np.arange(table.shape[0], dtype=np.int64)
+    stray = [(int(first_line + i), m.group().strip()) for i, m in zip(index, found)]
+    return _Rows(table[keep], line_no[keep], False, stray)
+
+
+def _stray_note(stray: list) -> str:
+    shown = ", ".join(f"line {n} ({t[:30]!r})" for n, t in stray[:5])
+    more = f" and {len(stray) - 5} more" if len(stray) > 5 else ""
+    if len(stray) == 1:
+        return (f"{shown} is text between data rows and was skipped; the rows around it were "
+                "read as usual")
+    return (f"{len(stray)} lines of text between data rows were skipped: {shown}{more}; the "
+            "rows around them were read as usual")
+
+
+def _read_rows(text: str, layout: _Layout, cols: tuple, path, notes: list) -> tuple:
+    """(rows, footer) of the data block: fast path, else line by line; notes appended."""
+    block, footer, open_end = _data_block(text, layout)
+    first_line = layout.start + 1
+    if open_end:
+        block, note = _cut_short_last_line(block, layout, first_line)
+        if note:
+            notes.append(note)
+    table = _parse_fast(block, layout, cols)
+    if table is not None:
+        rows = _Rows(table, first_line + np.arange(table.shape[0], dtype=np.int64), False, [])
+    else:
+        rows = _parse_fast_around_text(block, layout, cols, first_line) or \
+            _parse_slow(block, layout, cols, first_line, path)
+    if rows.stray:
+        notes.append(_stray_note(rows.stray))
+    return rows, footer
 
 
 # --------------------------------------------------------------------------- columns
@@ -1157,12 +1553,14 @@ def _parse_slow(block: str, layout: _Layout, cols: tuple, first_line: int, path)
 def _resolve_column(spec, names, n_columns, which, path, header_line):
     if isinstance(spec, int):
         if spec >= n_columns:
-            raise _fail(path, header_line, f"{which} column {spec} does not exist",
+            raise _fail(path, header_line, f"{which} column {spec} does not exist; set the "
+                    f"reader's {which}_column to one of the file's columns",
                         expected=f"an index from 0 to {n_columns - 1}", found=str(spec))
         return spec
     if not any(names):
         raise _fail(path, header_line, f"{which} column {spec!r} was given by name, but the file "
-                    "has no column names", expected="a column index (0, 1, ...)", found=spec)
+                    "has no column names; give the column by its index (0 is the first)",
+                    expected="a column index (0, 1, ...)", found=spec)
     want = _norm_text(spec)
     normed = [_norm_text(n) for n in names]
     if want in normed:
@@ -1170,7 +1568,8 @@ def _resolve_column(spec, names, n_columns, which, path, header_line):
     hits = [i for i, n in enumerate(normed) if want in n]
     if len(hits) == 1:
         return hits[0]
-    raise _fail(path, header_line, f"no single {which} column is named {spec!r}",
+    raise _fail(path, header_line, f"no single {which} column is named {spec!r}; use "
+                f"one of the file's column names for {which}_column",
                 expected="one of " + ", ".join(repr(n) for n in names if n), found=spec)
 
 
@@ -1203,10 +1602,22 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
     if options.y_column is not None:
         y = _resolve_column(options.y_column, names, n, "y", path, layout.header_line)
     if x is not None and x == y:
-        raise _fail(path, layout.header_line, "x and y columns are the same column",
+        raise _fail(path, layout.header_line, "x and y columns are the same column; choose two "
+                    "different columns",
                     expected="two different columns", found=str(x))
-    free = [i for i in range(n) if i not in (x, y)]
+    for c, which in ((x, "x"), (y, "y")):
+        if c is not None and c in layout.text_columns:
+            raise _fail(path, layout.start + 1, f"the {which} column, {_column_label(layout, c)}, "
+                        "holds text, not numbers; choose a column of numbers",
+                        expected="a column of numbers",
+                        found=", ".join(layout.text_examples.get(c, [])))
+    free = [i for i in range(n) if i not in (x, y) and i not in layout.text_columns]
     if x is None:
+        if not free:
+            raise _fail(path, layout.start + 1, "no column of numbers is left for the "
+                        "wavelength; check the reader's x_column and y_column",
+                        expected="a column of wavelengths",
+                        found=f"{n} column(s), {len(layout.text_columns)} of them text")
         x = next((i for i in free if _abscissa_label(names[i])[0]
                   and _ordinate_label(names[i]) is None), None)
         if x is None:
@@ -1216,8 +1627,11 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
         free.remove(x)
     if y is None:
         if not free:
-            raise _fail(path, layout.start + 1, "only one column is left for the values",
-                        expected="a second numeric column", found=f"{n} column(s)")
+            raise _fail(path, layout.start + 1, "only one column of numbers is left for the "
+                        "values; check the reader's x_column and y_column",
+                        expected="a second column of numbers",
+                        found=f"{n} column(s)" + (f", {len(layout.text_columns)} of them text"
+                                                  if layout.text_columns else ""))
         usable = [i for i in free if np.isfinite(layout.sample[:, i]).mean() >= 0.5
                   and not _is_index(layout.sample[:, i])]
         y = next((i for i in usable if _ordinate_label(names[i]) is not None), None)
@@ -1226,6 +1640,17 @@ def _choose_columns(layout: _Layout, options: ReaderOptions, path) -> tuple[int,
         if y is None:
             y = usable[0] if usable else free[0]
     return x, y
+
+
+def _text_column_note(layout: _Layout) -> str | None:
+    if not layout.text_columns:
+        return None
+    parts = []
+    for c in layout.text_columns:
+        words = ", ".join(repr(w) for w in layout.text_examples.get(c, []))
+        parts.append(f"{_column_label(layout, c)} holds text" + (f" ({words})" if words else "")
+                     + " and was not read")
+    return "; ".join(parts) + "; wavelength and values were taken from the columns of numbers"
 
 
 # --------------------------------------------------------------------------- inference
@@ -1365,7 +1790,8 @@ def _source_bytes(source) -> tuple[bytes, str]:
         with open(path, "rb") as fh:
             return fh.read(), str(path)
     except OSError as exc:
-        raise _fail(path, None, f"cannot read the file ({exc.strerror or exc})") from exc
+        raise _fail(path, None, f"cannot read the file ({exc.strerror or exc}); check the "
+                    "path and that you may read the file") from exc
 
 
 def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
@@ -1373,14 +1799,10 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     layout = _layout(text, options, path)
     _refuse_compressed_jcamp(text, layout, path)
     xc, yc = _choose_columns(layout, options, path)
-    block, footer = _data_block(text, layout)
     first_line = layout.start + 1
-    table = _parse_fast(block, layout, (xc, yc))
-    thousands_seen = False              # the fast path refuses thousands groups
-    if table is not None:
-        line_no = first_line + np.arange(table.shape[0])
-    else:
-        table, line_no, thousands_seen = _parse_slow(block, layout, (xc, yc), first_line, path)
+    notes: list = [n for n in [_text_column_note(layout)] if n] + list(layout.notes or [])
+    rows, footer = _read_rows(text, layout, (xc, yc), path, notes)
+    table, line_no = rows.table, rows.line_no
     x, y = table[:, 0], table[:, 1]
     n_rows = x.size
     warn: list = []
@@ -1394,8 +1816,18 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     bad_x = keep & (x <= 0)
     if bad_x.any():
         at = int(np.flatnonzero(bad_x)[0])
-        raise _fail(path, int(line_no[at]), "the abscissa must be positive",
-                    expected=f"a wavelength, wavenumber or energy above 0 ({x_unit})",
+        raise _fail(path, int(line_no[at]), "the abscissa must be positive; correct or delete "
+                    "that line", expected=f"a wavelength, wavenumber or energy above 0 "
+                    f"({x_unit})", found=f"{x[at]:g}")
+    wl = to_nm(x, x_unit)
+    # 1e-320 Å underflows to 0 nm, 1e-320 eV overflows to inf nm: no wavelength at all.
+    bad_wl = keep & ~(np.isfinite(wl) & (wl > 0))
+    if bad_wl.any():
+        at = int(np.flatnonzero(bad_wl)[0])
+        raise _fail(path, int(line_no[at]), f"the abscissa value {x[at]:g} {x_unit} is no "
+                    "usable wavelength (too small or too large to convert to nm); correct "
+                    "that line or set the reader's x_unit",
+                    expected="a wavelength, wavenumber or energy of a UV-Vis-NIR spectrum",
                     found=f"{x[at]:g}")
     order = _order_of(x[keep])
     if options.y_kind != "auto":
@@ -1404,19 +1836,22 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
     else:
         y_kind, y_from = _infer_y_kind(y[keep], line_no[keep], names[yc], layout.metadata,
                                        path, warn)
-    wl = to_nm(x, x_unit)
     val = _to_fraction(y, y_kind)
-    ok = np.isfinite(wl) & np.isfinite(val)
+    ok = keep & np.isfinite(val)
     dropped = int(n_rows - ok.sum())
     if dropped:
-        first = int(line_no[np.flatnonzero(~ok)[0]])
+        bad_lines = line_no[~ok]
+        shown = ", ".join(str(int(n)) for n in bad_lines[:5])
+        more = f" and {dropped - 5} more" if dropped > 5 else ""
         warn.insert(0, f"{dropped} row(s) without a usable number in the wavelength or value "
-                       f"column were dropped (first at line {first})")
+                       f"column were dropped (line {shown}{more})")
+    warn[:0] = notes
     wl, val, lines_ok = wl[ok], val[ok], line_no[ok]
     if wl.size < MIN_POINTS:
         at = int(lines_ok[0]) if lines_ok.size else first_line
         raise _fail(path, at, f"only {wl.size} usable data points, at least {MIN_POINTS} are "
-                    "needed", expected=f"{MIN_POINTS} or more rows with a wavelength and a value",
+                    "needed; check that the right columns are read and that the rows hold "
+                    "numbers", expected=f"{MIN_POINTS} or more rows with a wavelength and a value",
                     found=f"{wl.size} point(s)")
     if order == "unsorted":
         warn.append("the wavelengths were not in order and have been sorted")
@@ -1431,22 +1866,25 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
         uniq, inverse, counts = np.unique(wl, return_inverse=True, return_counts=True)
         n_dup = int(wl.size - uniq.size)
         warn.append(f"{n_dup} repeated wavelength(s) found; the values at each were averaged")
-        val = np.bincount(inverse, weights=val) / counts
+        # Each value divided first: the sum of two values near 1e308 would overflow.
+        val = np.bincount(inverse, weights=val / counts[inverse])
         wl = uniq
         if wl.size < MIN_POINTS:
             raise _fail(path, first_line, f"only {wl.size} distinct wavelengths, at least "
-                        f"{MIN_POINTS} are needed", expected="distinct wavelengths",
+                        f"{MIN_POINTS} are needed; check that the wavelength column is the "
+                        "right one (x_column)", expected="distinct wavelengths",
                         found=f"{wl.size}")
     if y_kind != "counts":
         _flag_range(wl, val, warn)
 
     dialect = Dialect(
         delimiter=layout.delimiter, decimal=layout.decimal,
-        thousands=("," if layout.decimal == "." else ".") if thousands_seen else "",
+        thousands=("," if layout.decimal == "." else ".") if rows.thousands else "",
         encoding=encoding, newline=_newline_of(raw, encoding), x_unit=x_unit, y_kind=y_kind,
         columns=layout.names, metadata_style=layout.metadata_style, x_order=order,
         header_lines=layout.start, n_columns=layout.n_columns, x_column=xc, y_column=yc,
-        x_unit_from=x_from, y_kind_from=y_from, n_rows=int(n_rows))
+        x_unit_from=x_from, y_kind_from=y_from, n_rows=int(n_rows),
+        text_columns=layout.text_columns)
     metadata = {"header": layout.metadata}
     if layout.comments:
         metadata["comments"] = layout.comments
@@ -1454,6 +1892,7 @@ def _parse(raw: bytes, options: ReaderOptions, path) -> _Parsed:
         metadata["footer"] = footer
     metadata["reader"] = dict(dialect.to_dict(), dropped_rows=dropped,
                               data_lines=[int(line_no[0]), int(line_no[-1])] if n_rows else [],
+                              skipped_lines=[int(n) for n, _ in rows.stray],
                               options=options.to_dict())
     metadata["ordinate"] = "counts" if y_kind == "counts" else "fraction"
     return _Parsed(dialect, wl, val, lines_ok, metadata, warn)
@@ -1465,7 +1904,8 @@ def _refuse_compressed_jcamp(text: str, layout: _Layout, path):
         if re.sub(r"[^a-z]", "", key.lower()) == "xydata" and "++" in value:
             m = re.search(r"^.*XYDATA.*$", text, re.M | re.I)
             line = text.count("\n", 0, m.start()) + 1 if m else None
-            raise _fail(path, line, "compressed JCAMP-DX data (X++(Y..Y)) is not supported",
+            raise _fail(path, line, "compressed JCAMP-DX data (X++(Y..Y)) is not supported; "
+                        "export the spectrum as XY pairs or as CSV",
                         expected="a two-column table, e.g. JCAMP-DX (XY..XY) or CSV",
                         found=value[:40])
 
@@ -1492,14 +1932,25 @@ def _finish(parsed: _Parsed, options: ReaderOptions, raw: bytes, path: str,
                     sha256=hashlib.sha256(raw).hexdigest(), metadata=parsed.metadata,
                     warnings=tuple(parsed.warnings))
     if options.sigma == "estimate":
-        spec = replace(spec, sigma=estimate_noise(spec))
+        # The estimate scales with the values; raw counts near the largest double would
+        # overflow its differences, so they are estimated in units of their maximum.
+        top = float(np.max(np.abs(spec.values)))
+        scale = top if top > 1e150 else 1.0
+        with np.errstate(over="ignore"):
+            sigma = estimate_noise(spec.values / scale) * scale
+        if not np.all(np.isfinite(sigma)):
+            raise _fail(path, None, f"values up to {top:g} are too large to estimate their "
+                        "noise; check the file, or read it without sigma='estimate'",
+                        expected="values below 1e307", found=f"{top:g}")
+        spec = replace(spec, sigma=sigma)
     elif options.sigma is not None:
         spec = replace(spec, sigma=np.full(len(spec), float(options.sigma)))
     if options.range_nm is not None:
         lo, hi = options.range_nm
         spec = spec.cropped(lo, hi)
         if len(spec) < MIN_POINTS:
-            raise _fail(path, None, f"the range {lo:g}-{hi:g} nm keeps only {len(spec)} points",
+            raise _fail(path, None, f"the range {lo:g}-{hi:g} nm keeps only {len(spec)} points; "
+                        "widen range_nm",
                         expected=f"a range with at least {MIN_POINTS} points within "
                                  f"{parsed.wavelength_nm[0]:g}-{parsed.wavelength_nm[-1]:g} nm",
                         found=f"{len(spec)} point(s)")
@@ -1532,8 +1983,10 @@ def read_spectrum(path, *, options: ReaderOptions | None = None) -> Spectrum:
     SpectrumFormatError
         The file cannot be read: empty, binary, undecodable, a single column,
         text in a numeric column, fewer than 5 points, values that are neither
-        fraction nor percent, a non-positive abscissa, or unknown column names.
-        The message names the file and line, what was expected and found.
+        fraction nor percent, a non-positive abscissa, unknown column names,
+        more than 256 columns, several tables or more than 20 text lines among
+        the rows, or no table within the head of the file. The message names
+        the file and line, what was expected and found, and what to do.
 
     Examples
     --------
@@ -1592,11 +2045,89 @@ def preview(path, n_lines: int = 20, *, options: ReaderOptions | None = None) ->
     text, _ = _decode(raw, options.encoding, label)
     lines, _ = _head_lines(text, max(int(n_lines), 0))
     try:
-        dialect = _parse(raw, options, label).dialect
-        problem = ""
+        parsed = _parse(raw, options, label)
+        dialect, problem, notes = parsed.dialect, "", tuple(parsed.warnings)
     except SpectrumFormatError as exc:
-        dialect, problem = None, str(exc)
-    return Preview(path=label, lines=tuple(lines[:n_lines]), dialect=dialect, problem=problem)
+        dialect, problem, notes = None, str(exc), ()
+    return Preview(path=label, lines=tuple(lines[:n_lines]), dialect=dialect, problem=problem,
+                   notes=notes)
+
+
+@dataclass(frozen=True)
+class Table:
+    """The columns of numbers of a delimited text table, read the way spectra are read.
+
+    What :func:`read_table` returns, for tables that are not spectra (n, κ tables of
+    materials): same dialect detection, same number syntax, same handling of text
+    columns, stray text lines and a cut-off last line, same error messages.
+
+    Attributes
+    ----------
+    path : str
+        The file (or the label of text in memory).
+    names : tuple of str
+        Name of each column of numbers ("" where the file names none).
+    columns : tuple of int
+        0-based position of each of them in the file (text columns are left out).
+    values : ndarray of shape (rows, len(columns))
+        The numbers; NaN for a missing value or a cell a short row does not have.
+    line_no : ndarray of int
+        1-based line of each row, for messages.
+    metadata : dict
+        "Key: value" lines above the table.
+    notes : tuple of str
+        What was skipped or ignored, as in ``Spectrum.warnings``.
+    """
+
+    path: str
+    names: tuple
+    columns: tuple
+    values: np.ndarray
+    line_no: np.ndarray
+    metadata: dict
+    notes: tuple = ()
+
+    def fail(self, row: int | None, reason: str, *, expected: str = "",
+             found: str = "") -> SpectrumFormatError:
+        """A :class:`SpectrumFormatError` naming the file and the line of ``row``."""
+        line = None if row is None else int(self.line_no[row])
+        return _fail(self.path, line, reason, expected=expected, found=found)
+
+
+def read_table(source, *, options: ReaderOptions | None = None, min_rows: int = 2) -> Table:
+    """Read every column of numbers of a delimited text table.
+
+    Parameters
+    ----------
+    source : path, bytes or text
+        As for :func:`sniff`.
+    options : ReaderOptions, optional
+        ``delimiter``, ``decimal`` and ``encoding`` are used; the rest is ignored.
+    min_rows : int
+        Fewest rows of numbers that make a table (a spectrum needs 5).
+
+    Raises
+    ------
+    SpectrumFormatError
+        As :func:`read_spectrum`: naming the file and line, what was expected and found.
+    """
+    options = options or ReaderOptions()
+    raw, label = _source_bytes(source)
+    text, _ = _decode(raw, options.encoding, label)
+    layout = _layout(text, options, label, min_rows)
+    cols = tuple(c for c in range(layout.n_columns) if c not in layout.text_columns)
+    notes = [n for n in [_text_column_note(layout)] if n] + list(layout.notes or [])
+    rows, _ = _read_rows(text, layout, cols, label, notes)
+    names = layout.names or ("",) * layout.n_columns
+    return Table(path=label, names=tuple(names[c] for c in cols), columns=cols,
+                 values=rows.table, line_no=rows.line_no, metadata=dict(layout.metadata),
+                 notes=tuple(notes))
+
+
+def abscissa_unit(label: str) -> str | None:
+    """Unit (one of :data:`X_UNITS`) a column name states, e.g. "Wavelength (µm)" -> "um";
+    None if it states none."""
+    return _abscissa_label(label)[1]
 
 
 # --------------------------------------------------------------------------- writing
@@ -1704,7 +2235,8 @@ def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
         ys = _format_numbers(y, d, precision)
         body = d.newline.join(a + d.delimiter + b for a, b in zip(xs, ys))
     else:                                # one pass; the decimal comma swapped in C
-        row = f"{{:.{precision}g}}{d.delimiter}{{:.{precision}g}}".format
+        q = '"' if d.decimal == d.delimiter else ""     # "500,5","81,25"
+        row = f"{q}{{:.{precision}g}}{q}{d.delimiter}{q}{{:.{precision}g}}{q}".format
         body = d.newline.join(map(row, x.tolist(), y.tolist()))
         if d.decimal == ",":
             body = body.replace(".", ",")

@@ -361,13 +361,13 @@ def test_tabulated_interpolates_linearly_and_refuses_extrapolation():
 
 def test_tabulated_from_file(tmp_path):
     p = tmp_path / "film.nk"
-    p.write_text("# wavelength n k\nwavelength_nm;n;k\n400;2.0;0.02\n600, 1.8, 0\n800\t1.7\n",
+    p.write_text("# wavelength n k\nwavelength_nm;n;k\n400;2.0;0.02\n600;1.8;0\n800;1.7\n",
                  encoding="utf-8")
     t = Tabulated.from_file(p)
     assert np.allclose(t.N([400.0, 800.0]), [2.0 + 0.02j, 1.7])
     bad = tmp_path / "bad.nk"
     bad.write_text("400 2.0 0\n500 two 0\n", encoding="utf-8")
-    with pytest.raises(SpectrumFormatError, match=r"bad.nk, line 2: not a number"):
+    with pytest.raises(SpectrumFormatError, match=r"bad.nk, line 2: column 2 holds text"):
         Tabulated.from_file(bad)
     neg = tmp_path / "neg.nk"
     neg.write_text("400 2.0 -0.1\n500 2.0 0\n", encoding="utf-8")

@@ -280,13 +280,47 @@ def test_whitespace_metadata_is_not_taken_for_column_names():
     np.testing.assert_allclose(s.wavelength_nm, 1e7 / (20000 - 100 * np.arange(6)))
 
 
-def test_text_between_data_rows_is_reported():
+def test_text_between_data_rows_is_skipped_and_named():
+    # A note between rows ("Lamp change" at a lamp or detector change-over, common
+    # practice in UV-Vis-NIR exports) is skipped with its line; the rows keep their values.
     text = "400;50\nx;3\n401;51\nNote;x\n402;52\n403;53\n404;54\n"
-    with pytest.raises(SpectrumFormatError, match=r"line 2: a line of text interrupts.*'x;3'"):
-        parse_spectrum(text)
+    s = parse_spectrum(text)
+    np.testing.assert_allclose(s.wavelength_nm, [400, 401, 402, 403, 404])
+    np.testing.assert_allclose(s.values, [0.50, 0.51, 0.52, 0.53, 0.54])
+    assert any("line 2 ('x;3')" in w and "line 4 ('Note;x')" in w and "skipped" in w
+               for w in s.warnings)
+    assert s.metadata["reader"]["skipped_lines"] == [2, 4]
     damaged_first = "400;5O\n401;51\n402;52\n403;53\n404;54\n405;55\n"
     with pytest.raises(SpectrumFormatError, match=r"line 1: column 2 holds text.*'5O'"):
         parse_spectrum(damaged_first)
+
+
+def test_stray_line_in_an_energy_export_changes_nothing():
+    # A stray text line right after the first rows of an eV export, inside the lines
+    # used to detect the layout: the same spectrum as without it, plus a note.
+    rows = [(f"{3.1 - 0.01 * i:.4f}", f"{0.5 + 0.001 * i:.4f}") for i in range(60)]
+    head = "Energy (eV)\tT\n"
+    plain = parse_spectrum(head + table(rows, delim="\t"))
+    for at in (1, 2, 30, 58):
+        lines = table(rows, delim="\t").splitlines()
+        lines.insert(at, "Lamp change")
+        s = parse_spectrum(head + "\n".join(lines) + "\n")
+        np.testing.assert_array_equal(s.wavelength_nm, plain.wavelength_nm)
+        np.testing.assert_array_equal(s.values, plain.values)
+        assert s.metadata["reader"]["x_unit"] == "eV"
+        assert any(f"line {at + 2} ('Lamp change')" in w for w in s.warnings), s.warnings
+        assert s.metadata["reader"]["columns"] == ["Energy (eV)", "T"]
+
+
+def test_several_tables_or_much_text_among_rows_are_refused():
+    rows = table([(400 + i, 50) for i in range(30)])
+    with pytest.raises(SpectrumFormatError, match=r"line 32: column names again: the file "
+                       r"holds more than one table"):
+        parse_spectrum("Wavelength (nm);T (%)\n" + rows + "Wavelength (nm);T (%)\n" + rows)
+    noisy = "".join(f"{400 + i};50\nnote {i}\n" for i in range(40))
+    with pytest.raises(SpectrumFormatError, match=r"line 2: more than 20 lines of text among "
+                       r"the data rows.*'note 0'"):
+        parse_spectrum(noisy)
 
 
 def test_column_choice_auto_and_override():
@@ -393,10 +427,11 @@ def test_options_dict_round_trip_and_validation():
     for bad in ({"x_unit": "furlong"}, {"y_kind": "counts%"}, {"delimiter": "|"},
                 {"range_nm": [900, 400]}, {"sigma": -1}, {"sigma": "guess"},
                 {"mask_windows_nm": [[1, 2, 3]]}, {"x_column": -1}, {"x_column": True},
-                {"x_column": 1, "y_column": 1}, {"encoding": "ebcdic"},
-                {"decimal": ",", "delimiter": ","}):
+                {"x_column": 1, "y_column": 1}, {"encoding": "ebcdic"}):
         with pytest.raises(RecipeError):
             ReaderOptions.from_dict(bad)
+    # Comma as decimal mark and separator is the quoted CSV of spreadsheets ("500,5").
+    assert ReaderOptions.from_dict({"decimal": ",", "delimiter": ","}).decimal == ","
 
 
 def test_preview_shows_lines_and_problem(tmp_path):
@@ -611,3 +646,252 @@ def test_command_line_summary(tmp_path, capsys):
     out, err = capsys.readouterr()
     assert "301 points, 300-1100 nm, T; read in" in out and "from the column name" in out
     assert "bad.txt, line 1: no rows of two or more numbers" in err
+
+
+# --------------------------------------------------------------------- damaged exports
+
+DEMO = os.path.join(os.path.dirname(__file__), os.pardir, "demo_data")
+
+
+def _demo_text(*parts):
+    with open(os.path.join(DEMO, *parts), encoding="utf-8-sig") as fh:
+        return fh.read()
+
+
+def test_damaged_rows_before_a_good_run_are_named_not_a_crash():
+    # 295 rows with '·' for the decimal point, then good rows, plus "-nan" and
+    # "100000000000": the first damaged row is named (this once raised ValueError).
+    lines = _demo_text("references", "PL2-T-0115_raw_counts.txt").split("\n")
+    for i in range(5, 300):
+        lines[i] = lines[i].replace(".", "·")
+    lines[7] = "-nan\t100000000000"
+    for options in (ReaderOptions(), ReaderOptions(y_kind="counts")):
+        with pytest.raises(SpectrumFormatError, match=r"line 6: column 2 \('Counts'\) holds "
+                           r"text.*found '313·1445395'"):
+            parse_spectrum("\n".join(lines), options=options)
+    every = _demo_text("references", "PL2-T-0115_raw_counts.txt").replace(".", "·")
+    with pytest.raises(SpectrumFormatError, match=r"line 6: rows of numbers were found, but "
+                       r"their numbers hold characters.*'313·1445395'"):
+        parse_spectrum(every)
+
+
+def test_infinite_energy_is_dropped_not_read_as_zero_nm():
+    # hc / inf = 0 nm: an "inf" in an eV column must not become a wavelength of 0.
+    rows = [(f"{3.0 - 0.1 * i:.2f}", 0.5) for i in range(8)] + [("inf", 0.5), ("1e999", 0.6)]
+    s = parse_spectrum(table(rows, delim="\t", head="Energy (eV)\tT\n"))
+    assert len(s) == 8 and s.wavelength_nm.min() > 0
+    assert any(w.startswith("2 row(s)") and "line 10, 11" in w for w in s.warnings)
+    tiny = table([(5e-324, 0.5)] + [(4000 + 100 * i, 0.5) for i in range(6)],
+                 head="Wavelength (A);T\n")
+    with pytest.raises(SpectrumFormatError, match=r"line 2: the abscissa value 4.94066e-324 A "
+                       r"is no usable wavelength"):
+        parse_spectrum(tiny)
+
+
+def test_values_are_finite_after_conversion_and_averaging():
+    # Absorbance -400 is T = 1e400 (overflow): dropped with its line, never kept as inf.
+    rows = [(400 + i, 0.5) for i in range(6)] + [(406, -400)]
+    s = parse_spectrum(table(rows, head="Wavelength (nm);Absorbance\n"))
+    assert len(s) == 6 and np.all(np.isfinite(s.values))
+    assert any("line 8" in w and "dropped" in w for w in s.warnings)
+    # Two counts near the largest double at one wavelength: their mean, not inf.
+    big = table([(400, 1.5e308), (400, 1.7e308)] + [(401 + i, 1e3) for i in range(5)])
+    c = parse_spectrum(big, options=ReaderOptions(y_kind="counts"))
+    assert c.values[0] == pytest.approx(1.6e308) and np.all(np.isfinite(c.values))
+    # Their noise estimate is finite too (the estimate scales with the values), or the
+    # file is refused by name when even that overflows.
+    huge = table([(400 + i, (1e306, 3e306)[i % 2]) for i in range(12)])
+    h = parse_spectrum(huge, options=ReaderOptions(y_kind="counts", sigma="estimate"))
+    small = parse_spectrum(huge.replace("e+306", "e+06"),
+                           options=ReaderOptions(y_kind="counts", sigma="estimate"))
+    np.testing.assert_allclose(h.sigma, small.sigma * 1e300, rtol=1e-9)
+    swing = table([(400 + i, (1.7e308, -1.7e308)[i % 2]) for i in range(12)])
+    with pytest.raises(SpectrumFormatError, match="too large to estimate their noise"):
+        parse_spectrum(swing, options=ReaderOptions(y_kind="counts", sigma="estimate"))
+
+
+def test_cut_short_last_row_is_dropped_with_a_note():
+    rows = "Wavelength (nm),T (%)\n" + "".join(f"{540 + i},81.49\n" for i in range(11))
+    s = parse_spectrum(rows + "551,8")                   # no line break: cut while saving
+    assert s.wavelength_nm[-1] == 550 and len(s) == 11
+    assert any("line 13, '551,8'" in w and "cut off" in w for w in s.warnings)
+    for cut in ("551,", "551", "551,81.4"):
+        assert parse_spectrum(rows + cut).wavelength_nm[-1] == 550, cut
+    whole = parse_spectrum(rows + "551,81.52")           # complete, no line break: kept
+    assert whole.wavelength_nm[-1] == 551 and whole.warnings == ()
+    ended = parse_spectrum(rows + "551,8\n")             # a line break: a real 8 %
+    assert ended.values[-1] == pytest.approx(0.08)
+
+
+def test_text_column_is_ignored_and_said():
+    det = ["PMT"] * 10 + ["InGaAs"] * 10
+    rows = [(400 + 5 * i, f"{50 + 0.25 * i:.2f}", d) for i, d in enumerate(det)]
+    text = table(rows, head="Wavelength (nm);T (%);Detector\n")
+    s = parse_spectrum(text)
+    np.testing.assert_allclose(s.wavelength_nm, 400 + 5 * np.arange(20))
+    np.testing.assert_allclose(s.values, (50 + 0.25 * np.arange(20)) / 100)
+    assert any("column 3 ('Detector') holds text ('PMT', 'InGaAs') and was not read" in w
+               for w in s.warnings)
+    d = sniff(text)
+    assert d.text_columns == (2,) and "column 3 'Detector' holds text" in d.describe()
+    named = parse_spectrum(text, options=ReaderOptions(x_column="wavelength", y_column="T (%)"))
+    np.testing.assert_array_equal(named.values, s.values)
+    with pytest.raises(SpectrumFormatError, match=r"line 2: the y column, column 3 "
+                       r"\('Detector'\), holds text.*'PMT, InGaAs'"):
+        parse_spectrum(text, options=ReaderOptions(y_column="Detector"))
+    first = table([(d, 400 + 5 * i, 50 + i % 3) for i, d in enumerate(det)], delim="\t")
+    f = parse_spectrum(first)                            # the text column in front
+    np.testing.assert_allclose(f.wavelength_nm[:2], [400, 405])
+    assert f.metadata["reader"]["x_column"] == 1 and f.metadata["reader"]["text_columns"] == [0]
+
+
+def test_preview_states_the_text_column(tmp_path):
+    p = tmp_path / "det.csv"
+    p.write_text(table([(400 + i, 50, "PMT") for i in range(8)], head="nm;T (%);Detector\n"))
+    pv = preview(p)
+    assert pv.problem == "" and pv.dialect.text_columns == (2,)
+    assert any("'Detector'" in n and "not read" in n for n in pv.notes)
+
+
+def test_quoted_decimal_comma_csv():
+    # Spreadsheets with a decimal-comma locale quote numbers when the separator is ','.
+    rows = [(f'"{500 + i / 2:.1f}"'.replace(".", ","), f'"{81 + i / 4:.2f}"'.replace(".", ","))
+            for i in range(10)]
+    s = parse_spectrum(table(rows, delim=",", head='"Wavelength (nm)","T (%)"\n'))
+    np.testing.assert_allclose(s.wavelength_nm, 500 + np.arange(10) / 2)
+    np.testing.assert_allclose(s.values, (81 + np.arange(10) / 4) / 100)
+    d = sniff(table(rows, delim=","))
+    assert (d.delimiter, d.decimal) == (",", ",") and "in quotes" in d.describe()
+    # Integers are left unquoted by the same programs.
+    mixed = table([(500 + i, f'"{81 + i / 4:.2f}"'.replace(".", ",")) for i in range(10)],
+                  delim=",")
+    np.testing.assert_allclose(parse_spectrum(mixed).values, s.values)
+    forced = ReaderOptions(delimiter=",", decimal=",")
+    np.testing.assert_allclose(parse_spectrum(mixed, options=forced).values, s.values)
+    with pytest.raises(SpectrumFormatError, match=r"line 1: .*only works with quoted numbers"):
+        parse_spectrum(table([(500 + i, 81) for i in range(6)], delim=","), options=forced)
+
+
+def test_quoted_decimal_comma_round_trip(tmp_path):
+    spec = smooth_spectrum()
+    path = write_spectrum(tmp_path / "q.csv", spec, dialect=Dialect(delimiter=",", decimal=","))
+    assert '\n"302,6666667","84,0234034"\n' in path.read_text(encoding="utf-8")
+    back = read_spectrum(path)
+    np.testing.assert_allclose(back.values, spec.values, atol=1e-9)
+    assert (sniff(path).delimiter, sniff(path).decimal) == (",", ",")
+
+
+def test_rows_above_the_table_cut_off_by_text_are_mentioned():
+    text = "400;50\nWavelength (nm);T (%)\n" + table([(401 + i, 51 + i) for i in range(6)])
+    s = parse_spectrum(text)
+    assert s.wavelength_nm[0] == 401
+    assert any("line 1 ('400;50')" in w and "not read" in w for w in s.warnings)
+
+
+# --------------------------------------------------------------------- bounded work
+
+def _count_calls(monkeypatch, module, name):
+    calls = []
+    real = getattr(module, name)
+
+    def counting(*args, **kw):
+        calls.append(1)
+        return real(*args, **kw)
+    monkeypatch.setattr(module, name, counting)
+    return calls
+
+
+def test_non_spectrum_text_is_refused_from_a_bounded_head(monkeypatch):
+    # 15 MB of prose (with the odd number): only the head is inspected, the rest never.
+    import fitting.reader as reader
+    line = "the lamp warms up for 20 minutes before the scan of sample 12 starts\n"
+    text = line * (15_000_000 // len(line))
+    rows = _count_calls(monkeypatch, reader, "_row_kind")
+    with pytest.raises(SpectrumFormatError, match=r"line 1: no rows of two or more numbers "
+                       r"were found in the first [\d,]+ lines .*the rest of the file was not "
+                       r"read"):
+        parse_spectrum(text)
+    n_lines = text.count("\n")
+    head = min(reader._MAX_HEAD_LINES, reader._MAX_HEAD_CHARS // len(line) + 1)
+    candidates = len(reader.DELIMITERS) * len(reader.DECIMALS)
+    # Each head line is judged once per candidate dialect and per growth step (x8).
+    assert len(rows) <= candidates * head * 8 / 7 + 2 * candidates * 400
+    assert len(rows) < n_lines                 # fewer than one look per line of the file
+    assert n_lines > 200_000
+
+
+def test_long_header_still_found():
+    head = "".join(f"Setting {i}: value {i}\n" for i in range(1500))
+    s = parse_spectrum(head + "Wavelength (nm);T (%)\n" + table([(400 + i, 50) for i in
+                                                                range(10)]))
+    assert len(s) == 10 and s.metadata["reader"]["header_lines"] == 1501
+
+
+def test_too_many_columns_refused_without_parsing_every_cell(monkeypatch):
+    import fitting.reader as reader
+    extra = "\t0.5" * 500
+    rows = "".join(f"{400 + i / 2}\t{50 + i % 7}{extra}\n" for i in range(1500))
+    parsed = _count_calls(monkeypatch, reader._Numbers, "parse")
+    with pytest.raises(SpectrumFormatError, match=r"line 2: the table has 502 columns, more "
+                       r"than the 256 Pellucid reads; export only the wavelength column"):
+        parse_spectrum("Wavelength (nm)\tT (%)\n" + rows)
+    assert len(rows) > 3_000_000
+    assert len(parsed) < 10_000                # of 750,000 cells
+
+
+# --------------------------------------------------------------------- material tables
+
+def test_nk_table_with_decimal_commas(tmp_path):
+    from fitting.dispersion import Tabulated
+    p = tmp_path / "film.nk"
+    p.write_text("Wellenlänge (nm);n;k\n400;2,10;0,01\n500;2,05;0,005\n600;2,00;0\n",
+                 encoding="latin-1")
+    t = Tabulated.from_file(p)
+    np.testing.assert_allclose(t.N([400.0, 500.0]), [2.10 + 0.01j, 2.05 + 0.005j])
+    bare = tmp_path / "bare.txt"                         # no header: wavelength, n, κ
+    bare.write_text("400;2,10;0,01\n500;2,05;0,005\n")
+    np.testing.assert_allclose(Tabulated.from_file(bare).N([400.0]), [2.10 + 0.01j])
+    neg = tmp_path / "neg.nk"
+    neg.write_text("nm;n;k\n400;2,10;0,01\n500;2,05;-0,005\n")
+    with pytest.raises(SpectrumFormatError, match=r"neg.nk, line 3: κ must not be negative"):
+        Tabulated.from_file(neg)
+    text = tmp_path / "text.nk"
+    text.write_text("400;2,10;0,01\n500;2,O5;0,005\n")
+    with pytest.raises(SpectrumFormatError, match=r"text.nk, line 2: column 2 holds text.*"
+                       r"'2,O5'"):
+        Tabulated.from_file(text)
+
+
+def test_nk_table_units_and_named_columns(tmp_path):
+    from fitting.dispersion import Tabulated
+    um = tmp_path / "um.csv"                             # µm named in the header
+    um.write_text("Wavelength (µm),n,k\n0.4,2.1,0.01\n0.5,2.05,0\n0.6,2.0,0\n")
+    np.testing.assert_allclose(Tabulated.from_file(um).valid_nm, (400, 600))
+    bare = tmp_path / "bare.csv"                         # 0.4-0.6 with no unit: refused
+    bare.write_text("0.4,2.1,0.01\n0.5,2.05,0\n0.6,2.0,0\n")
+    with pytest.raises(SpectrumFormatError, match=r"bare.csv, line 1: wavelengths 0.4-0.6 with "
+                       r"no unit look like µm"):
+        Tabulated.from_file(bare)
+    # Columns found by name, as in Pellucid's own n, κ export (σ columns between).
+    export = tmp_path / "F1_nk_film.csv"
+    export.write_text("# spectrum: F1\nwavelength_nm,n,n_sigma,k,k_sigma\n"
+                      "400.0,2.1,0.01,0.02,nan\n500.0,2.0,0.01,0.01,nan\n")
+    np.testing.assert_allclose(Tabulated.from_file(export).N([400.0]), [2.1 + 0.02j])
+
+
+def test_text_lines_in_a_long_table_take_the_fast_path_with_the_same_answer():
+    # One note among many rows must not send them all line by line; both paths agree.
+    import fitting.reader as reader
+    rows = [f"{400 + i / 100:.2f}\t{50 + i % 7}" for i in range(3000)]
+    rows[1500:1500] = ["Lamp change"]
+    rows[2500] = "nan\t55"                               # a missing value, not a note
+    text = "Wavelength (nm)\tT (%)\n" + "\n".join(rows) + "\n"
+    layout = reader._layout(text, ReaderOptions(), "<t>")
+    block = reader._data_block(text, layout)[0]
+    fast = reader._parse_fast_around_text(block, layout, (0, 1), 2)
+    slow = reader._parse_slow(block, layout, (0, 1), 2, "<t>")
+    assert fast is not None and fast.stray == slow.stray == [(1502, "Lamp change")]
+    np.testing.assert_array_equal(fast.line_no, slow.line_no)
+    np.testing.assert_array_equal(fast.table, slow.table)
+    s = parse_spectrum(text)
+    assert len(s) == 2999 and s.metadata["reader"]["skipped_lines"] == [1502]
