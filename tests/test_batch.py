@@ -296,3 +296,183 @@ def test_batch_output_opens_as_a_project(batch27, tmp_path):
     assert proj.check_spectra() == []
     back = load_project(save_project(proj, tmp_path / "p.pellucid.json"))
     assert back.results == proj.results
+
+
+# -- issue: the overnight batch keeps its promises ------------------------------------------
+def test_a_failed_summary_write_is_a_warning_and_the_rows_are_kept(tmp_path, monkeypatch):
+    import errno
+    import fitting.batch_files as bf
+    real = bf._write_pair
+    monkeypatch.setattr(bf, "RETRY_PAUSE_S", 0.0)
+
+    def locked(out_dir, names, *a, **kw):            # summary.csv open in a spreadsheet
+        if names[0] == "summary.csv":
+            raise PermissionError(errno.EACCES, "Permission denied", str(out_dir / names[0]))
+        return real(out_dir, names, *a, **kw)
+
+    monkeypatch.setattr(bf, "_write_pair", locked)
+    write_spectra(tmp_path / "in", [450.0, 520.0], seed=31)
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 2 and summary.exit_code == 0     # the results stand
+    (warning,) = summary.warnings
+    assert "could not be replaced" in warning and "instead" in warning
+    (alt,) = (tmp_path / "out").glob("summary-*.csv")
+    assert alt.name in warning and len(alt.read_text().splitlines()) == 3
+
+    def full(out_dir, names, *a, **kw):
+        raise OSError(errno.ENOSPC, "No space left on device", str(out_dir / names[0]))
+
+    monkeypatch.setattr(bf, "_write_pair", full)
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out2", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 2
+    (warning,) = summary.warnings
+    assert "disk is full" in warning and "--resume" in warning
+    assert len(list((tmp_path / "out2" / "spectra").glob(f"*/{MARKER_NAME}"))) == 2
+
+
+def test_a_full_disk_during_the_exports_stops_the_batch_resumably(tmp_path, monkeypatch):
+    import errno
+    import fitting.export
+    real = fitting.export.export_result
+    calls = []
+
+    def disk_fills(result, out_dir, **kw):
+        calls.append(1)
+        if len(calls) == 2:
+            raise OSError(errno.ENOSPC, "No space left on device",
+                          str(out_dir / "x_curves.csv"))
+        return real(result, out_dir, **kw)
+
+    monkeypatch.setattr(fitting.export, "export_result", disk_fills)
+    write_spectra(tmp_path / "in", [420.0, 480.0, 540.0, 600.0], seed=32)
+    steps = []
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False, on_step=steps.append)
+    assert [s.status for s in steps] == ["ok", "error"]         # nothing after the full disk
+    assert "disk is full" in steps[1].reason and "x_curves.csv" in steps[1].reason
+    assert "internal error" not in steps[1].reason
+    assert "disk is full" in summary.halted and summary.exit_code == 1
+    assert len(list((tmp_path / "out" / "spectra").glob(f"*/{MARKER_NAME}"))) == 1
+    monkeypatch.setattr(fitting.export, "export_result", real)
+    again = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.counts["ok"] == 4 and again.skipped == 1 and again.exit_code == 0
+
+
+def test_tasks_carry_no_recipe_and_workers_get_it_without_notes(tmp_path, monkeypatch):
+    import pickle
+    import fitting.batch as B
+    seen = []
+    real = B.process_spectrum
+
+    def spy(task, context=None, **kw):
+        seen.append((task, context))
+        return real(task, context, **kw)
+
+    monkeypatch.setattr(B, "process_spectrum", spy)
+    write_spectra(tmp_path / "in", [500.0, 560.0], seed=33)
+    recipe = make_recipe(notes="a long free-text note " * 200)
+    run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    for task, context in seen:
+        assert set(task) == {"index", "path", "sha256", "folder", "recipe"}
+        assert len(pickle.dumps(task)) < 600               # no recipe inside
+        (info,) = context["recipes"].values()
+        assert "notes" not in info["recipe"] and info["recipe"]["stack"]
+
+
+def test_the_user_s_files_in_the_output_folder_are_never_replaced(tmp_path):
+    write_spectra(tmp_path / "in", [500.0], seed=34)
+    for name in ("recipe.json", "summary.csv"):
+        out = tmp_path / f"out_{name}"
+        out.mkdir()
+        (out / name).write_text("my own file\n")
+        with pytest.raises(BatchInputError, match=f"already holds {name}") as ei:
+            run_batch([tmp_path / "in"], make_recipe(), out, jobs=1, report=False)
+        assert "new or empty folder" in str(ei.value)
+        assert (out / name).read_text() == "my own file\n"
+        assert not (out / "spectra").exists()
+    # The input folder itself is not a results folder (it gave "0 spectra" before).
+    with pytest.raises(BatchInputError, match="folder of the input spectra"):
+        run_batch([tmp_path / "in"], make_recipe(), tmp_path / "in", jobs=1, report=False)
+    assert sorted(p.name for p in (tmp_path / "in").iterdir()) == ["s000.txt"]
+    # An earlier batch's folder is reused, but not once the user edited its summary.
+    run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    edited = (tmp_path / "mine" / "summary.csv").read_text() + "my note\n"
+    (tmp_path / "mine" / "summary.csv").write_text(edited)
+    with pytest.raises(BatchInputError, match="summary.csv is not the file"):
+        run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    assert (tmp_path / "mine" / "summary.csv").read_text() == edited
+
+
+def test_names_that_clash_or_are_odd_keep_their_own_folders(tmp_path):
+    src = tmp_path / "in"
+    write_spectra(src, [470.0], seed=35)
+    data = (src / "s000.txt").read_bytes()
+    (src / "s000.txt").unlink()
+    names = ["a b.csv", "a_b.csv", "...csv", "a\\b.csv", "A_B.csv"]
+    for name in names:                    # equal content: equal SHA-256 as well
+        (src / name).write_bytes(data)
+    # "...csv" starts with a dot: hidden, so only taken when named explicitly.
+    inputs = [src, src / "...csv"]
+    summary = run_batch(inputs, make_recipe(), tmp_path / "out", jobs=1, report=False)
+    assert summary.counts == {"ok": 5, "failed": 0, "error": 0}
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    folders = [r["result_dir"] for r in rows]
+    assert len({f.lower() for f in folders}) == 5              # none shares a folder
+    for r in rows:
+        folder = tmp_path / "out" / r["result_dir"]
+        rec = json.loads((folder / MARKER_NAME).read_text())
+        assert rec["input"]["path"] == r["file"]
+        assert sorted(rec["files"]) == sorted(p.name for p in folder.iterdir()
+                                              if p.name != MARKER_NAME)
+        assert len(rec["files"]) == 4
+    # The same input list finds the same folders again.
+    again = run_batch(inputs, make_recipe(), tmp_path / "out", jobs=1, resume=True,
+                      report=False)
+    assert again.skipped == 5
+
+
+def test_an_empty_or_stale_lock_file_is_no_obstacle(tmp_path):
+    from fitting.batch import LOCK_NAME
+    write_spectra(tmp_path / "in", [500.0], seed=36)
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / LOCK_NAME).write_text("")          # left empty by a crash
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 1 and not (tmp_path / "out" / LOCK_NAME).exists()
+
+
+def test_batches_racing_for_one_folder_never_both_hold_it(tmp_path):
+    # The old lock (read pid, unlink stale, create) let two batches starting at the same
+    # moment both proceed about once in 100 tries. Hammer the lock from threads, each
+    # with its own open file as a second process would have, on a stale lock file.
+    from fitting.batch_files import FolderLock, LOCK_NAME, OutputFolderError
+    (tmp_path / LOCK_NAME).write_text(json.dumps({"pid": 999999999, "host": "x"}))
+    holders, most, wins = [0], [0], [0]
+    guard = threading.Lock()
+    start = threading.Barrier(6)
+
+    def contender():
+        start.wait()
+        for _ in range(60):
+            try:
+                lock = FolderLock(tmp_path).acquire()
+            except OutputFolderError:
+                continue
+            with guard:
+                holders[0] += 1
+                most[0] = max(most[0], holders[0])
+                wins[0] += 1
+            with guard:
+                holders[0] -= 1
+            lock.release()
+
+    threads = [threading.Thread(target=contender) for _ in range(6)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert most[0] == 1 and wins[0] >= 1
