@@ -25,7 +25,8 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write_bytes", "atomic_write_text", "atomic_write_json", "atomic_writer"]
+__all__ = ["atomic_write_bytes", "atomic_write_text", "atomic_write_json", "atomic_writer",
+           "sync_dir"]
 
 
 def _fsync_dir(directory: Path) -> None:
@@ -44,7 +45,7 @@ def _fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
-def atomic_write_bytes(path, data: bytes) -> Path:
+def atomic_write_bytes(path, data: bytes, *, sync_dir: bool = True) -> Path:
     """Write ``data`` to ``path`` atomically and return the path.
 
     Parameters
@@ -58,6 +59,11 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     -------
     pathlib.Path
         ``path`` as a Path.
+
+    sync_dir : bool
+        Also fsync the directory, so the rename survives a power cut. A caller
+        writing several files into one folder may pass False and call
+        :func:`sync_dir` once at the end.
 
     Notes
     -----
@@ -85,13 +91,20 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
-    _fsync_dir(directory)
+    if sync_dir:
+        _fsync_dir(directory)
     return path
 
 
-def atomic_write_text(path, text: str, *, encoding: str = "utf-8") -> Path:
+def sync_dir(directory) -> None:
+    """Make the renames done in ``directory`` durable (see ``sync_dir`` above)."""
+    _fsync_dir(Path(directory))
+
+
+def atomic_write_text(path, text: str, *, encoding: str = "utf-8",
+                      sync_dir: bool = True) -> Path:
     """Write ``text`` to ``path`` atomically (UTF-8 by default, ``\\n`` line ends kept)."""
-    return atomic_write_bytes(path, text.encode(encoding))
+    return atomic_write_bytes(path, text.encode(encoding), sync_dir=sync_dir)
 
 
 def atomic_write_json(path, obj, *, indent: int | None = 2) -> Path:
