@@ -701,7 +701,11 @@ def _plan(paths, recipe, figures: bool) -> _Plan:
     for items, rec in groups:
         key = keyed.get(id(rec))
         if key is None:
-            eff = _effective(rec, figures)
+            try:
+                eff = _effective(rec, figures)
+            except RecipeError as e:
+                raise BatchInputError(f"the recipe {rec.name or ''!r} cannot be used: "
+                                      f"{e}") from None
             key = keyed[id(rec)] = recipe_hash(eff)[:16]
             recipes.setdefault(key, eff)
         for p in expand_inputs(items, ignored=ignored, folders=folders_given):

@@ -476,3 +476,156 @@ def test_batches_racing_for_one_folder_never_both_hold_it(tmp_path):
     for t in threads:
         t.join()
     assert most[0] == 1 and wins[0] >= 1
+
+
+def test_resume_ignores_start_values_but_not_the_model(tmp_path):
+    # One interactive fit that moved the start values must not make --resume refit all.
+    write_spectra(tmp_path / "in", [460.0, 540.0], seed=37)
+    first = make_recipe()
+    run_batch([tmp_path / "in"], first, tmp_path / "out", jobs=1, report=False)
+    moved = first.to_dict()
+    moved["stack"]["layers"][0]["thickness"]["value"] = 470.0
+    moved["stack"]["layers"][0]["material"]["params"]["A"]["value"] = 2.2
+    moved["name"] = "after an interactive fit"
+    from fitting.recipe import recipe_from_dict
+    again = run_batch([tmp_path / "in"], recipe_from_dict(moved), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.skipped == 2 and again.counts["ok"] == 2
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert {r["recipe_hash"] for r in rows} == {recipe_hash(first)}   # who made them
+    bounds = first.to_dict()
+    bounds["stack"]["layers"][0]["thickness"]["max"] = 4000.0
+    third = run_batch([tmp_path / "in"], recipe_from_dict(bounds), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert third.skipped == 0 and third.counts["ok"] == 2
+
+
+def _counts_files(folder, thicknesses, seed):
+    """Raw detector signals: sample S = T (B - D) + D with a lamp-shaped 100 % line B and a
+    flat dark D (the usual single-beam arithmetic, common practice), plus count noise."""
+    from batch_helpers import WAVELENGTHS, true_stack
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    wl = WAVELENGTHS
+    B = 2.0e5 * np.exp(-((wl - 650.0) / 400.0) ** 2) + 5.0e4
+    D = np.full(wl.size, 800.0)
+
+    def write(name, values):
+        lines = ["wavelength_nm,counts"] + [f"{w:.2f},{v:.1f}" for w, v in zip(wl, values)]
+        (folder / name).write_text("\n".join(lines) + "\n")
+
+    for i, d in enumerate(thicknesses):
+        T = true_stack(d).transmittance(wl)
+        write(f"raw{i}.csv", T * (B - D) + D + rng.normal(0, 60.0, wl.size))
+    return B, D, write
+
+
+def test_a_recipe_s_100_percent_line_and_dark_are_applied_and_recorded(tmp_path):
+    import hashlib
+    from fitting.recipe import load_recipe, save_recipe
+    B, D, write = _counts_files(tmp_path / "in", [480.0, 610.0], seed=38)
+    refs = tmp_path / "recipes" / "refs"
+    refs.mkdir(parents=True)
+    _, _, write_ref = _counts_files(refs, [], seed=0)
+    write_ref("baseline.csv", B)
+    write_ref("dark.csv", D)
+    path = save_recipe(make_recipe(reference={"baseline": "refs/baseline.csv",
+                                              "dark": "refs/dark.csv"}),
+                       tmp_path / "recipes" / "line.json")
+    recipe = load_recipe(path)                    # relative paths: from the recipe's folder
+    summary = run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    assert summary.counts["ok"] == 2, summary
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert [r["film_thickness"] for r in rows] == pytest.approx([480.0, 610.0], rel=0.01)
+    sha_b = hashlib.sha256((refs / "baseline.csv").read_bytes()).hexdigest()
+    sha_d = hashlib.sha256((refs / "dark.csv").read_bytes()).hexdigest()
+    folder = tmp_path / "out" / rows[0]["result_dir"]
+    rec = json.loads((folder / MARKER_NAME).read_text())
+    assert rec["reference"]["baseline"] == {"file": str((refs / "baseline.csv").resolve()),
+                                            "sha256": sha_b}
+    assert rec["reference"]["dark"]["sha256"] == sha_d
+    curves = (folder / "raw0_curves.csv").read_text()
+    assert f"# reference_baseline: {(refs / 'baseline.csv').resolve()} (sha256 {sha_b})" in curves
+    # The copy beside the results names the files absolutely, so it works from there.
+    saved = json.loads((tmp_path / "out" / "recipe.json").read_text())
+    assert saved["reference"]["baseline"] == str((refs / "baseline.csv").resolve())
+    # A new 100 % line is a new identity: --resume refits.
+    write_ref("baseline.csv", B * 1.01)
+    again = run_batch([tmp_path / "in"], load_recipe(path), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.skipped == 0
+    # A missing reference file stops the batch before it starts, naming the file.
+    (refs / "dark.csv").unlink()
+    with pytest.raises(BatchInputError, match="dark.csv.*does not exist"):
+        run_batch([tmp_path / "in"], load_recipe(path), tmp_path / "out2", jobs=1)
+
+
+def test_several_recipes_in_one_batch_from_a_manifest(tmp_path):
+    from fitting.batch import read_manifest
+    from fitting.dispersion import Cauchy
+    from fitting.recipe import Recipe, save_recipe
+    from fitting.stack import Layer, Stack
+    from fitting.substrates import library_substrate
+    write_spectra(tmp_path / "line3", [450.0, 520.0], seed=39)
+    write_spectra(tmp_path / "line4", [600.0], seed=40)
+    save_recipe(make_recipe(name="line 3"), tmp_path / "line3.json")
+    coat = Stack([Layer("coat", Cauchy(2.0, 0.02), 560.0)], library_substrate("fused_silica", 1.0))
+    save_recipe(Recipe(coat, name="line 4", exports=("curves",)), tmp_path / "line4.json")
+    (tmp_path / "manifest.csv").write_text("# overnight run\nfile,recipe\n"
+                                           "line3/*.txt,line3.json\nline4/,line4.json\n")
+    items = read_manifest(tmp_path / "manifest.csv")
+    assert len(items) == 2
+    summary = run_batch(items, None, tmp_path / "out", jobs=1)
+    assert summary.counts["ok"] == 3 and len(summary.report_pdfs) == 2
+    for pdf in summary.report_pdfs:
+        assert pdf.read_bytes()[:5] == b"%PDF-"
+    doc = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert {"film_thickness", "coat_thickness", "recipe_name"} <= set(doc["columns"])
+    by = {r["file"].rsplit("/", 1)[-1] + r["recipe_name"]: r for r in doc["rows"]}
+    assert by["s000.txtline 3"]["film_thickness"] == pytest.approx(450.0, rel=0.01)
+    assert by["s000.txtline 4"]["coat_thickness"] == pytest.approx(600.0, rel=0.01)
+    assert by["s000.txtline 4"].get("film_thickness") is None
+    assert len(list((tmp_path / "out" / "recipes").glob("*.json"))) == 2
+    assert not (tmp_path / "out" / "recipe.json").exists()
+    (tmp_path / "bad.csv").write_text("file,recipe\nline3/*.txt,missing.json\n")
+    with pytest.raises(BatchInputError, match=r"bad.csv, line 2: .*missing.json"):
+        read_manifest(tmp_path / "bad.csv")
+    (tmp_path / "bad2.csv").write_text("spectrum,recipe\nx,y\n")
+    with pytest.raises(BatchInputError, match="line 1: the header must name"):
+        read_manifest(tmp_path / "bad2.csv")
+
+
+def test_a_spreadsheet_in_the_folder_gets_a_row_and_other_files_a_note(tmp_path):
+    write_spectra(tmp_path / "in", [500.0], seed=41)
+    (tmp_path / "in" / "results.xlsx").write_bytes(b"PK\x03\x04" + bytes(64))
+    (tmp_path / "in" / "notes.md").write_text("measured on Tuesday\n")
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts == {"ok": 1, "failed": 0, "error": 1}
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    sheet = next(r for r in rows if r["file"].endswith("results.xlsx"))
+    assert sheet["status"] == "error" and "save the sheet as CSV" in sheet["reason"]
+    assert [p.name for p in summary.ignored] == ["notes.md"]
+
+
+def test_per_spectrum_work_does_not_grow_with_the_batch(tmp_path, monkeypatch):
+    # Nothing is rewritten or re-read per spectrum: the summary is written once and every
+    # marker is read a fixed number of times, however many spectra there are.
+    import fitting.batch as B
+    import fitting.batch_files as bf
+    writes, reads = [], []
+    real_write, real_read = bf.write_summary_files, B.read_marker_record
+    monkeypatch.setattr(B, "write_summary_files",
+                        lambda *a, **k: writes.append(1) or real_write(*a, **k))
+    monkeypatch.setattr(B, "read_marker_record",
+                        lambda *a, **k: reads.append(1) or real_read(*a, **k))
+    per = {}
+    for n in (2, 6):
+        writes.clear()
+        reads.clear()
+        write_spectra(tmp_path / f"in{n}", np.linspace(450, 600, n), seed=n)
+        run_batch([tmp_path / f"in{n}"], make_recipe(), tmp_path / f"out{n}", jobs=1,
+                  report=False)
+        per[n] = (len(writes), len(reads) / n)
+    assert per[2][0] == per[6][0] == 1
+    assert per[2][1] == per[6][1] <= 2
