@@ -454,3 +454,80 @@ def test_scheduler_help_says_the_cluster_must_be_trusted(capsys):
     assert cli.main(["batch", "--help"]) == 0
     text = capsys.readouterr().out
     assert "pickle" in text and "control" in text
+
+
+def _with_verdicts(monkeypatch, verdicts):
+    """Give fits the fit engine's verdict attributes in turn (as the engine will)."""
+    import fitting.fit
+    real = fitting.fit.fit_spectrum
+    it = iter(verdicts)
+
+    def judged(*a, **kw):
+        res = real(*a, **kw)
+        v, why = next(it)
+        object.__setattr__(res, "verdict", v)
+        object.__setattr__(res, "verdict_reasons", why)
+        return res
+
+    monkeypatch.setattr(fitting.fit, "fit_spectrum", judged)
+
+
+def test_fit_exit_code_follows_the_verdict(recipe_file, tmp_path, monkeypatch):
+    write_spectra(tmp_path / "in", [560.0], seed=11)
+    spectrum = str(tmp_path / "in" / "s000.txt")
+    _with_verdicts(monkeypatch, [("good", ()), ("check", ("n at 633 nm is extrapolated",)),
+                                 ("poor", ("structured residuals",))])
+    codes = []
+    for _ in range(3):
+        code, out, err = run(["fit", spectrum, "--recipe", str(recipe_file),
+                              "--out", str(tmp_path / "res")])
+        codes.append(code)
+    assert codes == [0, 3, 3]
+    assert "verdict: poor" in out and "structured residuals" in out
+
+
+def test_batch_exit_code_follows_the_verdicts(recipe_file, tmp_path, monkeypatch):
+    write_spectra(tmp_path / "in", [450.0, 650.0], seed=2)
+    base = ["--recipe", str(recipe_file), "--jobs", "1", "--no-report"]
+    _with_verdicts(monkeypatch, [("good", ()), ("good", ()), ("good", ()),
+                                 ("check", ("n at 633 nm is extrapolated",))])
+    code, out, err = run(["batch", str(tmp_path / "in"), "--out", str(tmp_path / "o1"), *base])
+    assert code == 0 and "2 good, 0 check, 0 poor" in out
+    code, out, err = run(["batch", str(tmp_path / "in"), "--out", str(tmp_path / "o2"), *base])
+    assert code == 3 and "1 fitted spectra need checking" in out
+    assert "ok, check" in err                         # the progress line says so too
+    with open(tmp_path / "o2" / "summary.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [r["verdict"] for r in rows] == ["good", "check"]
+    assert rows[1]["verdict_reasons"] == "n at 633 nm is extrapolated"
+
+
+def test_fit_applies_the_recipe_s_reference_files(tmp_path):
+    from test_batch import _counts_files
+    B, D, write = _counts_files(tmp_path / "in", [530.0], seed=5)
+    write("baseline.csv", B)
+    write("dark.csv", D)
+    recipe = save_recipe(make_recipe(reference={"baseline": "in/baseline.csv",
+                                                "dark": "in/dark.csv"}),
+                         tmp_path / "recipe.json")
+    code, out, err = run(["fit", str(tmp_path / "in" / "raw0.csv"), "--recipe", str(recipe),
+                          "--out", str(tmp_path / "res")])
+    assert code in (0, 3), err
+    assert "after dividing by the 100 % line" in out
+    doc = json.loads((tmp_path / "res" / "raw0_result.json").read_text())
+    assert doc["params"]["film_thickness"]["value"] == pytest.approx(530.0, rel=0.01)
+    assert "baseline.csv" in doc["provenance"]["reference_baseline"]
+
+
+def test_batch_from_a_manifest_and_usage_errors(tmp_path):
+    write_spectra(tmp_path / "a", [480.0], seed=3)
+    save_recipe(make_recipe(), tmp_path / "r.json")
+    (tmp_path / "m.csv").write_text("file;recipe\na/*.txt;r.json\n")    # semicolons too
+    code, out, err = run(["batch", "--manifest", str(tmp_path / "m.csv"), "--out",
+                          str(tmp_path / "o"), "--jobs", "1", "--no-report"])
+    assert code == 0, err
+    assert "1 spectra: 1 ok" in out
+    code, out, err = run(["batch", "--out", str(tmp_path / "o2")])
+    assert code == 2 and "--manifest" in err
+    code, out, err = run(["batch", str(tmp_path / "a"), "--out", str(tmp_path / "o2")])
+    assert code == 2 and "--recipe is needed" in err
