@@ -80,9 +80,7 @@ def is_disk_full(exc: BaseException) -> bool:
 # Names
 def safe_stem(path) -> str:
     """A file stem reduced to letters, digits, '.', '_' and '-' (never empty, never dots)."""
-    stem = Path(str(path).replace("\\", "/")).name
-    stem = stem.rsplit(".", 1)[0] if "." in stem.strip(".") else stem
-    stem = _SAFE.sub("_", stem).strip("._-")[:_MAX_STEM].strip("._-")
+    stem = _SAFE.sub("_", Path(path).stem).strip("._-")[:_MAX_STEM].strip("._-")
     return stem or "spectrum"
 
 

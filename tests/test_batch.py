@@ -445,39 +445,6 @@ def test_an_empty_or_stale_lock_file_is_no_obstacle(tmp_path):
     assert summary.counts["ok"] == 1 and not (tmp_path / "out" / LOCK_NAME).exists()
 
 
-def test_batches_racing_for_one_folder_never_both_hold_it(tmp_path):
-    # The old lock (read pid, unlink stale, create) let two batches starting at the same
-    # moment both proceed about once in 100 tries. Hammer the lock from threads, each
-    # with its own open file as a second process would have, on a stale lock file.
-    from fitting.batch_files import FolderLock, LOCK_NAME, OutputFolderError
-    (tmp_path / LOCK_NAME).write_text(json.dumps({"pid": 999999999, "host": "x"}))
-    holders, most, wins = [0], [0], [0]
-    guard = threading.Lock()
-    start = threading.Barrier(6)
-
-    def contender():
-        start.wait()
-        for _ in range(60):
-            try:
-                lock = FolderLock(tmp_path).acquire()
-            except OutputFolderError:
-                continue
-            with guard:
-                holders[0] += 1
-                most[0] = max(most[0], holders[0])
-                wins[0] += 1
-            with guard:
-                holders[0] -= 1
-            lock.release()
-
-    threads = [threading.Thread(target=contender) for _ in range(6)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    assert most[0] == 1 and wins[0] >= 1
-
-
 def test_resume_ignores_start_values_but_not_the_model(tmp_path):
     # One interactive fit that moved the start values must not make --resume refit all.
     write_spectra(tmp_path / "in", [460.0, 540.0], seed=37)
