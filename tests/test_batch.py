@@ -284,6 +284,15 @@ def test_exit_codes():
     assert mk(2, 3).exit_code == 1
     assert mk(0, 3).exit_code == 2
     assert mk(2, 3, stopped=True).exit_code == 1
+    # Verdicts of the fit engine: all fitted but some to check -> 3; failures outrank it.
+    judged = lambda ok, total, v, **kw: BatchSummary(  # noqa: E731
+        total, {"ok": ok}, None, None, None, "", 0.0, verdicts=v, **kw)
+    assert judged(3, 3, {"good": 3}).exit_code == 0
+    assert judged(3, 3, {"good": 2, "check": 1}).exit_code == 3
+    assert judged(3, 3, {"good": 2, "poor": 1}).exit_code == 3
+    assert judged(2, 3, {"check": 2}).exit_code == 1
+    assert judged(3, 3, {"good": 3}, halted="disk full").exit_code == 1
+    assert judged(0, 0, {}).exit_code == 2
 
 
 def test_batch_output_opens_as_a_project(batch27, tmp_path):
