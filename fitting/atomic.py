@@ -14,16 +14,19 @@ Functions
 atomic_write_bytes(path, data)
 atomic_write_text(path, text, *, encoding="utf-8")
 atomic_write_json(path, obj, *, indent=2)
+atomic_writer(path, mode="w")     a context manager for files written piece by piece
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write_bytes", "atomic_write_text", "atomic_write_json"]
+__all__ = ["atomic_write_bytes", "atomic_write_text", "atomic_write_json", "atomic_writer",
+           "sync_dir"]
 
 
 def _fsync_dir(directory: Path) -> None:
@@ -42,7 +45,7 @@ def _fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
-def atomic_write_bytes(path, data: bytes) -> Path:
+def atomic_write_bytes(path, data: bytes, *, sync_dir: bool = True) -> Path:
     """Write ``data`` to ``path`` atomically and return the path.
 
     Parameters
@@ -56,6 +59,11 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     -------
     pathlib.Path
         ``path`` as a Path.
+
+    sync_dir : bool
+        Also fsync the directory, so the rename survives a power cut. A caller
+        writing several files into one folder may pass False and call
+        :func:`sync_dir` once at the end.
 
     Notes
     -----
@@ -83,13 +91,20 @@ def atomic_write_bytes(path, data: bytes) -> Path:
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
-    _fsync_dir(directory)
+    if sync_dir:
+        _fsync_dir(directory)
     return path
 
 
-def atomic_write_text(path, text: str, *, encoding: str = "utf-8") -> Path:
+def sync_dir(directory) -> None:
+    """Make the renames done in ``directory`` durable (see ``sync_dir`` above)."""
+    _fsync_dir(Path(directory))
+
+
+def atomic_write_text(path, text: str, *, encoding: str = "utf-8",
+                      sync_dir: bool = True) -> Path:
     """Write ``text`` to ``path`` atomically (UTF-8 by default, ``\\n`` line ends kept)."""
-    return atomic_write_bytes(path, text.encode(encoding))
+    return atomic_write_bytes(path, text.encode(encoding), sync_dir=sync_dir)
 
 
 def atomic_write_json(path, obj, *, indent: int | None = 2) -> Path:
@@ -100,3 +115,41 @@ def atomic_write_json(path, obj, *, indent: int | None = 2) -> Path:
     """
     text = json.dumps(obj, indent=indent, ensure_ascii=False, allow_nan=False)
     return atomic_write_text(path, text + "\n")
+
+
+@contextlib.contextmanager
+def atomic_writer(path, mode: str = "w", *, encoding: str = "utf-8"):
+    """Write a file piece by piece; it appears (atomically) only if the block ends normally.
+
+    For files too big to hold in memory first (a summary of many thousand rows).
+    ``mode`` is ``"w"`` (text, ``\\n`` line ends kept) or ``"wb"``.
+
+    Examples
+    --------
+    >>> with atomic_writer(tmp / "big.csv") as fh:      # doctest: +SKIP
+    ...     for row in rows:
+    ...         fh.write(row)
+    """
+    if mode not in ("w", "wb"):
+        raise ValueError(f"mode must be 'w' or 'wb', got {mode!r}")
+    path = Path(path)
+    directory = path.parent if str(path.parent) else Path(".")
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=directory)
+    tmp = Path(tmp_name)
+    try:
+        kw = {} if mode == "wb" else {"encoding": encoding, "newline": ""}
+        with os.fdopen(fd, mode, **kw) as fh:
+            yield fh
+            fh.flush()
+            os.fsync(fh.fileno())
+        try:
+            os.chmod(tmp, path.stat().st_mode & 0o7777)
+        except FileNotFoundError:
+            umask = os.umask(0)
+            os.umask(umask)
+            os.chmod(tmp, 0o666 & ~umask)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    _fsync_dir(directory)

@@ -10,9 +10,16 @@ One run measures, on this machine:
    same stack in the same run, with the largest |ΔT| between the two;
 2. **fit** -- complete fits from the automatic start (thickness + Cauchy + Urbach) of
    synthetic spectra with 0.2 % noise, over several noise seeds;
-3. **batch** -- synthetic spectra through the real ``pellucid batch`` command on all
-   cores: spectra per second, peak memory of the process tree, and how the wall time
-   grows with the number of spectra;
+3. **batch** -- the demo recipe (without per-spectrum figures; the report's summary
+   figures once at the end) on copies of the demo spectra through the real
+   ``pellucid batch`` command on all cores, for several batch sizes
+   (``--batch-counts``, default 10, 50, 200; the full check is 10,100,1000,2000):
+   spectra per second and seconds per spectrum at each size, the log-log slope of
+   the wall time against the number of spectra (1 = linear, target <= 1.05 between
+   the two largest), peak memory of the process tree and of the main process
+   (target: flat), the efficiency against the same work done one spectrum at a
+   time in this process (measured in the same run), and a short run with the
+   recipe's per-spectrum figures;
 4. **scaling** -- cost against the number of wavelengths and of layers, with the
    log-log slopes (1 = linear).
 
@@ -56,7 +63,7 @@ AGREEMENT_TOL = 1e-9
 _WL_RANGE_NM = (300.0, 1100.0)
 _FULL = dict(forward_sizes=(1000, 5000), scaling_sizes=(500, 1000, 2000, 5000, 10000, 20000),
              scaling_layers=(1, 2, 5, 10, 20), tmm_repeat=3, fit_points=1000, fit_seeds=5,
-             batch_counts=(50, 100, 200), batch_figures=10, repeat=200)
+             batch_counts=(10, 50, 200), batch_figures=10, repeat=200)
 _QUICK = dict(forward_sizes=(40, 80), scaling_sizes=(50, 100, 200), scaling_layers=(1, 2, 4),
               tmm_repeat=1, fit_points=150, fit_seeds=1, batch_counts=(2, 4), batch_figures=1,
               repeat=15)
@@ -309,46 +316,99 @@ def _pellucid_command() -> list[str]:
     return [exe] if exe else [sys.executable, "-m", "fitting.cli"]
 
 
-def _tree_rss(proc) -> int:
-    """Resident memory of a process and all its descendants, bytes (0 once gone)."""
+def _proc_children() -> dict[int, list[int]]:
+    kids: dict[int, list[int]] = {}
+    for d in Path("/proc").iterdir():
+        if d.name.isdigit():
+            try:
+                ppid = int((d / "stat").read_text().rsplit(")", 1)[1].split()[1])
+            except (OSError, ValueError, IndexError):
+                continue
+            kids.setdefault(ppid, []).append(int(d.name))
+    return kids
+
+
+def _proc_rss(pid: int) -> int:
+    try:
+        with open(f"/proc/{pid}/statm", encoding="ascii") as fh:
+            return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):
+        return 0
+
+
+def _tree_rss(proc) -> tuple[int, int]:
+    """Resident memory (bytes) of a process and of it with all its descendants (0 once
+    gone). ``proc`` is a pid (read from /proc) or a psutil.Process."""
+    if isinstance(proc, int):
+        kids, members, frontier = _proc_children(), [], [proc]
+        while frontier:
+            members += frontier
+            frontier = [c for p in frontier for c in kids.get(p, [])]
+        rss = [_proc_rss(p) for p in members]
+        return (rss[0] if rss else 0), sum(rss)
     import psutil
 
-    total = 0
     try:
         members = [proc, *proc.children(recursive=True)]
     except psutil.Error:
-        return 0
+        return 0, 0
+    total, own = 0, 0
     for p in members:
         try:
-            total += p.memory_info().rss
+            r = p.memory_info().rss
         except psutil.Error:
-            pass
-    return total
+            continue
+        total += r
+        own = r if p is proc else own
+    return own, total
+
+
+def _rss_source():
+    if Path("/proc/self/statm").exists():
+        return "proc"
+    try:
+        import psutil  # noqa: F401
+        return "psutil"
+    except ImportError:
+        return None
 
 
 def _run_sampled(cmd, cwd) -> dict:
-    """Run ``cmd``, sampling the RSS of its process tree every 20 ms."""
-    import psutil
+    """Run ``cmd``, sampling the RSS of its process tree every 20 ms.
 
+    Output goes to files, not pipes: a long batch writes more progress lines than a
+    pipe holds, and an unread pipe would stall it.
+    """
+    source = _rss_source()
     t0 = time.perf_counter()
-    popen = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                             stdin=subprocess.DEVNULL)
-    proc = psutil.Process(popen.pid)
-    peak = 0
-    while popen.poll() is None:
-        peak = max(peak, _tree_rss(proc))
-        time.sleep(0.02)
-    wall = time.perf_counter() - t0
-    out, err = popen.communicate()
-    try:  # largest resident set of any waited-for descendant so far (kB on Linux)
-        import resource
-        child_max = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024
-    except (ImportError, OSError):
-        child_max = None
+    with tempfile.TemporaryFile() as fo, tempfile.TemporaryFile() as fe:
+        popen = subprocess.Popen(cmd, cwd=cwd, stdout=fo, stderr=fe, stdin=subprocess.DEVNULL)
+        if source == "psutil":
+            import psutil
+            target = psutil.Process(popen.pid)
+        else:
+            target = popen.pid
+        peak, peak_main = 0, 0
+        while popen.poll() is None:
+            if source:
+                own, total = _tree_rss(target)
+                peak, peak_main = max(peak, total), max(peak_main, own)
+            time.sleep(0.02)
+        wall = time.perf_counter() - t0
+        fo.seek(0)
+        fe.seek(0)
+        out, err = fo.read(), fe.read()
     return {"wall_s": wall, "returncode": popen.returncode, "peak_tree_rss_bytes": peak,
-            "max_child_rss_bytes_so_far": child_max,
+            "peak_main_rss_bytes": peak_main, "rss_source": source,
             "stdout_tail": out.decode(errors="replace")[-400:],
             "stderr_tail": err.decode(errors="replace")[-800:]}
+
+
+def _demo_inputs():
+    """(recipe path, spectrum files) of the shipped demo set, or None when not installed."""
+    root = Path(__file__).resolve().parent.parent / "demo_data"
+    recipe, spectra = root / "recipe.json", sorted((root / "spectra").glob("*.csv"))
+    return (recipe, spectra) if recipe.is_file() and spectra else None
 
 
 def _write_spectra(folder: Path, count: int, n_points: int) -> list[Path]:
@@ -375,6 +435,30 @@ def _write_spectra(folder: Path, count: int, n_points: int) -> list[Path]:
     return paths
 
 
+def _batch_inputs(tmp: Path, count: int, n_points: int):
+    """(recipe path, spectra, label): the demo recipe with copies of the demo spectra
+    (each file once under several names) where the demo set is installed, else a
+    synthetic film and a built-in recipe."""
+    (tmp / "spectra").mkdir()
+    demo = _demo_inputs()
+    if demo is not None:
+        recipe, originals = demo
+        paths = []
+        for i in range(count):
+            src = originals[i % len(originals)]
+            dst = tmp / "spectra" / f"d{i:05d}_{src.name}"
+            try:
+                os.link(src, dst)
+            except OSError:
+                shutil.copyfile(src, dst)
+            paths.append(dst)
+        return recipe, paths, f"demo recipe, {len(originals)} demo spectra repeated"
+    paths = _write_spectra(tmp / "spectra", count, n_points)
+    recipe = tmp / "recipe_default.json"
+    _write_recipe(recipe)
+    return recipe, paths, "built-in Cauchy + Urbach recipe, synthetic spectra"
+
+
 #: Per-spectrum exports of the throughput series: every table, no figures. Figures
 #: (matplotlib) cost more than the fit itself and are timed in their own short series.
 TABLE_EXPORTS = ("nk", "curves", "json", "report")
@@ -387,7 +471,8 @@ def _write_recipe(path: Path, exports=None):
     save_recipe(Recipe(_fit_start_stack(), name="benchmark film on fused silica", **kw), path)
 
 
-def _batch_series(cmd, tmp: Path, recipe_path: Path, paths, counts, jobs: int, tag: str):
+def _batch_series(cmd, tmp: Path, recipe_path: Path, paths, counts, jobs: int, tag: str,
+                  extra=()):
     """One ``pellucid batch`` run per count, on the first ``count`` spectra."""
     runs = []
     for n in counts:
@@ -396,70 +481,107 @@ def _batch_series(cmd, tmp: Path, recipe_path: Path, paths, counts, jobs: int, t
         for p in paths[:n]:
             os.link(p, src / p.name)
         run = _run_sampled([*cmd, "batch", "--recipe", str(recipe_path), "--out",
-                            str(tmp / f"out_{tag}_{n}"), "--jobs", str(jobs), str(src)], tmp)
-        run.update(spectra=n, spectra_per_s=n / run["wall_s"])
+                            str(tmp / f"out_{tag}_{n}"), "--jobs", str(jobs), *extra,
+                            str(src)], tmp)
+        run.update(spectra=n, spectra_per_s=n / run["wall_s"],
+                   seconds_per_spectrum=run["wall_s"] / n)
         runs.append(run)
-        # Exit status 1 means some spectra failed to fit (recorded, batch finished);
-        # 2 or more is a usage error or a crash: stop the series.
-        if run["returncode"] not in (0, 1):
+        shutil.rmtree(tmp / f"out_{tag}_{n}", ignore_errors=True)   # disk stays flat too
+        shutil.rmtree(src, ignore_errors=True)
+        # Exit status 1 or 3 means some spectra failed or need checking (recorded, batch
+        # finished); 2 is a usage error or a crash: stop the series.
+        if run["returncode"] not in (0, 1, 3):
             break
     return runs
 
 
 def _series_summary(runs, counts) -> dict:
-    ok = [r for r in runs if r["returncode"] in (0, 1)]
+    ok = [r for r in runs if r["returncode"] in (0, 1, 3)]
     out = {"runs": runs}
     if len(ok) != len(counts):
-        out["failed"] = "a batch run ended with exit status >= 2; see runs[-1]"
+        out["failed"] = "a batch run ended with exit status 2 or a crash; see runs[-1]"
         return out
     n = np.array([r["spectra"] for r in ok], float)
     t = np.array([r["wall_s"] for r in ok])
+    peaks = [r["peak_tree_rss_bytes"] for r in ok]
     out.update(spectra_per_s=ok[-1]["spectra_per_s"],
-               peak_tree_rss_mb=max(r["peak_tree_rss_bytes"] for r in ok) / 2 ** 20,
+               peak_tree_rss_mb=max(peaks) / 2 ** 20,
                all_fits_ok=all(r["returncode"] == 0 for r in ok))
     if len(ok) >= 2:
         slope, intercept = np.polyfit(n, t, 1)
         out.update(seconds_per_spectrum_slope=float(slope), startup_s=float(intercept),
                    per_spectrum_ratio_last_first=float((t[-1] / n[-1]) / (t[0] / n[0])),
-                   slope_loglog=_loglog_slope(n, t))
+                   slope_loglog=_loglog_slope(n, t),
+                   # Between the two largest batches start-up no longer hides growth.
+                   slope_loglog_upper=_loglog_slope(n[-2:], t[-2:]),
+                   peak_rss_ratio_last_first=(peaks[-1] / peaks[0]) if peaks[0] else None)
     return out
+
+
+def _reference_fit_s(recipe_path: Path, spectrum: Path, repeat: int = 3) -> float | None:
+    """Median in-process time of read + fit + table exports of one spectrum: the batch's
+    ideal is ``jobs`` of these at once, measured in the same run on the same machine."""
+    try:
+        from .batch import Prepared, _export, export_stem
+        from .recipe import load_recipe
+    except ImportError:
+        return None
+    recipe = load_recipe(recipe_path)
+    recipe = type(recipe).from_dict({**recipe.to_dict(), "outputs": {
+        "exports": list(TABLE_EXPORTS), "plot_formats": list(recipe.plot_formats)}},
+        path=recipe_path)
+    prep = Prepared(recipe.resolved())
+    times = []
+    with tempfile.TemporaryDirectory(prefix="pellucid-ref-") as tmp:
+        for i in range(repeat + 1):
+            t0 = time.perf_counter()
+            sp = prep.spectrum(spectrum)
+            res = prep.fit_spectrum(sp, recipe.new_stack(), recipe.make_fit_options(sp))
+            _export(res, Path(tmp), export_stem(spectrum), prep.provenance(spectrum, ""),
+                    prep.recipe)
+            if i:                       # the first call pays lazy imports and caches
+                times.append(time.perf_counter() - t0)
+    return float(np.median(times))
 
 
 def bench_batch(counts, jobs: int, n_points: int, figure_count: int) -> dict:
     """Spectra through ``pellucid batch`` in a subprocess: throughput, memory, linearity.
 
-    The throughput series (``counts``) exports every table but no figures; a short
-    series of ``figure_count`` spectra with the recipe's default exports (figures
-    included) shows what the figures add.
+    The throughput series (``counts``) runs the demo recipe without per-spectrum
+    figures (``--no-figures``; the report's summary figures are drawn once at the
+    end); a short series of ``figure_count`` spectra with the recipe's own figures
+    shows what they add. The reference is the same work done in this process, one
+    spectrum at a time: ``efficiency`` = measured spectra/s ÷ (jobs ÷ reference time).
     """
     try:
         from . import recipe  # noqa: F401
         from .batch import iter_batch  # noqa: F401
     except ImportError as exc:
         return {"skipped": f"batch runner or recipes not available ({exc})"}
-    try:
-        import psutil  # noqa: F401
-    except ImportError:
-        return {"skipped": "psutil is not installed (needed to sample memory)"}
+    if _rss_source() is None:
+        return {"skipped": "no way to sample memory here (no /proc and no psutil)"}
     cmd = _pellucid_command()
     probe = subprocess.run([*cmd, "batch", "--help"], capture_output=True, text=True)
     if probe.returncode != 0:
         return {"skipped": "the 'pellucid batch' command is not available yet",
                 "detail": (probe.stderr or probe.stdout)[-300:]}
-    result = {"jobs": jobs, "points": n_points, "command": " ".join([*cmd, "batch"]),
-              "exports": list(TABLE_EXPORTS)}
+    result = {"jobs": jobs, "command": " ".join([*cmd, "batch"]), "counts": list(counts),
+              "exports": list(TABLE_EXPORTS) + ["report.pdf"]}
     with tempfile.TemporaryDirectory(prefix="pellucid-bench-") as tmp:
         tmp = Path(tmp)
-        (tmp / "spectra").mkdir()
-        paths = _write_spectra(tmp / "spectra", max(counts), n_points)
-        tables = tmp / "recipe_tables.json"
-        _write_recipe(tables, TABLE_EXPORTS)
+        recipe_path, paths, label = _batch_inputs(tmp, max(max(counts), figure_count),
+                                                  n_points)
+        result["inputs"] = label
+        ref = _reference_fit_s(recipe_path, paths[0])
+        result["reference_s_per_spectrum_one_process"] = ref
         result.update(_series_summary(
-            _batch_series(cmd, tmp, tables, paths, counts, jobs, "tables"), counts))
+            _batch_series(cmd, tmp, recipe_path, paths, counts, jobs, "tables",
+                          extra=("--no-figures",)), counts))
+        if ref and "spectra_per_s" in result:
+            result["efficiency"] = result["spectra_per_s"] / (jobs / ref)
         if figure_count and "failed" not in result:
-            default = tmp / "recipe_default.json"
-            _write_recipe(default)
-            fig_runs = _batch_series(cmd, tmp, default, paths, (figure_count,), jobs, "figures")
+            fig_runs = _batch_series(cmd, tmp, recipe_path, paths, (figure_count,), jobs,
+                                     "figures")
             result["with_figures"] = _series_summary(fig_runs, (figure_count,))
     return result
 
@@ -467,18 +589,32 @@ def bench_batch(counts, jobs: int, n_points: int, figure_count: int) -> dict:
 # -- driver ----------------------------------------------------------------------------------
 
 def run_benchmark(*, quick: bool = False, skip_batch: bool = False,
-                  repeat: int | None = None) -> dict:
-    """Run every part and return the JSON-ready results."""
+                  repeat: int | None = None, batch_counts=None, batch_figures=None,
+                  batch_only: bool = False) -> dict:
+    """Run every part and return the JSON-ready results.
+
+    ``batch_counts`` (spectra per batch run, e.g. ``(10, 100, 1000, 2000)``) and
+    ``batch_figures`` replace the defaults; ``batch_only`` leaves out the forward,
+    scaling and fit parts.
+    """
     cfg = dict(_QUICK if quick else _FULL)
     if repeat is not None:
         cfg["repeat"] = int(repeat)
+    if batch_counts:
+        cfg["batch_counts"] = tuple(sorted(int(n) for n in batch_counts))
+    if batch_figures is not None:
+        cfg["batch_figures"] = int(batch_figures)
     t0 = time.perf_counter()
     out = {"pellucid_bench": 1, "quick": quick, "machine": machine_info(),
            "settings": {k: list(v) if isinstance(v, tuple) else v for k, v in cfg.items()},
            "agreement_tol": AGREEMENT_TOL}
-    out["forward"] = bench_forward(cfg["forward_sizes"], cfg["repeat"], cfg["tmm_repeat"])
-    out["scaling"] = bench_scaling(cfg["scaling_sizes"], cfg["scaling_layers"], cfg["repeat"])
-    out["fit"] = bench_fit(cfg["fit_points"], cfg["fit_seeds"], warmup=not quick)
+    skipped = {"skipped": "--batch-only"}
+    out["forward"] = [] if batch_only else bench_forward(cfg["forward_sizes"], cfg["repeat"],
+                                                         cfg["tmm_repeat"])
+    out["scaling"] = skipped if batch_only else bench_scaling(
+        cfg["scaling_sizes"], cfg["scaling_layers"], cfg["repeat"])
+    out["fit"] = skipped if batch_only else bench_fit(cfg["fit_points"], cfg["fit_seeds"],
+                                                      warmup=not quick)
     if skip_batch:
         out["batch"] = {"skipped": "--skip-batch"}
     else:
@@ -506,9 +642,16 @@ def _targets(res: dict) -> dict:
     if "median_wall_s" in res["fit"]:
         t = res["fit"]["median_wall_s"]
         out["fit_median_below_0.25s"] = {"value_s": t, "met": t < 0.25}
-    if "spectra_per_s" in res.get("batch", {}):
-        v = res["batch"]["spectra_per_s"]
+    b = res.get("batch", {})
+    if "spectra_per_s" in b:
+        v = b["spectra_per_s"]
         out["batch_at_least_10_spectra_per_s"] = {"value": v, "met": v >= 10}
+    if "slope_loglog_upper" in b:
+        v = b["slope_loglog_upper"]
+        out["batch_loglog_slope_at_most_1.05"] = {"value": v, "met": v <= 1.05}
+    if b.get("peak_rss_ratio_last_first"):
+        v = b["peak_rss_ratio_last_first"]
+        out["batch_peak_rss_flat_within_10_percent"] = {"value": v, "met": v <= 1.10}
     return out
 
 
@@ -526,6 +669,8 @@ def format_report(res: dict) -> str:
         busy = max(start, end) > (m["cpus_usable"] or 1)
         lines.append(f"load average at start {start:.2f}, at end {end:.2f}"
                      + (": more than the cores, other work inflates these times" if busy else ""))
+    if "skipped" in res["scaling"]:          # --batch-only
+        return "\n".join(lines + _batch_lines(res) + _target_lines(res))
     lines.append("")
     lines.append("Forward model (median per call, parameters changing as in a fit)")
     lines.append(f"{'case':26s}{'W':>7s}{'pellucid µs':>13s}{'tmm ms':>11s}{'speed-up':>10s}"
@@ -553,38 +698,74 @@ def format_report(res: dict) -> str:
                      f"median {f['median_wall_s']:.3f} s, {f['median_nfev']:.0f} evaluations, "
                      f"{f['median_s_per_evaluation'] * 1e6:.0f} µs per evaluation, "
                      f"{f['successes']}/{f['seeds']} converged")
+    lines += _batch_lines(res) + _target_lines(res)
+    lines += ["", f"agreement with tmm (max |ΔT| < {res['agreement_tol']:g}): "
+                  f"{'yes' if res['all_agree'] else 'NO'}; total {res['total_s']:.1f} s"]
+    return "\n".join(lines)
+
+
+def _batch_lines(res: dict) -> list[str]:
     b = res["batch"]
-    lines += ["", "Batch (pellucid batch subprocess)"]
+    lines = ["", "Batch (pellucid batch subprocess, per-spectrum throughput)"]
     if "skipped" in b:
         lines.append(f"  skipped: {b['skipped']}")
     elif "failed" in b:
         lines.append(f"  failed: {b['failed']}")
     else:
-        lines.append(f"  exports {', '.join(b['exports'])}; {b['jobs']} jobs, "
-                     f"{b['points']} points per spectrum")
+        lines.append(f"  {b['inputs']}; {b['jobs']} jobs; exports {', '.join(b['exports'])}, "
+                     f"no per-spectrum figures")
+        lines.append(f"  {'spectra':>7s}{'wall s':>9s}{'spectra/s':>11s}{'s/spectrum':>12s}"
+                     f"{'peak RSS MB (all / main)':>27s}")
         for r in b["runs"]:
-            lines.append(f"  {r['spectra']:5d} spectra  {r['wall_s']:8.2f} s  "
-                         f"{r['spectra_per_s']:6.2f} spectra/s  "
-                         f"peak RSS {r['peak_tree_rss_bytes'] / 2 ** 20:7.0f} MB")
+            lines.append(f"  {r['spectra']:7d}{r['wall_s']:9.2f}{r['spectra_per_s']:11.2f}"
+                         f"{r['seconds_per_spectrum']:12.3f}"
+                         f"{r['peak_tree_rss_bytes'] / 2 ** 20:17.0f} / "
+                         f"{r.get('peak_main_rss_bytes', 0) / 2 ** 20:.0f}")
         if "seconds_per_spectrum_slope" in b:
             lines.append(f"  linear fit {b['seconds_per_spectrum_slope']:.3f} s per spectrum + "
-                         f"{b['startup_s']:.2f} s; per-spectrum time "
-                         f"{b['runs'][-1]['spectra']} vs {b['runs'][0]['spectra']}: "
-                         f"{b['per_spectrum_ratio_last_first']:.2f} "
-                         f"(log-log slope {b['slope_loglog']:.2f})")
+                         f"{b['startup_s']:.2f} s start-up; log-log slope of wall time "
+                         f"{b['slope_loglog']:.2f} over all runs, "
+                         f"{b['slope_loglog_upper']:.2f} between the two largest (1 = linear)")
+            if b.get("peak_rss_ratio_last_first"):
+                lines.append(f"  peak RSS {b['runs'][-1]['spectra']} vs "
+                             f"{b['runs'][0]['spectra']} spectra: "
+                             f"x{b['peak_rss_ratio_last_first']:.2f} (1 = flat)")
+        ref = b.get("reference_s_per_spectrum_one_process")
+        if ref:
+            lines.append(f"  reference (same run): one spectrum read, fitted and exported in "
+                         f"this process {ref:.3f} s; ideal {b['jobs'] / ref:.2f} spectra/s on "
+                         f"{b['jobs']} jobs; batch efficiency "
+                         f"{b.get('efficiency', math.nan):.0%}")
         fig = b.get("with_figures")
         if fig and "spectra_per_s" in fig:
             r = fig["runs"][0]
-            lines.append(f"  with figures (default exports): {r['spectra']} spectra "
-                         f"{r['wall_s']:.2f} s, {fig['spectra_per_s']:.2f} spectra/s")
-    if res.get("targets"):
-        lines += ["", "Targets (2-core machine)"]
-        for k, v in res["targets"].items():
-            val = v.get("value_s", v.get("value"))
-            lines.append(f"  {k:50s} {val:12.4g}  {'met' if v['met'] else 'NOT met'}")
-    lines += ["", f"agreement with tmm (max |ΔT| < {res['agreement_tol']:g}): "
-                  f"{'yes' if res['all_agree'] else 'NO'}; total {res['total_s']:.1f} s"]
-    return "\n".join(lines)
+            base = b["runs"][0]
+            lines.append(f"  with the recipe's per-spectrum figures: {r['spectra']} spectra "
+                         f"{r['wall_s']:.2f} s, {fig['spectra_per_s']:.2f} spectra/s (x"
+                         f"{r['seconds_per_spectrum'] / base['seconds_per_spectrum']:.1f} the "
+                         f"time per spectrum of the {base['spectra']}-spectrum run)")
+    return lines
+
+
+def _target_lines(res: dict) -> list[str]:
+    if not res.get("targets"):
+        return []
+    lines = ["", "Targets (2-core machine)"]
+    for k, v in res["targets"].items():
+        val = v.get("value_s", v.get("value"))
+        lines.append(f"  {k:50s} {val:12.4g}  {'met' if v['met'] else 'NOT met'}")
+    return lines
+
+
+def _counts(text: str) -> tuple[int, ...]:
+    try:
+        counts = tuple(int(x) for x in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: give whole numbers separated by commas, "
+                                         f"e.g. 10,100,1000,2000") from None
+    if not counts or min(counts) < 1:
+        raise argparse.ArgumentTypeError(f"{text!r}: every count must be at least 1")
+    return counts
 
 
 def main(argv=None) -> int:
@@ -597,10 +778,19 @@ def main(argv=None) -> int:
                         help="leave out the 'pellucid batch' subprocess runs")
     parser.add_argument("--repeat", type=int, default=None, metavar="N",
                         help="timed calls per forward-model measurement")
+    parser.add_argument("--batch-counts", type=_counts, default=None, metavar="N,N,...",
+                        help="spectra per batch run (default 10,50,200; the full linearity "
+                             "check is 10,100,1000,2000)")
+    parser.add_argument("--batch-figures", type=int, default=None, metavar="N",
+                        help="spectra in the run with per-spectrum figures (0 = none)")
+    parser.add_argument("--batch-only", action="store_true",
+                        help="only the batch part (no forward, scaling or fit timing)")
     args = parser.parse_args(argv)
     if args.repeat is not None and args.repeat < 1:
         parser.error("--repeat must be at least 1")
-    res = run_benchmark(quick=args.quick, skip_batch=args.skip_batch, repeat=args.repeat)
+    res = run_benchmark(quick=args.quick, skip_batch=args.skip_batch, repeat=args.repeat,
+                        batch_counts=args.batch_counts, batch_figures=args.batch_figures,
+                        batch_only=args.batch_only)
     print(format_report(res))
     path = atomic_write_json(args.out, json.loads(json.dumps(res, default=str)))
     print(f"results written to {path}")

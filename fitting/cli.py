@@ -13,7 +13,9 @@ import importlib
 import math
 import os
 import shutil
+import signal
 import sys
+import threading
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -21,21 +23,45 @@ from pathlib import Path
 from . import __version__
 from .errors import PellucidError
 
-EXIT_OK, EXIT_SOME_FAILED, EXIT_ERROR, EXIT_INTERRUPTED = 0, 1, 2, 130
+EXIT_OK, EXIT_SOME_FAILED, EXIT_ERROR, EXIT_CHECK = 0, 1, 2, 3
+EXIT_INTERRUPTED, EXIT_TERMINATED = 130, 143
+
+_FIT_EPILOG = """\
+exit status:
+  0    fitted, and the fit's verdict is good (or the engine gives no verdict)
+  3    fitted, but the verdict is 'check' or 'poor': read the reasons in the report
+  1    the fit failed (did not converge)
+  2    usage or input error (bad option, recipe, spectrum or output folder)
+"""
 
 _BATCH_EPILOG = """\
 exit status:
-  0    every spectrum was fitted successfully
-  1    some spectra failed (see the 'status' and 'reason' columns of summary.csv)
-  2    no spectrum succeeded, or a usage error (bad option, recipe or input path)
-  130  interrupted (Ctrl-C); finished spectra are kept, rerun with --resume
+  0    every spectrum was fitted and every verdict is good
+  3    every spectrum was fitted, but some verdicts are 'check' or 'poor'
+  1    some spectra failed, or the batch stopped early (e.g. a full disk);
+       see the 'status' and 'reason' columns of summary.csv
+  2    no spectrum was fitted, or a usage error (bad option, recipe or input path)
+  130  interrupted (Ctrl-C); 143: stopped by SIGTERM (a job scheduler, 'timeout');
+       finished spectra are kept, rerun with --resume
 
-output folder:
-  summary.csv, summary.json     one row per spectrum, rewritten after each one
+output folder (new, empty, or one an earlier batch wrote; a user's own files in it
+are never overwritten):
+  summary.csv, summary.json     one row per spectrum, rebuilt from the per-spectrum
+                                results when the batch ends (after Ctrl-C too)
   report.pdf                    the batch report (written at the end)
-  recipe.json                   the exact recipe used
+  recipe.json                   the exact recipe used (recipes/ if several)
   spectra/<stem>-<hash>/        each spectrum's exports; result.json is written last
                                 and marks the spectrum as done for --resume
+
+manifest (--manifest FILE.csv): one line per spectrum file, folder or pattern with
+its recipe, paths relative to the manifest; first matching line wins:
+  file,recipe
+  line3/*.csv,titania.json
+  line4/,nitride.json
+
+--scheduler: Dask moves tasks and results with pickle; anyone who can reach the
+scheduler can run code on its workers and forge results. Use only a cluster you
+control (on a trusted network, or with TLS).
 """
 
 
@@ -89,32 +115,44 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("recipe", metavar="RECIPE", help="recipe file (.json)")
     s.add_argument("--range", required=True, metavar="START:STOP:STEP",
                    help="wavelength grid in nm, e.g. 300:1100:2")
-    s.add_argument("--out", metavar="FILE", help="CSV file to write (default: standard output)")
+    s.add_argument("--out", metavar="FILE",
+                   help="CSV file to write (default: standard output); an existing file is "
+                        "replaced only if it is an earlier simulation")
 
     f = sub.add_parser("fit", help="fit one spectrum and write all exports",
-                       description="Fit one spectrum with a recipe; write the exports into "
-                                   "DIR and print the fit report. Exit status 0 converged, "
-                                   "1 not converged, 2 error.")
+                       description="Fit one spectrum with a recipe; write the exports the "
+                                   "recipe asks for into DIR and print the fit report.",
+                       epilog=_FIT_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     f.add_argument("spectrum", metavar="SPECTRUM", help="spectrum file")
     f.add_argument("--recipe", required=True, metavar="RECIPE", help="recipe file (.json)")
     f.add_argument("--out", required=True, metavar="DIR", help="folder for the exports")
+    f.add_argument("--no-figures", action="store_true",
+                   help="leave out the figures even if the recipe asks for them")
 
-    b = sub.add_parser("batch", help="fit many spectra with one recipe",
-                       description="Fit every spectrum with one recipe, in parallel. A bad "
+    b = sub.add_parser("batch", help="fit many spectra with one recipe (or several)",
+                       description="Fit every spectrum with its recipe, in parallel. A bad "
                                    "file is recorded with its reason and the batch goes on.",
                        epilog=_BATCH_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    b.add_argument("inputs", nargs="+", metavar="INPUTS",
+    b.add_argument("inputs", nargs="*", metavar="INPUTS",
                    help="spectrum files, folders or glob patterns (quote them: 'runs/*.csv')")
-    b.add_argument("--recipe", required=True, metavar="RECIPE", help="recipe file (.json)")
+    b.add_argument("--recipe", metavar="RECIPE", help="recipe file (.json) for the INPUTS")
+    b.add_argument("--manifest", metavar="FILE",
+                   help="CSV file with the columns file,recipe: a recipe per file, folder or "
+                        "pattern (several products in one run; see below)")
     b.add_argument("--out", required=True, metavar="DIR", help="output folder")
     b.add_argument("--jobs", type=_positive_int, metavar="N",
                    help="worker processes (default: all cores; 1 = in this process)")
     b.add_argument("--resume", action="store_true",
-                   help="skip spectra already done with the same recipe and input file")
+                   help="skip spectra already done with the same recipe (start values "
+                        "aside) and input file")
     b.add_argument("--scheduler", metavar="ADDRESS",
-                   help="run on an existing Dask distributed cluster, e.g. tcp://10.0.0.5:8786 "
-                        "(workers must see the input and output folders at the same paths)")
+                   help="run on an existing, trusted Dask distributed cluster, e.g. "
+                        "tcp://10.0.0.5:8786 (workers must see the input and output folders "
+                        "at the same paths; see below)")
     b.add_argument("--no-report", action="store_true", help="do not write report.pdf")
+    b.add_argument("--no-figures", action="store_true",
+                   help="no per-spectrum figures even if the recipe asks for them (much "
+                        "faster; the report's summary figures are still drawn)")
 
     d = sub.add_parser("demo", help="run the batch on the shipped demo spectra",
                        description="Fit the invented demo spectra in demo_data/ with "
@@ -150,6 +188,7 @@ def _simulate(args, out) -> int:
     text = "\n".join(lines) + "\n"
     if args.out:
         from .atomic import atomic_write_text
+        _refuse_overwrite(Path(args.out), Path(args.recipe))
         atomic_write_text(Path(args.out), text)
         print(f"wrote {len(wl)} wavelengths to {args.out}", file=sys.stderr)
     else:
@@ -157,15 +196,37 @@ def _simulate(args, out) -> int:
     return EXIT_OK
 
 
+_SIMULATION_HEAD = b"# software: pellucid"
+
+
+def _refuse_overwrite(target: Path, recipe: Path) -> None:
+    """Never replace the recipe itself, nor a file that is not an earlier simulation."""
+    if target.is_dir():
+        raise _UsageError(f"--out {target} is a folder; give a file name for the CSV")
+    if not target.exists():
+        return
+    if recipe.exists() and os.path.samefile(target, recipe):
+        raise _UsageError(f"--out {target} is the recipe file itself; give another file "
+                          f"name for the simulated spectrum")
+    try:
+        with open(target, "rb") as fh:
+            head = fh.read(len(_SIMULATION_HEAD))
+    except OSError:
+        head = b""
+    if head != _SIMULATION_HEAD:
+        raise _UsageError(f"--out {target} exists and is not an earlier Pellucid simulation; "
+                          f"it is not overwritten: give another file name, or delete it first")
+
+
 def _fit(args, out) -> int:
     from . import batch
-    from .recipe import load_recipe, recipe_hash
+    from .recipe import load_recipe
     from .spectrum import sha256_of_file
     recipe = load_recipe(args.recipe)
-    read_spectrum = batch._optional("reader", "read_spectrum")
-    fit_spectrum = batch._optional("fit", "fit_spectrum")
-    if read_spectrum is None or fit_spectrum is None:
-        raise PellucidError("this installation has no spectrum reader or fit engine")
+    if getattr(args, "no_figures", False) and "plots" in recipe.exports:
+        import dataclasses
+        recipe = dataclasses.replace(recipe, exports=tuple(e for e in recipe.exports
+                                                           if e != "plots"))
     path = Path(args.spectrum)
     if path.is_dir():
         raise _UsageError(f"{path} is a folder; 'pellucid fit' takes one spectrum file, "
@@ -175,20 +236,30 @@ def _fit(args, out) -> int:
     outdir = Path(args.out)
     if outdir.exists() and not outdir.is_dir():
         raise _UsageError(f"--out {outdir} is a file; give a folder for the exports")
-    spectrum = read_spectrum(path, options=recipe.reader_options())
-    result = fit_spectrum(spectrum, recipe.new_stack(), recipe.make_fit_options(spectrum))
+    prep = batch.Prepared(recipe.resolved())        # reads the recipe's reference files
+    spectrum = prep.spectrum(path)
+    result = prep.fit_spectrum(spectrum, recipe.new_stack(), recipe.make_fit_options(spectrum))
     outdir.mkdir(parents=True, exist_ok=True)
     # Say what was fitted: a reflectance file fits as R under an "auto" reader setting.
-    out.write(f"fitted {'transmittance T' if spectrum.quantity == 'T' else 'reflectance R'} "
-              f"of {path.name} ({len(spectrum)} points)\n")
-    prov = batch._provenance(recipe_hash(recipe), recipe, path, sha256_of_file(path))
-    files = batch._export(result, outdir, path.stem, prov, recipe)
+    what = 'transmittance T' if spectrum.quantity == 'T' else 'reflectance R'
+    ref = " after dividing by the 100 % line" if prep.reference else ""
+    out.write(f"fitted {what} of {path.name} ({len(spectrum)} points){ref}\n")
+    prov = prep.provenance(path, sha256_of_file(path))
+    files = batch._export(result, outdir, batch.export_stem(path), prov, prep.recipe)
     out.write(result.report() + "\n")
     if files:
         out.write(f"\nwrote {len(files)} files to {outdir}\n")
     else:
-        out.write(f"\nno exports written (none chosen in the recipe or no export module)\n")
-    return EXIT_OK if result.success else EXIT_SOME_FAILED
+        out.write("\nno exports written (none chosen in the recipe or no export module)\n")
+    if not result.success:
+        return EXIT_SOME_FAILED
+    verdict, reasons = batch.result_verdict(result)
+    if verdict in ("check", "poor"):
+        out.write(f"verdict: {verdict}" + "".join(f"\n  - {r}" for r in reasons) + "\n")
+        return EXIT_CHECK
+    if verdict:
+        out.write(f"verdict: {verdict}\n")
+    return EXIT_OK
 
 
 class _Progress:
@@ -203,6 +274,8 @@ class _Progress:
 
     def __call__(self, step):
         self.counts[step.status] = self.counts.get(step.status, 0) + 1
+        if step.status == "ok" and step.verdict in ("check", "poor"):
+            self.counts["check"] = self.counts.get("check", 0) + 1
         if step.skipped:
             self.t0 = time.monotonic()      # the rate counts spectra fitted in this run
         else:
@@ -216,8 +289,10 @@ class _Progress:
             width = 28
             fill = int(width * step.done / max(step.total, 1))
             bad = self.counts.get("failed", 0) + self.counts.get("error", 0)
+            check = self.counts.get("check", 0)
             line = (f"\r[{'#' * fill}{'.' * (width - fill)}] {step.done}/{step.total}  "
-                    f"{rate:.2f} spectra/s  ETA {eta}  failed {bad}  {name[:30]}")
+                    f"{rate:.2f} spectra/s  ETA {eta}  failed {bad}"
+                    f"{f'  to check {check}' if check else ''}  {name[:30]}")
             # Never wider than the terminal, or the bar wraps onto new lines.
             cols = max(40, shutil.get_terminal_size((100, 24)).columns - 1)
             self.stream.write(line.ljust(cols)[:cols])
@@ -227,8 +302,12 @@ class _Progress:
             what = step.reason if step.status != "ok" else _headline(step.row)
             # Reader messages start with the file name, already on the line.
             what = what.removeprefix(f"{step.path}, ").removeprefix(f"{step.path}: ")
-            tag = " (resumed)" if step.skipped else ""
-            self.stream.write(f"[{step.done}/{step.total}] {step.status:<6} {step.path}{tag}"
+            word = step.status
+            if step.status == "ok" and step.verdict and step.verdict != "good":
+                word = f"ok, {step.verdict}"
+            if step.skipped:             # not fitted now: say so, whatever its old status
+                word = f"skipped (done earlier, {word})"
+            self.stream.write(f"[{step.done}/{step.total}] {word:<6} {step.path}"
                               f"{': ' + what if what else ''}  ({rate:.2f}/s, ETA {eta})\n")
         self.stream.flush()
 
@@ -252,39 +331,102 @@ def _headline(row) -> str:
     return ""
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, turned into the same orderly stop as Ctrl-C."""
+
+
+class _SigtermStops:
+    """While active, SIGTERM (job schedulers, ``timeout``, ``kill``) raises
+    :class:`_Terminated` in the main thread, so a batch stops like Ctrl-C:
+    workers ended, summary written, lock released, resume explained."""
+
+    def __enter__(self):
+        self.old = None
+        if threading.current_thread() is threading.main_thread() and hasattr(signal, "SIGTERM"):
+            def handler(signum, frame):
+                raise _Terminated()
+            self.old = signal.signal(signal.SIGTERM, handler)
+        return self
+
+    def __exit__(self, *exc):
+        if self.old is not None:
+            signal.signal(signal.SIGTERM, self.old)
+        return False
+
+
+def _batch_inputs(args, inputs, recipe_path):
+    """(inputs, recipe) for iter_batch from INPUTS/--recipe and/or --manifest."""
+    from .batch import read_manifest
+    from .recipe import load_recipe
+    inputs = list(inputs or getattr(args, "inputs", None) or [])
+    recipe_path = recipe_path or getattr(args, "recipe", None)
+    manifest = getattr(args, "manifest", None)
+    if not inputs and not manifest:
+        raise _UsageError("give the spectra (INPUTS with --recipe) or a --manifest file")
+    if inputs and not recipe_path:
+        raise _UsageError("--recipe is needed for the INPUTS (or list them in a --manifest "
+                          "with their recipes)")
+    if recipe_path and not inputs:
+        raise _UsageError("--recipe was given but no INPUTS to apply it to")
+    recipe = load_recipe(recipe_path) if recipe_path else None
+    pairs = read_manifest(manifest) if manifest else []
+    return inputs + pairs, recipe
+
+
 def _batch(args, out, err, *, inputs=None, recipe_path=None, outdir=None) -> int:
     from .batch import iter_batch
-    from .recipe import load_recipe
-    recipe = load_recipe(recipe_path or args.recipe)
+    items, recipe = _batch_inputs(args, inputs, recipe_path)
     outdir = Path(outdir or args.out)
-    gen = iter_batch(inputs or args.inputs, recipe, outdir, jobs=args.jobs,
+    gen = iter_batch(items, recipe, outdir, jobs=args.jobs,
                      resume=getattr(args, "resume", False),
                      scheduler=getattr(args, "scheduler", None),
-                     report=not getattr(args, "no_report", False))
+                     report=not getattr(args, "no_report", False),
+                     figures=not getattr(args, "no_figures", False))
     progress, t0 = None, time.monotonic()
     try:
-        while True:
-            try:
-                step = next(gen)
-            except StopIteration as e:
-                summary = e.value
-                break
-            if progress is None:
-                progress = _Progress(err, step.total, t0)
-            progress(step)
-    except KeyboardInterrupt:
-        gen.close()             # writes the summary of what is finished
+        with _SigtermStops():
+            while True:
+                try:
+                    step = next(gen)
+                except StopIteration as e:
+                    summary = e.value
+                    break
+                if progress is None:
+                    progress = _Progress(err, step.total, t0)
+                progress(step)
+    except KeyboardInterrupt as e:
+        gen.close()             # ends the workers, writes the summary of what is finished
         if progress is not None and progress.tty:
             err.write("\n")
-        err.write(f"pellucid: interrupted; finished spectra are kept in {outdir}. "
-                  f"Rerun with --resume to continue.\n")
-        return EXIT_INTERRUPTED
-    c = summary.counts
-    out.write(f"{summary.total} spectra: {c.get('ok', 0)} ok, {c.get('failed', 0)} failed, "
-              f"{c.get('error', 0)} errors ({summary.elapsed_s:.1f} s)\n")
-    out.write(f"summary: {summary.summary_csv}\n")
-    if summary.report_pdf is not None:
-        out.write(f"report:  {summary.report_pdf}\n")
+        how = "stopped by SIGTERM" if isinstance(e, _Terminated) else "interrupted"
+        err.write(f"pellucid: {how}; finished spectra are kept in {outdir} (summary.csv lists "
+                  f"them). Rerun the same command with --resume to continue.\n")
+        return EXIT_TERMINATED if isinstance(e, _Terminated) else EXIT_INTERRUPTED
+    c, v = summary.counts, summary.verdicts
+    skipped = f", {summary.skipped} of them done earlier" if summary.skipped else ""
+    checks = v.get("check", 0) + v.get("poor", 0)
+    verdicts = (f" (verdicts: {v.get('good', 0)} good, {v.get('check', 0)} check, "
+                f"{v.get('poor', 0)} poor)" if sum(v.values()) else "")
+    out.write(f"{summary.total} spectra: {c.get('ok', 0)} ok{skipped}{verdicts}, "
+              f"{c.get('failed', 0)} failed, {c.get('error', 0)} errors "
+              f"({summary.elapsed_s:.1f} s)\n")
+    if summary.summary_csv.is_file():
+        out.write(f"summary: {summary.summary_csv}\n")
+    for pdf in summary.report_pdfs:
+        out.write(f"report:  {pdf}\n")
+    if checks:
+        out.write(f"{checks} fitted spectra need checking: see the 'verdict' and "
+                  f"'verdict_reasons' columns\n")
+    if summary.ignored:
+        names = ", ".join(p.name for p in summary.ignored[:5])
+        more = f" and {len(summary.ignored) - 5} more" if len(summary.ignored) > 5 else ""
+        err.write(f"pellucid: note: {len(summary.ignored)} files in the input folders are not "
+                  f"spectra and were left out: {names}{more}\n")
+    if summary.halted:
+        err.write(f"pellucid: the batch stopped: {summary.halted}. The finished spectra are "
+                  f"kept; make room, then rerun the same command with --resume.\n")
+    for w in summary.warnings:
+        err.write(f"pellucid: warning: {w}\n")
     if summary.report_error:
         err.write(f"pellucid: warning: {summary.report_error}\n")
     return summary.exit_code
@@ -326,7 +468,14 @@ def _demo(args, out, err) -> int:
             reports.append(outdir / "report.pdf")
     if len(reports) > 1:
         out.write("demo reports:\n" + "".join(f"  {p}\n" for p in reports))
-    return max(codes)
+    return worst_exit_code(codes)
+
+
+def worst_exit_code(codes) -> int:
+    """The most serious of several batch exit codes: none fitted (2) over some failed (1)
+    over fitted but to check (3) over all good (0)."""
+    rank = {EXIT_OK: 0, EXIT_CHECK: 1, EXIT_SOME_FAILED: 2, EXIT_ERROR: 3}
+    return max(codes, key=lambda c: rank.get(c, 4)) if codes else EXIT_OK
 
 
 def _gui(argv_rest, err) -> int:

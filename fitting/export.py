@@ -27,6 +27,7 @@ uncertainty that could not be estimated.
 from __future__ import annotations
 
 import io
+import json
 import math
 import re
 from datetime import datetime, timezone
@@ -36,7 +37,7 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from . import __version__
-from .atomic import atomic_write_bytes, atomic_write_json, atomic_write_text
+from .atomic import atomic_write_bytes, atomic_write_text, sync_dir
 from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
@@ -134,13 +135,13 @@ def provenance_footer(provenance: Mapping | None) -> str:
 
 # -- writers --------------------------------------------------------------------------
 def _csv_text(columns: Sequence[str], data: np.ndarray, header: list[str]) -> str:
-    buf = io.StringIO()
-    for line in header:
-        buf.write(line + "\n")
-    buf.write(",".join(columns) + "\n")
-    for row in data:
-        buf.write(",".join(_num(x) for x in row) + "\n")
-    return buf.getvalue()
+    data = np.asarray(data, dtype=float)
+    # Non-finite values are written as nan; repr gives the shortest text that reads back
+    # to the same double, and on Python floats (tolist) it is fast.
+    data = np.where(np.isfinite(data), data, np.nan)
+    lines = [*header, ",".join(columns)]
+    lines += [",".join(map(repr, row)) for row in data.tolist()]
+    return "\n".join(lines) + "\n"
 
 
 def _num(x) -> str:
@@ -156,12 +157,25 @@ def _col(a, size):
 
 def _json_clean(obj):
     """NaN/inf -> None and numpy types -> Python ones, so the file is strict JSON."""
-    if isinstance(obj, Mapping):
+    if isinstance(obj, dict) or (not isinstance(obj, (str, list, tuple, np.ndarray, float,
+                                                      int)) and isinstance(obj, Mapping)):
         return {str(k): _json_clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        # Long runs of numbers (curves, n and κ) are cleaned in one vectorised step.
+        if len(obj) > 8 and (isinstance(obj, np.ndarray) or type(obj[0]) is float):
+            try:
+                a = np.asarray(obj, dtype=float)
+            except (TypeError, ValueError):
+                a = None
+            if a is not None and a.ndim == 1 and (not isinstance(obj, np.ndarray)
+                                                  or obj.dtype.kind in "fiu"):
+                ok = np.isfinite(a)
+                if ok.all():
+                    return a.tolist()
+                return [x if f else None for x, f in zip(a.tolist(), ok.tolist())]
+        if isinstance(obj, np.ndarray):
+            return _json_clean(obj.tolist())
         return [_json_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _json_clean(obj.tolist())
     if isinstance(obj, (bool, np.bool_)):
         return bool(obj)
     if isinstance(obj, (int, np.integer)):
@@ -171,8 +185,25 @@ def _json_clean(obj):
     return obj
 
 
+def _json_text(doc: Mapping) -> str:
+    """Strict JSON laid out for reading: one line per top-level key and per key one level
+    down, each value compact. Encoded by the C encoder (an indented dump takes the slow
+    pure-Python path: most of an export's time for a 1,000-point spectrum)."""
+    def compact(v):
+        return json.dumps(v, ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
+
+    parts = []
+    for k, v in doc.items():
+        if isinstance(v, dict) and v:
+            inner = ",\n".join(f"    {compact(str(k2))}: {compact(v2)}" for k2, v2 in v.items())
+            parts.append(f"  {compact(str(k))}: {{\n{inner}\n  }}")
+        else:
+            parts.append(f"  {compact(str(k))}: {compact(v)}")
+    return "{\n" + ",\n".join(parts) + "\n}\n"
+
+
 def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None = None,
-                dpi: int = 150) -> Path:
+                dpi: int = 150, sync_dir: bool = True) -> Path:
     """Save a Figure atomically, with provenance as file metadata and a footer line.
 
     The figure is rendered to memory first, so a failing render never touches an
@@ -216,7 +247,7 @@ def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None
             label.remove()
         if old_rect is not None:
             engine.set(rect=old_rect)
-    return atomic_write_bytes(path, buf.getvalue())
+    return atomic_write_bytes(path, buf.getvalue(), sync_dir=sync_dir)
 
 
 def _write_curves(result, path, prov, name):
@@ -229,7 +260,8 @@ def _write_curves(result, path, prov, name):
                                            f"(measured - fitted) and sigma of {result.quantity} "
                                            "as fractions (1.0 = 100 %); used = 1 if the point "
                                            "took part in the fit"})
-    atomic_write_text(path, _csv_text(curve_columns(result.quantity), data, header))
+    atomic_write_text(path, _csv_text(curve_columns(result.quantity), data, header),
+                      sync_dir=False)
 
 
 def export_result(result, out_dir, *, stem: str, provenance: Mapping,
@@ -282,7 +314,7 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
                                                "4*pi*k/wavelength in 1/cm; *_sigma = 1-sigma "
                                                "from the fit covariance (nan = not estimated)"})
         written.append(atomic_write_text(out / f"{stem}_nk_{layer}.csv",
-                                         _csv_text(NK_COLUMNS, data, header)))
+                                         _csv_text(NK_COLUMNS, data, header), sync_dir=False))
 
     if "curves" in parts:
         _write_curves(result, out / f"{stem}_curves.csv", prov, name)
@@ -290,11 +322,12 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
     if "json" in parts:
         doc = result.to_dict(curves=True)
         doc["provenance"] = prov
-        written.append(atomic_write_json(out / f"{stem}_result.json", _json_clean(doc)))
+        written.append(atomic_write_text(out / f"{stem}_result.json",
+                                         _json_text(_json_clean(doc)), sync_dir=False))
     if "report" in parts:
         text = "\n".join(["Pellucid fit report", f"spectrum: {name}",
                           *(line[2:] for line in _prov_lines(prov)), "", result.report(), ""])
-        written.append(atomic_write_text(out / f"{stem}_report.txt", text))
+        written.append(atomic_write_text(out / f"{stem}_report.txt", text, sync_dir=False))
     if plots:
         from . import plots as P   # matplotlib only when figures are asked for
         figures = [("fit", lambda: P.fit_figure(result))]
@@ -306,7 +339,8 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
             fig = build()
             for fmt in plots:
                 written.append(save_figure(fig, out / f"{stem}_{kind}.{fmt}", provenance=prov,
-                                           fmt=fmt))
+                                           fmt=fmt, sync_dir=False))
+    sync_dir(out)        # every rename above made durable at once
     return written
 
 

@@ -31,6 +31,10 @@ File format ``pellucid-recipe``, version 1
         "band_gap": {"min": 3.2},                       # eV
         "redchi": {"max": 5}
       },
+      "reference": {                        # optional: raw signals -> T (or R)
+        "baseline": "refs/100pct.csv",      # the 100 % line, measured like the samples
+        "dark": "refs/dark.csv"             # optional; null or left out = no dark signal
+      },
       "outputs": {
         "exports": ["nk", "curves", "json", "report", "plots"],
                                             # per-spectrum files: n/κ tables, measured
@@ -77,13 +81,40 @@ Version 0 (earlier layout, upgraded automatically by :func:`upgrade`): no
 ``"fit_thickness": true``; the fit window was a top-level ``"range_nm"`` and
 the method a top-level ``"method"``.
 
-Loading validates everything and raises :class:`~fitting.errors.RecipeError`
-naming the field (``stack.layers[0].material.kind``) and the problem; unknown
-format versions are refused. Saving is atomic. :func:`recipe_hash` is the
-SHA-256 of the canonical JSON (sorted keys, no whitespace, after validation,
-so key order and number spelling do not matter; name and notes count too) and
-is written into every result as provenance; the batch runner's ``--resume``
-compares it.
+Reference correction (optional ``reference`` section): every spectrum is read
+as the raw signal S and turned into T = (S - D) / (B - D) with the 100 % line B
+and the dark signal D (:func:`fitting.reference.reference_correct`). Relative
+paths are resolved from the folder of the recipe file; :meth:`Recipe.resolved`
+makes them absolute (the batch runner saves that form beside its results). The
+reference files' names and SHA-256 go into the provenance of every result.
+
+Loading validates everything before anything runs and raises
+:class:`~fitting.errors.RecipeError` naming the field
+(``stack.layers[0].material.kind``) and the problem: wrong types (a thickness of
+``"abc"``, ``"vary": "false"`` as text), numbers that are not finite
+(``Infinity``, ``NaN``) or absurdly large (beyond ±1e12, or integers of more
+than 15 digits), nesting deeper than 32 levels, unknown fields and unknown
+format versions. A UTF-8 byte-order mark at the start of the file is accepted.
+Saving is atomic.
+
+Two hashes identify a recipe:
+
+* :func:`recipe_hash`, the SHA-256 of the canonical JSON (sorted keys, no
+  whitespace, after validation, so key order and number spelling do not matter;
+  name and notes count too), is written into every result as provenance: it
+  says exactly which recipe produced it.
+* :func:`recipe_identity` decides whether an earlier result may be reused by
+  ``pellucid batch --resume``. It covers everything that can change a result:
+  the models and their kinds, every bound, the fixed/varied flags, the values of
+  fixed parameters, ties, the substrate and media, non-uniformity and bandwidth,
+  the reader, the fit window, masks and options, the limits, the outputs and
+  the *content* (SHA-256) of the reference files. It leaves out the name, the
+  notes, the location of the reference files and the start values of varied
+  parameters: the automatic start finds its own starting point from the data,
+  so one interactive fit that moved the start values does not make a resumed
+  batch refit everything. (With a purely local method, ``"leastsq"`` or
+  ``"least_squares"``, start values can change the answer; run without
+  ``--resume`` after changing them.)
 """
 
 from __future__ import annotations
@@ -104,8 +135,9 @@ from .errors import PellucidError, RecipeError
 from .stack import Stack
 
 __all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", "recipe_hash",
-           "canonical_json", "upgrade", "validate_expression", "FORMAT", "VERSION",
-           "EXPORT_CHOICES", "PLOT_FORMATS", "STANDARD_WAVELENGTHS_NM"]
+           "recipe_identity", "canonical_json", "upgrade", "validate_expression", "FORMAT",
+           "VERSION", "EXPORT_CHOICES", "PLOT_FORMATS", "STANDARD_WAVELENGTHS_NM",
+           "MAX_NUMBER", "MAX_DEPTH"]
 
 FORMAT = "pellucid-recipe"
 VERSION = 1
@@ -121,6 +153,12 @@ STANDARD_WAVELENGTHS_NM = (550, 633, 1000)
 TIE_FUNCTIONS = frozenset({"sqrt", "exp", "log", "log10", "sin", "cos", "tan", "abs"})
 TIE_CONSTANTS = frozenset({"pi"})
 _MAX_EXPR_LEN = 500
+#: Largest magnitude of any number in a recipe: far beyond any thickness (nm), bound,
+#: time limit or evaluation budget, far below overflow. Open bounds are null.
+MAX_NUMBER = 1e12
+#: Deepest nesting of objects and lists a recipe may have (a real one needs about 6).
+MAX_DEPTH = 32
+_MAX_INT_DIGITS = 15
 
 _LAYER = r"[A-Za-z][A-Za-z0-9]*"
 _NK_RE = re.compile(rf"^(?P<layer>{_LAYER})_(?P<q>[nk])@(?P<wl>\d+(?:\.\d+)?)$")
@@ -217,6 +255,93 @@ def _walk_exprs(obj, where):
     elif isinstance(obj, list):
         for i, v in enumerate(obj):
             yield from _walk_exprs(v, f"{where}[{i}]")
+
+
+class _HugeInt(str):
+    """An integer literal too long to be a sensible number; refused by :func:`check_plain`."""
+
+
+def _parse_int(text: str):
+    # json's own int() would refuse (or slowly convert) thousands of digits with a bare
+    # ValueError; keep the text so the error can name the field.
+    return _HugeInt(text) if len(text.lstrip("-")) > _MAX_INT_DIGITS else int(text)
+
+
+def check_plain(obj, where: str = "(recipe)", depth: int = 0) -> None:
+    """Refuse what no recipe field can hold, naming the field.
+
+    Numbers must be finite and within ±:data:`MAX_NUMBER` (integers of at most 15
+    digits), nesting at most :data:`MAX_DEPTH` levels, keys text, every ``"vary"``
+    a JSON boolean (``"false"`` in quotes is text, and text is true in Python).
+
+    Raises
+    ------
+    RecipeError
+    """
+    if depth > MAX_DEPTH:
+        raise RecipeError(where, f"is nested more than {MAX_DEPTH} levels deep; "
+                                 "this is not a recipe layout")
+    if isinstance(obj, _HugeInt):
+        raise RecipeError(where, f"the number {obj[:12]}… has {len(obj.lstrip('-'))} digits; "
+                                 f"no recipe value needs more than {_MAX_INT_DIGITS}")
+    if isinstance(obj, bool) or obj is None or isinstance(obj, str):
+        return
+    if isinstance(obj, int):
+        if len(str(abs(obj))) > _MAX_INT_DIGITS:
+            raise RecipeError(where, f"the number {str(obj)[:12]}… has {len(str(abs(obj)))} "
+                                     f"digits; no recipe value needs more than {_MAX_INT_DIGITS}")
+        return
+    if isinstance(obj, float):
+        if not math.isfinite(obj):
+            raise RecipeError(where, f"must be a finite number, got {obj!r}; use null for "
+                                     "an open bound or leave the field out")
+        if abs(obj) > MAX_NUMBER:
+            raise RecipeError(where, f"{obj:g} is far too large (more than {MAX_NUMBER:g}); "
+                                     "check the units, or use null for an open bound")
+        return
+    if isinstance(obj, Mapping):
+        for k, v in obj.items():
+            if not isinstance(k, str):
+                raise RecipeError(where, f"has a key {k!r} that is not text")
+            w = f"{where}.{k}" if where != "(recipe)" else k
+            if k == "vary" and not isinstance(v, bool):
+                raise RecipeError(w, f"must be true or false (without quotes), got {v!r}")
+            check_plain(v, w, depth + 1)
+        return
+    if isinstance(obj, (list, tuple)):
+        for i, v in enumerate(obj):
+            check_plain(v, f"{where}[{i}]", depth + 1)
+        return
+    raise RecipeError(where, f"holds a {type(obj).__name__}, which JSON cannot store")
+
+
+def _check_field_types(d: Mapping, cls, where: str) -> None:
+    """Values of a dataclass-backed section must have the type of the field's default.
+
+    Booleans must be booleans, numbers numbers (not booleans), whole-number fields
+    whole numbers; fields defaulting to None or text are left to the owner's own
+    checks. Catches ``"fit_scale": "false"`` before it reads as true.
+    """
+    import dataclasses
+    if not dataclasses.is_dataclass(cls):
+        return
+    for f in dataclasses.fields(cls):
+        if f.name not in d or d[f.name] is None:
+            continue
+        default = f.default
+        if default is dataclasses.MISSING:
+            continue
+        v, w = d[f.name], f"{where}.{f.name}"
+        if isinstance(default, bool):
+            if not isinstance(v, bool):
+                raise RecipeError(w, f"must be true or false (without quotes), got {v!r}")
+        elif isinstance(default, int):
+            if isinstance(v, bool) or not (isinstance(v, int) or
+                                           (isinstance(v, float) and v.is_integer())):
+                raise RecipeError(w, f"must be a whole number, got {v!r}")
+        elif isinstance(default, float):
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                raise RecipeError(w, f"must be a number, got {v!r}")
 
 
 # ---------------------------------------------------------------------------------
@@ -337,6 +462,7 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
     cls = _optional(module, cls_name)
     if cls is None or not hasattr(cls, "from_dict"):
         return json.loads(json.dumps(dict(d)))
+    _check_field_types(d, cls, where)
     try:
         if "where" in inspect.signature(cls.from_dict).parameters:
             obj = cls.from_dict(dict(d), where=where)
@@ -347,7 +473,7 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
         if not (f == where.split(".")[0] or f.startswith(where)):
             f = f"{where}.{f}"
         raise RecipeError(f, e.problem) from None
-    except (PellucidError, ValueError, TypeError, KeyError) as e:
+    except (PellucidError, ValueError, TypeError, KeyError, OverflowError) as e:
         raise RecipeError(where, str(e)) from None
     return obj.to_dict()
 
@@ -395,6 +521,13 @@ class Recipe:
         Per-spectrum exports to write.
     plot_formats : tuple of str
         Image formats of exported plots (``"png"``, ``"svg"``).
+    reference : dict or None
+        ``{"baseline": path, "dark": path or None}``: divide every spectrum by
+        this 100 % line after subtracting the dark signal (see the module
+        docstring); None for spectra that are already T or R.
+    source_dir : Path or None
+        Folder relative reference paths are resolved from (the recipe file's
+        folder; set by :func:`load_recipe`). Not saved, not hashed.
     """
 
     stack: Stack
@@ -407,10 +540,13 @@ class Recipe:
     limits: dict = field(default_factory=dict)
     exports: tuple = EXPORT_CHOICES
     plot_formats: tuple = ("png",)
+    reference: dict | None = None
+    source_dir: Path | None = field(default=None, compare=False, repr=False)
 
     def __post_init__(self):
         if not isinstance(self.stack, Stack):
             raise RecipeError("stack", "must be a Stack")
+        self.reference = _reference_section(self.reference)
         for what in ("name", "notes"):
             if not isinstance(getattr(self, what), str):
                 raise RecipeError(what, "must be text")
@@ -464,6 +600,44 @@ class Recipe:
                                                    f"{', '.join(allowed)}")
         return tuple(dict.fromkeys(values))
 
+    # -- reference files ---------------------------------------------------------
+    def reference_files(self) -> dict:
+        """``{"baseline": Path, "dark": Path or None}`` resolved from :attr:`source_dir`
+        (empty if the recipe has no reference correction).
+
+        Raises
+        ------
+        RecipeError
+            If a named file does not exist; the message gives the resolved path.
+        """
+        if not self.reference:
+            return {}
+        base = Path(self.source_dir) if self.source_dir is not None else Path.cwd()
+        out = {}
+        for role in ("baseline", "dark"):
+            name = self.reference.get(role)
+            if not name:
+                out[role] = None
+                continue
+            p = Path(name).expanduser()
+            p = p if p.is_absolute() else base / p
+            if not p.is_file():
+                what = "100 % line" if role == "baseline" else "dark spectrum"
+                hint = "" if Path(name).is_absolute() else \
+                    " (a relative path is read from the folder of the recipe file)"
+                raise RecipeError(f"reference.{role}",
+                                  f"the {what} {str(p)!r} does not exist{hint}; check the path")
+            out[role] = p.resolve()
+        return out
+
+    def resolved(self) -> "Recipe":
+        """This recipe with absolute reference paths, ready to be saved anywhere."""
+        if not self.reference:
+            return self
+        files = self.reference_files()
+        ref = {k: (None if v is None else str(v)) for k, v in files.items()}
+        return recipe_from_dict({**self.to_dict(), "reference": ref})
+
     # -- objects for the other parts -------------------------------------------------
     def new_stack(self) -> Stack:
         """A fresh copy of the stack (fits change parameter values in place)."""
@@ -503,7 +677,9 @@ class Recipe:
                         "options": dict(self.fit_options)},
                 "limits": {k: v.to_dict() for k, v in self.limits.items()},
                 "outputs": {"exports": list(self.exports),
-                            "plot_formats": list(self.plot_formats)}}
+                            "plot_formats": list(self.plot_formats)},
+                # Only when used, so recipes without it keep their hash.
+                **({"reference": dict(self.reference)} if self.reference else {})}
 
     @classmethod
     def from_dict(cls, d, *, path=None) -> "Recipe":
@@ -511,6 +687,29 @@ class Recipe:
 
     def hash(self) -> str:
         return recipe_hash(self)
+
+
+def _reference_section(ref):
+    """Validate the ``reference`` section: None or {"baseline": text, "dark": text or None}."""
+    if ref is None:
+        return None
+    if not isinstance(ref, Mapping):
+        raise RecipeError("reference", 'must be an object like {"baseline": "refs/100.csv", '
+                                       '"dark": "refs/dark.csv"}')
+    extra = set(ref) - {"baseline", "dark"}
+    if extra:
+        raise RecipeError(f"reference.{sorted(extra)[0]}", "unknown field; use baseline and dark")
+    out = {}
+    for role in ("baseline", "dark"):
+        v = ref.get(role)
+        if v is None and role == "dark":
+            out[role] = None
+            continue
+        if not isinstance(v, str) or not v.strip():
+            need = "is missing" if v is None else f"must be a file path (text), got {v!r}"
+            raise RecipeError(f"reference.{role}", need)
+        out[role] = v.strip()
+    return out
 
 
 # ---------------------------------------------------------------------------------
@@ -564,11 +763,21 @@ def _upgrade_0_to_1(d: dict, path) -> dict:
     return d
 
 
-def recipe_from_dict(d: Mapping, *, path=None) -> Recipe:
-    """Validate a recipe dict (any supported version) and build a :class:`Recipe`."""
+def recipe_from_dict(d: Mapping, *, path=None, source_dir=None) -> Recipe:
+    """Validate a recipe dict (any supported version) and build a :class:`Recipe`.
+
+    ``source_dir`` is the folder relative reference paths are read from (default:
+    the folder of ``path`` when given).
+    """
+    try:
+        check_plain(d)
+    except RecipeError as e:
+        raise RecipeError(e.field, e.problem, path=path) from None
     d = upgrade(d, path=path)
+    if source_dir is None and path is not None:
+        source_dir = Path(path).parent
     known = {"format", "version", "name", "notes", "stack", "reader", "fit", "limits",
-             "outputs"}
+             "outputs", "reference"}
     extra = set(d) - known
     try:
         if extra:
@@ -578,7 +787,7 @@ def recipe_from_dict(d: Mapping, *, path=None) -> Recipe:
         # Ties are checked for syntax before anything else touches the data.
         for w, expr in _walk_exprs(d["stack"], "stack"):
             validate_expression(expr, _ANY_NAME, field_name=w)
-        stack = Stack.from_dict(d["stack"], where="stack")
+        stack = _stack_from_dict(d["stack"])
         fit = d.get("fit", {})
         if not isinstance(fit, Mapping):
             raise RecipeError("fit", "must be an object")
@@ -598,11 +807,35 @@ def recipe_from_dict(d: Mapping, *, path=None) -> Recipe:
                       masks_nm=fit.get("masks_nm", []), limits=d.get("limits", {}),
                       exports=outputs.get("exports", defaults["exports"].default),
                       plot_formats=outputs.get("plot_formats",
-                                               defaults["plot_formats"].default))
+                                               defaults["plot_formats"].default),
+                      reference=d.get("reference"),
+                      source_dir=None if source_dir is None else Path(source_dir))
     except RecipeError as e:
         if path is not None and e.path is None:
             raise RecipeError(e.field, e.problem, path=path) from None
         raise
+
+
+def _stack_from_dict(d) -> Stack:
+    """Stack.from_dict, with any slip of its checks turned into a named error."""
+    layers = d.get("layers") if isinstance(d, Mapping) else None
+    for i, layer in enumerate(layers if isinstance(layers, list) else []):
+        th = layer.get("thickness") if isinstance(layer, Mapping) else None
+        if isinstance(layer, Mapping) and "thickness" in layer and not isinstance(th, Mapping) \
+                and (isinstance(th, bool) or not isinstance(th, (int, float))):
+            raise RecipeError(f"stack.layers[{i}].thickness",
+                              f"must be a number (nm) or an object like {{\"value\": 500, "
+                              f"\"min\": 0, \"max\": 2000, \"vary\": true}}, got {th!r}")
+    try:
+        return Stack.from_dict(d, where="stack")
+    except RecipeError:
+        raise
+    except PellucidError as e:
+        raise RecipeError("stack", str(e)) from None
+    except (ValueError, TypeError, OverflowError, KeyError) as e:
+        # A value of the wrong type where the layout expected a number or an object.
+        raise RecipeError("stack", f"a value has the wrong type or form ({e}); compare "
+                                   "with a recipe saved by Pellucid") from None
 
 
 class _AnyName:
@@ -630,6 +863,30 @@ def recipe_hash(recipe) -> str:
     return hashlib.sha256(canonical_json(d).encode("ascii")).hexdigest()
 
 
+def recipe_identity(recipe, reference_sha256: Mapping | None = None) -> str:
+    """Hex SHA-256 of what decides a recipe's results (the key ``--resume`` compares).
+
+    Everything of :func:`recipe_hash` except the name, the notes, the reference
+    files' locations and the start values of varied, untied film parameters (see
+    the module docstring for why). ``reference_sha256`` (``{"baseline": hex,
+    "dark": hex or None}``) puts the reference files' content in instead of their
+    paths; the batch runner passes it.
+    """
+    r = recipe if isinstance(recipe, Recipe) else recipe_from_dict(recipe)
+    d = r.to_dict()
+    for key in ("name", "notes"):
+        d.pop(key, None)
+    for layer in d["stack"]["layers"]:
+        params = [layer["thickness"], *layer["material"].get("params", {}).values()]
+        for p in params:
+            if isinstance(p, dict) and p.get("vary") is True and not p.get("expr"):
+                p.pop("value", None)            # a start value, not part of the model
+    if "reference" in d:
+        d["reference"] = dict(reference_sha256 or {"files": "unhashed"})
+    d["identity"] = "pellucid-recipe-identity-1"
+    return hashlib.sha256(canonical_json(d).encode("ascii")).hexdigest()
+
+
 def load_recipe(path) -> Recipe:
     """Read and validate a recipe file.
 
@@ -640,18 +897,42 @@ def load_recipe(path) -> Recipe:
         message names the file, the field and the problem.
     """
     path = Path(path)
+    if path.is_dir():
+        raise RecipeError("(file)", "is a folder; give the recipe file (.json)", path=path)
     try:
-        text = path.read_text(encoding="utf-8")
+        raw = path.read_bytes()
     except FileNotFoundError:
         raise RecipeError("(file)", "file not found", path=path) from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise RecipeError("(file)", f"cannot be read: {e}", path=path) from None
+    except OSError as e:
+        raise RecipeError("(file)", f"cannot be read: {e.strerror or e}", path=path) from None
+    if len(raw) > _MAX_FILE_BYTES:
+        raise RecipeError("(file)", f"is {len(raw) / 2 ** 20:.0f} MB; a recipe is a few kB of "
+                                    "JSON; is this the right file?", path=path)
     try:
-        d = json.loads(text)
+        text = raw.decode("utf-8-sig")           # a byte-order mark some editors add is fine
+    except UnicodeDecodeError as e:
+        raise RecipeError("(file)", f"is not UTF-8 text (byte {e.start}); save it as UTF-8",
+                          path=path) from None
+    return recipe_from_dict(parse_recipe_json(text, path=path), path=path)
+
+
+#: Largest recipe file read (a real one is a few kB).
+_MAX_FILE_BYTES = 16 * 2 ** 20
+
+
+def parse_recipe_json(text: str, *, path=None):
+    """JSON text -> plain data, refusing what :func:`json.loads` turns into a traceback
+    (nesting too deep for the parser, integers of thousands of digits)."""
+    try:
+        return json.loads(text, parse_int=_parse_int)
     except json.JSONDecodeError as e:
         raise RecipeError("(file)", f"not valid JSON at line {e.lineno}, column {e.colno}: "
                                     f"{e.msg}", path=path) from None
-    return recipe_from_dict(d, path=path)
+    except RecursionError:
+        raise RecipeError("(file)", f"is nested more than {MAX_DEPTH} levels deep; this is "
+                                    "not a recipe layout", path=path) from None
+    except ValueError as e:
+        raise RecipeError("(file)", f"not valid JSON: {e}", path=path) from None
 
 
 def save_recipe(recipe: Recipe, path) -> Path:

@@ -2,18 +2,20 @@
 
 Pages, in order (A4 portrait):
 
-1. **Overview**: provenance (software, recipe name and hash, date), counts, the
-   thickness statistics and the first rows of the summary table; the table goes
-   on over as many pages as needed.
+1. **Overview**: provenance (software, recipe name and hash, date), counts (and
+   how many fits the engine judged good, to check or poor), the thickness
+   statistics and the first rows of the summary table (with each fit's verdict);
+   the table goes on over as many pages as needed.
 2. **Thickness**: the thickness over the batch order and its histogram, with the
    specification limits drawn.
 3. **Optical constants**: n and κ of all successful spectra overlaid (evenly
    subsampled for big batches), read from each spectrum's exported files.
 4. **Failed spectra** (only if any): each with the reason it failed.
 5. **Fits that did not converge** (only failures that still exported their curves,
-   e.g. status ``"failed"`` from the batch runner), then the **worst fits**: the
-   successful fits with the highest reduced χ². ``worst`` of each at most, two per
-   page, each redrawn from its exported curves with its reason or warnings.
+   e.g. status ``"failed"`` from the batch runner), then the **fits to look at**:
+   the successful fits with verdict ``poor``, then ``check``, then the highest
+   reduced χ². ``worst`` of each at most, two per page, each redrawn from its
+   exported curves with its reason, verdict reasons or warnings.
 
 Summary rows
 ------------
@@ -26,6 +28,9 @@ optional; missing or unreadable values are shown as "–".
 ``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit;
                             anything else (``"failed"``, ``"error"``, ``"skipped"``) is a
                             failure
+``verdict``                 the fit engine's own judgement of a finished fit: ``"good"``,
+                            ``"check"`` or ``"poor"`` (empty: none given)
+``verdict_reasons``         why, in plain words (``"; "``-separated text or a list)
 ``reason``                  why it failed, in words (shown for failures)
 ``film_thickness``          fitted thickness in nm (or another ``{layer}_thickness`` key)
 ``film_thickness_sigma``    its 1σ in nm
@@ -64,11 +69,14 @@ from .export import provenance_footer, read_curves_csv, read_nk_csv
 from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
                     spec_bounds, thickness_histogram_figure, thickness_trend_figure)
 
-__all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES"]
+__all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES", "VERDICTS"]
 
 #: Summary-row keys the report reads (see the module docstring).
-ROW_KEYS = ("file", "sha256", "status", "reason", "film_thickness", "film_thickness_sigma",
-            "n_633", "redchi", "warnings", "spec_pass", "result_dir")
+ROW_KEYS = ("file", "sha256", "status", "verdict", "verdict_reasons", "reason",
+            "film_thickness", "film_thickness_sigma", "n_633", "redchi", "warnings",
+            "spec_pass", "result_dir")
+#: Verdicts of the fit engine, best first; the report colours and ranks by them.
+VERDICTS = ("good", "check", "poor")
 A4_INCHES = (8.27, 11.69)
 ROWS_FIRST_PAGE = 36      # table rows under the overview block
 ROWS_PER_PAGE = 52        # table rows on continuation pages
@@ -111,6 +119,18 @@ def _warn_texts(row) -> list[str]:
     if isinstance(w, str) and not math.isfinite(_num(w)):   # texts, not a count
         return [p.strip() for p in w.split(";") if p.strip()]
     return []
+
+
+def _verdict(row) -> str:
+    v = str(row.get("verdict") or "").strip().lower()
+    return v if v in VERDICTS else ""
+
+
+def _verdict_texts(row) -> list[str]:
+    v = row.get("verdict_reasons")
+    if isinstance(v, (list, tuple)):
+        return [str(x) for x in v if str(x).strip()]
+    return [p.strip() for p in str(v or "").split(";") if p.strip()]
 
 
 def _warn_count(row) -> int:
@@ -285,10 +305,11 @@ def _footer(fig, text, page, pages):
 
 _COLS = [  # header, x position (fraction of the table width), alignment
     ("#", 0.035, "right"), ("file", 0.05, "left"), ("sha256", 0.335, "left"),
-    ("status", 0.45, "left"),
+    ("status", 0.44, "left"), ("verdict", 0.49, "left"),
     ("thickness (nm)", 0.69, "right"), ("n(633)", 0.77, "right"),
     ("χ²_red", 0.86, "right"), ("spec", 0.93, "right"), ("warn.", 0.995, "right"),
 ]
+_VERDICT_COLOURS = {"good": "#222222", "check": PALETTE["spec"], "poor": PALETTE["fail"]}
 ROW_HEIGHT = 0.0165   # figure fraction (about 0.19 in on A4)
 
 
@@ -301,11 +322,11 @@ def _table_cells(i, row, key, spec, info):
     sha = str(row.get("sha256") or row.get("input_sha256") or "")[:10] or "–"
     cells = [str(i + 1), _short(_display_name(row, info), 34), sha, _short(status, 12)]
     if ok:
-        cells += [thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
+        cells += [_verdict(row) or "–", thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
                   _fmt(row.get("redchi"), "{:.3g}"),
                   {"pass": "pass", "fail": "FAIL"}.get(state, "–"), str(_warn_count(row))]
     else:   # a failure has no numbers; its reason goes where they would be
-        cells += [None] * 5
+        cells += [None] * 6
     return cells, ok, state
 
 
@@ -330,6 +351,8 @@ def _draw_table(fig, top, rows, start, key, spec, info):
             color = "#222222"
             if (name == "status" and not ok) or (name == "spec" and state == "fail"):
                 color = PALETTE["fail"]
+            if name == "verdict":
+                color = _VERDICT_COLOURS.get(text, "#222222")
             ax.text(x, y, text, ha=ha, va="center", fontsize=7, color=color,
                     family=_MONO if name in ("sha256", "thickness (nm)", "n(633)", "χ²_red")
                     else None)
@@ -354,8 +377,12 @@ def _overview(fig, rows, key, spec, info):
     d = d[np.isfinite(d)]
     states = [_spec_state(r, spec, key) for r in rows]
     n_pass = states.count("pass")
+    verdicts = [_verdict(r) for r in ok]
     summary = [("spectra", f"{len(rows)}"), ("fitted", f"{len(ok)}"),
                ("failed", f"{len(rows) - len(ok)}"),
+               ("verdicts", ", ".join(f"{verdicts.count(v)} {v}" for v in VERDICTS)
+                + (f", {verdicts.count('')} without" if verdicts.count("") else "")
+                if any(verdicts) else "none given by the fit engine"),
                ("in spec", f"{n_pass} of {n_pass + states.count('fail')}"
                 if spec or any(s for s in states) else "no limits given")]
     if d.size:
@@ -413,8 +440,12 @@ def _worst_page(fig, items, results_dir, key, info, heading):
                  rf"$\chi^2_\mathrm{{red}}$ = {_fmt(row.get('redchi'), '{:.3g}')}")
         texts = _warn_texts(row)
         nw = _warn_count(row)
+        reasons = _verdict_texts(row)
         if not row_ok(row):
             title += "\n" + _two_lines(f"{row.get('status', 'failed')}: {_reason(row)}")
+        elif _verdict(row) in ("check", "poor") and reasons:
+            sentences = [t if t[-1] in ".!?" else t + "." for t in reasons]
+            title += "\n" + _two_lines(f"verdict {_verdict(row)}: " + " ".join(sentences))
         elif texts:
             sentences = [t if t[-1] in ".!?" else t + "." for t in texts]
             title += "\n" + _two_lines("warnings: " + " ".join(sentences))
@@ -541,10 +572,17 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     n_worst = max(int(worst), 0)
     unconverged = list(itertools.islice(
         (i for i, r in failed if _has_curves(_result_dir(r, results_dir))), n_worst))
-    ranked = sorted(ok_idx, key=lambda i: -_num(rows[i].get("redchi"))
-                    if math.isfinite(_num(rows[i].get("redchi"))) else math.inf)[:n_worst]
+    def badness(i):
+        # Poor, then check, then the rest; within each, the highest reduced χ² first.
+        chi = _num(rows[i].get("redchi"))
+        return (-{"poor": 2, "check": 1}.get(_verdict(rows[i]), 0),
+                -chi if math.isfinite(chi) else math.inf)
+    ranked = sorted(ok_idx, key=badness)[:n_worst]
+    any_verdict = any(_verdict(rows[i]) for i in ok_idx)
+    worst_heading = ("Fits to look at (verdict poor, then check, then highest reduced χ²)"
+                     if any_verdict else "Worst fits (highest reduced χ²)")
     for group, heading in ((unconverged, "Fits that did not converge"),
-                           (ranked, "Worst fits (highest reduced χ²)")):
+                           (ranked, worst_heading)):
         for start in range(0, len(group), 2):
             items = [(i, rows[i]) for i in group[start:start + 2]]
             pages.append((True, lambda fig, items=items, heading=heading:

@@ -284,6 +284,15 @@ def test_exit_codes():
     assert mk(2, 3).exit_code == 1
     assert mk(0, 3).exit_code == 2
     assert mk(2, 3, stopped=True).exit_code == 1
+    # Verdicts of the fit engine: all fitted but some to check -> 3; failures outrank it.
+    judged = lambda ok, total, v, **kw: BatchSummary(  # noqa: E731
+        total, {"ok": ok}, None, None, None, "", 0.0, verdicts=v, **kw)
+    assert judged(3, 3, {"good": 3}).exit_code == 0
+    assert judged(3, 3, {"good": 2, "check": 1}).exit_code == 3
+    assert judged(3, 3, {"good": 2, "poor": 1}).exit_code == 3
+    assert judged(2, 3, {"check": 2}).exit_code == 1
+    assert judged(3, 3, {"good": 3}, halted="disk full").exit_code == 1
+    assert judged(0, 0, {}).exit_code == 2
 
 
 def test_batch_output_opens_as_a_project(batch27, tmp_path):
@@ -296,3 +305,303 @@ def test_batch_output_opens_as_a_project(batch27, tmp_path):
     assert proj.check_spectra() == []
     back = load_project(save_project(proj, tmp_path / "p.pellucid.json"))
     assert back.results == proj.results
+
+
+# -- issue: the overnight batch keeps its promises ------------------------------------------
+def test_a_failed_summary_write_is_a_warning_and_the_rows_are_kept(tmp_path, monkeypatch):
+    import errno
+    import fitting.batch_files as bf
+    real = bf._write_pair
+    monkeypatch.setattr(bf, "RETRY_PAUSE_S", 0.0)
+
+    def locked(out_dir, names, *a, **kw):            # summary.csv open in a spreadsheet
+        if names[0] == "summary.csv":
+            raise PermissionError(errno.EACCES, "Permission denied", str(out_dir / names[0]))
+        return real(out_dir, names, *a, **kw)
+
+    monkeypatch.setattr(bf, "_write_pair", locked)
+    write_spectra(tmp_path / "in", [450.0, 520.0], seed=31)
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 2 and summary.exit_code == 0     # the results stand
+    (warning,) = summary.warnings
+    assert "could not be replaced" in warning and "instead" in warning
+    (alt,) = (tmp_path / "out").glob("summary-*.csv")
+    assert alt.name in warning and len(alt.read_text().splitlines()) == 3
+
+    def full(out_dir, names, *a, **kw):
+        raise OSError(errno.ENOSPC, "No space left on device", str(out_dir / names[0]))
+
+    monkeypatch.setattr(bf, "_write_pair", full)
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out2", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 2
+    (warning,) = summary.warnings
+    assert "disk is full" in warning and "--resume" in warning
+    assert len(list((tmp_path / "out2" / "spectra").glob(f"*/{MARKER_NAME}"))) == 2
+
+
+def test_a_full_disk_during_the_exports_stops_the_batch_resumably(tmp_path, monkeypatch):
+    import errno
+    import fitting.export
+    real = fitting.export.export_result
+    calls = []
+
+    def disk_fills(result, out_dir, **kw):
+        calls.append(1)
+        if len(calls) == 2:
+            raise OSError(errno.ENOSPC, "No space left on device",
+                          str(out_dir / "x_curves.csv"))
+        return real(result, out_dir, **kw)
+
+    monkeypatch.setattr(fitting.export, "export_result", disk_fills)
+    write_spectra(tmp_path / "in", [420.0, 480.0, 540.0, 600.0], seed=32)
+    steps = []
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False, on_step=steps.append)
+    assert [s.status for s in steps] == ["ok", "error"]         # nothing after the full disk
+    assert "disk is full" in steps[1].reason and "x_curves.csv" in steps[1].reason
+    assert "internal error" not in steps[1].reason
+    assert "disk is full" in summary.halted and summary.exit_code == 1
+    assert len(list((tmp_path / "out" / "spectra").glob(f"*/{MARKER_NAME}"))) == 1
+    monkeypatch.setattr(fitting.export, "export_result", real)
+    again = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.counts["ok"] == 4 and again.skipped == 1 and again.exit_code == 0
+
+
+def test_tasks_carry_no_recipe_and_workers_get_it_without_notes(tmp_path, monkeypatch):
+    import pickle
+    import fitting.batch as B
+    seen = []
+    real = B.process_spectrum
+
+    def spy(task, context=None, **kw):
+        seen.append((task, context))
+        return real(task, context, **kw)
+
+    monkeypatch.setattr(B, "process_spectrum", spy)
+    write_spectra(tmp_path / "in", [500.0, 560.0], seed=33)
+    recipe = make_recipe(notes="a long free-text note " * 200)
+    run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    for task, context in seen:
+        assert set(task) == {"index", "path", "sha256", "folder", "recipe"}
+        assert len(pickle.dumps(task)) < 600               # no recipe inside
+        (info,) = context["recipes"].values()
+        assert "notes" not in info["recipe"] and info["recipe"]["stack"]
+
+
+def test_the_user_s_files_in_the_output_folder_are_never_replaced(tmp_path):
+    write_spectra(tmp_path / "in", [500.0], seed=34)
+    for name in ("recipe.json", "summary.csv"):
+        out = tmp_path / f"out_{name}"
+        out.mkdir()
+        (out / name).write_text("my own file\n")
+        with pytest.raises(BatchInputError, match=f"already holds {name}") as ei:
+            run_batch([tmp_path / "in"], make_recipe(), out, jobs=1, report=False)
+        assert "new or empty folder" in str(ei.value)
+        assert (out / name).read_text() == "my own file\n"
+        assert not (out / "spectra").exists()
+    # The input folder itself is not a results folder (it gave "0 spectra" before).
+    with pytest.raises(BatchInputError, match="folder of the input spectra"):
+        run_batch([tmp_path / "in"], make_recipe(), tmp_path / "in", jobs=1, report=False)
+    assert sorted(p.name for p in (tmp_path / "in").iterdir()) == ["s000.txt"]
+    # An earlier batch's folder is reused, but not once the user edited its summary.
+    run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    edited = (tmp_path / "mine" / "summary.csv").read_text() + "my note\n"
+    (tmp_path / "mine" / "summary.csv").write_text(edited)
+    with pytest.raises(BatchInputError, match="summary.csv is not the file"):
+        run_batch([tmp_path / "in"], make_recipe(), tmp_path / "mine", jobs=1, report=False)
+    assert (tmp_path / "mine" / "summary.csv").read_text() == edited
+
+
+def test_names_that_clash_or_are_odd_keep_their_own_folders(tmp_path):
+    src = tmp_path / "in"
+    write_spectra(src, [470.0], seed=35)
+    data = (src / "s000.txt").read_bytes()
+    (src / "s000.txt").unlink()
+    names = ["a b.csv", "a_b.csv", "...csv", "a\\b.csv", "A_B.csv"]
+    for name in names:                    # equal content: equal SHA-256 as well
+        (src / name).write_bytes(data)
+    # "...csv" starts with a dot: hidden, so only taken when named explicitly.
+    inputs = [src, src / "...csv"]
+    summary = run_batch(inputs, make_recipe(), tmp_path / "out", jobs=1, report=False)
+    assert summary.counts == {"ok": 5, "failed": 0, "error": 0}
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    folders = [r["result_dir"] for r in rows]
+    assert len({f.lower() for f in folders}) == 5              # none shares a folder
+    for r in rows:
+        folder = tmp_path / "out" / r["result_dir"]
+        rec = json.loads((folder / MARKER_NAME).read_text())
+        assert rec["input"]["path"] == r["file"]
+        assert sorted(rec["files"]) == sorted(p.name for p in folder.iterdir()
+                                              if p.name != MARKER_NAME)
+        assert len(rec["files"]) == 4
+    # The same input list finds the same folders again.
+    again = run_batch(inputs, make_recipe(), tmp_path / "out", jobs=1, resume=True,
+                      report=False)
+    assert again.skipped == 5
+
+
+def test_an_empty_or_stale_lock_file_is_no_obstacle(tmp_path):
+    from fitting.batch import LOCK_NAME
+    write_spectra(tmp_path / "in", [500.0], seed=36)
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / LOCK_NAME).write_text("")          # left empty by a crash
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts["ok"] == 1 and not (tmp_path / "out" / LOCK_NAME).exists()
+
+
+def test_resume_ignores_start_values_but_not_the_model(tmp_path):
+    # One interactive fit that moved the start values must not make --resume refit all.
+    write_spectra(tmp_path / "in", [460.0, 540.0], seed=37)
+    first = make_recipe()
+    run_batch([tmp_path / "in"], first, tmp_path / "out", jobs=1, report=False)
+    moved = first.to_dict()
+    moved["stack"]["layers"][0]["thickness"]["value"] = 470.0
+    moved["stack"]["layers"][0]["material"]["params"]["A"]["value"] = 2.2
+    moved["name"] = "after an interactive fit"
+    from fitting.recipe import recipe_from_dict
+    again = run_batch([tmp_path / "in"], recipe_from_dict(moved), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.skipped == 2 and again.counts["ok"] == 2
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert {r["recipe_hash"] for r in rows} == {recipe_hash(first)}   # who made them
+    bounds = first.to_dict()
+    bounds["stack"]["layers"][0]["thickness"]["max"] = 4000.0
+    third = run_batch([tmp_path / "in"], recipe_from_dict(bounds), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert third.skipped == 0 and third.counts["ok"] == 2
+
+
+def _counts_files(folder, thicknesses, seed):
+    """Raw detector signals: sample S = T (B - D) + D with a lamp-shaped 100 % line B and a
+    flat dark D (the usual single-beam arithmetic, common practice), plus count noise."""
+    from batch_helpers import WAVELENGTHS, true_stack
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    wl = WAVELENGTHS
+    B = 2.0e5 * np.exp(-((wl - 650.0) / 400.0) ** 2) + 5.0e4
+    D = np.full(wl.size, 800.0)
+
+    def write(name, values):
+        lines = ["wavelength_nm,counts"] + [f"{w:.2f},{v:.1f}" for w, v in zip(wl, values)]
+        (folder / name).write_text("\n".join(lines) + "\n")
+
+    for i, d in enumerate(thicknesses):
+        T = true_stack(d).transmittance(wl)
+        write(f"raw{i}.csv", T * (B - D) + D + rng.normal(0, 60.0, wl.size))
+    return B, D, write
+
+
+def test_a_recipe_s_100_percent_line_and_dark_are_applied_and_recorded(tmp_path):
+    import hashlib
+    from fitting.recipe import load_recipe, save_recipe
+    B, D, write = _counts_files(tmp_path / "in", [480.0, 610.0], seed=38)
+    refs = tmp_path / "recipes" / "refs"
+    refs.mkdir(parents=True)
+    _, _, write_ref = _counts_files(refs, [], seed=0)
+    write_ref("baseline.csv", B)
+    write_ref("dark.csv", D)
+    path = save_recipe(make_recipe(reference={"baseline": "refs/baseline.csv",
+                                              "dark": "refs/dark.csv"}),
+                       tmp_path / "recipes" / "line.json")
+    recipe = load_recipe(path)                    # relative paths: from the recipe's folder
+    summary = run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    assert summary.counts["ok"] == 2, summary
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    assert [r["film_thickness"] for r in rows] == pytest.approx([480.0, 610.0], rel=0.01)
+    sha_b = hashlib.sha256((refs / "baseline.csv").read_bytes()).hexdigest()
+    sha_d = hashlib.sha256((refs / "dark.csv").read_bytes()).hexdigest()
+    folder = tmp_path / "out" / rows[0]["result_dir"]
+    rec = json.loads((folder / MARKER_NAME).read_text())
+    assert rec["reference"]["baseline"] == {"file": str((refs / "baseline.csv").resolve()),
+                                            "sha256": sha_b}
+    assert rec["reference"]["dark"]["sha256"] == sha_d
+    curves = (folder / "raw0_curves.csv").read_text()
+    assert f"# reference_baseline: {(refs / 'baseline.csv').resolve()} (sha256 {sha_b})" in curves
+    # The copy beside the results names the files absolutely, so it works from there.
+    saved = json.loads((tmp_path / "out" / "recipe.json").read_text())
+    assert saved["reference"]["baseline"] == str((refs / "baseline.csv").resolve())
+    # A new 100 % line is a new identity: --resume refits.
+    write_ref("baseline.csv", B * 1.01)
+    again = run_batch([tmp_path / "in"], load_recipe(path), tmp_path / "out", jobs=1,
+                      resume=True, report=False)
+    assert again.skipped == 0
+    # A missing reference file stops the batch before it starts, naming the file.
+    (refs / "dark.csv").unlink()
+    with pytest.raises(BatchInputError, match="dark.csv.*does not exist"):
+        run_batch([tmp_path / "in"], load_recipe(path), tmp_path / "out2", jobs=1)
+
+
+def test_several_recipes_in_one_batch_from_a_manifest(tmp_path):
+    from fitting.batch import read_manifest
+    from fitting.dispersion import Cauchy
+    from fitting.recipe import Recipe, save_recipe
+    from fitting.stack import Layer, Stack
+    from fitting.substrates import library_substrate
+    write_spectra(tmp_path / "line3", [450.0, 520.0], seed=39)
+    write_spectra(tmp_path / "line4", [600.0], seed=40)
+    save_recipe(make_recipe(name="line 3"), tmp_path / "line3.json")
+    coat = Stack([Layer("coat", Cauchy(2.0, 0.02), 560.0)], library_substrate("fused_silica", 1.0))
+    save_recipe(Recipe(coat, name="line 4", exports=("curves",)), tmp_path / "line4.json")
+    (tmp_path / "manifest.csv").write_text("# overnight run\nfile,recipe\n"
+                                           "line3/*.txt,line3.json\nline4/,line4.json\n")
+    items = read_manifest(tmp_path / "manifest.csv")
+    assert len(items) == 2
+    summary = run_batch(items, None, tmp_path / "out", jobs=1)
+    assert summary.counts["ok"] == 3 and len(summary.report_pdfs) == 2
+    for pdf in summary.report_pdfs:
+        assert pdf.read_bytes()[:5] == b"%PDF-"
+    doc = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert {"film_thickness", "coat_thickness", "recipe_name"} <= set(doc["columns"])
+    by = {r["file"].rsplit("/", 1)[-1] + r["recipe_name"]: r for r in doc["rows"]}
+    assert by["s000.txtline 3"]["film_thickness"] == pytest.approx(450.0, rel=0.01)
+    assert by["s000.txtline 4"]["coat_thickness"] == pytest.approx(600.0, rel=0.01)
+    assert by["s000.txtline 4"].get("film_thickness") is None
+    assert len(list((tmp_path / "out" / "recipes").glob("*.json"))) == 2
+    assert not (tmp_path / "out" / "recipe.json").exists()
+    (tmp_path / "bad.csv").write_text("file,recipe\nline3/*.txt,missing.json\n")
+    with pytest.raises(BatchInputError, match=r"bad.csv, line 2: .*missing.json"):
+        read_manifest(tmp_path / "bad.csv")
+    (tmp_path / "bad2.csv").write_text("spectrum,recipe\nx,y\n")
+    with pytest.raises(BatchInputError, match="line 1: the header must name"):
+        read_manifest(tmp_path / "bad2.csv")
+
+
+def test_a_spreadsheet_in_the_folder_gets_a_row_and_other_files_a_note(tmp_path):
+    write_spectra(tmp_path / "in", [500.0], seed=41)
+    (tmp_path / "in" / "results.xlsx").write_bytes(b"PK\x03\x04" + bytes(64))
+    (tmp_path / "in" / "notes.md").write_text("measured on Tuesday\n")
+    summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1,
+                        report=False)
+    assert summary.counts == {"ok": 1, "failed": 0, "error": 1}
+    rows = json.loads((tmp_path / "out" / "summary.json").read_text())["rows"]
+    sheet = next(r for r in rows if r["file"].endswith("results.xlsx"))
+    assert sheet["status"] == "error" and "save the sheet as CSV" in sheet["reason"]
+    assert [p.name for p in summary.ignored] == ["notes.md"]
+
+
+def test_per_spectrum_work_does_not_grow_with_the_batch(tmp_path, monkeypatch):
+    # Nothing is rewritten or re-read per spectrum: the summary is written once and every
+    # marker is read a fixed number of times, however many spectra there are.
+    import fitting.batch as B
+    import fitting.batch_files as bf
+    writes, reads = [], []
+    real_write, real_read = bf.write_summary_files, B.read_marker_record
+    monkeypatch.setattr(B, "write_summary_files",
+                        lambda *a, **k: writes.append(1) or real_write(*a, **k))
+    monkeypatch.setattr(B, "read_marker_record",
+                        lambda *a, **k: reads.append(1) or real_read(*a, **k))
+    per = {}
+    for n in (2, 6):
+        writes.clear()
+        reads.clear()
+        write_spectra(tmp_path / f"in{n}", np.linspace(450, 600, n), seed=n)
+        run_batch([tmp_path / f"in{n}"], make_recipe(), tmp_path / f"out{n}", jobs=1,
+                  report=False)
+        per[n] = (len(writes), len(reads) / n)
+    assert per[2][0] == per[6][0] == 1
+    assert per[2][1] == per[6][1] <= 2

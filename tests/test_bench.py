@@ -120,3 +120,39 @@ def test_series_summary_reports_slope_and_per_spectrum_ratio():
     assert out["all_fits_ok"] is True
     crashed = runs[:2] + [{**runs[2], "returncode": 2}]
     assert "failed" in bench._series_summary(crashed, (50, 100, 200))
+
+
+def test_series_summary_slopes_and_memory_of_a_growing_batch():
+    # Per-spectrum time growing with the batch (0.5 s + 0.001 s per spectrum already in
+    # the batch) must show in the upper log-log slope; flat memory gives a ratio of 1.
+    runs = [{"spectra": n, "wall_s": 2 + 0.5 * n + 0.001 * n * n, "returncode": 0,
+             "peak_tree_rss_bytes": 300 * 2 ** 20, "spectra_per_s": 1.0}
+            for n in (10, 100, 1000)]
+    out = bench._series_summary(runs, (10, 100, 1000))
+    expected = math.log((2 + 500 + 1000) / (2 + 50 + 10)) / math.log(10)
+    assert out["slope_loglog_upper"] == pytest.approx(expected)
+    assert out["slope_loglog_upper"] > 1.05              # the target would flag this
+    assert out["peak_rss_ratio_last_first"] == pytest.approx(1.0)
+    # A run ending in exit status 3 (fitted, some verdicts to check) still counts.
+    runs[1]["returncode"] = 3
+    assert "failed" not in bench._series_summary(runs, (10, 100, 1000))
+
+
+def test_batch_counts_option_and_batch_only_report(capsys):
+    assert bench._counts("10,100,2000") == (10, 100, 2000)
+    for bad in ("10,x", "0,5", ""):
+        with pytest.raises(Exception):
+            bench._counts(bad)
+    fake = {"machine": {"cpu_model": "test cpu", "cpus_usable": 2, "numpy": "x", "scipy": "y",
+                        "python": "3"},
+            "forward": [], "scaling": {"skipped": "--batch-only"}, "fit": {"skipped": "x"},
+            "batch": {"inputs": "demo recipe", "jobs": 2, "exports": ["nk"],
+                      "runs": [{"spectra": 10, "wall_s": 5.0, "spectra_per_s": 2.0,
+                                "seconds_per_spectrum": 0.5, "peak_tree_rss_bytes": 2 ** 28,
+                                "peak_main_rss_bytes": 2 ** 27}],
+                      "reference_s_per_spectrum_one_process": 0.4, "efficiency": 0.4},
+            "targets": {"batch_at_least_10_spectra_per_s": {"value": 2.0, "met": False}},
+            "agreement_tol": 1e-9, "all_agree": True, "total_s": 1.0}
+    text = bench.format_report(fake)
+    assert "Forward model" not in text
+    assert "256 / 128" in text and "efficiency 40%" in text and "NOT met" in text

@@ -275,3 +275,120 @@ def test_documented_layer_example_is_valid():
     d["limits"] = {}
     r = recipe_from_dict(d)
     assert r.stack.layers[0].thickness.max == 5000.0
+
+
+# -- hand-edited recipes: refused up front, naming the field ------------------------------
+def _recipe_text(edit_text=None, **layer_thickness):
+    d = make_recipe().to_dict()
+    d["stack"]["layers"][0]["thickness"].update(layer_thickness)
+    text = json.dumps(d)
+    return edit_text(text) if edit_text else text
+
+
+@pytest.mark.parametrize("text,field,match", [
+    (_recipe_text(value="abc"), "stack.layers[0].thickness", "not a number"),
+    (_recipe_text(value=None), "stack.layers[0].thickness", "not a number"),
+    (_recipe_text(value=[480]), "stack.layers[0].thickness", "not a number"),
+    (_recipe_text(value=1e308), "stack.layers[0].thickness.value", "far too large"),
+    (_recipe_text(vary="false"), "stack.layers[0].thickness.vary", "true or false"),
+    (_recipe_text(lambda t: t.replace('"value": 480.0', '"value": ' + "9" * 5000)),
+     "stack.layers[0].thickness.value", "5000 digits"),
+    (_recipe_text(lambda t: t.replace('"time_limit_s": 60.0', '"time_limit_s": Infinity')),
+     "fit.options.time_limit_s", "finite"),
+    (_recipe_text(lambda t: t.replace('"fit_scale": false', '"fit_scale": "false"')),
+     "fit.options.fit_scale", "true or false"),
+    (_recipe_text(lambda t: t.replace('"max_nfev": 20000', '"max_nfev": 2.5')),
+     "fit.options.max_nfev", "whole number"),
+    (_recipe_text(lambda t: t.replace('"notes": "line 3"',
+                                      '"notes": ' + "[" * 40 + "]" * 40)),
+     "notes" + "[0]" * 32, "nested"),
+    (_recipe_text(lambda t: t.replace('"notes": "line 3"',
+                                      '"notes": ' + "[" * 100000 + "]" * 100000)),
+     "(file)", "nested"),
+])
+def test_hand_edited_recipes_are_refused_with_the_field(tmp_path, text, field, match):
+    # Each of these gave a traceback, loaded and killed a batch later, or was read wrongly
+    # ("false" in quotes is true in Python).
+    f = tmp_path / "edited.json"
+    f.write_text(text, encoding="utf-8")
+    with pytest.raises(RecipeError, match=match) as ei:
+        load_recipe(f)
+    assert ei.value.field == field
+    assert str(f) in str(ei.value)
+
+
+def test_flat_thickness_of_the_wrong_type_names_the_layer():
+    d = make_recipe().to_dict()
+    for bad in ("abc", None, [1, 2], True):
+        d["stack"]["layers"][1]["thickness"] = bad
+        with pytest.raises(RecipeError, match="must be a number") as ei:
+            recipe_from_dict(d)
+        assert ei.value.field == "stack.layers[1].thickness"
+
+
+def test_a_byte_order_mark_is_read(tmp_path):
+    # Some Windows editors save UTF-8 with a BOM (EF BB BF); the recipe is the same.
+    r = make_recipe()
+    f = tmp_path / "bom.json"
+    f.write_bytes(b"\xef\xbb\xbf" + json.dumps(r.to_dict()).encode("utf-8"))
+    assert load_recipe(f).to_dict() == r.to_dict()
+
+
+# -- identity for resuming -----------------------------------------------------------------
+def test_identity_ignores_start_values_name_and_notes_only():
+    from fitting.recipe import recipe_identity
+    base = make_recipe()
+    ident = recipe_identity(base)
+    d = base.to_dict()
+    d["name"], d["notes"] = "renamed", "other notes"
+    d["stack"]["layers"][0]["thickness"]["value"] = 470.0          # varied: a start value
+    d["stack"]["layers"][0]["material"]["params"]["A"]["value"] = 2.2
+    assert recipe_identity(d) == ident
+    assert recipe_hash(d) != recipe_hash(base)                     # provenance still tells
+    changes = [
+        ("stack", "layers", 0, "material", "params", "C", "value"),  # fixed (vary false): model
+        ("stack", "layers", 0, "thickness", "max"),                  # a bound
+        ("stack", "substrate", "thickness_mm"),
+        ("fit", "options", "time_limit_s"),
+    ]
+    for path in changes:
+        d2 = base.to_dict()
+        node = d2
+        for k in path[:-1]:
+            node = node[k]
+        node[path[-1]] = node[path[-1]] * 0.9 + 0.001
+        assert recipe_identity(d2) != ident, path
+    d3 = base.to_dict()
+    d3["stack"]["layers"][0]["thickness"]["vary"] = False              # fixing changes it
+    assert recipe_identity(d3) != ident
+    d4 = base.to_dict()
+    d4["outputs"]["exports"] = ["nk"]
+    assert recipe_identity(d4) != ident
+
+
+# -- reference correction in a recipe -------------------------------------------------------
+def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
+    (tmp_path / "refs").mkdir()
+    (tmp_path / "refs" / "b.csv").write_text("400,1000\n500,1000\n")
+    r = make_recipe(reference={"baseline": "refs/b.csv"})
+    assert r.to_dict()["reference"] == {"baseline": "refs/b.csv", "dark": None}
+    path = save_recipe(r, tmp_path / "r.json")
+    loaded = load_recipe(path)
+    files = loaded.reference_files()
+    assert files == {"baseline": (tmp_path / "refs" / "b.csv").resolve(), "dark": None}
+    resolved = loaded.resolved()
+    assert resolved.reference["baseline"] == str((tmp_path / "refs" / "b.csv").resolve())
+    # No reference: the section is not written, so older recipes keep their hash.
+    assert "reference" not in make_recipe().to_dict()
+    missing = make_recipe(reference={"baseline": "refs/nope.csv", "dark": "refs/dark.csv"})
+    missing.source_dir = tmp_path
+    with pytest.raises(RecipeError, match="does not exist.*folder of the recipe") as ei:
+        missing.reference_files()
+    assert ei.value.field == "reference.baseline"
+    for bad, field in (({"dark": "d.csv"}, "reference.baseline"),
+                       ({"baseline": 5}, "reference.baseline"),
+                       ({"baseline": "b.csv", "flat": "x"}, "reference.flat"),
+                       ("b.csv", "reference")):
+        with pytest.raises(RecipeError) as ei:
+            make_recipe(reference=bad)
+        assert ei.value.field == field

@@ -251,3 +251,29 @@ def test_failed_page_gives_the_whole_reason_without_the_file_name(tmp_path):
     assert advice in text
     assert "error: no data point lies" in text      # "ir: " (the spectrum name) dropped
     assert "mainframe.csv, line 1" not in text
+
+
+@needs_pdftotext
+def test_verdicts_are_counted_shown_and_rank_the_fits_to_look_at(batch, tmp_path):
+    rows, root = batch
+    verdicts = {"coupon_01": ("poor", "the model has no absorption below 400 nm"),
+                "coupon_02": ("good", ""), "coupon_03": ("check", "n at 633 nm lies outside "
+                                                                   "the measured range"),
+                "coupon_04": ("good", "")}
+    marked = []
+    for r in rows:
+        stem = r["file"].rsplit("/", 1)[-1][:-4]
+        v = verdicts.get(stem)
+        marked.append({**r, "verdict": v[0], "verdict_reasons": v[1]} if v else r)
+    pdf = report.write_batch_report(marked, root, tmp_path / "v.pdf", recipe=RECIPE,
+                                    spec=SPEC)
+    overview = page_text(pdf, 1)
+    assert "2 good, 1 check, 1 poor" in overview
+    table = [ln for ln in overview.splitlines() if "coupon_0" in ln]
+    assert [("poor" in ln, "check" in ln) for ln in table] == \
+        [(True, False), (False, False), (False, True), (False, False)]
+    first = page_text(pdf, 5)
+    assert "Fits to look at" in first
+    # coupon_01 (poor) before coupon_03 (check), although its χ² is the lowest.
+    assert first.index("coupon_01") < first.index("coupon_03")
+    assert "no absorption below 400 nm" in first
