@@ -295,7 +295,7 @@ def _recipe_text(edit_text=None, **layer_thickness):
      "stack.layers[0].thickness.value", "5000 digits"),
     (_recipe_text(lambda t: t.replace('"time_limit_s": 60.0', '"time_limit_s": Infinity')),
      "fit.options.time_limit_s", "finite"),
-    (_recipe_text(lambda t: t.replace('"fit_scale": false', '"fit_scale": "false"')),
+    (_recipe_text(lambda t: t.replace('"fit_scale": true', '"fit_scale": "true"')),
      "fit.options.fit_scale", "true or false"),
     (_recipe_text(lambda t: t.replace('"max_nfev": 20000', '"max_nfev": 2.5')),
      "fit.options.max_nfev", "whole number"),
@@ -345,6 +345,10 @@ def test_identity_ignores_start_values_name_and_notes_only():
     d["stack"]["layers"][0]["material"]["params"]["A"]["value"] = 2.2
     assert recipe_identity(d) == ident
     assert recipe_hash(d) != recipe_hash(base)                     # provenance still tells
+    base_d = base.to_dict()
+    base_d["stack"]["layers"][0]["material"]["params"]["C"]["vary"] = False
+    base = recipe_from_dict(base_d)                  # C fixed: its value is part of the model
+    ident = recipe_identity(base)
     changes = [
         ("stack", "layers", 0, "material", "params", "C", "value"),  # fixed (vary false): model
         ("stack", "layers", 0, "thickness", "max"),                  # a bound

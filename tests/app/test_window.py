@@ -89,10 +89,12 @@ def test_parameter_table_refuses_and_undo_redo(window, qtbot):
     assert model.data(idx, Qt.ToolTipRole).startswith("Not accepted")
     assert not model.setData(model.index(1, 3), "9")            # A min above its max
     # fit flag
-    assert model.setData(model.index(3, 5), Qt.Checked, Qt.CheckStateRole)
+    # fit flag (the third Cauchy term is fitted by default; untick it)
     assert window.session.param("film_C").vary
-    window.act_undo.trigger()
+    assert model.setData(model.index(3, 5), Qt.Unchecked, Qt.CheckStateRole)
     assert not window.session.param("film_C").vary
+    window.act_undo.trigger()
+    assert window.session.param("film_C").vary
     window.act_undo.trigger()
     assert window.session.param("film_thickness").value == 500
     window.act_redo.trigger()
