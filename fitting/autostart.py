@@ -433,8 +433,9 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
                 base[level] = set_n_level(material, base, level, seed.n_ref, seed.wl_ref)
         x0 = np.clip([base[k] for k in names], lo, hi)
         try:
+            # A start needs the right neighbourhood, not the last digit.
             sol = least_squares(resid, x0, bounds=(lo, hi), args=(base,), x_scale="jac",
-                                max_nfev=300)
+                                max_nfev=80, ftol=1e-4, xtol=1e-4)
         except ValueError:
             continue
         found.append((float(sol.cost), {**base, **dict(zip(names, (float(v) for v in sol.x)))}))

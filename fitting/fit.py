@@ -398,15 +398,51 @@ def _auto_spread(obj: Objective, polished: list) -> None:
     best = min(polished, key=lambda q: q.chisqr)
     if _extrema(obj, best.values) < 3:
         return
+    s0 = _spread_gain(obj, best.values)
+    if s0 is None:
+        return
     obj.set_stage("polish", 0.95, 0.99, 60 * len(obj.var_names),
                   "trying a thickness non-uniformity")
-    trial = _polish(obj, {**best.values, "thickness_spread": 0.005},
+    trial = _polish(obj, {**best.values, "thickness_spread": s0},
                     best.label + " with non-uniformity", free=("thickness_spread",),
                     max_nfev=60 * (len(obj.var_names) + 2))
     if trial.chisqr < best.chisqr - 2.0:
         obj.release("thickness_spread")
         trial.lm = _refit_free(obj, trial)
         polished.append(trial)
+
+
+def _spread_gain(obj: Objective, values: dict, s_probe: float = 0.01) -> float | None:
+    """A start for the spread refit, or None when a linearised refit says it cannot help.
+
+    A refit with the spread free costs several times a plain one (the model is
+    averaged over thickness nodes), so it is screened first: T depends on the
+    spread s through s², so the residual of a spread s is about
+    r₀ + J·δθ + (s/s_p)²·δr, with δr the change at a probe spread s_p and J
+    the Jacobian of the other parameters. The least-squares (δθ, a = (s/s_p)²)
+    predicts the χ² gain; below 2 (the acceptance threshold) the refit is not
+    run.
+    """
+    from .uncertainty import jacobian, residual_vector
+    names = list(obj.var_names)
+    old = [p.stack.thickness_spread for p in obj.parts]
+    try:
+        r0, J = jacobian(obj, values, names)
+        probe = residual_vector(obj, {**values, "thickness_spread": s_probe})
+    except PellucidError:
+        return 0.005
+    finally:
+        for p, s in zip(obj.parts, old):     # evaluating a spread set it in the stack
+            p.stack.thickness_spread = s
+    A = np.column_stack([J, probe - r0])
+    sol, *_ = np.linalg.lstsq(A, -r0, rcond=None)
+    a = float(sol[-1])
+    if not a > 0:
+        return None
+    gain = float(r0 @ r0 - np.sum((r0 + A @ sol) ** 2))
+    if gain < 2.0:
+        return None
+    return float(min(max(s_probe * math.sqrt(a), 0.002), 0.08))
 
 
 def _film_n(obj: Objective, values: dict, wl_nm: float) -> float:
@@ -513,14 +549,24 @@ def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: lis
     pool = [(math.inf, label, values) for label, values in starts]
     n_st = len(plan["stages"])
     cap = 10 * (len(obj.var_names) + 1)
+    first = 3 * (len(obj.var_names) + 1)
     for j, masks in enumerate(plan["stages"]):
         done = []
         for i, (_, label, values) in enumerate(pool):
             lo = 0.3 + 0.25 * (j + i / len(pool)) / n_st
             obj.set_stage("polish", lo, lo + 0.25 / (n_st * len(pool)), cap,
                           f"fringe fit of {label}")
-            res = obj.minimize("least_squares", values, fixed=plan["fixed"], masks=masks,
-                               x_scale="jac", max_nfev=cap)
+            kw = dict(fixed=plan["fixed"], masks=masks, x_scale="jac")
+            if len(done) >= 2:
+                # Starts after the two best of the scan get a few steps first; one
+                # still far worse than the best so far is not worth the rest (a
+                # wrong order; a thin-film basin can look good before it moves).
+                res = obj.minimize("least_squares", values, max_nfev=first, **kw)
+                if float(res.chisqr) <= 5.0 * min(c for c, *_ in done):
+                    res = obj.minimize("least_squares", res.params.valuesdict(),
+                                       max_nfev=cap - first, **kw)
+            else:
+                res = obj.minimize("least_squares", values, max_nfev=cap, **kw)
             done.append((float(res.chisqr), label, res.params.valuesdict()))
             best = min(done, key=lambda t: t[0])
             fallback[:] = [(best[1], best[2])]
