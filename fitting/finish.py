@@ -46,7 +46,7 @@ _CHI2_ROUNDING = 1e-2
 _NUISANCE_UNITS = {"scale": "", "tilt": "", "offset": "", "angle_deg": "deg",
                    "thickness_spread": ""}
 #: Most points a Kramers-Kronig check looks at (it is O(N²); n and κ are smooth).
-_KK_POINTS = 300
+_KK_POINTS = 160
 
 
 @dataclass
@@ -293,7 +293,7 @@ def kk_checks(optical: dict) -> dict:
     """Kramers-Kronig consistency of each fitted layer's n, κ (see fitting.kramers_kronig).
 
     The check is O(N²) in the points while n and κ of a model are smooth, so
-    it runs on at most 300 points, evenly spread in photon energy.
+    it runs on at most 160 points, evenly spread in photon energy.
     """
     from .kramers_kronig import kk_consistency
     out = {}

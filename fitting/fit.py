@@ -375,7 +375,9 @@ def _run(obj: Objective, options: FitOptions):
             label, values = fallback[0]
             polished.append(_Polished(values, obj.chisqr_of(values), None, label))
     times["polish"] = obj.elapsed - sum(times.values())
+    t_fin = time.perf_counter()
     result = finish(obj, options, start, polished, info)
+    times["finish"] = time.perf_counter() - t_fin   # statistics, budget, KK check, verdict
     if obj.progress_cb is not None:
         obj.progress_cb(FitProgress("done", 1.0, obj.nfev, result.chisqr, result.message))
     yield result

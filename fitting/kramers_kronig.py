@@ -40,7 +40,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import minimize_scalar
 
 from .errors import ParameterError
 from .units import HC_EV_NM
@@ -234,24 +233,37 @@ def _out_of_range_terms(E, diff, inner):
     y = diff[inner]
     one = np.ones_like(E)
 
-    def fit(Eir, Ep):
-        basis = np.column_stack((one, -1.0 / (E ** 2 - Eir ** 2), 1.0 / (Ep ** 2 - E ** 2)))
+    def bases(Eir, Ep):
+        """Basis columns for every (E_ir, E_p) pair at once: shape (K, N, 3)."""
+        Eir, Ep = np.broadcast_arrays(np.atleast_1d(Eir), np.atleast_1d(Ep))
+        return np.stack((np.broadcast_to(one, (Eir.size, E.size)),
+                         -1.0 / (E[None] ** 2 - Eir[:, None] ** 2),
+                         1.0 / (Ep[:, None] ** 2 - E[None] ** 2)), axis=-1)
+
+    def residuals(B):
+        # All the small least-squares problems in one batched QR: the residual
+        # norm is |y|² - |Qᵀy|² (the same fits as one lstsq each, far fewer calls).
+        Q, _ = np.linalg.qr(B[:, inner])
+        qy = np.einsum("kmi,m->ki", Q, y)
+        return float(y @ y) - np.sum(qy * qy, axis=1)
+
+    def fitted(Eir, Ep):
+        basis = bases(Eir, Ep)[0]
         coef, *_ = np.linalg.lstsq(basis[inner], y, rcond=None)
-        return float(np.sum((y - basis[inner] @ coef) ** 2)), basis @ coef
+        return basis @ coef
 
     ratios = np.geomspace(1.05, 20.0, 24)
-    best = None
-    for Eir in E[0] * np.array([0.0, 0.3, 0.5, 0.65, 0.75, 0.82, 0.87, 0.9]):
-        for j, q in enumerate(ratios):
-            r = fit(Eir, q * E[-1])[0]
-            if best is None or r < best[0]:
-                best = (r, Eir, j)
-    # Refine the UV pole between the grid neighbours of the best one.
-    _, Eir, j = best
+    irs = E[0] * np.array([0.0, 0.3, 0.5, 0.65, 0.75, 0.82, 0.87, 0.9])
+    Eir_g, q_g = np.meshgrid(irs, ratios, indexing="ij")
+    res = residuals(bases(Eir_g.ravel(), q_g.ravel() * E[-1]))
+    k = int(np.argmin(res))
+    Eir, j = Eir_g.ravel()[k], k % ratios.size
+    # Refine the UV pole between the grid neighbours of the best one (a fine grid
+    # in log E_p, solved at once, instead of a scalar search of single fits).
     lo, hi = np.log(ratios[max(j - 1, 0)]), np.log(ratios[min(j + 1, ratios.size - 1)])
-    opt = minimize_scalar(lambda t: fit(Eir, np.exp(t) * E[-1])[0], bounds=(lo, hi),
-                          method="bounded", options={"xatol": 1e-4})
-    return fit(Eir, np.exp(opt.x) * E[-1])[1]
+    t = np.linspace(lo, hi, 41)
+    res = residuals(bases(np.full(t.size, Eir), np.exp(t) * E[-1]))
+    return fitted(Eir, np.exp(t[int(np.argmin(res))]) * E[-1])
 
 
 @dataclass(frozen=True)
@@ -362,7 +374,7 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
         i0 = int(np.argmin(np.abs(E - HC_EV_NM / float(anchor_nm))))
     sl = slice(max(0, i0 - 5), min(E.size, i0 + 6))
     p = np.polyfit(E[sl] - E[i0], ns[sl], 1)
-    E0, n0 = E[i0], float(p[-1])
+    n0 = float(p[-1])
 
     I = kk_integral(En, kn, E)
     n_raw = n0 + 2 / np.pi * (I - I[i0])

@@ -56,8 +56,12 @@ GROSS_MISFIT = 0.02
 MAX_RELATIVE_U = 0.05
 #: |correlation| of a thickness with another parameter that means "not separable".
 THICKNESS_CORRELATION = 0.98
-#: A scale further than this from 1 is a baseline problem, not an instrument tolerance.
-SCALE_LIMIT = 0.03
+#: A scale further than this from 1 (2.5σ of its ±1 % prior) is a baseline or model
+#: problem, not an instrument tolerance.
+SCALE_LIMIT = 0.025
+#: A fitted thickness non-uniformity above this (rms, relative) is more than coatings
+#: show over a spectrometer's spot: the fit is using it to hide a model error.
+SPREAD_LIMIT = 0.05
 
 
 @dataclass(frozen=True)
@@ -273,6 +277,13 @@ def reasons(result) -> list[Reason]:
                                    f"the ±1 % an instrument's baseline allows: check the "
                                    f"baseline/reference measurement, the substrate and the "
                                    f"model."))
+    sp = result.params.get("thickness_spread")
+    if sp is not None and sp.vary and sp.value > SPREAD_LIMIT:
+        out.append(Reason("check", f"The fit needed a thickness non-uniformity of "
+                                   f"{100 * sp.value:.1f} % rms to match the fringe contrast, "
+                                   f"more than coatings vary over a spectrometer's spot: the "
+                                   f"model's absorption or dispersion is probably off; try "
+                                   f"another model or a narrower range."))
     for name, oc in result.optical.items():
         vis = (oc.wavelength_nm >= 380) & (oc.wavelength_nm <= 780)
         n_vis = float(np.nanmedian(oc.n[vis])) if vis.any() else math.nan
