@@ -49,7 +49,6 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.signal import find_peaks
 
-from .dispersion import Cauchy, Constant, Oscillators, Sellmeier
 from .optics import films_RT, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
@@ -197,17 +196,8 @@ def envelope_seed(wl, y, quantity, substrate_n) -> Seed | None:
 # -- the film's index level ------------------------------------------------------------
 def n_level_param(material) -> str | None:
     """The parameter that shifts a material's index up and down, if it is free."""
-    if isinstance(material, Cauchy):
-        cand = "A"
-    elif isinstance(material, Constant):
-        cand = "n"
-    elif isinstance(material, Oscillators):
-        cand = "eps_inf"
-    elif isinstance(material, Sellmeier):
-        cand = "B1"
-    else:
-        return None
-    p = material.params.get(cand)
+    cand = material.level_param
+    p = material.params.get(cand) if cand else None
     if p is None or not p.vary or p.expr:
         return None
     return cand
@@ -243,29 +233,14 @@ def set_n_level(material, local: dict, name: str, target_n: float, wl_ref: float
     return 0.5 * (lo + hi)
 
 
-#: Parameters that shape n(λ) besides the level, tried in the seed fit (kind -> names).
-# Oscillator strengths also set the absorption, which the fringes' n says nothing
-# about: oscillator models get their level (ε∞) only.
-_SHAPE_PARAMS = {"cauchy": ("B",), "sellmeier": ("C1",)}
-
-
-#: Parameters that shape only the absorption edge of a term (held back in a fringe fit).
-_EDGE_PARAMS = {"tauc_lorentz": ("Eg", "C"), "lorentz": ("gamma",), "drude": ()}
-
-
 def edge_params(material) -> tuple:
     """Parameters of a material that mostly set its absorption edge, not n in the clear.
 
     The fringes of the transparent region say little about them, so the first
-    stage of a fit holds them at their start: Cauchy's Urbach tail (k0, Eu,
-    E_edge), a Tauc-Lorentz term's gap and broadening, a Lorentz term's damping.
+    stage of a fit holds them at their start (each model names its own:
+    :meth:`fitting.dispersion.Dispersion.edge_params`).
     """
-    if isinstance(material, Cauchy):
-        return tuple(k for k in ("k0", "Eu", "E_edge") if k in material.params)
-    if isinstance(material, Oscillators):
-        return tuple(f"o{i}_{k}" for i, t in enumerate(material.terms, start=1)
-                     for k in _EDGE_PARAMS.get(t.kind, ()))
-    return ()
+    return material.edge_params()
 
 
 def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
@@ -288,7 +263,7 @@ def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
     out[level] = set_n_level(material, out, level, seed.n_ref, seed.wl_ref)
     lam, n = seed.n_points if seed.n_points else ((), ())
     lam, n = np.asarray(lam, float), np.asarray(n, float)
-    names = [level] + [k for k in _SHAPE_PARAMS.get(material.kind, ())
+    names = [level] + [k for k in material.shape_params
                        if k in material.params and k in free and material.params[k].vary
                        and not material.params[k].expr][:1]
     if len(names) < 2 or n.size < 3 or lam.max() / lam.min() < 1.3:
@@ -319,13 +294,6 @@ def apply_seed(material, local: dict, seed: Seed, free=None) -> dict:
 
 
 # -- the absorption edge -----------------------------------------------------------------
-#: Shapes of a Tauc-Lorentz edge tried from the data: (Eg below the measured edge,
-#: E0 - Eg, C), all eV - broad amorphous (a-Si-like, Jellison & Modine 1996 give
-#: E0 - Eg ≈ 2.3, C ≈ 2.5), medium (oxides: titania, niobia) and sharp (a nearly
-#: crystalline direct gap, zinc-oxide-like). Common practice, from memory.
-_TL_SHAPES = ((0.45, 2.2, 2.4), (0.25, 1.2, 1.3), (0.05, 0.35, 0.35))
-
-
 def _edge_energy(edge, wl_min: float, wl_max: float) -> float | None:
     """Photon energy (eV) where αd ≈ 1 on the short-wavelength edge, from the data."""
     from .units import HC_EV_NM
@@ -360,34 +328,12 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     if edge is None or not seed.thickness_nm:
         return [dict(local)]
     free = set(free)
-    names, starts = [], []
     E_edge = _edge_energy(edge, wl_min, wl_max)
-    E_max = HC_EV_NM / wl_min
-    if isinstance(material, Cauchy) and material.urbach:
-        names = [k for k in ("k0", "Eu") if k in free]
-        E_ref = local.get("E_edge", 3.5)
-        if E_edge is None:      # clear everywhere: a tail that stays below αd = 0.03
-            k_max = 0.03 / (seed.thickness_nm * 1e-7) * (wl_min * 1e-7) / (4 * np.pi)
-            starts = [{"Eu": 0.1, "k0": k_max * math.exp((E_ref - E_max) / 0.1)}]
-        else:
-            starts = [{"Eu": eu, "k0": 0.1 * math.exp((E_ref - E_edge) / eu)}
-                      for eu in (0.08, 0.2, 0.4)]
-    elif isinstance(material, Oscillators):
-        for i, t in enumerate(material.terms, start=1):
-            if t.kind != "tauc_lorentz":
-                continue
-            pre = f"o{i}_"
-            names = [pre + k for k in ("A", "E0", "C", "Eg") if pre + k in free]
-            if E_edge is None:
-                starts = [{pre + "Eg": E_max + 0.3, pre + "E0": E_max + 1.5,
-                           pre + "C": 1.5}]
-            else:
-                starts = [{pre + "Eg": max(E_edge - a, 0.3), pre + "E0": max(E_edge - a, 0.3) + b,
-                           pre + "C": c} for a, b, c in _TL_SHAPES]
-            break
-        level = n_level_param(material)
-        if level is not None and level in free:
-            names.append(level)
+    starts = material.edge_starts(local, E_edge, HC_EV_NM / wl_min)
+    names = [k for k in material.edge_fit_params() if k in free]
+    level = n_level_param(material)
+    if names and level is not None and level in free:
+        names.append(level)
     if not names or not starts:
         return [dict(local)]
     targets = alpha_targets(edge, seed.thickness_nm, wl_min, wl_max)

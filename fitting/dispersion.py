@@ -98,6 +98,17 @@ class Dispersion(_HasParams):
     kind: ClassVar[str] = ""
     label: ClassVar[str] = ""
     valid_nm: tuple[float, float] = (0.0, INF)
+    #: The parameter that moves the whole index up or down: the automatic start sets
+    #: it from the fringes' n (None: the model has no such parameter).
+    level_param: ClassVar[str | None] = None
+    #: Parameters that shape n(λ) besides the level, fitted to the fringes' n.
+    shape_params: ClassVar[tuple] = ()
+    #: Higher dispersion terms and the fewest fringe extrema that support fitting
+    #: them: with fewer, the automatic start holds them at 0.
+    higher_orders: ClassVar[tuple] = ()
+    #: What the app's model menu offers of this class: (key, label, factory); the
+    #: factory takes keyword context (``host``, ``table_path``) and returns a model.
+    presets: ClassVar[tuple] = ()
 
     def N(self, wavelength_nm, values: Mapping[str, float] | None = None) -> np.ndarray:
         """Complex refractive index n + iκ at the given vacuum wavelengths (nm).
@@ -148,6 +159,36 @@ class Dispersion(_HasParams):
     def describe(self) -> str:
         return self.label or type(self).__name__
 
+    # -- what the model knows about starting a fit -------------------------------------
+    def edge_params(self) -> tuple:
+        """Parameters that mostly set the absorption edge, not n where the film is clear.
+
+        The fringes of the transparent region say little about them, so the first
+        stages of an automatic fit hold them at their start.
+        """
+        return ()
+
+    def edge_starts(self, local: Mapping[str, float], edge_eV: float | None,
+                    top_eV: float) -> list[dict]:
+        """Starting values of the absorption parameters from the measured edge.
+
+        ``edge_eV`` is where the film's αd reaches about 1 (None: the film is
+        clear over the whole range), ``top_eV`` the photon energy of the shortest
+        wavelength. Each dict is one plausible edge shape; the fit engine fits
+        each to the edge data and chooses on the spectrum. Models without an
+        absorption edge return [].
+        """
+        return []
+
+    def edge_fit_params(self) -> tuple:
+        """Parameters adjusted when the model's absorption is fitted to the measured edge
+        (with the level): those :meth:`edge_starts` sets, and the amplitudes they need."""
+        return ()
+
+    def preset_key(self) -> str:
+        """The menu key (:data:`fitting.presets.MODEL_CHOICES`) of this model."""
+        return self.presets[0][0] if self.presets else self.kind
+
     def _N(self, wl, v):
         return _sqrt_eps(self._eps(wl, v))
 
@@ -165,6 +206,11 @@ class Dispersion(_HasParams):
     def _shape_dict(self) -> dict:
         """Construction options other than parameter values (e.g. number of terms)."""
         return {}
+
+    @classmethod
+    def from_shape(cls, d: Mapping, where: str) -> "Dispersion":
+        """A fresh model from the construction options of :meth:`to_dict` (not the values)."""
+        return cls()
 
     def copy(self) -> "Dispersion":
         return model_from_dict(self.to_dict())
@@ -191,6 +237,8 @@ class Constant(Dispersion):
     """Wavelength-independent N = n + iκ (common practice for ambient media and quick looks)."""
 
     kind, label = "constant", "Constant n, κ"
+    level_param = "n"
+    presets = (("constant", "Constant n, κ", lambda **_: Constant(1.8, 0.0)),)
 
     def __init__(self, n: float = 1.5, k: float = 0.0, **values):
         self._init_params([
@@ -222,6 +270,14 @@ class Cauchy(Dispersion):
     """
 
     kind, label = "cauchy", "Cauchy"
+    level_param = "A"
+    shape_params = ("B",)
+    # A third term follows a high-index film into the UV; with few fringes it only
+    # trades off against the thickness (common practice).
+    higher_orders = (("C", 4),)
+    presets = (("cauchy", "Cauchy (transparent film)", lambda **_: Cauchy()),
+               ("cauchy_urbach", "Cauchy + Urbach tail (weak absorption edge)",
+                lambda **_: Cauchy(urbach=True)))
 
     def __init__(self, A: float = 1.9, B: float = 0.02, C: float = 0.0, *, urbach: bool = False,
                  **values):
@@ -255,6 +311,36 @@ class Cauchy(Dispersion):
     def _shape_dict(self):
         return {"urbach": self.urbach}
 
+    @classmethod
+    def from_shape(cls, d, where):
+        return cls(urbach=bool(d.get("urbach", False)))
+
+    def preset_key(self) -> str:
+        return "cauchy_urbach" if self.urbach else "cauchy"
+
+    def describe(self) -> str:
+        if self.label != type(self).label:
+            return self.label
+        return "Cauchy + Urbach tail" if self.urbach else "Cauchy"
+
+    def edge_params(self) -> tuple:
+        return tuple(k for k in ("k0", "Eu", "E_edge") if k in self.params)
+
+    def edge_fit_params(self) -> tuple:
+        return ("k0", "Eu") if self.urbach else ()
+
+    def edge_starts(self, local, edge_eV, top_eV):
+        """Urbach tails of three steepnesses through κ = 0.1 at the edge (E_U 0.08-0.4
+        eV spans sharp to disordered edges, common practice), or one that stays
+        negligible over the range when the film is clear."""
+        if not self.urbach:
+            return []
+        E_ref = local.get("E_edge", 3.5)
+        if edge_eV is None:
+            return [{"Eu": 0.1, "k0": 1e-4 * math.exp((E_ref - top_eV) / 0.1)}]
+        return [{"Eu": eu, "k0": 0.1 * math.exp((E_ref - edge_eV) / eu)}
+                for eu in (0.08, 0.2, 0.4)]
+
 
 class Sellmeier(Dispersion):
     r"""Sellmeier dispersion with 1 to 3 terms.
@@ -272,6 +358,9 @@ class Sellmeier(Dispersion):
     """
 
     kind, label = "sellmeier", "Sellmeier"
+    level_param = "B1"
+    shape_params = ("C1",)
+    presets = (("sellmeier", "Sellmeier (1 term)", lambda **_: Sellmeier(1)),)
 
     def __init__(self, terms: int = 1, *, valid_nm: tuple[float, float] = (0.0, INF),
                  **values):
@@ -300,15 +389,34 @@ class Sellmeier(Dispersion):
             d["valid_nm"] = list(self.valid_nm)
         return d
 
+    @classmethod
+    def from_shape(cls, d, where):
+        return cls(int(d.get("terms", 1)), valid_nm=tuple(d.get("valid_nm", (0.0, INF))))
+
+    def describe(self) -> str:
+        if self.label != type(self).label:
+            return self.label
+        return f"Sellmeier ({self.terms} term{'s' if self.terms > 1 else ''})"
+
 
 # ----------------------------------------------------------------------------------------
 class Term(_HasParams):
     """One susceptibility term χ(E) of an :class:`Oscillators` model (E in eV)."""
 
     kind: ClassVar[str] = ""
+    #: Readable name of the term kind.
+    title: ClassVar[str] = ""
+    #: Parameters that shape only the term's absorption edge (see Dispersion.edge_params).
+    edge_params: ClassVar[tuple] = ()
+    #: Parameters fitted to a measured edge (see Dispersion.edge_fit_params).
+    edge_fit: ClassVar[tuple] = ()
 
     def chi(self, E: np.ndarray, v: Mapping[str, float]) -> np.ndarray:  # pragma: no cover
         raise NotImplementedError
+
+    def edge_starts(self, edge_eV: float | None, top_eV: float) -> list[dict]:
+        """Starting values of this term from the measured edge (see Dispersion.edge_starts)."""
+        return []
 
     @staticmethod
     def check(v: Mapping[str, float]) -> None:
@@ -329,7 +437,8 @@ class Lorentz(Term):
            *Optical Properties of Solids*, 2nd ed., Oxford (2010), ch. 2.
     """
 
-    kind = "lorentz"
+    kind, title = "lorentz", "Lorentz"
+    edge_params = ("gamma",)
 
     def __init__(self, f: float = 1.0, E0: float = 5.0, gamma: float = 0.5, **values):
         self._init_params([
@@ -355,7 +464,7 @@ class Drude(Term):
            Ellipsometry*, Wiley (2007), sec. 5.3.
     """
 
-    kind = "drude"
+    kind, title = "drude", "Drude"
 
     def __init__(self, Ep: float = 1.0, gamma: float = 0.1, **values):
         self._init_params([
@@ -387,7 +496,14 @@ class TaucLorentz(Term):
            :DOI:`10.1063/1.118064`
     """
 
-    kind = "tauc_lorentz"
+    kind, title = "tauc_lorentz", "Tauc-Lorentz"
+    edge_params = ("Eg", "C")
+    edge_fit = ("A", "E0", "C", "Eg")
+    #: Edge shapes tried from the data: (Eg below the measured edge, E0 - Eg, C), eV:
+    #: broad amorphous (a-Si-like; Jellison & Modine 1996 give E0 - Eg ≈ 2.3,
+    #: C ≈ 2.5), medium (titania, niobia) and sharp (a nearly crystalline direct gap,
+    #: zinc-oxide-like). Common practice, from memory.
+    SHAPES = ((0.45, 2.2, 2.4), (0.25, 1.2, 1.3), (0.05, 0.35, 0.35))
 
     def __init__(self, A: float = 100.0, E0: float = 4.5, C: float = 1.5, Eg: float = 3.0,
                  **values):
@@ -407,6 +523,12 @@ class TaucLorentz(Term):
 
     def chi(self, E, v):
         return tauc_lorentz_chi(E, v["A"], v["E0"], v["C"], v["Eg"])
+
+    def edge_starts(self, edge_eV, top_eV):
+        if edge_eV is None:     # clear everywhere: the gap just above the range
+            return [{"Eg": top_eV + 0.3, "E0": top_eV + 1.5, "C": 1.5}]
+        return [{"Eg": max(edge_eV - a, 0.3), "E0": max(edge_eV - a, 0.3) + b, "C": c}
+                for a, b, c in self.SHAPES]
 
 
 def tauc_lorentz_chi(E, A, E0, C, Eg):
@@ -451,6 +573,16 @@ class Oscillators(Dispersion):
     """
 
     kind, label = "oscillators", "Oscillators (ε∞ + Lorentz / Drude / Tauc-Lorentz)"
+    level_param = "eps_inf"
+    presets = (
+        ("lorentz", "Lorentz oscillator",
+         lambda **_: Oscillators(1.0, [Lorentz(1.5, 6.0, 0.5)])),
+        ("drude", "Drude (free carriers)", lambda **_: Oscillators(3.5, [Drude(1.5, 0.1)])),
+        ("drude_lorentz", "Drude + Lorentz (transparent conductor)",
+         lambda **_: Oscillators(3.5, [Drude(1.5, 0.1), Lorentz(1.0, 6.0, 0.5)])),
+        ("tauc_lorentz", "Tauc-Lorentz (amorphous semiconductor)",
+         lambda **_: Oscillators(2.0, [TaucLorentz()])),
+    )
 
     def __init__(self, eps_inf: float = 1.0, terms: Iterable[Term] = (), **values):
         self.terms = list(terms)
@@ -494,6 +626,50 @@ class Oscillators(Dispersion):
     def _shape_dict(self):
         return {"terms": [t.kind for t in self.terms]}
 
+    @classmethod
+    def from_shape(cls, d, where):
+        from .errors import RecipeError
+        kinds = d.get("terms")
+        if not isinstance(kinds, list) or not kinds:
+            raise RecipeError(f"{where}.terms", "must be a non-empty list of term kinds")
+        bad = [k for k in kinds if k not in TERM_KINDS]
+        if bad:
+            raise RecipeError(f"{where}.terms", f"unknown term {bad[0]!r}; choose from "
+                                                f"{', '.join(TERM_KINDS)}")
+        return cls(terms=[TERM_KINDS[k]() for k in kinds])
+
+    def describe(self) -> str:
+        if self.label != type(self).label:
+            return self.label
+        return " + ".join(t.title or t.kind for t in self.terms)
+
+    def preset_key(self) -> str:
+        """The preset with the same terms, else the closest: the first term's kind."""
+        kinds = [t.kind for t in self.terms]
+        for key, _, factory in self.presets:
+            if [t.kind for t in factory().terms] == kinds:
+                return key
+        first = {"tauc_lorentz": "tauc_lorentz", "lorentz": "lorentz", "drude": "drude"}
+        return "drude_lorentz" if kinds[:2] == ["drude", "lorentz"] else first[kinds[0]]
+
+    def edge_params(self) -> tuple:
+        return tuple(f"o{i}_{k}" for i, t in enumerate(self.terms, start=1)
+                     for k in t.edge_params)
+
+    def edge_fit_params(self) -> tuple:
+        for i, t in enumerate(self.terms, start=1):
+            if t.edge_fit:
+                return tuple(f"o{i}_{k}" for k in t.edge_fit)
+        return ()
+
+    def edge_starts(self, local, edge_eV, top_eV):
+        """The first term with an absorption edge gives the starts (see its edge_starts)."""
+        for i, t in enumerate(self.terms, start=1):
+            starts = t.edge_starts(edge_eV, top_eV)
+            if starts:
+                return [{f"o{i}_{k}": v for k, v in st.items()} for st in starts]
+        return []
+
 
 def Lorentz_model(eps_inf=1.0, oscillators=((1.0, 5.0, 0.5),)) -> Oscillators:
     """Convenience: ε∞ plus Lorentz oscillators given as (f, E0, gamma) triples."""
@@ -509,6 +685,8 @@ class Tabulated(Dispersion):
     """
 
     kind, label = "tabulated", "Tabulated n, κ"
+    presets = (("tabulated", "Tabulated n, κ from file…",
+                lambda table_path=None, **_: Tabulated.from_file(_need(table_path))),)
 
     def __init__(self, wavelength_nm, n, k=None, *, name: str = "table"):
         wl = check_wavelengths(wavelength_nm, what="table wavelength")
@@ -614,6 +792,10 @@ class Tabulated(Dispersion):
         return {"kind": self.kind, "name": self.name, "wavelength_nm": self.wl.tolist(),
                 "n": self.n.tolist(), "k": self.k.tolist()}
 
+    @classmethod
+    def from_shape(cls, d, where):
+        return cls(d["wavelength_nm"], d["n"], d.get("k"), name=d.get("name", "table"))
+
 
 class Bruggeman(Dispersion):
     r"""Bruggeman effective-medium mixture of two materials.
@@ -633,6 +815,14 @@ class Bruggeman(Dispersion):
     """
 
     kind, label = "bruggeman", "Bruggeman mixture"
+    presets = (("roughness", "Surface roughness (Bruggeman, film + voids)",
+                lambda host=None, **_: Bruggeman(host.copy() if host is not None else Cauchy(),
+                                                 Constant(1.0, 0.0), 0.5)),)
+
+    @classmethod
+    def from_shape(cls, d, where):
+        return cls(model_from_dict(d.get("host"), where=f"{where}.host"),
+                   model_from_dict(d.get("inclusion"), where=f"{where}.inclusion"))
 
     def __init__(self, host: Dispersion, inclusion: Dispersion | None = None,
                  fraction: float = 0.5, **values):
@@ -665,8 +855,15 @@ class Bruggeman(Dispersion):
 
 
 # ----------------------------------------------------------------------------------------
+#: Every dispersion model by its saved name, in the order the app's menu lists them.
 MODEL_KINDS: dict[str, type[Dispersion]] = {
-    c.kind: c for c in (Constant, Cauchy, Sellmeier, Oscillators, Tabulated, Bruggeman)}
+    c.kind: c for c in (Cauchy, Sellmeier, Oscillators, Constant, Tabulated, Bruggeman)}
+
+
+def _need(table_path):
+    if table_path is None:
+        raise ParameterError("table file", None, "choose an n, κ table file")
+    return table_path
 
 
 def _apply_saved_params(model: _HasParams, saved: Mapping, where: str) -> None:
@@ -709,26 +906,9 @@ def model_from_dict(d: Mapping, *, where: str = "model") -> Dispersion:
         raise RecipeError(f"{where}.kind", f"unknown model {kind!r}; choose one of "
                                            f"{', '.join(MODEL_KINDS)}")
     try:
+        m = MODEL_KINDS[kind].from_shape(d, where)
         if kind == "tabulated":
-            return Tabulated(d["wavelength_nm"], d["n"], d.get("k"), name=d.get("name", "table"))
-        if kind == "cauchy":
-            m = Cauchy(urbach=bool(d.get("urbach", False)))
-        elif kind == "sellmeier":
-            m = Sellmeier(int(d.get("terms", 1)), valid_nm=tuple(d.get("valid_nm", (0.0, INF))))
-        elif kind == "oscillators":
-            kinds = d.get("terms")
-            if not isinstance(kinds, list) or not kinds:
-                raise RecipeError(f"{where}.terms", "must be a non-empty list of term kinds")
-            bad = [k for k in kinds if k not in TERM_KINDS]
-            if bad:
-                raise RecipeError(f"{where}.terms", f"unknown term {bad[0]!r}; choose from "
-                                                    f"{', '.join(TERM_KINDS)}")
-            m = Oscillators(terms=[TERM_KINDS[k]() for k in kinds])
-        elif kind == "bruggeman":
-            m = Bruggeman(model_from_dict(d.get("host"), where=f"{where}.host"),
-                          model_from_dict(d.get("inclusion"), where=f"{where}.inclusion"))
-        else:
-            m = MODEL_KINDS[kind]()
+            return m
     except KeyError as e:
         raise RecipeError(f"{where}.{e.args[0]}", "is missing") from None
     except ParameterError as e:

@@ -631,15 +631,11 @@ def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     return _Polished(vals, chi2, None, method)
 
 
-#: Dispersion terms a film's fringes must support before they are fitted: kind ->
-#: (parameter, fewest fringe extrema). A third Cauchy term follows a high-index film
-#: into the UV, but on a film with few fringes it only trades off against thickness.
-_HIGHER_ORDERS = {"cauchy": (("C", 4),)}
-
-
 def _hold_higher_orders(obj: Objective, layer, gmap: dict, seed, info: dict) -> None:
-    """Hold higher dispersion terms the fringes cannot support (see _HIGHER_ORDERS)."""
-    for local, need in _HIGHER_ORDERS.get(layer.material.kind, ()):
+    """Hold higher dispersion terms the fringes cannot support (the model's
+    ``higher_orders``: a third Cauchy term follows a high-index film into the UV,
+    but on a film with few fringes it only trades off against the thickness)."""
+    for local, need in layer.material.higher_orders:
         g = gmap.get(f"{layer.name}_{local}")
         if g in obj.var_names and seed.n_extrema < need and obj.params[g].value == 0:
             obj.hold(g)

@@ -14,8 +14,7 @@ here, so a fresh setup fits the same way wherever it was made.
 
 from __future__ import annotations
 
-from .dispersion import (Bruggeman, Cauchy, Constant, Drude, Lorentz, Oscillators,
-                         Sellmeier, Tabulated, TaucLorentz)
+from .dispersion import MODEL_KINDS, Bruggeman
 from .errors import ParameterError
 from .stack import Layer, Stack
 from .substrates import library_substrate
@@ -23,19 +22,16 @@ from .substrates import library_substrate
 __all__ = ["MODEL_CHOICES", "SUBSTRATE_NAMES", "make_model", "model_choice_of",
            "default_stack", "default_fit_options", "tie_roughness"]
 
-#: Dispersion models a user can pick for a film, in menu order: key -> label.
-MODEL_CHOICES = {
-    "cauchy": "Cauchy (transparent film)",
-    "cauchy_urbach": "Cauchy + Urbach tail (weak absorption edge)",
-    "sellmeier": "Sellmeier (1 term)",
-    "lorentz": "Lorentz oscillator",
-    "drude": "Drude (free carriers)",
-    "drude_lorentz": "Drude + Lorentz (transparent conductor)",
-    "tauc_lorentz": "Tauc-Lorentz (amorphous semiconductor)",
-    "constant": "Constant n, κ",
-    "tabulated": "Tabulated n, κ from file…",
-    "roughness": "Surface roughness (Bruggeman, film + voids)",
-}
+def _menu() -> dict:
+    """key -> (label, factory) of every preset of every registered model, in menu order."""
+    return {key: (label, factory) for cls in MODEL_KINDS.values()
+            for key, label, factory in cls.presets}
+
+
+_PRESETS = _menu()
+#: Dispersion models a user can pick for a film, in menu order: key -> label. Each
+#: model class declares its own entries (``Dispersion.presets``).
+MODEL_CHOICES = {key: label for key, (label, _) in _PRESETS.items()}
 
 #: Display names of the substrate library keys.
 SUBSTRATE_NAMES = {
@@ -53,51 +49,14 @@ def make_model(choice: str, *, host=None, table_path=None):
     ``host`` is the material a roughness layer mixes with voids; ``table_path``
     the n, κ file of a tabulated material.
     """
-    if choice == "cauchy":
-        return Cauchy()
-    if choice == "cauchy_urbach":
-        return Cauchy(urbach=True)
-    if choice == "sellmeier":
-        return Sellmeier(1)
-    if choice == "lorentz":
-        return Oscillators(1.0, [Lorentz(1.5, 6.0, 0.5)])
-    if choice == "drude":
-        return Oscillators(3.5, [Drude(1.5, 0.1)])
-    if choice == "drude_lorentz":
-        return Oscillators(3.5, [Drude(1.5, 0.1), Lorentz(1.0, 6.0, 0.5)])
-    if choice == "tauc_lorentz":
-        return Oscillators(2.0, [TaucLorentz()])
-    if choice == "constant":
-        return Constant(1.8, 0.0)
-    if choice == "tabulated":
-        if table_path is None:
-            raise ParameterError("table file", None, "choose an n, κ table file")
-        return Tabulated.from_file(table_path)
-    if choice == "roughness":
-        return Bruggeman(host.copy() if host is not None else Cauchy(), Constant(1.0, 0.0), 0.5)
-    raise ParameterError("model", choice, f"choose one of {', '.join(MODEL_CHOICES)}")
+    if choice not in _PRESETS:
+        raise ParameterError("model", choice, f"choose one of {', '.join(MODEL_CHOICES)}")
+    return _PRESETS[choice][1](host=host, table_path=table_path)
 
 
 def model_choice_of(model) -> str:
     """The :data:`MODEL_CHOICES` key that best describes an existing model."""
-    if isinstance(model, Cauchy):
-        return "cauchy_urbach" if model.urbach else "cauchy"
-    if isinstance(model, Sellmeier):
-        return "sellmeier"
-    if isinstance(model, Oscillators):
-        kinds = [t.kind for t in model.terms]
-        if kinds == ["lorentz"]:
-            return "lorentz"
-        if kinds == ["drude"]:
-            return "drude"
-        if kinds == ["tauc_lorentz"]:
-            return "tauc_lorentz"
-        return "drude_lorentz"
-    if isinstance(model, Tabulated):
-        return "tabulated"
-    if isinstance(model, Bruggeman):
-        return "roughness"
-    return "constant"
+    return model.preset_key()
 
 
 def tie_roughness(layer: Layer, host_layer: Layer) -> None:
