@@ -3,16 +3,24 @@
 The fit itself runs in :class:`app.worker.Job`; this panel only shows its
 progress and offers Cancel. The options are written into the
 :class:`~app.session.Session` (undoable), from which ``FitOptions`` are built.
+
+"More settings" holds what most fits leave alone but some need: the film's
+thickness non-uniformity over the light spot and the instrument's spectral
+bandwidth (both properties of the stack, :class:`fitting.stack.Stack`), fitting
+the angle, and the fit's evaluation budget (``max_nfev``) and time limit. It
+opens by itself when one of them is not at its default, so a loaded recipe never
+hides a setting that changes the fit.
 """
 
 from __future__ import annotations
 
-from PySide6.QtCore import Signal
+from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout,
-                               QLabel, QListWidget, QProgressBar, QPushButton, QVBoxLayout,
-                               QWidget)
+                               QLabel, QListWidget, QProgressBar, QPushButton, QSpinBox,
+                               QToolButton, QVBoxLayout, QWidget)
 
 from fitting.errors import PellucidError
+from fitting.presets import default_fit_options
 
 __all__ = ["FitPanel"]
 
@@ -52,6 +60,7 @@ class FitPanel(QWidget):
             w.setRange(1.0, 100000.0)
             w.setDecimals(1)
             w.setSuffix(" nm")
+            w.setSpecialValueText("–")       # shown with no spectrum, instead of "1.0 nm"
             w.setKeyboardTracking(False)
             w.setToolTip(tip)
             w.valueChanged.connect(self._on_range)
@@ -93,6 +102,81 @@ class FitPanel(QWidget):
                                "'global search' tries the whole range between the bounds")
         self.method.currentIndexChanged.connect(
             lambda _i: self._set("method", self.method.currentData()))
+
+        # More settings ----------------------------------------------------------------
+        self.spread = QDoubleSpinBox()
+        self.spread.setRange(0.0, 30.0)
+        self.spread.setDecimals(1)
+        self.spread.setSingleStep(0.5)
+        self.spread.setSuffix(" %")
+        self.spread.setSpecialValueText("none (uniform)")
+        self.spread.setKeyboardTracking(False)
+        self.spread.setToolTip("How much the film thickness varies inside the light spot "
+                               "(1σ, % of the thickness). Non-uniform films show weaker "
+                               "fringes than the model; typical 0-3 %.")
+        self.spread.valueChanged.connect(
+            lambda v: self._set_stack("thickness_spread", v / 100.0))
+        self.fit_spread = QCheckBox("Fit it")
+        self.fit_spread.setToolTip("Let the fit find the thickness non-uniformity (starts "
+                                   "from the value beside)")
+        self.fit_spread.toggled.connect(lambda v: self._set("fit_spread", v))
+        self.bandwidth = QDoubleSpinBox()
+        self.bandwidth.setRange(0.0, 50.0)
+        self.bandwidth.setDecimals(1)
+        self.bandwidth.setSingleStep(0.5)
+        self.bandwidth.setSuffix(" nm")
+        self.bandwidth.setSpecialValueText("ideal (0 nm)")
+        self.bandwidth.setKeyboardTracking(False)
+        self.bandwidth.setToolTip("Spectral bandwidth (slit width, FWHM) of the "
+                                  "spectrophotometer. It smooths fine fringes of thick "
+                                  "films; see the instrument settings of the measurement.")
+        self.bandwidth.valueChanged.connect(lambda v: self._set_stack("bandwidth_nm", v))
+        self.fit_angle = QCheckBox("Fit the angle")
+        self.fit_angle.setToolTip("Let the fit adjust the angle of incidence (when the "
+                                  "sample holder's tilt is not known well)")
+        self.fit_angle.toggled.connect(lambda v: self._set("fit_angle", v))
+        self.max_nfev = QSpinBox()
+        self.max_nfev.setRange(100, 10_000_000)
+        self.max_nfev.setSingleStep(5000)
+        self.max_nfev.setGroupSeparatorShown(True)
+        self.max_nfev.setSuffix(" evaluations")
+        self.max_nfev.setKeyboardTracking(False)
+        self.max_nfev.setToolTip("Evaluation budget (max_nfev): how many model spectra the "
+                                 "whole fit may compute. Raise it when a fit stops with "
+                                 "'budget used up' or advice says 'raise max_nfev'.")
+        self.max_nfev.valueChanged.connect(lambda v: self._set("max_nfev", int(v)))
+        self.time_limit = QDoubleSpinBox()
+        self.time_limit.setRange(1.0, 86400.0)
+        self.time_limit.setDecimals(0)
+        self.time_limit.setSingleStep(30.0)
+        self.time_limit.setSuffix(" s")
+        self.time_limit.setKeyboardTracking(False)
+        self.time_limit.setToolTip("Time limit (time_limit_s): the fit stops after this "
+                                   "many seconds and shows the best result so far")
+        self.time_limit.valueChanged.connect(lambda v: self._set("time_limit_s", float(v)))
+        self.more_button = QToolButton()
+        self.more_button.setText("More settings")
+        self.more_button.setCheckable(True)
+        self.more_button.setArrowType(Qt.RightArrow)
+        self.more_button.setToolButtonStyle(Qt.ToolButtonTextBesideIcon)
+        self.more_button.setToolTip("Thickness non-uniformity, instrument bandwidth, "
+                                    "evaluation budget and time limit")
+        self.more_button.toggled.connect(self._show_more)
+        self.more = QWidget()
+        more = QFormLayout(self.more)
+        more.setContentsMargins(0, 0, 0, 0)
+        more.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
+        row = QHBoxLayout()
+        row.addWidget(self.spread, 1)
+        row.addWidget(self.fit_spread)
+        more.addRow("Thickness non-uniformity:", row)
+        row = QHBoxLayout()
+        row.addWidget(self.bandwidth, 1)
+        row.addWidget(self.fit_angle)
+        more.addRow("Instrument bandwidth:", row)
+        more.addRow("Evaluation budget:", self.max_nfev)
+        more.addRow("Time limit:", self.time_limit)
+        self.more.setVisible(False)
 
         self.mask_list = QListWidget()
         self.mask_list.setMaximumHeight(40)
@@ -147,6 +231,8 @@ class FitPanel(QWidget):
         masks.addWidget(self.mask_list, 1)
         masks.addWidget(self.unmask_button)
         form.addRow("Masked:", masks)
+        form.addRow(self.more_button)
+        form.addRow(self.more)
         run = QHBoxLayout()
         run.addWidget(self.fit_button, 2)
         run.addWidget(self.cancel_button, 1)
@@ -160,6 +246,7 @@ class FitPanel(QWidget):
         session.options_changed.connect(self.refresh)
         session.masks_changed.connect(self.refresh)
         session.spectrum_changed.connect(self.refresh)
+        session.stack_changed.connect(self.refresh)
         self.refresh()
 
     # -- view -------------------------------------------------------------------------------
@@ -176,6 +263,9 @@ class FitPanel(QWidget):
             elif s is not None and len(s):
                 self.range_lo.setValue(float(s.wavelength_nm[0]))
                 self.range_hi.setValue(float(s.wavelength_nm[-1]))
+            else:                                 # nothing to show: "–", not "1.0 nm"
+                self.range_lo.setValue(self.range_lo.minimum())
+                self.range_hi.setValue(self.range_hi.minimum())
             self.range_lo.setEnabled(rng is not None)
             self.range_hi.setEnabled(rng is not None)
             self.angle.setValue(o.get("angle_deg", 0.0))
@@ -191,6 +281,15 @@ class FitPanel(QWidget):
             self.method.setCurrentIndex(i)
             bg = o.get("band_gap") or "none"
             self.band_gap.setCurrentIndex(self.band_gap.findData(bg))
+            st = self.session.stack
+            self.spread.setValue(100.0 * st.thickness_spread)
+            self.bandwidth.setValue(st.bandwidth_nm)
+            self.fit_spread.setChecked(bool(o.get("fit_spread")))
+            self.fit_angle.setChecked(bool(o.get("fit_angle")))
+            self.max_nfev.setValue(int(o.get("max_nfev", self.max_nfev.value())))
+            self.time_limit.setValue(float(o.get("time_limit_s", self.time_limit.value())))
+            if self._more_differs() and not self.more_button.isChecked():
+                self.more_button.setChecked(True)
             self.mask_list.clear()
             for lo, hi in self.session.masks:
                 self.mask_list.addItem(f"{lo:.1f} – {hi:.1f} nm")
@@ -206,6 +305,24 @@ class FitPanel(QWidget):
             self.progress.setValue(0)
             self.progress.setFormat("starting…")
             self.stage.setText("")
+
+    def _more_differs(self) -> bool:
+        """True if a setting under "More settings" is not at its default."""
+        o, st, d = self.session.options, self.session.stack, default_fit_options()
+        return bool(st.thickness_spread or st.bandwidth_nm or any(
+            o.get(k) != d.get(k) for k in ("fit_spread", "fit_angle", "max_nfev",
+                                           "time_limit_s")))
+
+    def _show_more(self, on: bool):
+        self.more.setVisible(on)
+        self.more_button.setArrowType(Qt.DownArrow if on else Qt.RightArrow)
+
+    def reset_progress(self):
+        """Back to "idle" (a new spectrum or project: the last run's text no longer applies)."""
+        self.progress.setValue(0)
+        self.progress.setFormat("idle")
+        self.progress.setToolTip("Progress of the running fit")
+        self.stage.setText("")
 
     def show_progress(self, p):
         frac = float(getattr(p, "fraction", 0.0) or 0.0)
@@ -229,6 +346,15 @@ class FitPanel(QWidget):
             return
         try:
             self.session.set_option(name, value)
+        except PellucidError as exc:
+            self.status.emit(str(exc), True)
+            self.refresh()
+
+    def _set_stack(self, name, value):
+        if self._updating:
+            return
+        try:
+            self.session.set_stack_option(name, value)
         except PellucidError as exc:
             self.status.emit(str(exc), True)
             self.refresh()

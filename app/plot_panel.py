@@ -5,6 +5,13 @@ The model curve follows every edit of the stack at once (it is one call of
 fit the fitted curve is shown until the next edit. Masked windows are drawn
 shaded; in "Mask" mode a drag across the plot adds one (matplotlib
 ``SpanSelector``), a right click on a shaded window removes it.
+
+Session changes do not redraw at once: they schedule one rebuild on the next
+turn of the event loop (:attr:`PlotPanel.pending`), so a fit result, which
+changes the stack and the result together, costs one rebuild, not two. The
+margins are fixed in pixels (:meth:`PlotPanel._apply_margins`) instead of a
+constrained layout, which would measure every tick label on every draw (about
+half of the drawing time).
 """
 
 from __future__ import annotations
@@ -13,7 +20,7 @@ import numpy as np
 from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg, NavigationToolbar2QT
 from matplotlib.figure import Figure
 from matplotlib.widgets import SpanSelector
-from PySide6.QtCore import Signal
+from PySide6.QtCore import QTimer, Signal
 from PySide6.QtWidgets import (QComboBox, QHBoxLayout, QLabel, QPushButton, QToolButton,
                                QVBoxLayout, QWidget)
 
@@ -51,11 +58,15 @@ class PlotPanel(QWidget):
         self._model = None          # (wavelength_nm, model values) of the live curve
         self._model_error = ""
 
-        self.figure = Figure(figsize=(6, 5), layout="constrained")
+        self.figure = Figure(figsize=(6, 5))
         self.canvas = FigureCanvasQTAgg(self.figure)
         self.canvas.setToolTip("")
         self.ax, self.ax_res = self.figure.subplots(
             2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1]})
+        self.pending = False            # a rebuild is scheduled
+        self._pending_reset = False
+        self.canvas.mpl_connect("resize_event", lambda _e: self._apply_margins())
+        self._apply_margins()
         self.toolbar = NavigationToolbar2QT(self.canvas, self)
         self.toolbar.setToolTip("Zoom, pan, go back to the full view, save the picture")
 
@@ -100,9 +111,30 @@ class PlotPanel(QWidget):
         session.spectrum_changed.connect(self._on_data)
         session.stack_changed.connect(self._on_setup)
         session.options_changed.connect(self._on_setup)
-        session.masks_changed.connect(self.redraw)
+        session.masks_changed.connect(self.schedule)
         session.result_changed.connect(self._on_result)
+        session.result_stale_changed.connect(self._on_result)
         self.redraw()
+
+    def _apply_margins(self):
+        """Margins in pixels (room for tick labels, axis labels and the title)."""
+        w, h = self.canvas.width() or 600, self.canvas.height() or 500
+        left, right, top, bottom = 64.0, 14.0, 26.0, 44.0
+        self.figure.subplots_adjust(left=min(left / w, 0.3), right=1 - min(right / w, 0.1),
+                                    top=1 - min(top / h, 0.2), bottom=min(bottom / h, 0.3),
+                                    hspace=min(30.0 / h * 4, 0.4))
+
+    def schedule(self, reset_view: bool = False):
+        """Redraw on the next turn of the event loop (several requests make one redraw)."""
+        self._pending_reset |= bool(reset_view)
+        if not self.pending:
+            self.pending = True
+            QTimer.singleShot(0, self._flush)
+
+    def _flush(self):
+        if self.pending:
+            reset, self.pending, self._pending_reset = self._pending_reset, False, False
+            self.redraw(reset_view=reset)
 
     def _make_span(self):
         """(Re)create the drag selector: ``Axes.cla`` removes its artists on every redraw."""
@@ -115,18 +147,24 @@ class PlotPanel(QWidget):
 
     # -- reactions ----------------------------------------------------------------------
     def _on_data(self):
-        self._result_fresh = False
+        self._result_fresh = self._fresh()
         self._update_model()
-        self.redraw(reset_view=True)
+        self.schedule(reset_view=True)
 
     def _on_setup(self):
-        self._result_fresh = False
+        self._result_fresh = self._fresh()
         self._update_model()
-        self.redraw()
+        self.schedule()
 
-    def _on_result(self):
-        self._result_fresh = self.session.result is not None
-        self.redraw()
+    def _on_result(self, *_):
+        self._result_fresh = self._fresh()
+        self.schedule()
+
+    def _fresh(self) -> bool:
+        """Show the fitted curve only while the result matches the setup."""
+        s = self.session
+        return s.result is not None and not s.result_stale and s.spectrum is not None and len(
+            s.result.wavelength_nm) == len(s.spectrum)
 
     def _on_axis(self, _index):
         self.axis = self.axis_combo.currentData()
@@ -208,6 +246,8 @@ class PlotPanel(QWidget):
 
     # -- drawing ------------------------------------------------------------------------
     def redraw(self, reset_view: bool = False):
+        """Rebuild the plot now (session changes go through :meth:`schedule`)."""
+        self.pending = False
         ax, axr = self.ax, self.ax_res
         keep = None
         if not reset_view and ax.has_data():

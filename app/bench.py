@@ -1,0 +1,150 @@
+"""How long the desktop app's GUI thread stalls: ``python -m app.bench``.
+
+A 10 ms ``QTimer`` heartbeat runs in the GUI thread while the app does what a
+technician does: open a demo spectrum with its recipe, fit it, receive the
+result, open each result tab, switch the x axis, edit a parameter (the result
+goes out of date) and undo. For every step the longest gap between two beats
+is the longest time the window could not react to a click or repaint. The
+target is 0.2 s per step (a delay users notice as a stall; common practice
+in interface design).
+
+The longest gap of an *empty* event loop is measured first in the same run
+and printed as the reference: on a loaded machine every number grows, and
+the ratio to that reference shows what the app itself adds.
+
+Runs offscreen (``QT_QPA_PLATFORM=offscreen``) unless a display is set.
+``--out FILE`` writes the numbers as JSON. ``python -m fitting.bench`` measures
+the science core; this script is its GUI counterpart (``fitting`` never imports Qt).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+__all__ = ["main", "run", "TARGET_S"]
+
+#: Longest acceptable GUI-thread stall per user step, seconds.
+TARGET_S = 0.2
+ROOT = Path(__file__).resolve().parents[1]
+SPECTRUM = ROOT / "demo_data" / "spectra" / "PL2-T-0101.csv"
+RECIPE = ROOT / "demo_data" / "recipe.json"
+
+
+class _Heartbeat:
+    def __init__(self, interval_ms: int = 10):
+        from PySide6.QtCore import QTimer
+        self.beats: list[float] = []
+        self.timer = QTimer()
+        self.timer.setInterval(interval_ms)
+        self.timer.timeout.connect(lambda: self.beats.append(time.perf_counter()))
+        self.timer.start()
+
+    def longest_gap(self, t0: float, t1: float) -> float:
+        """Longest interval between beats (and the ends) within [t0, t1]."""
+        inside = [t for t in self.beats if t0 <= t <= t1]
+        marks = [t0, *inside, t1]
+        return max(b - a for a, b in zip(marks, marks[1:]))
+
+
+def _spin(app, seconds: float) -> None:
+    end = time.perf_counter() + seconds
+    while time.perf_counter() < end:
+        app.processEvents()
+        time.sleep(0.001)
+
+
+def _step(app, beat, action, settle_s: float = 0.8, until=None, timeout_s: float = 120.0):
+    """Run ``action`` from the event loop, wait (for ``until``), return the longest gap."""
+    from PySide6.QtCore import QTimer
+    _spin(app, 0.15)                     # start from a quiet loop
+    t0 = time.perf_counter()
+    QTimer.singleShot(0, action)
+    if until is not None:
+        while not until():
+            if time.perf_counter() - t0 > timeout_s:
+                raise TimeoutError("the app did not reach the expected state in time")
+            app.processEvents()
+            time.sleep(0.001)
+    _spin(app, settle_s)
+    return beat.longest_gap(t0, time.perf_counter())
+
+
+def run() -> dict:
+    """Measure every step; returns ``{"reference_s": .., "steps": [{"step", "gap_s"}]}``."""
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    from PySide6.QtCore import QSettings
+    from PySide6.QtWidgets import QApplication, QMessageBox
+
+    QMessageBox.exec = lambda self: 0          # never block on a box
+    app = QApplication.instance() or QApplication(["pellucid-bench"])
+    from .window import MainWindow
+    tmp = Path(tempfile.mkdtemp(prefix="pellucid-bench-"))
+    win = MainWindow(QSettings(str(tmp / "s.ini"), QSettings.IniFormat))
+    win.resize(1400, 900)
+    win.show()
+    beat = _Heartbeat()
+    _spin(app, 0.5)
+    steps = []
+    t0 = time.perf_counter()
+    _spin(app, 1.0)
+    reference = beat.longest_gap(t0, time.perf_counter())
+
+    def record(name, action, **kw):
+        steps.append({"step": name, "gap_s": _step(app, beat, action, **kw)})
+
+    win.settings.setValue("show_import_preview", False)
+    record("load recipe", lambda: win.load_recipe(RECIPE))
+    record("open demo spectrum", lambda: win.open_spectrum(SPECTRUM))
+    done = []
+    record("fit running", lambda: (win.start_fit(),
+                                   win.fit_job.done.connect(lambda: done.append(1))),
+           settle_s=0.0, until=lambda: bool(done))
+    record("result arrives", lambda: None)    # the result's own redraw, after 'done'
+    res = win.results
+    for tab in (res.optical_tab, res.tauc_tab, res.corr_tab, res.report, res.widget(0)):
+        record(f"open tab {res.tabText(res.indexOf(tab))}",
+               lambda t=tab: res.setCurrentWidget(t))
+    record("open tab n κ α again (cached)", lambda: res.setCurrentWidget(res.optical_tab))
+    record("x axis: photon energy", lambda: win.plot.set_axis("eV"))
+    record("x axis: wavelength", lambda: win.plot.set_axis("nm"))
+    model = win.stack_panel.table_model
+    record("edit a parameter", lambda: model.setData(model.index(0, 1), "600"))
+    record("undo", win.act_undo.trigger)
+    win.shutdown_jobs()
+    if hasattr(win.session, "mark_saved"):
+        win.session.mark_saved()
+    win.close()
+    return {"reference_s": reference, "target_s": TARGET_S, "steps": steps}
+
+
+def format_report(res: dict) -> str:
+    ref = res["reference_s"]
+    lines = ["Longest GUI-thread stall per step (heartbeat every 10 ms)",
+             f"reference: empty event loop, longest gap {ref * 1000:.0f} ms", "",
+             f"{'step':<34s} {'stall':>8s} {'× ref':>7s}  target {res['target_s']:.1f} s"]
+    for s in res["steps"]:
+        g = s["gap_s"]
+        mark = "ok" if g < res["target_s"] else "SLOW"
+        lines.append(f"{s['step']:<34s} {g * 1000:6.0f} ms {g / max(ref, 1e-3):6.1f}  {mark}")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--out", help="write the numbers as JSON to this file")
+    args = parser.parse_args(argv)
+    res = run()
+    print(format_report(res))
+    if args.out:
+        Path(args.out).write_text(json.dumps(res, indent=2) + "\n", encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
