@@ -52,27 +52,50 @@ class _Heartbeat:
         return max(b - a for a, b in zip(marks, marks[1:]))
 
 
-def _spin(app, seconds: float) -> None:
-    end = time.perf_counter() + seconds
-    while time.perf_counter() < end:
-        app.processEvents()
-        time.sleep(0.001)
+def _spin(seconds: float, until=None) -> bool:
+    """Run the event loop for ``seconds`` or until ``until()`` is true (checked every 2 ms).
+
+    A ``QEventLoop`` runs the events, not ``QApplication.processEvents()`` in a Python
+    loop: PySide6 6.12 releases one reference to ``None`` per ``processEvents()`` call
+    from Python, and thousands of calls crash the interpreter.
+    """
+    from PySide6.QtCore import QEventLoop, QTimer
+    loop = QEventLoop()
+    done = [until is None]
+    check = QTimer()
+    if until is not None:
+        def poll():
+            if until():
+                done[0] = True
+                loop.quit()
+        check.setInterval(2)
+        check.timeout.connect(poll)
+        check.start()
+    QTimer.singleShot(int(seconds * 1000), loop.quit)
+    loop.exec()
+    check.stop()
+    return done[0]
 
 
 def _step(app, beat, action, settle_s: float = 0.8, until=None, timeout_s: float = 120.0):
-    """Run ``action`` from the event loop, wait (for ``until``), return the longest gap."""
+    """Run ``action`` from the event loop, wait (for ``until``), return the longest gap.
+
+    With ``until``, returns two gaps: while waiting for it, and after it (settling).
+    """
     from PySide6.QtCore import QTimer
-    _spin(app, 0.15)                     # start from a quiet loop
+    _spin(0.15)                          # start from a quiet loop
     t0 = time.perf_counter()
     QTimer.singleShot(0, action)
+    t_mid = None
     if until is not None:
-        while not until():
-            if time.perf_counter() - t0 > timeout_s:
-                raise TimeoutError("the app did not reach the expected state in time")
-            app.processEvents()
-            time.sleep(0.001)
-    _spin(app, settle_s)
-    return beat.longest_gap(t0, time.perf_counter())
+        if not _spin(timeout_s, until):
+            raise TimeoutError("the app did not reach the expected state in time")
+        t_mid = time.perf_counter()
+    _spin(settle_s)
+    t1 = time.perf_counter()
+    if t_mid is None:
+        return beat.longest_gap(t0, t1)
+    return beat.longest_gap(t0, t_mid), beat.longest_gap(t_mid, t1)
 
 
 def run() -> dict:
@@ -89,10 +112,10 @@ def run() -> dict:
     win.resize(1400, 900)
     win.show()
     beat = _Heartbeat()
-    _spin(app, 0.5)
+    _spin(0.5)
     steps = []
     t0 = time.perf_counter()
-    _spin(app, 1.0)
+    _spin(1.0)
     reference = beat.longest_gap(t0, time.perf_counter())
 
     def record(name, action, **kw):
@@ -102,10 +125,12 @@ def run() -> dict:
     record("load recipe", lambda: win.load_recipe(RECIPE))
     record("open demo spectrum", lambda: win.open_spectrum(SPECTRUM))
     done = []
-    record("fit running", lambda: (win.start_fit(),
-                                   win.fit_job.done.connect(lambda: done.append(1))),
-           settle_s=0.0, until=lambda: bool(done))
-    record("result arrives", lambda: None)    # the result's own redraw, after 'done'
+    # The result is handled when the job's 'done' arrives; its redraws follow on timers.
+    running, arrived = _step(app, beat, lambda: (
+        win.start_fit(), win.fit_job.done.connect(lambda: done.append(1))),
+        until=lambda: bool(done))
+    steps += [{"step": "fit running", "gap_s": running},
+              {"step": "result arrives", "gap_s": arrived}]
     res = win.results
     for tab in (res.optical_tab, res.tauc_tab, res.corr_tab, res.report, res.widget(0)):
         record(f"open tab {res.tabText(res.indexOf(tab))}",
@@ -116,10 +141,17 @@ def run() -> dict:
     model = win.stack_panel.table_model
     record("edit a parameter", lambda: model.setData(model.index(0, 1), "600"))
     record("undo", win.act_undo.trigger)
+    _spin(0.5)
     win.shutdown_jobs()
     if hasattr(win.session, "mark_saved"):
         win.session.mark_saved()
     win.close()
+    beat.timer.stop()
+    # Tear the window down while the application still runs (not at interpreter exit,
+    # where Python and Qt would destroy objects in no safe order).
+    beat.timer.deleteLater()
+    win.deleteLater()
+    _spin(0.2)
     return {"reference_s": reference, "target_s": TARGET_S, "steps": steps}
 
 

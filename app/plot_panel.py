@@ -65,6 +65,18 @@ class PlotPanel(QWidget):
             2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1]})
         self.pending = False            # a rebuild is scheduled
         self._pending_reset = False
+        # Rebuilding the artists and rasterising them are two steps, each on a short
+        # timer rather than a posted event: Qt would run posted events back to back,
+        # while timers let input and paint events in between (one long stall becomes
+        # two short ones).
+        self._flush_timer = QTimer(self)
+        self._flush_timer.setSingleShot(True)
+        self._flush_timer.setInterval(5)
+        self._flush_timer.timeout.connect(self._flush)
+        self._draw_timer = QTimer(self)
+        self._draw_timer.setSingleShot(True)
+        self._draw_timer.setInterval(5)
+        self._draw_timer.timeout.connect(self.canvas.draw)
         self.canvas.mpl_connect("resize_event", lambda _e: self._apply_margins())
         self._apply_margins()
         self.toolbar = NavigationToolbar2QT(self.canvas, self)
@@ -129,7 +141,7 @@ class PlotPanel(QWidget):
         self._pending_reset |= bool(reset_view)
         if not self.pending:
             self.pending = True
-            QTimer.singleShot(0, self._flush)
+            self._flush_timer.start()
 
     def _flush(self):
         if self.pending:
@@ -246,73 +258,126 @@ class PlotPanel(QWidget):
 
     # -- drawing ------------------------------------------------------------------------
     def redraw(self, reset_view: bool = False):
-        """Rebuild the plot now (session changes go through :meth:`schedule`)."""
+        """Bring the plot up to date now (session changes go through :meth:`schedule`).
+
+        The curves are kept as artists and only get new data: clearing the axes
+        would make matplotlib rebuild every tick and label on the next draw, which
+        costs more than the drawing itself.
+        """
         self.pending = False
-        ax, axr = self.ax, self.ax_res
-        keep = None
-        if not reset_view and ax.has_data():
-            keep = (ax.get_xlim(), ax.get_ylim())
-        ax.cla()
-        axr.cla()
-        col = figure_colors()
-        label, conv, _inv = AXES[self.axis]
         s = self.session.spectrum
-        axr.set_xlabel(label)
-        axr.set_ylabel("Residual (%)")
         if s is None:
-            ax.set_ylabel("Transmittance T (%)")
-            ax.text(0.5, 0.5, "No spectrum loaded.\n\nOpen a measured spectrum with "
-                    "File ▸ Open (Ctrl+O)\nor drop a file onto this window.",
-                    ha="center", va="center", transform=ax.transAxes, color=col["text"],
-                    fontsize=11)
-            ax.set_xticks([])
-            ax.set_yticks([])
-            axr.set_yticks([])
+            self._draw_empty()
         else:
-            x = conv(s.wavelength_nm)
-            y = 100 * s.values
-            used = self.session.spectrum_for_fit().used
-            if self.session.options.get("fit_range_nm"):
-                lo, hi = self.session.options["fit_range_nm"]
-                used = used & (s.wavelength_nm >= lo) & (s.wavelength_nm <= hi)
-            ax.plot(x, np.where(used, y, np.nan), color=col["measured"], lw=1.2,
-                    label="measured")
-            if not used.all():
-                ax.plot(x, np.where(used, np.nan, y), color=col["unused"], lw=1.0, ls=":",
-                        label="not fitted")
-            curve = self._shown_model()
-            if curve is not None:
-                is_fit = self._result_fresh and self.session.result is not None
-                ax.plot(conv(curve[0]), 100 * curve[1],
-                        color=col["fitted"] if is_fit else col["model"], lw=1.4,
-                        label="fitted model" if is_fit else "model (current stack)")
-                res = 100 * (s.values - np.interp(s.wavelength_nm, curve[0], curve[1]))
-                axr.plot(x, np.where(used, res, np.nan), color=col["residual"], lw=1.0)
-                axr.axhline(0.0, color=col["grid"], lw=0.8)
-            elif self._model_error:
-                ax.text(0.02, 0.03, "Model curve not shown: " + self._model_error,
-                        transform=ax.transAxes, fontsize=8, color=col["second"], wrap=True)
-            ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
-            title = s.name or "spectrum"
-            ax.set_title(title, fontsize=10, loc="left", color=col["text"])
-            for lo, hi in self.session.masks:
-                for a in (ax, axr):
-                    a.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)
-            ax.legend(loc="best", fontsize=8)
-            ax.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
-            axr.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
-            if keep is not None and not reset_view:
-                ax.set_xlim(keep[0])
-                ax.set_ylim(keep[1])
-        # Fix the view before the selector adds its (hidden) rectangle, which would
-        # otherwise stretch the autoscaled limits to x = 0.
-        ax.get_xlim(), ax.get_ylim(), axr.get_ylim()
-        ax.set_autoscale_on(False)
-        self._make_span()
+            if self._artists is None:
+                self._make_artists()
+                reset_view = True
+            self._update_artists(s, reset_view)
         if reset_view:
             self.toolbar.update()          # "Home" returns to this view
         style_figure(self.figure)
-        self.canvas.draw_idle()
+        self._draw_timer.start()
+
+    _artists = None
+
+    def _draw_empty(self):
+        ax, axr = self.ax, self.ax_res
+        self._artists = None
+        ax.cla()
+        axr.cla()
+        col = figure_colors()
+        axr.set_xlabel(AXES[self.axis][0])
+        axr.set_ylabel("Residual (%)")
+        ax.set_ylabel("Transmittance T (%)")
+        ax.text(0.5, 0.5, "No spectrum loaded.\n\nOpen a measured spectrum with "
+                "File ▸ Open (Ctrl+O)\nor drop a file onto this window.",
+                ha="center", va="center", transform=ax.transAxes, color=col["text"],
+                fontsize=11)
+        ax.set_xticks([])
+        ax.set_yticks([])
+        axr.set_yticks([])
+        ax.set_autoscale_on(False)
+        self._make_span()
+
+    def _make_artists(self):
+        """The lines, texts and grid of a plot with data (made once per spectrum view)."""
+        ax, axr = self.ax, self.ax_res
+        ax.cla()
+        axr.cla()
+        a = {}
+        a["measured"], = ax.plot([], [], lw=1.2, label="measured")
+        a["unused"], = ax.plot([], [], lw=1.0, ls=":", label="not fitted")
+        a["model"], = ax.plot([], [], lw=1.4)
+        a["residual"], = axr.plot([], [], lw=1.0)
+        a["zero"] = axr.axhline(0.0, lw=0.8)
+        a["error"] = ax.text(0.02, 0.03, "", transform=ax.transAxes, fontsize=8, wrap=True)
+        a["spans"] = []
+        a["legend_key"] = None
+        self._artists = a
+        ax.grid(True, lw=0.5, alpha=0.6)
+        axr.grid(True, lw=0.5, alpha=0.6)
+        self._make_span()
+
+    def _update_artists(self, s, reset_view: bool):
+        ax, axr, a = self.ax, self.ax_res, self._artists
+        col = figure_colors()
+        label, conv, _inv = AXES[self.axis]
+        x = conv(s.wavelength_nm)
+        y = 100 * s.values
+        used = self.session.spectrum_for_fit().used
+        if self.session.options.get("fit_range_nm"):
+            lo, hi = self.session.options["fit_range_nm"]
+            used = used & (s.wavelength_nm >= lo) & (s.wavelength_nm <= hi)
+        a["measured"].set_data(x, np.where(used, y, np.nan))
+        a["measured"].set_color(col["measured"])
+        a["unused"].set_data(x, np.where(used, np.nan, y))
+        a["unused"].set_color(col["unused"])
+        a["unused"].set_visible(not used.all())
+        curve = self._shown_model()
+        is_fit = self._result_fresh and self.session.result is not None
+        has_curve = curve is not None
+        for k in ("model", "residual", "zero"):
+            a[k].set_visible(has_curve)
+        if has_curve:
+            a["model"].set_data(conv(curve[0]), 100 * curve[1])
+            a["model"].set_color(col["fitted"] if is_fit else col["model"])
+            a["model"].set_label("fitted model" if is_fit else "model (current stack)")
+            res = 100 * (s.values - np.interp(s.wavelength_nm, curve[0], curve[1]))
+            a["residual"].set_data(x, np.where(used, res, np.nan))
+            a["residual"].set_color(col["residual"])
+            a["zero"].set_color(col["grid"])
+        a["error"].set_text("" if has_curve or not self._model_error
+                            else "Model curve not shown: " + self._model_error)
+        a["error"].set_color(col["second"])
+        for span in a["spans"]:
+            span.remove()
+        a["spans"] = [sp.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)
+                      for lo, hi in self.session.masks for sp in (ax, axr)]
+        axr.set_xlabel(label)
+        axr.set_ylabel("Residual (%)")
+        ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
+        ax.set_title(s.name or "spectrum", fontsize=10, loc="left", color=col["text"])
+        for g in (ax, axr):
+            for line in g.get_xgridlines() + g.get_ygridlines():
+                line.set_color(col["grid"])
+        shown = [h for h in (a["measured"], a["unused"], a["model"]) if h.get_visible()]
+        key = tuple(h.get_label() for h in shown)
+        if key != a["legend_key"] or ax.get_legend() is None:
+            ax.legend(handles=shown, loc="best", fontsize=8)
+            a["legend_key"] = key
+        # Residuals always fit their axis; the spectrum keeps the user's zoom unless
+        # the data or the axis changed. Autoscaling is switched off afterwards: the
+        # selector's hidden rectangle would otherwise stretch the view to x = 0.
+        axr.set_autoscalex_on(False)       # x follows the spectrum axes (shared)
+        axr.set_autoscaley_on(True)
+        axr.relim(visible_only=True)
+        axr.autoscale_view(scalex=False)
+        if reset_view:
+            ax.set_autoscale_on(True)
+            ax.relim(visible_only=True)
+            ax.autoscale_view()
+            ax.get_xlim(), ax.get_ylim()
+        ax.set_autoscale_on(False)
 
     def image_data(self):
         """What is plotted, for tests: dict with x, measured and model arrays."""

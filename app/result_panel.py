@@ -228,7 +228,10 @@ class _FigureTab(QWidget):
         key, fig, rgba, w, h = out
         if self._want is not None and self._want[0][0] != key[0]:
             return                        # a newer result is waiting: skip this one
-        img = QImage(rgba, w, h, QImage.Format_RGBA8888).copy()
+        # Copied into an image Qt owns (rows of RGBA8888 are 4-byte aligned, so the
+        # layouts match): no QImage holds on to a Python buffer.
+        img = QImage(w, h, QImage.Format_RGBA8888)
+        img.bits()[:len(rgba)] = rgba
         img.setDevicePixelRatio(w / max(key[2], 1))
         self.figure, self._key = fig, key
         self.image.setText("")
@@ -257,6 +260,13 @@ class _FigureTab(QWidget):
         super().resizeEvent(event)
         if self._last is not None:
             self._resize_timer.start()
+
+    def shutdown(self):
+        """Stop drawing and wait for the worker (before the window goes away)."""
+        self._want, self._last = None, None
+        self._resize_timer.stop()
+        if self._job is not None:
+            self._job.wait(30000)
 
 
 class ResultPanel(QTabWidget):
@@ -365,6 +375,11 @@ class ResultPanel(QTabWidget):
             return ("Correlations need at least two fitted parameters\n"
                     "and an estimated covariance.")
         return ""
+
+    def shutdown(self):
+        """Wait for any figure still being drawn (the window is closing)."""
+        for tab in self._figure_tabs.values():
+            tab.shutdown()
 
     def _update_banner(self, *_):
         s = self.session

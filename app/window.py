@@ -734,10 +734,7 @@ class MainWindow(QMainWindow):
             if answer == "cancel" or (answer == "save" and not self.save_project()):
                 event.ignore()
                 return
-        for job in (self.fit_job, getattr(self.batch_dialog, "job", None)):
-            if job is not None and job.is_running():
-                job.cancel()
-                job.wait(60000)
+        self.shutdown_jobs()
         self.save_settings()
         super().closeEvent(event)
 
@@ -747,3 +744,4 @@ class MainWindow(QMainWindow):
             if job is not None and job.is_running():
                 job.cancel()
                 job.wait(60000)
+        self.results.shutdown()
