@@ -109,10 +109,11 @@ class ImportDialog(QDialog):
         box.setLayout(form)
         self.ref_fields = ReferenceFields(reference, start_dir, self)
         self.ref_fields.changed.connect(self.update_preview)
-        self.ref_box = QGroupBox("Reference correction: T = (sample − dark) / "
-                                 "(100 % line − dark)")
-        self.ref_box.setToolTip("For raw detector signals: choose the 100 % line measured "
-                                "with nothing in the beam, and the dark signal if you have one")
+        self.ref_box = QGroupBox("Reference correction, for raw signals only (leave empty for "
+                                 "a T or R file)")
+        self.ref_box.setToolTip("T = (sample − dark) / (100 % line − dark). For raw detector "
+                                "signals: choose the 100 % line measured with nothing in the "
+                                "beam, and the dark signal if you have one")
         rl = QVBoxLayout(self.ref_box)
         rl.addWidget(self.ref_fields)
 

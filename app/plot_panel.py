@@ -361,7 +361,7 @@ class PlotPanel(QWidget):
             for line in g.get_xgridlines() + g.get_ygridlines():
                 line.set_color(col["grid"])
         shown = [h for h in (a["measured"], a["unused"], a["model"]) if h.get_visible()]
-        key = tuple(h.get_label() for h in shown)
+        key = tuple((h.get_label(), h.get_color()) for h in shown)   # colours: theme
         if key != a["legend_key"] or ax.get_legend() is None:
             ax.legend(handles=shown, loc="best", fontsize=8)
             a["legend_key"] = key

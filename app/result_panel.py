@@ -96,9 +96,11 @@ def draw_tauc(fig, r, col):
     ax = fig.axes[0]
     eg = r.band_gap.Eg_eV
     lo, hi = r.band_gap.fit_range_eV
-    ax.set_xlim(eg - 1.0, max(hi, eg) + 0.8)
     ys = [line.get_ydata() for line in ax.get_lines()[:1]]
     xs = [line.get_xdata() for line in ax.get_lines()[:1]]
+    # ... but not past the data's highest photon energy (an empty strip says nothing).
+    top_e = float(np.nanmax(xs[0])) + 0.05 if xs and len(xs[0]) else max(hi, eg) + 0.8
+    ax.set_xlim(eg - 1.0, min(max(hi, eg) + 0.8, top_e))
     if ys and len(ys[0]):
         sel = (np.asarray(xs[0]) <= max(hi, eg) + 0.8)
         top = np.nanmax(np.asarray(ys[0], dtype=float)[sel]) if sel.any() else None
