@@ -62,6 +62,7 @@ import numpy as np
 
 from .atomic import atomic_write_text
 from .errors import RecipeError
+from .export import _json_clean as _clean     # NaN -> null, numpy -> Python: strict JSON
 from .recipe import Recipe, recipe_from_dict
 from .spectrum import sha256_of_file
 
@@ -276,23 +277,6 @@ def _portable(p: Path, base: Path | None) -> str:
         except ValueError:       # another drive on Windows
             pass
     return str(p)
-
-
-def _clean(obj):
-    """NaN/inf -> None, numpy -> Python, so the project is strict JSON."""
-    if isinstance(obj, Mapping):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    return obj
 
 
 # -- a FitResult back from its JSON ---------------------------------------------------

@@ -8,7 +8,6 @@ sleep or a wall-clock threshold: the machine may be loaded (speed is measured by
 import json
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 pytest.importorskip("PySide6")
