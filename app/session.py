@@ -250,8 +250,8 @@ class Session(QObject):
         for k in ("value", "min", "max"):
             if k in changes:
                 v = changes[k]
-                if isinstance(v, str) and v.strip().lower() in ("", "inf", "+inf", "-inf",
-                                                                 "none", "∞", "-∞") and k != "value":
+                open_bound = ("", "inf", "+inf", "-inf", "none", "∞", "-∞")
+                if isinstance(v, str) and v.strip().lower() in open_bound and k != "value":
                     changes[k] = -math.inf if k == "min" else math.inf
                 else:
                     changes[k] = check_finite(f"{global_name} {k}", v)

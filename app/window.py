@@ -470,6 +470,9 @@ class MainWindow(QMainWindow):
                         "stack).", True)
         elif not result.success:
             self.status(f"The fit did not converge: {result.message}", True)
+        elif self.session.result_stale:
+            self.status(f"Fit done, but {self.session.stale_reason} changed while it ran: "
+                        "the result is marked out of date. Fit again (Ctrl+R).", True)
         else:
             try:
                 d, sd = result.thickness()

@@ -314,3 +314,13 @@ def test_result_figures_are_drawn_when_shown_and_kept(window, qtbot):
                     is not None and not res.optical_tab.busy, timeout=30000)
     res.setCurrentWidget(res.tauc_tab)
     assert res.tauc_tab.figure is None and "No band gap" in res.tauc_tab.image.text()
+
+
+def test_options_changed_while_a_fit_ran_make_its_result_out_of_date(window):
+    s = window.session
+    setup = s.setup_fingerprint()              # what the window takes when Fit is pressed
+    s.set_option("fit_offset", True)           # the Fit section stays editable meanwhile
+    s.set_result(make_result("coupon", 500.0), apply=False, setup=setup)
+    assert s.result_stale and s.stale_reason == "the fit options"
+    s.set_option("fit_offset", False)          # back to the setup the fit ran with
+    assert not s.result_stale
