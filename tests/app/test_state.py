@@ -324,3 +324,23 @@ def test_options_changed_while_a_fit_ran_make_its_result_out_of_date(window):
     assert s.result_stale and s.stale_reason == "the fit options"
     s.set_option("fit_offset", False)          # back to the setup the fit ran with
     assert not s.result_stale
+
+
+def test_a_verdict_is_shown_in_words_and_a_symbol(window):
+    from dataclasses import dataclass
+
+    from fitting.result import FitResult
+
+    @dataclass(frozen=True)
+    class Judged(FitResult):               # the verdict fields a later FitResult carries
+        verdict: str = "poor"
+        verdict_reasons: tuple = ()
+
+    base = make_result("coupon", 500.0)
+    r = Judged(**{f: getattr(base, f) for f in FitResult.__dataclass_fields__},
+               verdict="poor", verdict_reasons=("reduced χ² 40: the model misses the data",))
+    window.session.set_result(r, apply=False)
+    head = window.results.headline.text()
+    assert "✖" in head and "Verdict: poor" in head and "model misses the data" in head
+    window.session.set_result(base, apply=False)          # no verdict: no line
+    assert "Verdict" not in window.results.headline.text()
