@@ -304,8 +304,9 @@ def fit_result_from_dict(d: Mapping):
     """Rebuild a :class:`fitting.result.FitResult` from ``FitResult.to_dict(curves=True)``.
 
     Values written as ``null`` (NaN or infinity in the result) come back as NaN,
-    open bounds as ±inf. Fields of ``FitResult`` this function does not name
-    (added by later versions, e.g. a verdict) are passed through when present.
+    open bounds as ±inf. Fields of ``FitResult`` this function does not name are
+    taken when they hold text (a verdict and its reasons) and otherwise left at
+    their defaults.
 
     Raises
     ------
@@ -386,10 +387,17 @@ def fit_result_from_dict(d: Mapping):
               stack=dict(d.get("stack") or {}), method=str(d.get("method", "")),
               spectrum=dict(d.get("spectrum") or {}), extra=dict(d.get("extra") or {}),
               **arrays)
-    for f in fields(FitResult):          # fields added later (verdict, ...) pass through
-        if f.name not in kw and f.name in d:
-            v = d[f.name]
-            kw[f.name] = tuple(v) if isinstance(v, list) else v
+    # Fields added later pass through when they are plain text (a verdict and its
+    # reasons); structured records this function cannot rebuild are left at their
+    # defaults rather than handed on as bare dicts.
+    for f in fields(FitResult):
+        if f.name in kw or f.name not in d:
+            continue
+        v = d[f.name]
+        if isinstance(v, str):
+            kw[f.name] = v
+        elif isinstance(v, list) and all(isinstance(x, str) for x in v):
+            kw[f.name] = tuple(v)
     return FitResult(**kw)
 
 

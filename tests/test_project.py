@@ -117,3 +117,23 @@ def test_result_dict_refuses_a_curve_of_the_wrong_length():
     d["curves"]["fitted"] = d["curves"]["fitted"][:-1]
     with pytest.raises(RecipeError, match="one per wavelength"):
         fit_result_from_dict(d)
+
+
+def test_text_fields_of_a_newer_result_pass_through(monkeypatch):
+    from dataclasses import dataclass
+
+    from fitting.result import FitResult
+
+    @dataclass(frozen=True)
+    class Newer(FitResult):
+        verdict: str = ""
+        verdict_reasons: tuple = ()
+        diagnostics: object = None
+
+    base = make_result("s", 500.0)
+    d = base.to_dict(curves=True)
+    d.update(verdict="check", verdict_reasons=["few fringes"], diagnostics={"runs_z": 1.0})
+    monkeypatch.setattr("fitting.result.FitResult", Newer)
+    r = fit_result_from_dict(d)
+    assert r.verdict == "check" and r.verdict_reasons == ("few fringes",)
+    assert r.diagnostics is None          # a structured record is not handed on as a dict
