@@ -86,6 +86,12 @@ class FitPanel(QWidget):
         self.fit_offset.setToolTip("Let the fit add a small constant (corrects stray light or "
                                    "a dark level that was not subtracted)")
         self.fit_offset.toggled.connect(lambda v: self._set("fit_offset", v))
+        self.fit_tilt = QCheckBox("Fit a tilt")
+        self.fit_tilt.setToolTip("Let the fit tilt the 100 % line linearly across the range "
+                                 "(a baseline that drifted during the scan)")
+        self.fit_tilt.toggled.connect(lambda v: self._set("fit_tilt", v))
+        # Shown only where the fit engine has the option.
+        self.fit_tilt.setVisible("fit_tilt" in session.options)
         self.band_gap = QComboBox()
         for k, (_v, label) in _BAND_GAP.items():
             self.band_gap.addItem(label, k)
@@ -116,10 +122,16 @@ class FitPanel(QWidget):
                                "fringes than the model; typical 0-3 %.")
         self.spread.valueChanged.connect(
             lambda v: self._set_stack("thickness_spread", v / 100.0))
-        self.fit_spread = QCheckBox("Fit it")
-        self.fit_spread.setToolTip("Let the fit find the thickness non-uniformity (starts "
-                                   "from the value beside)")
-        self.fit_spread.toggled.connect(lambda v: self._set("fit_spread", v))
+        self.fit_spread = QComboBox()
+        # "auto" (the engine decides from the data) is offered where FitOptions has it.
+        if default_fit_options().get("fit_spread") == "auto":
+            self.fit_spread.addItem("fit when the data ask", "auto")
+        self.fit_spread.addItem("always fit it", True)
+        self.fit_spread.addItem("keep it fixed", False)
+        self.fit_spread.setToolTip("Whether the fit adjusts the thickness non-uniformity "
+                                   "(starting from the value beside) or keeps it fixed")
+        self.fit_spread.currentIndexChanged.connect(
+            lambda _i: self._set("fit_spread", self.fit_spread.currentData()))
         self.bandwidth = QDoubleSpinBox()
         self.bandwidth.setRange(0.0, 50.0)
         self.bandwidth.setDecimals(1)
@@ -224,6 +236,7 @@ class FitPanel(QWidget):
         extras = QHBoxLayout()
         extras.addWidget(self.fit_scale)
         extras.addWidget(self.fit_offset)
+        extras.addWidget(self.fit_tilt)
         form.addRow("Corrections:", extras)
         form.addRow("Start:", self.method)
         form.addRow("Band gap:", self.band_gap)
@@ -274,6 +287,7 @@ class FitPanel(QWidget):
             self.polarization.setEnabled(o.get("angle_deg", 0.0) > 0)
             self.fit_scale.setChecked(bool(o.get("fit_scale")))
             self.fit_offset.setChecked(bool(o.get("fit_offset")))
+            self.fit_tilt.setChecked(bool(o.get("fit_tilt")))
             i = self.method.findData(o.get("method", "auto"))
             if i < 0:
                 self.method.addItem(o.get("method"), o.get("method"))
@@ -284,7 +298,14 @@ class FitPanel(QWidget):
             st = self.session.stack
             self.spread.setValue(100.0 * st.thickness_spread)
             self.bandwidth.setValue(st.bandwidth_nm)
-            self.fit_spread.setChecked(bool(o.get("fit_spread")))
+            v = o.get("fit_spread", False)
+            i = next((j for j in range(self.fit_spread.count())
+                      if self.fit_spread.itemData(j) == v
+                      and type(self.fit_spread.itemData(j)) is type(v)), -1)
+            if i < 0:                            # a value this menu does not list
+                self.fit_spread.addItem(str(v), v)
+                i = self.fit_spread.count() - 1
+            self.fit_spread.setCurrentIndex(i)
             self.fit_angle.setChecked(bool(o.get("fit_angle")))
             self.max_nfev.setValue(int(o.get("max_nfev", self.max_nfev.value())))
             self.time_limit.setValue(float(o.get("time_limit_s", self.time_limit.value())))

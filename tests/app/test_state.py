@@ -261,7 +261,7 @@ def test_more_settings_set_what_advice_asks_for(window, tmp_path):
     fp.max_nfev.setValue(50000)
     fp.time_limit.setValue(120)
     fp.spread.setValue(2.0)
-    fp.fit_spread.setChecked(True)
+    fp.fit_spread.setCurrentIndex(fp.fit_spread.findText("always fit it"))
     fp.bandwidth.setValue(2.0)
     rec = s.recipe()
     assert rec.fit_options["max_nfev"] == 50000 and rec.fit_options["time_limit_s"] == 120.0
@@ -344,3 +344,13 @@ def test_a_verdict_is_shown_in_words_and_a_symbol(window):
     assert "✖" in head and "Verdict: poor" in head and "model misses the data" in head
     window.session.set_result(base, apply=False)          # no verdict: no line
     assert "Verdict" not in window.results.headline.text()
+
+
+def test_tilt_of_the_100_percent_line_has_a_control_where_the_engine_has_it(window):
+    s, fp = window.session, window.fit_panel
+    if "fit_tilt" not in s.options:
+        assert not fp.fit_tilt.isVisibleTo(window)      # no control for a missing option
+        pytest.skip("this fit engine has no fit_tilt option")
+    assert fp.fit_tilt.isVisibleTo(window) and fp.fit_tilt.toolTip()
+    fp.fit_tilt.setChecked(not s.options["fit_tilt"])
+    assert s.recipe().fit_options["fit_tilt"] is fp.fit_tilt.isChecked()
