@@ -22,12 +22,19 @@ PROV = {"software": "pellucid 9.9", "recipe_hash": "3f2a9c0d11be7c" + "0" * 50,
         "reference_correction": "(S - D) / (B - D), B = base.txt"}
 
 
-@dataclass(frozen=True)
-class _Judged(FitResult):
-    """A result with the verdict fields a later FitResult carries."""
+def with_verdict(base, verdict, reasons):
+    """``base`` with a verdict: through its own fields where FitResult has them, else a
+    subclass that adds them (the fields a later FitResult carries)."""
+    if "verdict" in FitResult.__dataclass_fields__:
+        return replace(base, verdict=verdict, verdict_reasons=tuple(reasons))
 
-    verdict: str = "check"
-    verdict_reasons: tuple = ()
+    @dataclass(frozen=True)
+    class Judged(FitResult):
+        verdict: str = ""
+        verdict_reasons: tuple = ()
+
+    return Judged(**{f: getattr(base, f) for f in FitResult.__dataclass_fields__},
+                  verdict=verdict, verdict_reasons=tuple(reasons))
 
 
 @needs_poppler
@@ -60,9 +67,7 @@ def test_fit_report_shows_a_verdict_and_continues_a_long_parameter_table(tmp_pat
     params = dict(base.params)
     for i in range(40):
         params[f"film_o{i}_f"] = ParamResult(f"film_o{i}_f", 0.1 * i, 0.01, None, 0.0, 10.0)
-    res = _Judged(**{f: getattr(base, f) for f in FitResult.__dataclass_fields__},
-                  verdict="poor", verdict_reasons=("χ² far above the noise",))
-    res = replace(res, params=params)
+    res = with_verdict(replace(base, params=params), "poor", ["χ² far above the noise"])
     pdf = report.write_fit_report(res, tmp_path / "r.pdf", provenance={})
     assert len(render(pdf, tmp_path, dpi=20)) == 3
     p1 = " ".join(page_text(pdf, 1).split())

@@ -12,6 +12,7 @@ from PySide6.QtWidgets import QDialogButtonBox  # noqa: E402
 
 from tests.app.test_window import _fit, _shown  # noqa: E402
 from tests.test_export import make_result  # noqa: E402
+from tests.test_fit_report import with_verdict  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[2]
 REFS = ROOT / "demo_data" / "references"
@@ -327,22 +328,12 @@ def test_options_changed_while_a_fit_ran_make_its_result_out_of_date(window):
 
 
 def test_a_verdict_is_shown_in_words_and_a_symbol(window):
-    from dataclasses import dataclass
-
-    from fitting.result import FitResult
-
-    @dataclass(frozen=True)
-    class Judged(FitResult):               # the verdict fields a later FitResult carries
-        verdict: str = "poor"
-        verdict_reasons: tuple = ()
-
     base = make_result("coupon", 500.0)
-    r = Judged(**{f: getattr(base, f) for f in FitResult.__dataclass_fields__},
-               verdict="poor", verdict_reasons=("reduced χ² 40: the model misses the data",))
+    r = with_verdict(base, "poor", ["reduced χ² 40: the model misses the data"])
     window.session.set_result(r, apply=False)
     head = window.results.headline.text()
     assert "✖" in head and "Verdict: poor" in head and "model misses the data" in head
-    window.session.set_result(base, apply=False)          # no verdict: no line
+    window.session.set_result(with_verdict(base, "", []), apply=False)   # none: no line
     assert "Verdict" not in window.results.headline.text()
 
 
