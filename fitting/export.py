@@ -277,6 +277,9 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
     prov = dict(provenance)
     name = (result.spectrum or {}).get("name") or stem
     written: list[Path] = []
+    if "pdf" in parts:
+        from .report import write_fit_report   # matplotlib only when a PDF is asked for
+        written.append(write_fit_report(result, out / f"{stem}_report.pdf", provenance=prov))
 
     for layer, oc in (result.optical.items() if "nk" in parts else ()):
         wl = np.asarray(oc.wavelength_nm, dtype=float)
@@ -312,9 +315,6 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
             for fmt in plots:
                 written.append(save_figure(fig, out / f"{stem}_{kind}.{fmt}", provenance=prov,
                                            fmt=fmt))
-    if "pdf" in parts:
-        from .report import write_fit_report
-        written.append(write_fit_report(result, out / f"{stem}_report.pdf", provenance=prov))
     return written
 
 
