@@ -15,9 +15,9 @@ hides a setting that changes the fit.
 from __future__ import annotations
 
 from PySide6.QtCore import Qt, Signal
-from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout,
-                               QLabel, QListWidget, QProgressBar, QPushButton, QSpinBox,
-                               QToolButton, QVBoxLayout, QWidget)
+from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QGridLayout,
+                               QHBoxLayout, QLabel, QListWidget, QProgressBar, QPushButton,
+                               QSpinBox, QToolButton, QVBoxLayout, QWidget)
 
 from fitting.errors import PellucidError
 from fitting.presets import default_fit_options
@@ -90,8 +90,6 @@ class FitPanel(QWidget):
         self.fit_tilt.setToolTip("Let the fit tilt the 100 % line linearly across the range "
                                  "(a baseline that drifted during the scan)")
         self.fit_tilt.toggled.connect(lambda v: self._set("fit_tilt", v))
-        # Shown only where the fit engine has the option.
-        self.fit_tilt.setVisible("fit_tilt" in session.options)
         self.band_gap = QComboBox()
         for k, (_v, label) in _BAND_GAP.items():
             self.band_gap.addItem(label, k)
@@ -143,7 +141,7 @@ class FitPanel(QWidget):
                                   "spectrophotometer. It smooths fine fringes of thick "
                                   "films; see the instrument settings of the measurement.")
         self.bandwidth.valueChanged.connect(lambda v: self._set_stack("bandwidth_nm", v))
-        self.fit_angle = QCheckBox("Fit the angle")
+        self.fit_angle = QCheckBox("Fit the angle of incidence")
         self.fit_angle.setToolTip("Let the fit adjust the angle of incidence (when the "
                                   "sample holder's tilt is not known well)")
         self.fit_angle.toggled.connect(lambda v: self._set("fit_angle", v))
@@ -178,14 +176,11 @@ class FitPanel(QWidget):
         more = QFormLayout(self.more)
         more.setContentsMargins(0, 0, 0, 0)
         more.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
-        row = QHBoxLayout()
-        row.addWidget(self.spread, 1)
-        row.addWidget(self.fit_spread)
-        more.addRow("Thickness non-uniformity:", row)
-        row = QHBoxLayout()
-        row.addWidget(self.bandwidth, 1)
-        row.addWidget(self.fit_angle)
-        more.addRow("Instrument bandwidth:", row)
+        # One control per row: the left column stays narrow with the section open.
+        more.addRow("Thickness non-uniformity:", self.spread)
+        more.addRow("", self.fit_spread)
+        more.addRow("Instrument bandwidth:", self.bandwidth)
+        more.addRow("", self.fit_angle)
         more.addRow("Evaluation budget:", self.max_nfev)
         more.addRow("Time limit:", self.time_limit)
         self.more.setVisible(False)
@@ -233,10 +228,11 @@ class FitPanel(QWidget):
         geo.addWidget(self.angle)
         geo.addWidget(self.polarization)
         form.addRow("Incidence:", geo)
-        extras = QHBoxLayout()
-        extras.addWidget(self.fit_scale)
-        extras.addWidget(self.fit_offset)
-        extras.addWidget(self.fit_tilt)
+        extras = QGridLayout()
+        extras.setContentsMargins(0, 0, 0, 0)
+        extras.addWidget(self.fit_scale, 0, 0)
+        extras.addWidget(self.fit_offset, 0, 1)
+        extras.addWidget(self.fit_tilt, 1, 0)
         form.addRow("Corrections:", extras)
         form.addRow("Start:", self.method)
         form.addRow("Band gap:", self.band_gap)
@@ -255,6 +251,8 @@ class FitPanel(QWidget):
         lay.addLayout(run)
         lay.addWidget(self.progress)
         lay.addWidget(self.stage)
+        # Shown only where the fit engine has the option (set once it has a parent).
+        self.fit_tilt.setHidden("fit_tilt" not in session.options)
 
         session.options_changed.connect(self.refresh)
         session.masks_changed.connect(self.refresh)

@@ -52,6 +52,7 @@ def verdict_html(r) -> str:
 
 
 _NUISANCE = {"scale": "scale of the 100 % line", "offset": "offset (stray light)",
+             "tilt": "tilt of the 100 % line",
              "angle_deg": "angle of incidence", "thickness_spread": "thickness spread"}
 
 

@@ -83,8 +83,14 @@ class MainWindow(QMainWindow):
         scroll = QScrollArea()
         scroll.setWidget(left)
         scroll.setWidgetResizable(True)
+        # Wide enough for the column with every optional control on show.
+        hidden = [w for w in (self.fit_panel.more, self.fit_panel.fit_tilt) if w.isHidden()]
+        for w in hidden:
+            w.setVisible(True)
         scroll.setMinimumWidth(left.minimumSizeHint().width()
                                + scroll.verticalScrollBar().sizeHint().width() + 4)
+        for w in hidden:
+            w.setVisible(False)
         scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
 
         right = QGroupBox("4   Result")
