@@ -240,8 +240,6 @@ class FitPanel(QWidget):
         masks.addWidget(self.mask_list, 1)
         masks.addWidget(self.unmask_button)
         form.addRow("Masked:", masks)
-        form.addRow(self.more_button)
-        form.addRow(self.more)
         run = QHBoxLayout()
         run.addWidget(self.fit_button, 2)
         run.addWidget(self.cancel_button, 1)
@@ -251,6 +249,9 @@ class FitPanel(QWidget):
         lay.addLayout(run)
         lay.addWidget(self.progress)
         lay.addWidget(self.stage)
+        # Below Fit, so opening it never pushes the Fit button out of sight.
+        lay.addWidget(self.more_button)
+        lay.addWidget(self.more)
         # Shown only where the fit engine has the option (set once it has a parent).
         self.fit_tilt.setHidden("fit_tilt" not in session.options)
 
