@@ -267,8 +267,13 @@ class PlotPanel(QWidget):
         self.pending = False
         s = self.session.spectrum
         if s is None:
+            key = (self.axis, tuple(sorted(figure_colors().items())))
+            if self._artists is None and key == self._empty_key:
+                return                     # the empty view is already on show
             self._draw_empty()
+            self._empty_key = key
         else:
+            self._empty_key = None
             if self._artists is None:
                 self._make_artists()
                 reset_view = True
@@ -279,6 +284,7 @@ class PlotPanel(QWidget):
         self._draw_timer.start()
 
     _artists = None
+    _empty_key = None
 
     def _draw_empty(self):
         ax, axr = self.ax, self.ax_res
