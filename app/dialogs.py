@@ -12,7 +12,7 @@ from PySide6.QtWidgets import QMessageBox
 from fitting.errors import (FitError, ParameterError, PellucidError, RecipeError,
                             SpectrumFormatError, WavelengthRangeError)
 
-__all__ = ["show_error", "show_info", "ask_yes_no", "advice_for"]
+__all__ = ["show_error", "show_info", "ask_yes_no", "ask_save_discard_cancel", "advice_for"]
 
 
 def advice_for(exc: BaseException) -> str:
@@ -79,3 +79,21 @@ def ask_yes_no(parent, title: str, text: str) -> bool:
     box.setStandardButtons(QMessageBox.Yes | QMessageBox.No)
     box.setDefaultButton(QMessageBox.No)
     return box.exec() == QMessageBox.Yes
+
+
+def ask_save_discard_cancel(parent, title: str, text: str) -> str:
+    """Ask about unsaved changes: returns "save", "discard" or "cancel".
+
+    Anything but an explicit Save or Don't save (Escape, closing the box) is
+    "cancel", so no work is lost by a stray key.
+    """
+    box = QMessageBox(parent)
+    box.setIcon(QMessageBox.Question)
+    box.setWindowTitle(title)
+    box.setText(text)
+    box.setStandardButtons(QMessageBox.Save | QMessageBox.Discard | QMessageBox.Cancel)
+    box.button(QMessageBox.Discard).setText("Don't save")
+    box.setDefaultButton(QMessageBox.Save)
+    box.setEscapeButton(QMessageBox.Cancel)
+    answer = box.exec()
+    return {QMessageBox.Save: "save", QMessageBox.Discard: "discard"}.get(answer, "cancel")

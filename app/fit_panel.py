@@ -3,16 +3,24 @@
 The fit itself runs in :class:`app.worker.Job`; this panel only shows its
 progress and offers Cancel. The options are written into the
 :class:`~app.session.Session` (undoable), from which ``FitOptions`` are built.
+
+"More settings" holds what most fits leave alone but some need: the film's
+thickness non-uniformity over the light spot and the instrument's spectral
+bandwidth (both properties of the stack, :class:`fitting.stack.Stack`), fitting
+the angle, and the fit's evaluation budget (``max_nfev``) and time limit. It
+opens by itself when one of them is not at its default, so a loaded recipe never
+hides a setting that changes the fit.
 """
 
 from __future__ import annotations
 
-from PySide6.QtCore import Signal
-from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout,
-                               QLabel, QListWidget, QProgressBar, QPushButton, QVBoxLayout,
-                               QWidget)
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFormLayout, QGridLayout,
+                               QHBoxLayout, QLabel, QListWidget, QProgressBar, QPushButton,
+                               QSpinBox, QToolButton, QVBoxLayout, QWidget)
 
 from fitting.errors import PellucidError
+from fitting.presets import default_fit_options
 
 __all__ = ["FitPanel"]
 
@@ -52,6 +60,7 @@ class FitPanel(QWidget):
             w.setRange(1.0, 100000.0)
             w.setDecimals(1)
             w.setSuffix(" nm")
+            w.setSpecialValueText("–")       # shown with no spectrum, instead of "1.0 nm"
             w.setKeyboardTracking(False)
             w.setToolTip(tip)
             w.valueChanged.connect(self._on_range)
@@ -77,6 +86,10 @@ class FitPanel(QWidget):
         self.fit_offset.setToolTip("Let the fit add a small constant (corrects stray light or "
                                    "a dark level that was not subtracted)")
         self.fit_offset.toggled.connect(lambda v: self._set("fit_offset", v))
+        self.fit_tilt = QCheckBox("Fit a tilt")
+        self.fit_tilt.setToolTip("Let the fit tilt the 100 % line linearly across the range "
+                                 "(a baseline that drifted during the scan)")
+        self.fit_tilt.toggled.connect(lambda v: self._set("fit_tilt", v))
         self.band_gap = QComboBox()
         for k, (_v, label) in _BAND_GAP.items():
             self.band_gap.addItem(label, k)
@@ -93,6 +106,84 @@ class FitPanel(QWidget):
                                "'global search' tries the whole range between the bounds")
         self.method.currentIndexChanged.connect(
             lambda _i: self._set("method", self.method.currentData()))
+
+        # More settings ----------------------------------------------------------------
+        self.spread = QDoubleSpinBox()
+        self.spread.setRange(0.0, 30.0)
+        self.spread.setDecimals(1)
+        self.spread.setSingleStep(0.5)
+        self.spread.setSuffix(" %")
+        self.spread.setSpecialValueText("none (uniform)")
+        self.spread.setKeyboardTracking(False)
+        self.spread.setToolTip("How much the film thickness varies inside the light spot "
+                               "(1σ, % of the thickness). Non-uniform films show weaker "
+                               "fringes than the model; typical 0-3 %.")
+        self.spread.valueChanged.connect(
+            lambda v: self._set_stack("thickness_spread", v / 100.0))
+        self.fit_spread = QComboBox()
+        # "auto" (the engine decides from the data) is offered where FitOptions has it.
+        if default_fit_options().get("fit_spread") == "auto":
+            self.fit_spread.addItem("fit when the data ask", "auto")
+        self.fit_spread.addItem("always fit it", True)
+        self.fit_spread.addItem("keep it fixed", False)
+        self.fit_spread.setToolTip("Whether the fit adjusts the thickness non-uniformity "
+                                   "(starting from the value beside) or keeps it fixed")
+        self.fit_spread.currentIndexChanged.connect(
+            lambda _i: self._set("fit_spread", self.fit_spread.currentData()))
+        self.bandwidth = QDoubleSpinBox()
+        self.bandwidth.setRange(0.0, 50.0)
+        self.bandwidth.setDecimals(1)
+        self.bandwidth.setSingleStep(0.5)
+        self.bandwidth.setSuffix(" nm")
+        self.bandwidth.setSpecialValueText("ideal (0 nm)")
+        self.bandwidth.setKeyboardTracking(False)
+        self.bandwidth.setToolTip("Spectral bandwidth (slit width, FWHM) of the "
+                                  "spectrophotometer. It smooths fine fringes of thick "
+                                  "films; see the instrument settings of the measurement.")
+        self.bandwidth.valueChanged.connect(lambda v: self._set_stack("bandwidth_nm", v))
+        self.fit_angle = QCheckBox("Fit the angle of incidence")
+        self.fit_angle.setToolTip("Let the fit adjust the angle of incidence (when the "
+                                  "sample holder's tilt is not known well)")
+        self.fit_angle.toggled.connect(lambda v: self._set("fit_angle", v))
+        self.max_nfev = QSpinBox()
+        self.max_nfev.setRange(100, 10_000_000)
+        self.max_nfev.setSingleStep(5000)
+        self.max_nfev.setGroupSeparatorShown(True)
+        self.max_nfev.setSuffix(" evaluations")
+        self.max_nfev.setKeyboardTracking(False)
+        self.max_nfev.setToolTip("Evaluation budget (max_nfev): how many model spectra the "
+                                 "whole fit may compute. Raise it when a fit stops with "
+                                 "'budget used up' or advice says 'raise max_nfev'.")
+        self.max_nfev.valueChanged.connect(lambda v: self._set("max_nfev", int(v)))
+        self.time_limit = QDoubleSpinBox()
+        self.time_limit.setRange(1.0, 86400.0)
+        self.time_limit.setDecimals(0)
+        self.time_limit.setSingleStep(30.0)
+        self.time_limit.setSuffix(" s")
+        self.time_limit.setKeyboardTracking(False)
+        self.time_limit.setToolTip("Time limit (time_limit_s): the fit stops after this "
+                                   "many seconds and shows the best result so far")
+        self.time_limit.valueChanged.connect(lambda v: self._set("time_limit_s", float(v)))
+        self.more_button = QToolButton()
+        self.more_button.setText("More settings")
+        self.more_button.setCheckable(True)
+        self.more_button.setArrowType(Qt.RightArrow)
+        self.more_button.setToolButtonStyle(Qt.ToolButtonTextBesideIcon)
+        self.more_button.setToolTip("Thickness non-uniformity, instrument bandwidth, "
+                                    "evaluation budget and time limit")
+        self.more_button.toggled.connect(self._show_more)
+        self.more = QWidget()
+        more = QFormLayout(self.more)
+        more.setContentsMargins(0, 0, 0, 0)
+        more.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
+        # One control per row: the left column stays narrow with the section open.
+        more.addRow("Thickness non-uniformity:", self.spread)
+        more.addRow("", self.fit_spread)
+        more.addRow("Instrument bandwidth:", self.bandwidth)
+        more.addRow("", self.fit_angle)
+        more.addRow("Evaluation budget:", self.max_nfev)
+        more.addRow("Time limit:", self.time_limit)
+        self.more.setVisible(False)
 
         self.mask_list = QListWidget()
         self.mask_list.setMaximumHeight(40)
@@ -137,9 +228,11 @@ class FitPanel(QWidget):
         geo.addWidget(self.angle)
         geo.addWidget(self.polarization)
         form.addRow("Incidence:", geo)
-        extras = QHBoxLayout()
-        extras.addWidget(self.fit_scale)
-        extras.addWidget(self.fit_offset)
+        extras = QGridLayout()
+        extras.setContentsMargins(0, 0, 0, 0)
+        extras.addWidget(self.fit_scale, 0, 0)
+        extras.addWidget(self.fit_offset, 0, 1)
+        extras.addWidget(self.fit_tilt, 1, 0)
         form.addRow("Corrections:", extras)
         form.addRow("Start:", self.method)
         form.addRow("Band gap:", self.band_gap)
@@ -156,10 +249,16 @@ class FitPanel(QWidget):
         lay.addLayout(run)
         lay.addWidget(self.progress)
         lay.addWidget(self.stage)
+        # Below Fit, so opening it never pushes the Fit button out of sight.
+        lay.addWidget(self.more_button)
+        lay.addWidget(self.more)
+        # Shown only where the fit engine has the option (set once it has a parent).
+        self.fit_tilt.setHidden("fit_tilt" not in session.options)
 
         session.options_changed.connect(self.refresh)
         session.masks_changed.connect(self.refresh)
         session.spectrum_changed.connect(self.refresh)
+        session.stack_changed.connect(self.refresh)
         self.refresh()
 
     # -- view -------------------------------------------------------------------------------
@@ -176,6 +275,9 @@ class FitPanel(QWidget):
             elif s is not None and len(s):
                 self.range_lo.setValue(float(s.wavelength_nm[0]))
                 self.range_hi.setValue(float(s.wavelength_nm[-1]))
+            else:                                 # nothing to show: "–", not "1.0 nm"
+                self.range_lo.setValue(self.range_lo.minimum())
+                self.range_hi.setValue(self.range_hi.minimum())
             self.range_lo.setEnabled(rng is not None)
             self.range_hi.setEnabled(rng is not None)
             self.angle.setValue(o.get("angle_deg", 0.0))
@@ -184,6 +286,7 @@ class FitPanel(QWidget):
             self.polarization.setEnabled(o.get("angle_deg", 0.0) > 0)
             self.fit_scale.setChecked(bool(o.get("fit_scale")))
             self.fit_offset.setChecked(bool(o.get("fit_offset")))
+            self.fit_tilt.setChecked(bool(o.get("fit_tilt")))
             i = self.method.findData(o.get("method", "auto"))
             if i < 0:
                 self.method.addItem(o.get("method"), o.get("method"))
@@ -191,6 +294,22 @@ class FitPanel(QWidget):
             self.method.setCurrentIndex(i)
             bg = o.get("band_gap") or "none"
             self.band_gap.setCurrentIndex(self.band_gap.findData(bg))
+            st = self.session.stack
+            self.spread.setValue(100.0 * st.thickness_spread)
+            self.bandwidth.setValue(st.bandwidth_nm)
+            v = o.get("fit_spread", False)
+            i = next((j for j in range(self.fit_spread.count())
+                      if self.fit_spread.itemData(j) == v
+                      and type(self.fit_spread.itemData(j)) is type(v)), -1)
+            if i < 0:                            # a value this menu does not list
+                self.fit_spread.addItem(str(v), v)
+                i = self.fit_spread.count() - 1
+            self.fit_spread.setCurrentIndex(i)
+            self.fit_angle.setChecked(bool(o.get("fit_angle")))
+            self.max_nfev.setValue(int(o.get("max_nfev", self.max_nfev.value())))
+            self.time_limit.setValue(float(o.get("time_limit_s", self.time_limit.value())))
+            if self._more_differs() and not self.more_button.isChecked():
+                self.more_button.setChecked(True)
             self.mask_list.clear()
             for lo, hi in self.session.masks:
                 self.mask_list.addItem(f"{lo:.1f} – {hi:.1f} nm")
@@ -206,6 +325,24 @@ class FitPanel(QWidget):
             self.progress.setValue(0)
             self.progress.setFormat("starting…")
             self.stage.setText("")
+
+    def _more_differs(self) -> bool:
+        """True if a setting under "More settings" is not at its default."""
+        o, st, d = self.session.options, self.session.stack, default_fit_options()
+        return bool(st.thickness_spread or st.bandwidth_nm or any(
+            o.get(k) != d.get(k) for k in ("fit_spread", "fit_angle", "max_nfev",
+                                           "time_limit_s")))
+
+    def _show_more(self, on: bool):
+        self.more.setVisible(on)
+        self.more_button.setArrowType(Qt.DownArrow if on else Qt.RightArrow)
+
+    def reset_progress(self):
+        """Back to "idle" (a new spectrum or project: the last run's text no longer applies)."""
+        self.progress.setValue(0)
+        self.progress.setFormat("idle")
+        self.progress.setToolTip("Progress of the running fit")
+        self.stage.setText("")
 
     def show_progress(self, p):
         frac = float(getattr(p, "fraction", 0.0) or 0.0)
@@ -229,6 +366,15 @@ class FitPanel(QWidget):
             return
         try:
             self.session.set_option(name, value)
+        except PellucidError as exc:
+            self.status.emit(str(exc), True)
+            self.refresh()
+
+    def _set_stack(self, name, value):
+        if self._updating:
+            return
+        try:
+            self.session.set_stack_option(name, value)
         except PellucidError as exc:
             self.status.emit(str(exc), True)
             self.refresh()

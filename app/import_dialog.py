@@ -4,6 +4,11 @@ The dialog shows the raw lines and the detected layout (separator, decimal
 mark, columns, units, percent or fraction) from :func:`fitting.reader.preview`;
 every detection can be overridden before the file is loaded. The result is a
 :class:`fitting.reader.ReaderOptions`, which is also what a recipe saves.
+
+A file of raw detector counts is not a transmittance: the preview says so, and
+Load stays off until a 100 % line (and optionally a dark signal) is chosen in the
+reference-correction box, after which the corrected T is previewed and loaded.
+The correction chosen is :meth:`ImportDialog.reference`.
 """
 
 from __future__ import annotations
@@ -14,7 +19,10 @@ from PySide6.QtWidgets import (QCheckBox, QComboBox, QDialog, QDialogButtonBox, 
                                QSpinBox, QVBoxLayout)
 
 from fitting.errors import PellucidError
-from fitting.reader import ReaderOptions, preview, read_spectrum
+from fitting.reader import ReaderOptions, preview
+
+from .reference_dialog import ReferenceFields, describe_reference, is_counts, \
+    read_with_reference
 
 __all__ = ["ImportDialog"]
 
@@ -43,7 +51,8 @@ class ImportDialog(QDialog):
     """Preview a spectrum file and correct the detection before loading it."""
 
     def __init__(self, path, options: ReaderOptions | None = None, parent=None,
-                 *, show_every_time: bool = True):
+                 *, show_every_time: bool = True, reference: dict | None = None,
+                 start_dir: str = ""):
         super().__init__(parent)
         self.setWindowTitle("Import spectrum — check how the file is read")
         self.path = str(path)
@@ -98,6 +107,15 @@ class ImportDialog(QDialog):
         form.addRow("Values are:", self.y_kind)
         box = QGroupBox("Corrections (leave at 'detect' if the summary above is right)")
         box.setLayout(form)
+        self.ref_fields = ReferenceFields(reference, start_dir, self)
+        self.ref_fields.changed.connect(self.update_preview)
+        self.ref_box = QGroupBox("Reference correction, for raw signals only (leave empty for "
+                                 "a T or R file)")
+        self.ref_box.setToolTip("T = (sample − dark) / (100 % line − dark). For raw detector "
+                                "signals: choose the 100 % line measured with nothing in the "
+                                "beam, and the dark signal if you have one")
+        rl = QVBoxLayout(self.ref_box)
+        rl.addWidget(self.ref_fields)
 
         self.buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
         self.buttons.button(QDialogButtonBox.Ok).setText("Load")
@@ -114,10 +132,11 @@ class ImportDialog(QDialog):
         lay.addWidget(self.lines, 1)
         lay.addWidget(self.detected)
         lay.addWidget(box)
+        lay.addWidget(self.ref_box)
         lay.addWidget(self.result_label)
         lay.addWidget(self.every_time)
         lay.addWidget(self.buttons)
-        self.resize(760, 620)
+        self.resize(760, 720)
         self.update_preview()
 
     def _reset(self):
@@ -154,19 +173,39 @@ class ImportDialog(QDialog):
             ok.setEnabled(False)
             return
         self.detected.setText("<b>Detected:</b> " + pv.dialect.describe())
+        reference = self.reference()
         try:
-            s = read_spectrum(self.path, options=opts)
+            s = read_with_reference(self.path, opts, reference)
         except PellucidError as exc:
-            self.result_label.setText(f"<span style='color:#d9480f'>{exc}</span>")
+            what = "Reference correction failed: " if reference else ""
+            self.result_label.setText(f"<span style='color:#d9480f'>{what}{exc}</span>")
             self.spectrum = None
             ok.setEnabled(False)
             return
-        self.spectrum = s
         wl = s.wavelength_nm
+        if is_counts(s):
+            self.spectrum = None
+            self.result_label.setText(
+                f"<span style='color:#d9480f'><b>Raw detector counts, not a transmittance:"
+                f"</b></span> {len(s)} points, {wl[0]:.1f}–{wl[-1]:.1f} nm, values "
+                f"{s.values.min():.4g}–{s.values.max():.4g} counts. Choose the 100 % line "
+                f"(and the dark signal) below to turn them into T, or set 'Values are' if "
+                f"the detection is wrong.")
+            ok.setEnabled(False)
+            ok.setToolTip("Raw counts cannot be fitted: choose the 100 % line below first")
+            return
+        self.spectrum = s
         q = {"T": "transmittance", "R": "reflectance"}.get(s.quantity, s.quantity)
         txt = (f"<b>Will load:</b> {len(s)} points of {q}, {wl[0]:.1f}–{wl[-1]:.1f} nm, "
                f"values {100 * s.values.min():.1f}–{100 * s.values.max():.1f} %.")
+        if reference:
+            txt += f"<br><b>Corrected:</b> {describe_reference(reference)}."
         if s.warnings:
             txt += "<br><b>Notes:</b> " + "; ".join(s.warnings)
         self.result_label.setText(txt)
         ok.setEnabled(True)
+        ok.setToolTip("Load the spectrum as shown")
+
+    def reference(self) -> dict | None:
+        """The reference correction chosen (None: load the file as read)."""
+        return self.ref_fields.reference()

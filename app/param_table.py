@@ -69,6 +69,7 @@ class ParamTableModel(QAbstractTableModel):
         self._bad: dict[tuple[int, int], str] = {}
         session.stack_changed.connect(self.refresh)
         session.result_changed.connect(self.refresh)
+        session.result_stale_changed.connect(self.refresh)
         self.refresh()
 
     def set_layer(self, index: int) -> None:
@@ -137,13 +138,20 @@ class ParamTableModel(QAbstractTableModel):
                 return _fmt(p.max)
             if col == 6:
                 s = self._sigma(name)
-                return "" if s is None or not math.isfinite(s) else f"{s:.3g}"
+                if s is None or not math.isfinite(s):
+                    return ""
+                # In brackets (and grey) when the fit no longer matches the setup.
+                return f"({s:.3g})" if self.session.result_stale else f"{s:.3g}"
+        if role == Qt.ForegroundRole and col == 6 and self.session.result_stale:
+            return QBrush(QColor(128, 128, 128))
         if role == Qt.CheckStateRole and col == 5:
             return Qt.Checked if p.vary else Qt.Unchecked
         if role == Qt.ToolTipRole:
             bad = self._bad.get((index.row(), col))
             if bad:
                 return bad
+            if col == 6 and self.session.result_stale and self._sigma(name) is not None:
+                return "σ of the last fit, which is out of date (the setup changed since)"
             tip = f"{name}: {p.doc or 'model parameter'}"
             if p.expr:
                 tip += f"\nTied to: {p.expr}"

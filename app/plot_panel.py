@@ -5,6 +5,13 @@ The model curve follows every edit of the stack at once (it is one call of
 fit the fitted curve is shown until the next edit. Masked windows are drawn
 shaded; in "Mask" mode a drag across the plot adds one (matplotlib
 ``SpanSelector``), a right click on a shaded window removes it.
+
+Session changes do not redraw at once: they schedule one rebuild on the next
+turn of the event loop (:attr:`PlotPanel.pending`), so a fit result, which
+changes the stack and the result together, costs one rebuild, not two. The
+margins are fixed in pixels (:meth:`PlotPanel._apply_margins`) instead of a
+constrained layout, which would measure every tick label on every draw (about
+half of the drawing time).
 """
 
 from __future__ import annotations
@@ -13,7 +20,7 @@ import numpy as np
 from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg, NavigationToolbar2QT
 from matplotlib.figure import Figure
 from matplotlib.widgets import SpanSelector
-from PySide6.QtCore import Signal
+from PySide6.QtCore import QTimer, Signal
 from PySide6.QtWidgets import (QComboBox, QHBoxLayout, QLabel, QPushButton, QToolButton,
                                QVBoxLayout, QWidget)
 
@@ -51,11 +58,27 @@ class PlotPanel(QWidget):
         self._model = None          # (wavelength_nm, model values) of the live curve
         self._model_error = ""
 
-        self.figure = Figure(figsize=(6, 5), layout="constrained")
+        self.figure = Figure(figsize=(6, 5))
         self.canvas = FigureCanvasQTAgg(self.figure)
         self.canvas.setToolTip("")
         self.ax, self.ax_res = self.figure.subplots(
             2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1]})
+        self.pending = False            # a rebuild is scheduled
+        self._pending_reset = False
+        # Rebuilding the artists and rasterising them are two steps, each on a short
+        # timer rather than a posted event: Qt would run posted events back to back,
+        # while timers let input and paint events in between (one long stall becomes
+        # two short ones).
+        self._flush_timer = QTimer(self)
+        self._flush_timer.setSingleShot(True)
+        self._flush_timer.setInterval(5)
+        self._flush_timer.timeout.connect(self._flush)
+        self._draw_timer = QTimer(self)
+        self._draw_timer.setSingleShot(True)
+        self._draw_timer.setInterval(5)
+        self._draw_timer.timeout.connect(self.canvas.draw)
+        self.canvas.mpl_connect("resize_event", lambda _e: self._apply_margins())
+        self._apply_margins()
         self.toolbar = NavigationToolbar2QT(self.canvas, self)
         self.toolbar.setToolTip("Zoom, pan, go back to the full view, save the picture")
 
@@ -100,9 +123,30 @@ class PlotPanel(QWidget):
         session.spectrum_changed.connect(self._on_data)
         session.stack_changed.connect(self._on_setup)
         session.options_changed.connect(self._on_setup)
-        session.masks_changed.connect(self.redraw)
+        session.masks_changed.connect(self.schedule)
         session.result_changed.connect(self._on_result)
+        session.result_stale_changed.connect(self._on_result)
         self.redraw()
+
+    def _apply_margins(self):
+        """Margins in pixels (room for tick labels, axis labels and the title)."""
+        w, h = self.canvas.width() or 600, self.canvas.height() or 500
+        left, right, top, bottom = 64.0, 14.0, 26.0, 44.0
+        self.figure.subplots_adjust(left=min(left / w, 0.3), right=1 - min(right / w, 0.1),
+                                    top=1 - min(top / h, 0.2), bottom=min(bottom / h, 0.3),
+                                    hspace=min(30.0 / h * 4, 0.4))
+
+    def schedule(self, reset_view: bool = False):
+        """Redraw on the next turn of the event loop (several requests make one redraw)."""
+        self._pending_reset |= bool(reset_view)
+        if not self.pending:
+            self.pending = True
+            self._flush_timer.start()
+
+    def _flush(self):
+        if self.pending:
+            reset, self.pending, self._pending_reset = self._pending_reset, False, False
+            self.redraw(reset_view=reset)
 
     def _make_span(self):
         """(Re)create the drag selector: ``Axes.cla`` removes its artists on every redraw."""
@@ -115,18 +159,24 @@ class PlotPanel(QWidget):
 
     # -- reactions ----------------------------------------------------------------------
     def _on_data(self):
-        self._result_fresh = False
+        self._result_fresh = self._fresh()
         self._update_model()
-        self.redraw(reset_view=True)
+        self.schedule(reset_view=True)
 
     def _on_setup(self):
-        self._result_fresh = False
+        self._result_fresh = self._fresh()
         self._update_model()
-        self.redraw()
+        self.schedule()
 
-    def _on_result(self):
-        self._result_fresh = self.session.result is not None
-        self.redraw()
+    def _on_result(self, *_):
+        self._result_fresh = self._fresh()
+        self.schedule()
+
+    def _fresh(self) -> bool:
+        """Show the fitted curve only while the result matches the setup."""
+        s = self.session
+        return s.result is not None and not s.result_stale and s.spectrum is not None and len(
+            s.result.wavelength_nm) == len(s.spectrum)
 
     def _on_axis(self, _index):
         self.axis = self.axis_combo.currentData()
@@ -208,71 +258,132 @@ class PlotPanel(QWidget):
 
     # -- drawing ------------------------------------------------------------------------
     def redraw(self, reset_view: bool = False):
-        ax, axr = self.ax, self.ax_res
-        keep = None
-        if not reset_view and ax.has_data():
-            keep = (ax.get_xlim(), ax.get_ylim())
-        ax.cla()
-        axr.cla()
-        col = figure_colors()
-        label, conv, _inv = AXES[self.axis]
+        """Bring the plot up to date now (session changes go through :meth:`schedule`).
+
+        The curves are kept as artists and only get new data: clearing the axes
+        would make matplotlib rebuild every tick and label on the next draw, which
+        costs more than the drawing itself.
+        """
+        self.pending = False
         s = self.session.spectrum
-        axr.set_xlabel(label)
-        axr.set_ylabel("Residual (%)")
         if s is None:
-            ax.set_ylabel("Transmittance T (%)")
-            ax.text(0.5, 0.5, "No spectrum loaded.\n\nOpen a measured spectrum with "
-                    "File ▸ Open (Ctrl+O)\nor drop a file onto this window.",
-                    ha="center", va="center", transform=ax.transAxes, color=col["text"],
-                    fontsize=11)
-            ax.set_xticks([])
-            ax.set_yticks([])
-            axr.set_yticks([])
+            key = (self.axis, tuple(sorted(figure_colors().items())))
+            if self._artists is None and key == self._empty_key:
+                return                     # the empty view is already on show
+            self._draw_empty()
+            self._empty_key = key
         else:
-            x = conv(s.wavelength_nm)
-            y = 100 * s.values
-            used = self.session.spectrum_for_fit().used
-            if self.session.options.get("fit_range_nm"):
-                lo, hi = self.session.options["fit_range_nm"]
-                used = used & (s.wavelength_nm >= lo) & (s.wavelength_nm <= hi)
-            ax.plot(x, np.where(used, y, np.nan), color=col["measured"], lw=1.2,
-                    label="measured")
-            if not used.all():
-                ax.plot(x, np.where(used, np.nan, y), color=col["unused"], lw=1.0, ls=":",
-                        label="not fitted")
-            curve = self._shown_model()
-            if curve is not None:
-                is_fit = self._result_fresh and self.session.result is not None
-                ax.plot(conv(curve[0]), 100 * curve[1],
-                        color=col["fitted"] if is_fit else col["model"], lw=1.4,
-                        label="fitted model" if is_fit else "model (current stack)")
-                res = 100 * (s.values - np.interp(s.wavelength_nm, curve[0], curve[1]))
-                axr.plot(x, np.where(used, res, np.nan), color=col["residual"], lw=1.0)
-                axr.axhline(0.0, color=col["grid"], lw=0.8)
-            elif self._model_error:
-                ax.text(0.02, 0.03, "Model curve not shown: " + self._model_error,
-                        transform=ax.transAxes, fontsize=8, color=col["second"], wrap=True)
-            ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
-            title = s.name or "spectrum"
-            ax.set_title(title, fontsize=10, loc="left", color=col["text"])
-            for lo, hi in self.session.masks:
-                for a in (ax, axr):
-                    a.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)
-            ax.legend(loc="best", fontsize=8)
-            ax.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
-            axr.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
-            if keep is not None and not reset_view:
-                ax.set_xlim(keep[0])
-                ax.set_ylim(keep[1])
-        # Fix the view before the selector adds its (hidden) rectangle, which would
-        # otherwise stretch the autoscaled limits to x = 0.
-        ax.get_xlim(), ax.get_ylim(), axr.get_ylim()
-        ax.set_autoscale_on(False)
-        self._make_span()
+            self._empty_key = None
+            if self._artists is None:
+                self._make_artists()
+                reset_view = True
+            self._update_artists(s, reset_view)
         if reset_view:
             self.toolbar.update()          # "Home" returns to this view
         style_figure(self.figure)
-        self.canvas.draw_idle()
+        self._draw_timer.start()
+
+    _artists = None
+    _empty_key = None
+
+    def _draw_empty(self):
+        ax, axr = self.ax, self.ax_res
+        self._artists = None
+        ax.cla()
+        axr.cla()
+        col = figure_colors()
+        axr.set_xlabel(AXES[self.axis][0])
+        axr.set_ylabel("Residual (%)")
+        ax.set_ylabel("Transmittance T (%)")
+        ax.text(0.5, 0.5, "No spectrum loaded.\n\nOpen a measured spectrum with "
+                "File ▸ Open (Ctrl+O)\nor drop a file onto this window.",
+                ha="center", va="center", transform=ax.transAxes, color=col["text"],
+                fontsize=11)
+        ax.set_xticks([])
+        ax.set_yticks([])
+        axr.set_yticks([])
+        ax.set_autoscale_on(False)
+        self._make_span()
+
+    def _make_artists(self):
+        """The lines, texts and grid of a plot with data (made once per spectrum view)."""
+        ax, axr = self.ax, self.ax_res
+        ax.cla()
+        axr.cla()
+        a = {}
+        a["measured"], = ax.plot([], [], lw=1.2, label="measured")
+        a["unused"], = ax.plot([], [], lw=1.0, ls=":", label="not fitted")
+        a["model"], = ax.plot([], [], lw=1.4)
+        a["residual"], = axr.plot([], [], lw=1.0)
+        a["zero"] = axr.axhline(0.0, lw=0.8)
+        a["error"] = ax.text(0.02, 0.03, "", transform=ax.transAxes, fontsize=8, wrap=True)
+        a["spans"] = []
+        a["legend_key"] = None
+        self._artists = a
+        ax.grid(True, lw=0.5, alpha=0.6)
+        axr.grid(True, lw=0.5, alpha=0.6)
+        self._make_span()
+
+    def _update_artists(self, s, reset_view: bool):
+        ax, axr, a = self.ax, self.ax_res, self._artists
+        col = figure_colors()
+        label, conv, _inv = AXES[self.axis]
+        x = conv(s.wavelength_nm)
+        y = 100 * s.values
+        used = self.session.spectrum_for_fit().used
+        if self.session.options.get("fit_range_nm"):
+            lo, hi = self.session.options["fit_range_nm"]
+            used = used & (s.wavelength_nm >= lo) & (s.wavelength_nm <= hi)
+        a["measured"].set_data(x, np.where(used, y, np.nan))
+        a["measured"].set_color(col["measured"])
+        a["unused"].set_data(x, np.where(used, np.nan, y))
+        a["unused"].set_color(col["unused"])
+        a["unused"].set_visible(not used.all())
+        curve = self._shown_model()
+        is_fit = self._result_fresh and self.session.result is not None
+        has_curve = curve is not None
+        for k in ("model", "residual", "zero"):
+            a[k].set_visible(has_curve)
+        if has_curve:
+            a["model"].set_data(conv(curve[0]), 100 * curve[1])
+            a["model"].set_color(col["fitted"] if is_fit else col["model"])
+            a["model"].set_label("fitted model" if is_fit else "model (current stack)")
+            res = 100 * (s.values - np.interp(s.wavelength_nm, curve[0], curve[1]))
+            a["residual"].set_data(x, np.where(used, res, np.nan))
+            a["residual"].set_color(col["residual"])
+            a["zero"].set_color(col["grid"])
+        a["error"].set_text("" if has_curve or not self._model_error
+                            else "Model curve not shown: " + self._model_error)
+        a["error"].set_color(col["second"])
+        for span in a["spans"]:
+            span.remove()
+        a["spans"] = [sp.axvspan(conv(lo), conv(hi), color=col["mask"], alpha=0.25, lw=0)
+                      for lo, hi in self.session.masks for sp in (ax, axr)]
+        axr.set_xlabel(label)
+        axr.set_ylabel("Residual (%)")
+        ax.set_ylabel(_QUANTITY.get(s.quantity, "Measured (%)"))
+        ax.set_title(s.name or "spectrum", fontsize=10, loc="left", color=col["text"])
+        for g in (ax, axr):
+            for line in g.get_xgridlines() + g.get_ygridlines():
+                line.set_color(col["grid"])
+        shown = [h for h in (a["measured"], a["unused"], a["model"]) if h.get_visible()]
+        key = tuple((h.get_label(), h.get_color()) for h in shown)   # colours: theme
+        if key != a["legend_key"] or ax.get_legend() is None:
+            ax.legend(handles=shown, loc="best", fontsize=8)
+            a["legend_key"] = key
+        # Residuals always fit their axis; the spectrum keeps the user's zoom unless
+        # the data or the axis changed. Autoscaling is switched off afterwards: the
+        # selector's hidden rectangle would otherwise stretch the view to x = 0.
+        axr.set_autoscalex_on(False)       # x follows the spectrum axes (shared)
+        axr.set_autoscaley_on(True)
+        axr.relim(visible_only=True)
+        axr.autoscale_view(scalex=False)
+        if reset_view:
+            ax.set_autoscale_on(True)
+            ax.relim(visible_only=True)
+            ax.autoscale_view()
+            ax.get_xlim(), ax.get_ylim()
+        ax.set_autoscale_on(False)
 
     def image_data(self):
         """What is plotted, for tests: dict with x, measured and model arrays."""

@@ -1,23 +1,26 @@
 """The "Result" area: summary, optical constants, Tauc plot, correlations and the report.
 
 Everything shown comes from the session's :class:`~fitting.result.FitResult`;
-figures are drawn by :mod:`fitting.plots` into embedded canvases (the same
-drawings as the exported PNG and PDF) and then recoloured to the palette.
+figures are drawn by :mod:`fitting.plots` (the same drawings as the exported PNG
+and PDF), recoloured to the palette, in a worker thread and only for the tab on
+show (:class:`_FigureTab`), so neither a new result nor opening a tab freezes
+the window. A result the setup no longer matches is marked out of date in the
+banner above the tabs (:attr:`ResultPanel.banner`), with what changed.
 """
 
 from __future__ import annotations
 
 import math
+from html import escape
 
 import numpy as np
-from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
 from matplotlib.figure import Figure
-from PySide6.QtCore import Qt
-from PySide6.QtGui import QFontDatabase
-from PySide6.QtWidgets import (QHeaderView, QLabel, QPlainTextEdit, QTableWidget,
+from PySide6.QtCore import Qt, QTimer, Signal
+from PySide6.QtGui import QFontDatabase, QImage, QPixmap
+from PySide6.QtWidgets import (QHeaderView, QLabel, QPlainTextEdit, QSizePolicy, QTableWidget,
                                QTableWidgetItem, QTabWidget, QVBoxLayout, QWidget)
 
-from .theme import figure_colors, style_figure
+from .theme import apply_colors, figure_colors
 
 __all__ = ["ResultPanel"]
 
@@ -30,7 +33,26 @@ def _pm(value, sigma, unit="", digits=2):
     return f"{value:.{digits}f} {unit} (σ not estimated)".rstrip()
 
 
+#: verdict -> (symbol, colour, words); symbol and words carry the meaning, the
+#: colour (Okabe-Ito blue, orange, vermillion) only helps.
+_VERDICT = {"good": ("✔", "#0072B2", "good"),
+            "check": ("⚠", "#B36B00", "check before use"),
+            "poor": ("✖", "#D55E00", "poor: do not use as it is")}
+
+
+def verdict_html(r) -> str:
+    """The result's verdict line ("" if the result carries none)."""
+    v = getattr(r, "verdict", None)
+    if not v:
+        return ""
+    sym, colour, words = _VERDICT.get(str(v), ("•", "#555555", str(v)))
+    reasons = "; ".join(escape(str(x)) for x in (getattr(r, "verdict_reasons", ()) or ()))
+    return (f"<br><span style='color:{colour}'>{sym} <b>Verdict: {escape(words)}</b></span>"
+            + (f" — {reasons}" if reasons else ""))
+
+
 _NUISANCE = {"scale": "scale of the 100 % line", "offset": "offset (stray light)",
+             "tilt": "tilt of the 100 % line",
              "angle_deg": "angle of incidence", "thickness_spread": "thickness spread"}
 
 
@@ -44,38 +66,210 @@ def _label(name: str, r) -> str:
     return _NUISANCE.get(name, name)
 
 
+# -- drawing: plain matplotlib, no Qt, so it can run in a worker thread ------------------
+def _finish(fig, col):
+    apply_colors(fig, col)
+    for ax in fig.axes:
+        ax.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
+        for line in ax.get_lines():
+            if line.get_color() in ("#000000", "black", "k"):
+                line.set_color(col["text"])
+        for t in ax.texts:
+            t.set_color(col["text"])
+    for t in fig.texts:
+        t.set_color(col["text"])
+    if getattr(fig, "_suptitle", None) is not None:
+        fig._suptitle.set_color(col["text"])
+
+
+def draw_optical(fig, r, col):
+    """n, κ and α of the first film (:func:`fitting.plots.optical_figure`)."""
+    from fitting.plots import optical_figure
+    optical_figure(r, alpha=True, fig=fig)
+    _finish(fig, col)
+
+
+def draw_tauc(fig, r, col):
+    """The Tauc plot, zoomed on the absorption edge."""
+    from fitting.plots import tauc_figure
+    tauc_figure(r, fig=fig)
+    # Show the edge, not the whole transparent range: about 1 eV either side of Eg.
+    ax = fig.axes[0]
+    eg = r.band_gap.Eg_eV
+    lo, hi = r.band_gap.fit_range_eV
+    ys = [line.get_ydata() for line in ax.get_lines()[:1]]
+    xs = [line.get_xdata() for line in ax.get_lines()[:1]]
+    # ... but not past the data's highest photon energy (an empty strip says nothing).
+    top_e = float(np.nanmax(xs[0])) + 0.05 if xs and len(xs[0]) else max(hi, eg) + 0.8
+    ax.set_xlim(eg - 1.0, min(max(hi, eg) + 0.8, top_e))
+    if ys and len(ys[0]):
+        sel = (np.asarray(xs[0]) <= max(hi, eg) + 0.8)
+        top = np.nanmax(np.asarray(ys[0], dtype=float)[sel]) if sel.any() else None
+        if top is not None and np.isfinite(top) and top > 0:
+            ax.set_ylim(0, 1.05 * top)
+    _finish(fig, col)
+
+
+def draw_correlations(fig, r, col):
+    """Heat map of the correlation matrix of the fitted parameters."""
+    ax = fig.subplots()
+    c = np.asarray(r.correl, dtype=float)
+    # aspect="auto": the cells fill the tall, narrow tab instead of a small square
+    im = ax.imshow(c, vmin=-1, vmax=1, cmap="RdBu_r", aspect="auto")
+    n_layers = len((r.stack or {}).get("layers", []))
+    names = [v if v in _NUISANCE else
+             (_label(v, r).split(": ", 1)[-1] if n_layers == 1 else _label(v, r))
+             for v in r.var_names]
+    ax.set_xticks(range(len(names)), names, rotation=60, ha="right", fontsize=8)
+    ax.set_yticks(range(len(names)), names, fontsize=8)
+    if len(names) <= 10:
+        for i in range(len(names)):
+            for j in range(len(names)):
+                ax.text(j, i, f"{c[i, j]:.2f}", ha="center", va="center", fontsize=7,
+                        color="#000000" if abs(c[i, j]) < 0.6 else "#ffffff")
+    cb = fig.colorbar(im, ax=ax, orientation="horizontal", shrink=0.7, aspect=30,
+                      location="bottom")
+    cb.set_label("correlation (±1: not separable)", color=col["text"], fontsize=8)
+    cb.ax.tick_params(colors=col["text"], labelsize=8)
+    ax.set_title("Parameter correlations", fontsize=10)
+    apply_colors(fig, col)
+
+
+def render_figure(draw, result, col: dict, width_px: int, height_px: int, dpr: float = 1.0):
+    """Draw a result figure off screen: (Figure, RGBA bytes, width, height) in pixels.
+
+    Pure matplotlib (Agg), no Qt, so a worker thread can do it; matplotlib keeps
+    its font objects per thread.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    dpi = 100.0 * dpr
+    w, h = max(int(width_px * dpr), 50), max(int(height_px * dpr), 50)
+    fig = Figure(figsize=(w / dpi, h / dpi), dpi=dpi, layout="constrained")
+    canvas = FigureCanvasAgg(fig)
+    draw(fig, result, col)
+    canvas.draw()
+    return fig, bytes(canvas.buffer_rgba()), w, h
+
+
 class _FigureTab(QWidget):
-    def __init__(self, tip: str, parent=None):
+    """A result figure drawn in a worker thread and shown as an image.
+
+    The drawing of the figures of one result takes about a second on a slow
+    machine; in the GUI thread that would freeze the window. Here it runs in a
+    :class:`~app.worker.Job`, only for the tab on show, and the image is kept
+    until the result, the colours or the tab's size change.
+
+    Signals
+    -------
+    rendered() : a new image (or message) is on show
+    """
+
+    rendered = Signal()
+
+    def __init__(self, tip: str, draw, parent=None):
         super().__init__(parent)
-        self.figure = Figure(figsize=(4, 4), layout="constrained")
-        self.canvas = FigureCanvasQTAgg(self.figure)
-        self.canvas.setToolTip(tip)
+        self._draw = draw
+        self.figure = None                # the Figure behind the image (read-only)
+        self._key = None                  # what the image on show was drawn from
+        self._want = None                 # (key, result, colours) still to draw
+        self._job = None
+        self.image = QLabel("")
+        self.image.setAlignment(Qt.AlignCenter)
+        self.image.setWordWrap(True)
+        self.image.setToolTip(tip)
+        self.image.setSizePolicy(QSizePolicy.Ignored, QSizePolicy.Ignored)
+        self.image.setMinimumSize(80, 80)
+        self._resize_timer = QTimer(self)
+        self._resize_timer.setSingleShot(True)
+        self._resize_timer.setInterval(150)
+        self._resize_timer.timeout.connect(self._redo)
+        self._last = None                 # (result, colours) of the last request
         lay = QVBoxLayout(self)
         lay.setContentsMargins(2, 2, 2, 2)
-        lay.addWidget(self.canvas)
+        lay.addWidget(self.image)
+
+    @property
+    def busy(self) -> bool:
+        return self._job is not None
 
     def message(self, text: str):
-        self.figure.clear()
-        col = figure_colors()
-        self.figure.text(0.5, 0.5, text, ha="center", va="center", color=col["text"],
-                         fontsize=10, wrap=True)
-        self.figure.set_facecolor(col["figure"])
-        self.canvas.draw_idle()
+        """Show a sentence instead of a figure."""
+        self._want, self._key, self._last, self.figure = None, None, None, None
+        self.image.setPixmap(QPixmap())
+        self.image.setText(text)
+        self.rendered.emit()
 
-    def finish(self):
-        col = style_figure(self.figure)
-        for ax in self.figure.axes:
-            ax.grid(True, color=col["grid"], lw=0.5, alpha=0.6)
-            for line in ax.get_lines():
-                if line.get_color() in ("#000000", "black", "k"):
-                    line.set_color(col["text"])
-            for t in ax.texts:
-                t.set_color(col["text"])
-        for t in self.figure.texts:
-            t.set_color(col["text"])
-        if getattr(self.figure, "_suptitle", None) is not None:
-            self.figure._suptitle.set_color(col["text"])
-        self.canvas.draw_idle()
+    def show_result(self, result, col: dict):
+        """Draw ``result`` unless the image on show already is that drawing."""
+        self._last = (result, col)
+        size = self.image.size()
+        w, h = (size.width(), size.height()) if size.width() > 60 else (420, 520)
+        key = (id(result), tuple(sorted(col.items())), w, h)
+        if key == self._key:
+            return
+        self._want = (key, result, col, w, h)
+        if self._job is None:
+            self._start()
+        if self.image.pixmap().isNull():
+            self.image.setText("Drawing…")
+
+    def _start(self):
+        from .worker import Job
+        key, result, col, w, h = self._want
+        self._want = None
+        dpr = self.devicePixelRatioF()
+        draw = self._draw
+        job = Job(lambda stop, report: (key, *render_figure(draw, result, col, w, h, dpr)),
+                  parent=self)
+        job.succeeded.connect(self._done)
+        job.failed.connect(lambda exc: self._failed(key, exc))
+        job.done.connect(self._next)
+        self._job = job
+        job.start()
+
+    def _done(self, out):
+        key, fig, rgba, w, h = out
+        if self._want is not None and self._want[0][0] != key[0]:
+            return                        # a newer result is waiting: skip this one
+        # Copied into an image Qt owns (rows of RGBA8888 are 4-byte aligned, so the
+        # layouts match): no QImage holds on to a Python buffer.
+        img = QImage(w, h, QImage.Format_RGBA8888)
+        img.bits()[:len(rgba)] = rgba
+        img.setDevicePixelRatio(w / max(key[2], 1))
+        self.figure, self._key = fig, key
+        self.image.setText("")
+        self.image.setPixmap(QPixmap.fromImage(img))
+        self.rendered.emit()
+
+    def _failed(self, key, exc):
+        self._key = key
+        self.figure = None
+        self.image.setPixmap(QPixmap())
+        self.image.setText(f"This figure could not be drawn: {exc}")
+        self.rendered.emit()
+
+    def _next(self):
+        job, self._job = self._job, None
+        if job is not None:
+            job.deleteLater()
+        if self._want is not None:
+            self._start()
+
+    def _redo(self):
+        if self._last is not None and self.isVisible():
+            self.show_result(*self._last)
+
+    def resizeEvent(self, event):
+        super().resizeEvent(event)
+        if self._last is not None:
+            self._resize_timer.start()
+
+    def shutdown(self):
+        """Stop drawing and wait for the worker (before the window goes away)."""
+        self._want, self._last = None, None
+        self._resize_timer.stop()
+        if self._job is not None:
+            self._job.wait(30000)
 
 
 class ResultPanel(QTabWidget):
@@ -123,15 +317,16 @@ class ResultPanel(QTabWidget):
         self.addTab(summary, "Summary")
         self.setTabToolTip(0, "Thickness ± σ, goodness of fit and warnings")
 
-        self.optical_tab = _FigureTab("n, κ and α of the first film with ±1σ bands")
+        self.optical_tab = _FigureTab("n, κ and α of the first film with ±1σ bands",
+                                      draw_optical)
         self.addTab(self.optical_tab, "n κ α")
         self.setTabToolTip(1, "Optical constants of the fitted film with confidence bands")
         self.tauc_tab = _FigureTab("Tauc plot: (αhν)^r against photon energy, with the "
-                                   "extrapolated band gap")
+                                   "extrapolated band gap", draw_tauc)
         self.addTab(self.tauc_tab, "Tauc")
         self.setTabToolTip(2, "Band gap from the fitted absorption")
         self.corr_tab = _FigureTab("How strongly pairs of fitted parameters trade off "
-                                   "(±1 = fully correlated)")
+                                   "(±1 = fully correlated)", draw_correlations)
         self.addTab(self.corr_tab, "Correlation")
         self.setTabToolTip(3, "Correlation matrix of the fitted parameters")
         self.report = QPlainTextEdit()
@@ -142,19 +337,65 @@ class ResultPanel(QTabWidget):
         self.addTab(self.report, "Report")
         self.setTabToolTip(4, "Full text report of the fit")
 
-        # Figures are drawn only when their tab is shown: drawing all four after
-        # every fit would hold the GUI thread for a second on a slow machine.
-        self._stale: set[int] = set()
-        self._drawers = {1: self._optical, 2: self._tauc, 3: self._correlations}
-        self.currentChanged.connect(self._draw_if_stale)
+        # Above the tabs (the window places it): says when the result no longer
+        # matches the setup, in words and with a symbol, not by colour alone.
+        self.banner = QLabel("")
+        self.banner.setWordWrap(True)
+        self.banner.setTextFormat(Qt.RichText)
+        self.banner.setStyleSheet("QLabel { background: #fff3cd; color: #3d2c00; "
+                                  "border: 1px solid #e0a800; padding: 4px; }")
+        self.banner.setToolTip("The setup changed after this fit: the numbers belong to the "
+                               "earlier setup. Fit again to update them.")
+        self.banner.setVisible(False)
+
+        # Figures are drawn only for the tab on show, in a worker thread.
+        self._figure_tabs = {1: self.optical_tab, 2: self.tauc_tab, 3: self.corr_tab}
+        self.currentChanged.connect(self._show_figure)
         session.result_changed.connect(self.refresh)
+        session.result_stale_changed.connect(self._update_banner)
         self.refresh()
 
-    def _draw_if_stale(self, index: int):
+    def _show_figure(self, index: int):
         r = self.session.result
-        if index in self._stale and r is not None:
-            self._stale.discard(index)
-            self._drawers[index](r)
+        tab = self._figure_tabs.get(index)
+        if tab is None or r is None:
+            return
+        why = self._no_figure_reason(index, r)
+        if why:
+            if tab.image.text() != why or tab.figure is not None:
+                tab.message(why)
+            return
+        tab.show_result(r, figure_colors())
+
+    @staticmethod
+    def _no_figure_reason(index: int, r) -> str:
+        if index == 1 and not r.optical:
+            return "This stack has no film, so there are no n, κ to show."
+        if index == 2 and (r.band_gap is None or not r.optical):
+            return ("No band gap in this result.\n\nChoose 'Band gap: Tauc, direct' or "
+                    "'indirect' in the Fit section\nand fit an absorbing film to get one.")
+        if index == 3 and (r.correl is None or len(r.var_names) < 2):
+            return ("Correlations need at least two fitted parameters\n"
+                    "and an estimated covariance.")
+        return ""
+
+    def shutdown(self):
+        """Wait for any figure still being drawn (the window is closing)."""
+        for tab in self._figure_tabs.values():
+            tab.shutdown()
+
+    def _update_banner(self, *_):
+        s = self.session
+        stale = s.result is not None and s.result_stale
+        self.banner.setVisible(stale)
+        if stale:
+            self.banner.setText(f"⚠ <b>Out of date:</b> {s.stale_reason} changed after this "
+                                "fit. The numbers below belong to the earlier setup; press "
+                                "<b>Fit</b> (Ctrl+R) to update them.")
+        f = self.thickness_label.font()
+        f.setStrikeOut(stale)
+        self.thickness_label.setFont(f)
+        self.thickness_label.setEnabled(not stale)
 
     # -- refresh ---------------------------------------------------------------------------
     def refresh(self):
@@ -176,19 +417,21 @@ class ResultPanel(QTabWidget):
             for tab in (self.optical_tab, self.tauc_tab, self.corr_tab):
                 tab.message("No fit result yet.")
             self.report.setPlainText("")
+            self._update_banner()
             return
         self._summary(r)
         self.report.setPlainText(r.report())
-        self._stale = set(self._drawers)
-        self._draw_if_stale(self.currentIndex())
+        self._update_banner()
+        self._show_figure(self.currentIndex())
 
     def _summary(self, r):
         status = ("converged" if r.success else "did <b>not</b> converge")
         if r.aborted:
             status = "was stopped before it finished"
         name = (r.spectrum or {}).get("name", "") if isinstance(r.spectrum, dict) else ""
-        why = "" if r.success and not r.aborted else f" {r.message}"
-        self.headline.setText(f"Fit of <b>{name or 'the spectrum'}</b> {status}.{why}")
+        why = "" if r.success and not r.aborted else f" {escape(r.message)}"
+        self.headline.setText(f"Fit of <b>{escape(name) or 'the spectrum'}</b> {status}.{why}"
+                              + verdict_html(r))
         try:
             d, sd = r.thickness()
             self.thickness_label.setText("Thickness  " + _pm(d, sd, "nm", 1))
@@ -209,7 +452,7 @@ class ResultPanel(QTabWidget):
             warn.append(f"Other thicknesses fit almost as well: {alts}. Check against a "
                         f"second measurement or a known value.")
         if warn:
-            items = "".join(f"<li>{w}</li>" for w in warn)
+            items = "".join(f"<li>{escape(str(w))}</li>" for w in warn)
             warn_html += f"<b>Please check:</b><ul style='margin:0'>{items}</ul>"
         else:
             warn_html += "No warnings."
@@ -229,68 +472,3 @@ class ResultPanel(QTabWidget):
                 if j in (1, 2):
                     it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 self.params_table.setItem(i, j, it)
-
-    def _optical(self, r):
-        if not r.optical:
-            self.optical_tab.message("This stack has no film, so there are no n, κ to show.")
-            return
-        from fitting.plots import optical_figure
-        optical_figure(r, alpha=True, fig=self.optical_tab.figure)
-        self.optical_tab.finish()
-
-    def _tauc(self, r):
-        if r.band_gap is None:
-            self.tauc_tab.message("No band gap in this result.\n\nChoose 'Band gap: Tauc, "
-                                  "direct' or 'indirect' in the Fit section\nand fit an "
-                                  "absorbing film to get one.")
-            return
-        from fitting.plots import tauc_figure
-        try:
-            tauc_figure(r, fig=self.tauc_tab.figure)
-        except (ValueError, KeyError) as exc:
-            self.tauc_tab.message(str(exc))
-            return
-        # Show the edge, not the whole transparent range: about 1 eV either side of Eg.
-        ax = self.tauc_tab.figure.axes[0]
-        eg = r.band_gap.Eg_eV
-        lo, hi = r.band_gap.fit_range_eV
-        ax.set_xlim(eg - 1.0, max(hi, eg) + 0.8)
-        ys = [line.get_ydata() for line in ax.get_lines()[:1]]
-        xs = [line.get_xdata() for line in ax.get_lines()[:1]]
-        if ys and len(ys[0]):
-            sel = (np.asarray(xs[0]) <= max(hi, eg) + 0.8)
-            top = np.nanmax(np.asarray(ys[0], dtype=float)[sel]) if sel.any() else None
-            if top is not None and np.isfinite(top) and top > 0:
-                ax.set_ylim(0, 1.05 * top)
-        self.tauc_tab.finish()
-
-    def _correlations(self, r):
-        fig = self.corr_tab.figure
-        if r.correl is None or len(r.var_names) < 2:
-            self.corr_tab.message("Correlations need at least two fitted parameters\n"
-                                  "and an estimated covariance.")
-            return
-        fig.clear()
-        ax = fig.subplots()
-        c = np.asarray(r.correl, dtype=float)
-        # aspect="auto": the cells fill the tall, narrow tab instead of a small square
-        im = ax.imshow(c, vmin=-1, vmax=1, cmap="RdBu_r", aspect="auto")
-        n_layers = len((r.stack or {}).get("layers", []))
-        names = [v if v in _NUISANCE else
-                 (_label(v, r).split(": ", 1)[-1] if n_layers == 1 else _label(v, r))
-                 for v in r.var_names]
-        ax.set_xticks(range(len(names)), names, rotation=60, ha="right", fontsize=8)
-        ax.set_yticks(range(len(names)), names, fontsize=8)
-        col = figure_colors()
-        if len(names) <= 10:
-            for i in range(len(names)):
-                for j in range(len(names)):
-                    ax.text(j, i, f"{c[i, j]:.2f}", ha="center", va="center", fontsize=7,
-                            color="#000000" if abs(c[i, j]) < 0.6 else "#ffffff")
-        cb = fig.colorbar(im, ax=ax, orientation="horizontal", shrink=0.7, aspect=30,
-                          location="bottom")
-        cb.set_label("correlation (±1: not separable)", color=col["text"], fontsize=8)
-        cb.ax.tick_params(colors=col["text"], labelsize=8)
-        ax.set_title("Parameter correlations", fontsize=10)
-        style_figure(fig)
-        self.corr_tab.canvas.draw_idle()

@@ -11,11 +11,19 @@ a :class:`QUndoCommand` on :attr:`Session.undo`, so Ctrl+Z / Ctrl+Shift+Z work
 for all of them. A command stores the whole editable state before and after
 (the stack as :meth:`fitting.stack.Stack.to_dict`, a few kilobytes), which is
 simpler and safer than per-field inverse operations.
+
+The session also keeps the result honest. When a result arrives it takes a
+fingerprint of the setup (stack, options, masks, spectrum and its correction);
+any later difference marks the result *out of date* (:attr:`Session.result_stale`,
+with the reason in :attr:`Session.stale_reason`) until the setup is back where it
+was (undo) or a new fit arrives. A second fingerprint, taken when the project is
+saved or opened, tells whether there are unsaved changes (:meth:`Session.is_modified`).
 """
 
 from __future__ import annotations
 
 import copy
+import json
 import math
 import re
 
@@ -74,6 +82,8 @@ class Session(QObject):
     options_changed : fit options changed
     masks_changed : masked wavelength windows changed
     result_changed : a fit result arrived (or was cleared)
+    result_stale_changed(bool) : the result became out of date (True) or current again
+    modified_changed(bool) : there are (True) or no longer are unsaved changes
     message(str, bool) : a status message for the user; True for an error
     """
 
@@ -82,6 +92,8 @@ class Session(QObject):
     options_changed = Signal()
     masks_changed = Signal()
     result_changed = Signal()
+    result_stale_changed = Signal(bool)
+    modified_changed = Signal(bool)
     message = Signal(str, bool)
 
     def __init__(self, parent=None):
@@ -93,8 +105,74 @@ class Session(QObject):
         self.stack: Stack = default_stack()
         self.options: dict = default_options()
         self.masks: list[tuple[float, float]] = []
+        self.reference = None         # {"baseline", "dark", "raw_counts"} of the correction
         self.result = None            # fitting.result.FitResult or None
+        self.result_recipe_hash = ""  # hash of the recipe that produced the result
+        self.result_stale = False     # the setup changed since the result arrived
+        self.stale_reason = ""        # what changed, in words
         self.project_path = ""
+        self._result_fp: dict | None = None
+        self._result_frozen = False    # stored as out of date: stays so until a new fit
+        self._saved_fp = self._save_fingerprint()
+        self._modified = False
+        for sig in (self.stack_changed, self.options_changed, self.masks_changed,
+                    self.spectrum_changed):
+            sig.connect(self._setup_changed)
+        self.result_changed.connect(self._update_modified)
+
+    # -- what the result and the saved file were made from --------------------------------
+    _PARTS = {"stack": "the sample stack", "options": "the fit options",
+              "masks": "the masked windows", "spectrum": "the spectrum"}
+
+    def _fingerprint(self) -> dict:
+        """The setup as comparable text, one entry per part the user can change."""
+        s = self.spectrum
+        spec = None if s is None else {
+            "path": self.spectrum_path, "sha256": s.sha256, "n": len(s),
+            "range": [float(s.wavelength_nm[0]), float(s.wavelength_nm[-1])] if len(s) else [],
+            "reader": None if self.reader_options is None else self.reader_options.to_dict(),
+            "reference": self.reference}
+        parts = {"stack": self.stack.to_dict(), "options": self.options,
+                 "masks": [list(m) for m in self.masks], "spectrum": spec}
+        return {k: json.dumps(v, sort_keys=True, default=str) for k, v in parts.items()}
+
+    def _save_fingerprint(self) -> dict:
+        """What a save would write. Opening another spectrum file counts only when a
+        project is open (it would point to another file); a correction always counts."""
+        fp = self._fingerprint()
+        if not self.project_path:
+            fp["spectrum"] = json.dumps(self.reference, sort_keys=True, default=str)
+        fp["result"] = f"{id(self.result)} {self.result_stale}" if self.result else ""
+        return fp
+
+    def _setup_changed(self) -> None:
+        if self._result_fp is not None and self.result is not None and not self._result_frozen:
+            now = self._fingerprint()
+            changed = [k for k in self._PARTS if now[k] != self._result_fp[k]]
+            self._set_stale(bool(changed), " and ".join(self._PARTS[k] for k in changed))
+        self._update_modified()
+
+    def _set_stale(self, stale: bool, reason: str) -> None:
+        if stale != self.result_stale or reason != self.stale_reason:
+            self.result_stale, self.stale_reason = stale, reason
+            self.result_stale_changed.emit(stale)
+            self._update_modified()
+
+    def is_modified(self) -> bool:
+        """True if the setup, correction or result differ from the last save or open."""
+        return self._modified
+
+    def _update_modified(self) -> None:
+        mod = self._save_fingerprint() != self._saved_fp
+        if mod != self._modified:
+            self._modified = mod
+            self.modified_changed.emit(mod)
+
+    def mark_saved(self) -> None:
+        """The current state is what the project file holds (after save or open)."""
+        self._saved_fp = self._save_fingerprint()
+        self.undo.setClean()
+        self._update_modified()
 
     # -- snapshots for undo -----------------------------------------------------------
     def _state(self) -> dict:
@@ -131,14 +209,19 @@ class Session(QObject):
         self.undo.push(_StateCommand(self, text, before, after))
 
     # -- spectrum ---------------------------------------------------------------------
-    def set_spectrum(self, spectrum, *, path: str = "", reader_options=None) -> None:
-        """Replace the measured spectrum (not undoable: it is data, not a setup edit)."""
+    def set_spectrum(self, spectrum, *, path: str = "", reader_options=None,
+                     reference: dict | None = None) -> None:
+        """Replace the measured spectrum (not undoable: it is data, not a setup edit).
+
+        ``reference`` records the reference correction the spectrum went through
+        (``{"baseline": path, "dark": path or "", "raw_counts": bool}``), None if it
+        is used as read. A result of an earlier spectrum stays, marked out of date.
+        """
         self.spectrum = spectrum
         self.spectrum_path = str(path or getattr(spectrum, "source", "") or "")
         self.reader_options = reader_options
-        self.result = None
+        self.reference = dict(reference) if reference else None
         self.spectrum_changed.emit()
-        self.result_changed.emit()
 
     # -- stack ------------------------------------------------------------------------
     def find_param(self, global_name: str) -> tuple[Layer, str]:
@@ -167,8 +250,8 @@ class Session(QObject):
         for k in ("value", "min", "max"):
             if k in changes:
                 v = changes[k]
-                if isinstance(v, str) and v.strip().lower() in ("", "inf", "+inf", "-inf",
-                                                                 "none", "∞", "-∞") and k != "value":
+                open_bound = ("", "inf", "+inf", "-inf", "none", "∞", "-∞")
+                if isinstance(v, str) and v.strip().lower() in open_bound and k != "value":
                     changes[k] = -math.inf if k == "min" else math.inf
                 else:
                     changes[k] = check_finite(f"{global_name} {k}", v)
@@ -264,7 +347,7 @@ class Session(QObject):
                 tie_roughness(layer, layers[index + 1])
             self._repair_ties()
 
-        self._edit(f"Model of {layer.name}: {MODEL_CHOICES[choice]}", apply)
+        self._edit(f"Model of {layer.name}: {MODEL_CHOICES[choice].split(' (')[0]}", apply)
         self.stack_changed.emit()
 
     def rename_layer(self, index: int, name: str) -> None:
@@ -324,6 +407,23 @@ class Session(QObject):
             self.stack.substrate = new
 
         self._edit(f"Substrate {new.name}, {new.thickness_mm:g} mm", apply)
+        self.stack_changed.emit()
+
+    def set_stack_option(self, name: str, value: float) -> None:
+        """Set the stack's ``thickness_spread`` (fraction) or ``bandwidth_nm`` (undoable)."""
+        if name not in ("thickness_spread", "bandwidth_nm"):
+            raise ParameterError("stack option", name, "only thickness_spread, bandwidth_nm")
+        value = check_finite(name, value)
+        st = self.stack
+        # The Stack constructor holds the limits (>= 0; spread at most 0.3).
+        Stack(st.layers, st.substrate, thickness_spread=value if name == "thickness_spread"
+              else st.thickness_spread, bandwidth_nm=value if name == "bandwidth_nm"
+              else st.bandwidth_nm)
+        if getattr(st, name) == value:
+            return
+        label = {"thickness_spread": "Thickness non-uniformity",
+                 "bandwidth_nm": "Instrument bandwidth"}[name]
+        self._edit(label, lambda: setattr(self.stack, name, value))
         self.stack_changed.emit()
 
     def set_stack(self, stack: Stack, text: str = "Replace stack") -> None:
@@ -424,9 +524,24 @@ class Session(QObject):
         self.options_changed.emit()
         self.masks_changed.emit()
 
-    def set_result(self, result, *, apply: bool = True) -> None:
-        """Store a fit result; with ``apply`` write the fitted values into the stack (undoable)."""
+    def setup_fingerprint(self) -> dict:
+        """The setup now, to pass to :meth:`set_result` when a fit started from it ends."""
+        return self._fingerprint()
+
+    def set_result(self, result, *, apply: bool = True, recipe_hash: str = "",
+                   current: bool = True, setup: dict | None = None) -> None:
+        """Store a fit result; with ``apply`` write the fitted values into the stack (undoable).
+
+        ``recipe_hash`` is the hash of the recipe the fit ran with (exports and
+        projects record it, not the hash of whatever the setup is later). The
+        result counts as current for the setup as it is after this call; with
+        ``current=False`` (a project saved with an out-of-date result) it starts
+        out of date. ``setup`` is :meth:`setup_fingerprint` from when the fit
+        started: options, masks or spectrum changed while it ran make it out of date.
+        """
+        self._result_fp = None           # no staleness checks while the fit is applied
         self.result = result
+        self.result_recipe_hash = recipe_hash if result is not None else ""
         if result is not None and apply and not result.aborted and result.stack:
             try:
                 fitted = Stack.from_dict(result.stack)
@@ -434,11 +549,25 @@ class Session(QObject):
                 fitted = None
             if fitted is not None:
                 self.set_stack(fitted, "Apply fit result")
-        self.result_changed.emit()
+        self._result_frozen = result is not None and not current
+        changed = []
+        if result is not None:
+            self._result_fp = self._fingerprint()
+            for k in ("options", "masks", "spectrum"):    # the stack is the fitted one now
+                if setup is not None and setup.get(k) != self._result_fp[k]:
+                    self._result_fp[k] = setup[k]
+                    changed.append(k)
+        was = self.result_stale
+        self.result_stale = self._result_frozen or bool(changed)
+        self.stale_reason = ("the setup was changed after this fit, before the project was "
+                             "saved" if self._result_frozen else
+                             " and ".join(self._PARTS[k] for k in changed))
+        self.result_changed.emit()       # views read result_stale already set
+        if was != self.result_stale:
+            self.result_stale_changed.emit(self.result_stale)
 
     def clear_result(self) -> None:
-        self.result = None
-        self.result_changed.emit()
+        self.set_result(None)
 
     def spectrum_for_fit(self):
         """The spectrum with masks applied (what the fit and the plot's 'used' points see)."""

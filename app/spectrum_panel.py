@@ -1,11 +1,19 @@
-"""The "Spectrum" section: which file is loaded, what it holds, and how to change it."""
+"""The "Spectrum" section: which file is loaded, what it holds, and how to change it.
+
+A reference-corrected spectrum says so, with the 100 % line and dark files it was
+divided by (the correction is part of the data the fit sees).
+"""
 
 from __future__ import annotations
 
 from pathlib import Path
 
+from html import escape
+
 from PySide6.QtCore import Signal
 from PySide6.QtWidgets import QHBoxLayout, QLabel, QPushButton, QToolButton, QVBoxLayout, QWidget
+
+from .reference_dialog import describe_reference
 
 __all__ = ["SpectrumPanel"]
 
@@ -64,8 +72,11 @@ class SpectrumPanel(QWidget):
         has = s is not None
         self.preview_button.setEnabled(has and bool(self.session.spectrum_path))
         self.reference_button.setEnabled(has)
+        ref = self.session.reference
+        self.reference_button.setText("Change correction…" if ref else "Reference correction…")
         if not has:
             self.info.setText("<i>No spectrum loaded.</i>")
+            self.info.setToolTip("The measured spectrum the fit uses")
             return
         wl = s.wavelength_nm
         q = {"T": "Transmittance", "R": "Reflectance"}.get(s.quantity, s.quantity)
@@ -73,6 +84,13 @@ class SpectrumPanel(QWidget):
         txt = (f"<b>{name}</b><br>{q}, {len(s)} points, {wl[0]:.0f}–{wl[-1]:.0f} nm")
         if s.sigma is not None:
             txt += ", with noise estimate"
+        if ref:
+            txt += f"<br>✓ <b>Reference-corrected</b>: {escape(describe_reference(ref))}"
+            self.info.setToolTip("T = (sample − dark) / (100 % line − dark)\n100 % line: "
+                                 f"{ref['baseline']}\ndark: {ref.get('dark') or 'none'}")
+        else:
+            self.info.setToolTip("The measured spectrum the fit uses, as read from the file")
         if s.warnings:
-            txt += "<br><span style='color:#d9480f'>" + "; ".join(s.warnings[:3]) + "</span>"
+            txt += ("<br><span style='color:#d9480f'>⚠ " + escape("; ".join(s.warnings[:3]))
+                    + "</span>")
         self.info.setText(txt)

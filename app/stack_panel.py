@@ -16,10 +16,47 @@ from fitting.errors import PellucidError
 from fitting.substrates import SUBSTRATE_LIBRARY
 
 from .param_table import ParamTableModel, ParamTableView
-from .session import MODEL_CHOICES, SUBSTRATE_NAMES, model_choice_of
+from .session import MODEL_CHOICES, SUBSTRATE_NAMES, make_model, model_choice_of
 
-__all__ = ["StackPanel"]
+__all__ = ["StackPanel", "model_label", "exact_choice"]
 
+_TERM_NAMES = {"lorentz": "Lorentz", "drude": "Drude", "tauc_lorentz": "Tauc-Lorentz"}
+
+
+def model_label(model) -> str:
+    """A short name read from the model itself: ``Tauc-Lorentz + Lorentz``,
+    ``Sellmeier, 3 terms``, ``Cauchy + Urbach tail``, ``table nk_ito``."""
+    d = model.to_dict()
+    kind = d.get("kind")
+    if kind == "oscillators":
+        names = [_TERM_NAMES.get(t, t) for t in d.get("terms", [])]
+        if len(names) > 1 and len(set(names)) == 1:
+            return f"{len(names)} × {names[0]}"
+        return " + ".join(names) or "Oscillators"
+    if kind == "sellmeier":
+        n = d.get("terms", 1)
+        return f"Sellmeier, {n} term{'s' if n > 1 else ''}"
+    if kind == "cauchy":
+        return "Cauchy + Urbach tail" if d.get("urbach") else "Cauchy"
+    if kind == "bruggeman":
+        return "Roughness (film + voids)"
+    return model.describe()
+
+
+def exact_choice(model) -> str | None:
+    """The menu key whose fresh model has the same structure, or None (a custom model,
+    e.g. from a recipe: then the menu shows its own label instead of a near miss)."""
+    key = model_choice_of(model)
+    if key in ("tabulated", "roughness"):
+        return key
+    shape = lambda d: {k: d.get(k) for k in ("kind", "urbach", "terms")}  # noqa: E731
+    try:
+        fresh = make_model(key)
+    except PellucidError:
+        return None
+    return key if shape(fresh.to_dict()) == shape(model.to_dict()) else None
+
+_CUSTOM = "__custom__"     # model combo entry: a model no menu entry describes exactly
 _TABLE = "__table__"       # combo entry: a substrate material read from an n, κ file
 _BARE = "__bare__"         # combo entry: a measured T spectrum of the bare slide
 
@@ -159,9 +196,10 @@ class StackPanel(QWidget):
             row = self.layer_list.currentRow()
             self.layer_list.clear()
             for layer in st.layers:
-                kind = MODEL_CHOICES[model_choice_of(layer.material)].split(" (")[0]
+                kind = model_label(layer.material)
                 it = QListWidgetItem(f"{layer.name}  —  {kind}, {layer.thickness.value:.1f} nm")
-                it.setToolTip(f"Layer '{layer.name}': {layer.material.describe()}")
+                it.setToolTip(f"Layer '{layer.name}': {kind} ({layer.material.describe()}), "
+                              f"{len(layer.material.params)} parameters")
                 self.layer_list.addItem(it)
             if st.layers:
                 row = min(max(row, 0), len(st.layers) - 1)
@@ -177,8 +215,19 @@ class StackPanel(QWidget):
     def _sync_layer(self, row: int):
         layers = self.session.stack.layers
         if 0 <= row < len(layers):
-            key = model_choice_of(layers[row].material)
-            self.model_combo.setCurrentIndex(self.model_combo.findData(key))
+            model = layers[row].material
+            key = exact_choice(model)
+            i = self.model_combo.findData(_CUSTOM)
+            if key is None:
+                if i < 0:
+                    self.model_combo.addItem("", _CUSTOM)
+                    i = self.model_combo.count() - 1
+                self.model_combo.setItemText(i, f"{model_label(model)} (as loaded)")
+                self.model_combo.setCurrentIndex(i)
+            else:
+                if i >= 0:
+                    self.model_combo.removeItem(i)
+                self.model_combo.setCurrentIndex(self.model_combo.findData(key))
         if self.table_model.layer_index != row:
             self.table_model.set_layer(row)
         self.table.resizeColumnsToContents()
@@ -301,7 +350,7 @@ class StackPanel(QWidget):
     def _on_model(self, _i):
         row = self.selected_row()
         key = self.model_combo.currentData()
-        if row < 0 or key == model_choice_of(self.session.stack.layers[row].material):
+        if row < 0 or key in (_CUSTOM, exact_choice(self.session.stack.layers[row].material)):
             return
         table = self._table_file() if key == "tabulated" else None
         if key == "tabulated" and table is None:

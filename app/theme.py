@@ -12,7 +12,7 @@ from __future__ import annotations
 from PySide6.QtGui import QColor, QPalette
 from PySide6.QtWidgets import QApplication
 
-__all__ = ["apply_theme", "figure_colors", "style_figure", "THEMES"]
+__all__ = ["apply_theme", "figure_colors", "style_figure", "apply_colors", "THEMES"]
 
 THEMES = ("system", "light", "dark")
 
@@ -74,7 +74,11 @@ def figure_colors(palette: QPalette | None = None) -> dict:
 
 def style_figure(fig, palette: QPalette | None = None) -> dict:
     """Apply the palette colours to an existing figure and all its axes."""
-    col = figure_colors(palette)
+    return apply_colors(fig, figure_colors(palette))
+
+
+def apply_colors(fig, col: dict) -> dict:
+    """Apply a :func:`figure_colors` dict to a figure (no Qt: safe in a worker thread)."""
     fig.set_facecolor(col["figure"])
     for ax in fig.axes:
         ax.set_facecolor(col["axes"])

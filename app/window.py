@@ -19,7 +19,7 @@ from PySide6.QtWidgets import (QApplication, QFileDialog, QGroupBox, QLabel, QMa
 from fitting.errors import PellucidError
 from fitting.fit import fit_spectrum
 
-from .dialogs import show_error, show_info
+from .dialogs import ask_save_discard_cancel, ask_yes_no, show_error, show_info
 from .fit_panel import FitPanel
 from .plot_panel import AXES, PlotPanel
 from .result_panel import ResultPanel
@@ -83,15 +83,23 @@ class MainWindow(QMainWindow):
         scroll = QScrollArea()
         scroll.setWidget(left)
         scroll.setWidgetResizable(True)
+        # Wide enough for the column with every optional control on show.
+        hidden = [w for w in (self.fit_panel.more, self.fit_panel.fit_tilt) if w.isHidden()]
+        for w in hidden:
+            w.setVisible(True)
         scroll.setMinimumWidth(left.minimumSizeHint().width()
                                + scroll.verticalScrollBar().sizeHint().width() + 4)
+        for w in hidden:
+            w.setVisible(False)
         scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarAlwaysOff)
 
         right = QGroupBox("4   Result")
         right.setStyleSheet(_BOX_STYLE)
         rl = QVBoxLayout(right)
         rl.setContentsMargins(4, 8, 4, 4)
+        rl.addWidget(self.results.banner)
         rl.addWidget(self.results)
+        self.result_box = right
 
         self.splitter = QSplitter(Qt.Horizontal)
         self.splitter.addWidget(scroll)
@@ -118,7 +126,7 @@ class MainWindow(QMainWindow):
         self.fit_panel.fit_requested.connect(self.start_fit)
         self.fit_panel.cancel_requested.connect(self.cancel)
         s.message.connect(self.status)
-        s.undo.cleanChanged.connect(self._on_clean_changed)
+        s.modified_changed.connect(self._on_clean_changed)
 
         self._build_actions()
         self._restore_settings()
@@ -199,6 +207,8 @@ class MainWindow(QMainWindow):
         h = mb.addMenu("&Help")
         self._action(h, "&Keyboard shortcuts", self.show_shortcuts, "F1",
                      "List the keyboard shortcuts")
+        self._action(h, "&About Pellucid", self.show_about, None,
+                     "Version, licence and safety note")
 
     def show_shortcuts(self):
         show_info(self, "Keyboard shortcuts",
@@ -206,6 +216,24 @@ class MainWindow(QMainWindow):
                   "Ctrl+E  export the result\nCtrl+S  save the project\n"
                   "Ctrl+Shift+O  open a project\nCtrl+B  batch fit a folder\n"
                   "Ctrl+Z / Ctrl+Shift+Z  undo / redo\nF1  this list")
+
+    def about_text(self) -> str:
+        """Version (installed package, else the source tree's), licence, safety note."""
+        import fitting
+        try:
+            from importlib.metadata import PackageNotFoundError, version
+            v = version("pellucid")
+        except PackageNotFoundError:
+            v = fitting.__version__
+        return (f"Pellucid {v}\n\nFilm thickness and optical constants n, κ from measured "
+                "UV-Vis-NIR transmission spectra (transfer-matrix model, incoherent "
+                "substrate).\n\nLicence: MIT (see the LICENSE file).\n\n"
+                "Safety: spectrophotometer lamps emit UV and samples may be cleaned with "
+                "solvents; follow your laboratory's rules and the instrument maker's "
+                "instructions.")
+
+    def show_about(self):
+        show_info(self, "About Pellucid", self.about_text())
 
     def set_theme(self, name: str):
         app = QApplication.instance()
@@ -223,7 +251,7 @@ class MainWindow(QMainWindow):
 
     def _update_title(self):
         name = Path(self.session.project_path).name if self.session.project_path else "untitled"
-        mark = "" if self.session.undo.isClean() else " *"
+        mark = " *" if self.session.is_modified() else ""
         self.setWindowTitle(f"Pellucid — {name}{mark}")
 
     # -- settings --------------------------------------------------------------------------
@@ -291,52 +319,70 @@ class MainWindow(QMainWindow):
         v = self.settings.value("show_import_preview", True)
         return v not in (False, "false", "0", 0)
 
-    def open_spectrum(self, path, *, options=None, ask: bool | None = False) -> bool:
+    def open_spectrum(self, path, *, options=None, ask: bool | None = False,
+                      reference: dict | None = None) -> bool:
         """Read a spectrum file into the session; on failure explain in a dialog.
 
         ``ask=None`` follows the user's "show the preview every time" setting,
-        ``True`` always shows the import preview, ``False`` never does.
+        ``True`` always shows the import preview, ``False`` does not, except for a
+        file of raw detector counts, which is never loaded as it is: the preview
+        opens so the 100 % line can be chosen. ``reference`` (the session's
+        correction) is applied again after reading.
         """
-        from fitting.reader import read_spectrum
         path = str(path)
         if self._busy("opening a spectrum"):
             return False
         if ask is None:
             ask = self._preview_every_time()
+        from .reference_dialog import is_counts, read_with_reference
         try:
+            spectrum = None
+            if not ask:
+                spectrum = read_with_reference(path, options, reference)
+                if is_counts(spectrum):
+                    self.status(f"{Path(path).name} holds raw detector counts: choose the "
+                                f"100 % line in the preview to correct them.", True)
+                    ask = True
             if ask:
                 from .import_dialog import ImportDialog
                 dlg = ImportDialog(path, options or self.session.reader_options, self,
-                                   show_every_time=self._preview_every_time())
+                                   show_every_time=self._preview_every_time(),
+                                   reference=reference, start_dir=self.folder("spectra"))
                 if dlg.exec() != ImportDialog.Accepted:
                     return False
                 self.settings.setValue("show_import_preview", dlg.every_time.isChecked())
                 options = dlg.options()
-                spectrum = dlg.spectrum or read_spectrum(path, options=options)
-            else:
-                spectrum = read_spectrum(path, options=options)
+                reference = dlg.reference()
+                spectrum = dlg.spectrum or read_with_reference(path, options, reference)
+                if is_counts(spectrum):
+                    return False
         except (PellucidError, OSError) as exc:
             show_error(self, f"Could not open {Path(path).name}", exc)
             self.status(f"Not loaded: {exc}", True)
             return False
-        self.session.set_spectrum(spectrum, path=path, reader_options=options)
+        self.session.set_spectrum(spectrum, path=path, reader_options=options,
+                                  reference=reference)
+        self.fit_panel.reset_progress()
         self._remember_folder("spectra", path)
         self._add_recent(path)
-        self.status(f"Loaded {Path(path).name}: {len(spectrum)} points")
+        done = "Loaded and corrected" if reference else "Loaded"
+        self.status(f"{done} {Path(path).name}: {len(spectrum)} points")
         for w in spectrum.warnings:
             self.status(f"{Path(path).name}: {w}", True)
         return True
 
     def reimport(self):
+        """Show the import preview of the loaded file again; its correction is kept."""
         if self.session.spectrum_path:
             self.open_spectrum(self.session.spectrum_path, options=self.session.reader_options,
-                               ask=True)
+                               ask=True, reference=self.session.reference)
 
     def reference_correction(self):
         from .reference_dialog import ReferenceDialog
         if not self.session.spectrum_path:
             return
-        dlg = ReferenceDialog(self.session.spectrum_path, self.folder("spectra"), self)
+        dlg = ReferenceDialog(self.session.spectrum_path, self.folder("spectra"), self,
+                              reference=self.session.reference)
         if dlg.exec() != ReferenceDialog.Accepted:
             return
         try:
@@ -345,7 +391,9 @@ class MainWindow(QMainWindow):
             show_error(self, "Reference correction not applied", exc)
             return
         self.session.set_spectrum(s, path=self.session.spectrum_path,
-                                  reader_options=self.session.reader_options)
+                                  reader_options=self.session.reader_options,
+                                  reference=dlg.reference())
+        self.fit_panel.reset_progress()
         self.status("Reference correction applied")
 
     # drag and drop
@@ -378,6 +426,9 @@ class MainWindow(QMainWindow):
             return False
         try:
             spectrum, stack, options = self.session.fit_inputs()
+            # What the result will be judged against: the recipe and setup it ran with.
+            self._fit_origin = (self.session.recipe(name="interactive fit").hash(),
+                                self.session.setup_fingerprint())
         except PellucidError as exc:
             show_error(self, "Fit not started", exc)
             return False
@@ -415,13 +466,19 @@ class MainWindow(QMainWindow):
         elif self.batch_dialog is not None and self.batch_dialog.is_running():
             self.batch_dialog.cancel()
 
+    _fit_origin = ("", None)
+
     def _fit_done(self, result):
-        self.session.set_result(result)
+        rhash, setup = self._fit_origin
+        self.session.set_result(result, recipe_hash=rhash, setup=setup)
         if result.aborted:
             self.status("Fit stopped; the best result so far is shown (not applied to the "
                         "stack).", True)
         elif not result.success:
             self.status(f"The fit did not converge: {result.message}", True)
+        elif self.session.result_stale:
+            self.status(f"Fit done, but {self.session.stale_reason} changed while it ran: "
+                        "the result is marked out of date. Fit again (Ctrl+R).", True)
         else:
             try:
                 d, sd = result.thickness()
@@ -449,22 +506,41 @@ class MainWindow(QMainWindow):
 
     # -- export, project, recipe -------------------------------------------------------------
     def export_dialog(self):
+        """Ask which parts to write and where (the Export result… menu entry)."""
         if self.session.result is None:
             show_error(self, "Nothing to export", "There is no fit result yet. Press Fit "
                        "first (Ctrl+R).")
             return
-        d = QFileDialog.getExistingDirectory(self, "Export the result into folder",
-                                             self.folder("export"))
-        if d:
-            self._interactive_export = True
-            try:
-                self.export_to(d)
-            finally:
-                self._interactive_export = False
+        if not self._confirm_stale_export():
+            return
+        from .export_dialog import ExportDialog
+        recipe = self.session.recipe()
+        dlg = ExportDialog(self.folder("export"), self.settings, self,
+                           parts=recipe.exports, plot_formats=recipe.plot_formats)
+        if dlg.exec() != ExportDialog.Accepted:
+            return
+        self._interactive_export = True
+        try:
+            self.export_to(dlg.folder(), parts=dlg.parts(), plots=dlg.plot_formats())
+        finally:
+            self._interactive_export = False
 
     _interactive_export = False
 
-    def export_to(self, out_dir) -> list:
+    def _confirm_stale_export(self) -> bool:
+        """Ask before exporting a result the setup no longer matches (True: go on)."""
+        s = self.session
+        if not s.result_stale:
+            return True
+        return ask_yes_no(
+            self, "Export an out-of-date result?",
+            f"This result is out of date: {s.stale_reason} changed after the fit.\n\n"
+            "The files will describe the fit as it was run (its recipe hash), not the "
+            "current setup. To export the current setup, press Cancel and fit again "
+            "(Ctrl+R).\n\nExport the old result anyway?")
+
+    def export_to(self, out_dir, *, parts=None, plots=None) -> list:
+        """Write the result's files into ``out_dir`` (default parts: the recipe's)."""
         from fitting.export import make_provenance, export_result
         r = self.session.result
         if r is None:
@@ -472,11 +548,18 @@ class MainWindow(QMainWindow):
         recipe = self.session.recipe(name="interactive fit")
         stem = Path(self.session.spectrum_path).stem if self.session.spectrum_path else (
             (r.spectrum or {}).get("name") or "spectrum")
+        stem = (r.spectrum or {}).get("name") or stem
         try:
-            prov = make_provenance(r, recipe_hash=recipe.hash(), recipe_name=recipe.name)
+            prov = make_provenance(r, recipe_hash=self.session.result_recipe_hash or None,
+                                   recipe_name=recipe.name)
+            if self.session.reference:
+                prov["reference_correction"] = self._reference_note()
+            if self.session.result_stale:
+                prov["note"] = (f"result out of date when exported: {self.session.stale_reason} "
+                                "changed after the fit")
             files = export_result(r, out_dir, stem=stem, provenance=prov,
-                                  plots=tuple(recipe.plot_formats),
-                                  parts=tuple(recipe.exports))
+                                  plots=tuple(recipe.plot_formats if plots is None else plots),
+                                  parts=tuple(recipe.exports if parts is None else parts))
         except (PellucidError, OSError, ValueError) as exc:
             show_error(self, "Export failed", exc)
             return []
@@ -487,19 +570,32 @@ class MainWindow(QMainWindow):
                       details="\n".join(str(f) for f in files))
         return files
 
+    def _reference_note(self) -> str:
+        ref = self.session.reference or {}
+        txt = f"(S - D) / (B - D), B = {ref.get('baseline')}"
+        if ref.get("dark"):
+            txt += f", D = {ref.get('dark')}"
+        return txt
+
     def _project_object(self):
-        from fitting.project import Project
-        project = Project(self.session.recipe(name="app session"))
-        if self.session.spectrum_path and Path(self.session.spectrum_path).is_file():
-            project.add_spectrum(self.session.spectrum_path)
-        r = self.session.result
+        from fitting.project import Project, Reference, StoredResult
+        s = self.session
+        project = Project(s.recipe(name="app session"))
+        if s.spectrum_path and Path(s.spectrum_path).is_file():
+            project.add_spectrum(s.spectrum_path)
+            if s.reference:
+                project.reference = Reference.of(s.reference["baseline"],
+                                                 s.reference.get("dark") or None,
+                                                 raw_counts=s.reference.get("raw_counts", True))
+        r = s.result
         if r is not None:
             from fitting.batch import summary_row
-            rec = project.recipe
+            project.result = StoredResult(r, s.result_recipe_hash, not s.result_stale)
             sha = (r.spectrum or {}).get("sha256", "") or ""
             project.results.append(summary_row(
-                r, rec, index=0, path=self.session.spectrum_path, sha256=sha,
-                rhash=rec.hash(), status="ok" if r.success else "failed",
+                r, project.recipe, index=0, path=(r.spectrum or {}).get("source")
+                or s.spectrum_path, sha256=sha, rhash=s.result_recipe_hash,
+                status="ok" if r.success else "failed",
                 reason="" if r.success else r.message))
         return project
 
@@ -522,7 +618,7 @@ class MainWindow(QMainWindow):
             show_error(self, "Project not saved", exc)
             return False
         self.session.project_path = str(path)
-        self.session.undo.setClean()
+        self.session.mark_saved()
         self._remember_folder("project", path)
         self._update_title()
         self.status(f"Project saved to {path}")
@@ -535,8 +631,9 @@ class MainWindow(QMainWindow):
             self.open_project(path)
 
     def open_project(self, path) -> bool:
+        """Open a project: its setup, spectrum (corrected as saved) and stored result."""
         from fitting.project import load_project
-        from fitting.reader import read_spectrum
+        from .reference_dialog import read_with_reference
         if self._busy("opening a project"):
             return False
         try:
@@ -544,25 +641,42 @@ class MainWindow(QMainWindow):
         except (PellucidError, OSError) as exc:
             show_error(self, f"Could not open project {Path(path).name}", exc)
             return False
-        self.session.apply_recipe(project.recipe, "Open project")
-        self.session.undo.clear()
+        s = self.session
+        s.apply_recipe(project.recipe, "Open project")
+        s.undo.clear()
         problems = project.check_spectra()
+        reference = None
+        if project.reference is not None:
+            ref = project.reference
+            reference = {"baseline": str(ref.baseline.path),
+                         "dark": str(ref.dark.path) if ref.dark else "",
+                         "raw_counts": ref.raw_counts}
+        s.project_path = str(path)
         if project.spectra:
-            ref = project.spectra[0]
+            spec_ref = project.spectra[0]
             try:
-                spec = read_spectrum(ref.path, options=self.session.reader_options)
+                spec = read_with_reference(spec_ref.path, s.reader_options, reference)
             except (PellucidError, OSError) as exc:
                 show_error(self, "The project's spectrum could not be read", exc)
             else:
-                self.session.set_spectrum(spec, path=str(ref.path),
-                                          reader_options=self.session.reader_options)
+                s.set_spectrum(spec, path=str(spec_ref.path), reader_options=s.reader_options,
+                               reference=reference)
+        if project.result is not None:
+            stored = project.result
+            s.set_result(stored.fit, apply=False, recipe_hash=stored.recipe_hash,
+                         current=stored.current and not problems)
+        else:
+            s.set_result(None)
+        self.fit_panel.reset_progress()
         if problems:
             show_error(self, "Project opened with warnings", "\n".join(problems))
-        self.session.project_path = str(path)
-        self.session.undo.setClean()
+        s.mark_saved()
         self._remember_folder("project", path)
         self._update_title()
-        self.status(f"Project {Path(path).name} opened. Press Fit to refit.")
+        if project.result is not None:
+            self.status(f"Project {Path(path).name} opened with its stored result.")
+        else:
+            self.status(f"Project {Path(path).name} opened. Press Fit to fit.")
         return True
 
     def save_recipe_dialog(self):
@@ -621,10 +735,15 @@ class MainWindow(QMainWindow):
 
     # -- close -------------------------------------------------------------------------------
     def closeEvent(self, event):
-        for job in (self.fit_job, getattr(self.batch_dialog, "job", None)):
-            if job is not None and job.is_running():
-                job.cancel()
-                job.wait(60000)
+        if self.session.is_modified():
+            answer = ask_save_discard_cancel(
+                self, "Save changes?",
+                "The project has changes that are not saved (setup, reference correction "
+                "or fit result).\n\nSave them before closing?")
+            if answer == "cancel" or (answer == "save" and not self.save_project()):
+                event.ignore()
+                return
+        self.shutdown_jobs()
         self.save_settings()
         super().closeEvent(event)
 
@@ -634,3 +753,4 @@ class MainWindow(QMainWindow):
             if job is not None and job.is_running():
                 job.cancel()
                 job.wait(60000)
+        self.results.shutdown()

@@ -30,6 +30,9 @@ sizes in a few seconds (the smoke test uses it), ``--skip-batch`` leaves out the
 subprocess part, ``--repeat N`` sets the number of timed calls per forward
 measurement.
 
+The desktop app's responsiveness (longest GUI-thread stall per user step) is measured
+by its own script, ``python -m app.bench``, since this module never imports Qt.
+
 Numbers depend on the BLAS/NumPy build: on machines that set
 ``OPENBLAS_CORETYPE``/``OPENBLAS_L2_SIZE`` the JSON records both.
 """

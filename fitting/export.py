@@ -10,6 +10,8 @@
 ``<stem>_fit.<fmt>``       measured vs fitted with residuals (:func:`plots.fit_figure`)
 ``<stem>_optical.<fmt>``   n and κ with 1σ bands (:func:`plots.optical_figure`)
 ``<stem>_tauc.<fmt>``      Tauc plot, only if the fit found a band gap
+``<stem>_report.pdf``      the one- or two-page PDF report (part ``"pdf"``, asked for
+                           explicitly: :func:`fitting.report.write_fit_report`)
 =========================  ==========================================================
 
 Every file carries the same provenance (software version, recipe hash, input file
@@ -61,8 +63,10 @@ def curve_columns(quantity: str = "T") -> tuple[str, ...]:
 #: Column names of the curves CSV of a transmittance fit (see :func:`curve_columns`).
 CURVE_COLUMNS = curve_columns("T")
 PLOT_FORMATS = ("png", "svg", "pdf")
-#: The parts :func:`export_result` can write (the names of a recipe's ``outputs.exports``).
-PARTS = ("nk", "curves", "json", "report", "plots")
+#: The parts :func:`export_result` can write (the names of a recipe's ``outputs.exports``,
+#: and "pdf", the single-fit PDF report, which is written only when asked for).
+PARTS = ("nk", "curves", "json", "report", "plots", "pdf")
+_DEFAULT_PARTS = ("nk", "curves", "json", "report", "plots")
 _PROV_KEYS = ("software", "recipe_hash", "input_file", "input_sha256", "created")
 _STEM_RE = re.compile(r"^[^/\\\x00]+$")
 
@@ -265,7 +269,8 @@ def _write_curves(result, path, prov, name):
 
 
 def export_result(result, out_dir, *, stem: str, provenance: Mapping,
-                  plots: Sequence[str] = ("png",), parts: Sequence[str] = PARTS) -> list[Path]:
+                  plots: Sequence[str] = ("png",),
+                  parts: Sequence[str] = _DEFAULT_PARTS) -> list[Path]:
     """Write every export file of one fit into ``out_dir``.
 
     Parameters
@@ -279,8 +284,8 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
         From :func:`make_provenance`; written into every file.
     plots : sequence of {"png", "svg", "pdf"}
         Figure formats; empty for none.
-    parts : sequence of {"nk", "curves", "json", "report", "plots"}
-        Which files to write (a recipe's ``outputs.exports``); default all.
+    parts : sequence of {"nk", "curves", "json", "report", "plots", "pdf"}
+        Which files to write (a recipe's ``outputs.exports``); default all but "pdf".
 
     Returns
     -------
@@ -304,6 +309,9 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
     prov = dict(provenance)
     name = (result.spectrum or {}).get("name") or stem
     written: list[Path] = []
+    if "pdf" in parts:
+        from .report import write_fit_report   # matplotlib only when a PDF is asked for
+        written.append(write_fit_report(result, out / f"{stem}_report.pdf", provenance=prov))
 
     for layer, oc in (result.optical.items() if "nk" in parts else ()):
         wl = np.asarray(oc.wavelength_nm, dtype=float)

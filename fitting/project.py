@@ -2,47 +2,76 @@
 
 A project is what the desktop app saves and reopens: the recipe, the list of
 spectrum files with the SHA-256 of each (so a changed or swapped file is
-noticed), and one summary row per fitted spectrum (the same rows as the batch
-runner's ``summary.json``). Like recipes it is plain, versioned JSON, saved
-atomically and validated on load.
+noticed), the reference correction applied to the spectrum, the last fit result
+in full (so a reopened project shows it, curves and all) and one summary row per
+fitted spectrum (the same rows as the batch runner's ``summary.json``). Like
+recipes it is plain, versioned JSON, saved atomically and validated on load.
 
-File format ``pellucid-project``, version 1
+File format ``pellucid-project``, version 2
 -------------------------------------------
 ::
 
     {
       "format": "pellucid-project",
-      "version": 1,
+      "version": 2,
       "name": "line 3, week 12",
       "recipe": { ... },                      # a complete pellucid-recipe document
       "spectra": [                            # paths relative to the project file
         {"path": "spectra/s001.csv", "sha256": "9f2c..."}
       ],
+      "reference": {                          # null: the spectrum is used as read
+        "baseline": {"path": "ref/baseline_100pct.txt", "sha256": "..."},
+        "dark": {"path": "ref/dark.txt", "sha256": "..."},   # or null
+        "raw_counts": true                    # all three files read as raw counts
+      },
+      "result": {                             # null: no fit stored
+        "fit": { ... },                       # FitResult.to_dict(curves=True)
+        "recipe_hash": "3f2a...",             # hash of the recipe that produced it
+        "current": true                       # false: the setup changed after the fit
+      },
       "results": [ {"file": ..., "status": "ok", "film_thickness": 498.7, ...} ]
     }
 
-Paths are written relative to the project file's folder when the spectrum lies
+The reference correction (T = (S - D) / (B - D), :func:`fitting.reference.reference_correct`)
+applies to the first spectrum, the one the desktop app shows; its files are
+checked for change like the spectra.
+
+Paths are written relative to the project file's folder when the file lies
 below it (POSIX separators, so projects move between machines), else absolute.
+
+Versions
+--------
+1
+    ``format``, ``version``, ``name``, ``recipe``, ``spectra``, ``results``.
+2
+    adds ``reference`` and ``result``. A version-1 file is read as version 2
+    with both null (:func:`upgrade`): it opens with its summary rows but no
+    stored fit, exactly as before.
 """
 
 from __future__ import annotations
 
 import json
+import math
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Mapping
 
+import numpy as np
+
 from .atomic import atomic_write_text
 from .errors import RecipeError
+from .export import _json_clean as _clean     # NaN -> null, numpy -> Python: strict JSON
 from .recipe import Recipe, recipe_from_dict
 from .spectrum import sha256_of_file
 
-__all__ = ["Project", "SpectrumRef", "load_project", "save_project", "project_from_batch",
+__all__ = ["Project", "SpectrumRef", "Reference", "StoredResult", "load_project",
+           "save_project", "project_from_batch", "fit_result_from_dict", "upgrade",
            "PROJECT_FORMAT", "PROJECT_VERSION"]
 
 PROJECT_FORMAT = "pellucid-project"
-PROJECT_VERSION = 1
+PROJECT_VERSION = 2
 _HEX = set("0123456789abcdef")
 
 
@@ -67,6 +96,41 @@ class SpectrumRef:
         return None
 
 
+@dataclass(frozen=True)
+class Reference:
+    """The reference correction of a project's spectrum: 100 % line, optional dark.
+
+    ``raw_counts`` says the sample, baseline and dark files are all read as raw
+    detector counts (``ReaderOptions(y_kind="counts")``), which is how the
+    desktop app's correction reads them by default.
+    """
+
+    baseline: SpectrumRef
+    dark: SpectrumRef | None = None
+    raw_counts: bool = True
+
+    @classmethod
+    def of(cls, baseline, dark=None, *, raw_counts: bool = True) -> "Reference":
+        return cls(SpectrumRef.of(baseline), SpectrumRef.of(dark) if dark else None,
+                   bool(raw_counts))
+
+    def problems(self) -> list[str]:
+        return [p for p in (r.problem() for r in (self.baseline, self.dark) if r) if p]
+
+
+@dataclass(frozen=True)
+class StoredResult:
+    """The last fit of the project: the full result and the recipe hash that made it.
+
+    ``current`` is False when the setup was changed after the fit, so a reopened
+    project marks the result as out of date just as the app did before saving.
+    """
+
+    fit: object                      # fitting.result.FitResult
+    recipe_hash: str = ""
+    current: bool = True
+
+
 @dataclass
 class Project:
     """A recipe, the spectra it applies to, and one result summary row per spectrum."""
@@ -75,6 +139,8 @@ class Project:
     spectra: list = field(default_factory=list)
     results: list = field(default_factory=list)
     name: str = ""
+    reference: Reference | None = None
+    result: StoredResult | None = None
 
     def add_spectrum(self, path) -> SpectrumRef:
         """Add a file (its hash is taken now); adding the same path again replaces it."""
@@ -84,13 +150,26 @@ class Project:
 
     def check_spectra(self) -> list[str]:
         """Problems with the referenced files (missing, changed); empty if all is well."""
-        return [p for p in (r.problem() for r in self.spectra) if p]
+        out = [p for p in (r.problem() for r in self.spectra) if p]
+        if self.reference is not None:
+            out += [f"reference correction: {p}" for p in self.reference.problems()]
+        return out
 
     def to_dict(self, *, base: Path | None = None) -> dict:
+        ref = None
+        if self.reference is not None:
+            r = self.reference
+            ref = {"baseline": _ref_dict(r.baseline, base),
+                   "dark": None if r.dark is None else _ref_dict(r.dark, base),
+                   "raw_counts": r.raw_counts}
+        res = None
+        if self.result is not None:
+            res = {"fit": _clean(self.result.fit.to_dict(curves=True)),
+                   "recipe_hash": self.result.recipe_hash, "current": bool(self.result.current)}
         return {"format": PROJECT_FORMAT, "version": PROJECT_VERSION, "name": self.name,
                 "recipe": self.recipe.to_dict(),
-                "spectra": [{"path": _portable(r.path, base), "sha256": r.sha256}
-                            for r in self.spectra],
+                "spectra": [_ref_dict(r, base) for r in self.spectra],
+                "reference": ref, "result": res,
                 "results": [dict(r) for r in self.results]}
 
     @classmethod
@@ -98,15 +177,9 @@ class Project:
         def err(f, problem):
             return RecipeError(f, problem, path=path)
 
-        if not isinstance(d, Mapping):
-            raise err("(file)", "must be a JSON object")
-        if d.get("format") != PROJECT_FORMAT:
-            raise err("format", f"expected {PROJECT_FORMAT!r}, found {d.get('format')!r}")
-        v = d.get("version")
-        if isinstance(v, bool) or not isinstance(v, int) or not 1 <= v <= PROJECT_VERSION:
-            raise err("version", f"unknown project version {v!r}; this Pellucid reads "
-                                 f"version {PROJECT_VERSION}")
-        extra = set(d) - {"format", "version", "name", "recipe", "spectra", "results"}
+        d = upgrade(d, path=path)
+        extra = set(d) - {"format", "version", "name", "recipe", "spectra", "reference",
+                          "result", "results"}
         if extra:
             raise err(sorted(extra)[0], "unknown field")
         if not isinstance(d.get("name", ""), str):
@@ -115,27 +188,85 @@ class Project:
             recipe = recipe_from_dict(d.get("recipe"))
         except RecipeError as e:
             raise err(f"recipe.{e.field}", e.problem) from None
-        spectra = []
         items = d.get("spectra", [])
         if not isinstance(items, list):
             raise err("spectra", "must be a list")
-        for i, s in enumerate(items):
-            w = f"spectra[{i}]"
-            if not isinstance(s, Mapping) or set(s) != {"path", "sha256"}:
-                raise err(w, 'must be {"path": ..., "sha256": ...}')
-            if not isinstance(s["path"], str) or not s["path"]:
-                raise err(f"{w}.path", "must be a file path")
-            sha = s["sha256"]
-            if not isinstance(sha, str) or len(sha) != 64 or not set(sha) <= _HEX:
-                raise err(f"{w}.sha256", "must be 64 lower-case hex digits")
-            p = Path(s["path"])
-            if not p.is_absolute() and base is not None:
-                p = base / p
-            spectra.append(SpectrumRef(p.resolve() if base is not None else p, sha))
+        spectra = [_ref_from(s, f"spectra[{i}]", base, err) for i, s in enumerate(items)]
+        reference = None
+        rd = d.get("reference")
+        if rd is not None:
+            if not isinstance(rd, Mapping) or set(rd) != {"baseline", "dark", "raw_counts"}:
+                raise err("reference", 'must be null or {"baseline": ..., "dark": ..., '
+                                       '"raw_counts": ...}')
+            if not isinstance(rd["raw_counts"], bool):
+                raise err("reference.raw_counts", "must be true or false")
+            reference = Reference(
+                _ref_from(rd["baseline"], "reference.baseline", base, err),
+                None if rd["dark"] is None else _ref_from(rd["dark"], "reference.dark",
+                                                          base, err),
+                rd["raw_counts"])
+        stored = None
+        sd = d.get("result")
+        if sd is not None:
+            if not isinstance(sd, Mapping) or set(sd) != {"fit", "recipe_hash", "current"}:
+                raise err("result", 'must be null or {"fit": ..., "recipe_hash": ..., '
+                                    '"current": ...}')
+            if not isinstance(sd["recipe_hash"], str):
+                raise err("result.recipe_hash", "must be text")
+            if not isinstance(sd["current"], bool):
+                raise err("result.current", "must be true or false")
+            try:
+                fit = fit_result_from_dict(sd["fit"])
+            except RecipeError as e:
+                raise err(f"result.fit.{e.field}", e.problem) from None
+            stored = StoredResult(fit, sd["recipe_hash"], sd["current"])
         results = d.get("results", [])
         if not isinstance(results, list) or not all(isinstance(r, Mapping) for r in results):
             raise err("results", "must be a list of objects")
-        return cls(recipe, spectra, [dict(r) for r in results], d.get("name", ""))
+        return cls(recipe, spectra, [dict(r) for r in results], d.get("name", ""),
+                   reference, stored)
+
+
+def upgrade(d: Mapping, *, path=None) -> dict:
+    """Check format and version and bring an older project dict to the current version.
+
+    Version 1 -> 2 adds ``"reference": null`` and ``"result": null``. The input is
+    not modified. A newer version than this Pellucid knows is refused.
+    """
+    if not isinstance(d, Mapping):
+        raise RecipeError("(file)", "must be a JSON object", path=path)
+    if d.get("format") != PROJECT_FORMAT:
+        raise RecipeError("format", f"expected {PROJECT_FORMAT!r}, found {d.get('format')!r}",
+                          path=path)
+    v = d.get("version")
+    if isinstance(v, bool) or not isinstance(v, int) or not 1 <= v <= PROJECT_VERSION:
+        raise RecipeError("version", f"unknown project version {v!r}; this Pellucid reads "
+                                     f"versions 1 to {PROJECT_VERSION}", path=path)
+    d = dict(d)
+    if v == 1:
+        for k in ("reference", "result"):
+            if k in d:
+                raise RecipeError(k, "unknown field in a version-1 project", path=path)
+        d.update(version=2, reference=None, result=None)
+    return d
+
+
+def _ref_dict(r: SpectrumRef, base: Path | None) -> dict:
+    return {"path": _portable(r.path, base), "sha256": r.sha256}
+
+
+def _ref_from(s, where: str, base: Path | None, err) -> SpectrumRef:
+    if not isinstance(s, Mapping) or set(s) != {"path", "sha256"}:
+        raise err(where, 'must be {"path": ..., "sha256": ...}')
+    if not isinstance(s["path"], str) or not s["path"]:
+        raise err(f"{where}.path", "must be a file path")
+    sha = s["sha256"]
+    if not isinstance(sha, str) or len(sha) != 64 or not set(sha) <= _HEX:
+        raise err(f"{where}.sha256", "must be 64 lower-case hex digits")
+    p = Path(s["path"])
+    if not p.is_absolute() and base is not None:
+        p = base / p
+    return SpectrumRef(p.resolve() if base is not None else p, sha)
 
 
 def _portable(p: Path, base: Path | None) -> str:
@@ -148,8 +279,130 @@ def _portable(p: Path, base: Path | None) -> str:
     return str(p)
 
 
+# -- a FitResult back from its JSON ---------------------------------------------------
+def _floats(v, where, *, size=None, optional=False):
+    if v is None and optional:
+        return None
+    try:
+        a = np.array([np.nan if x is None else x for x in v], dtype=float)
+    except (TypeError, ValueError):
+        raise RecipeError(where, "must be a list of numbers") from None
+    if size is not None and a.size != size:
+        raise RecipeError(where, f"has {a.size} values, expected {size} (one per wavelength)")
+    return a
+
+
+def _num(v, where) -> float:
+    if v is None:
+        return math.nan
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise RecipeError(where, f"must be a number, found {v!r}")
+    return float(v)
+
+
+def fit_result_from_dict(d: Mapping):
+    """Rebuild a :class:`fitting.result.FitResult` from ``FitResult.to_dict(curves=True)``.
+
+    Values written as ``null`` (NaN or infinity in the result) come back as NaN,
+    open bounds as ±inf. Fields of ``FitResult`` this function does not name are
+    taken when they hold text (a verdict and its reasons) and otherwise left at
+    their defaults.
+
+    Raises
+    ------
+    RecipeError
+        naming the field, if the dict is not such a result.
+    """
+    from .result import (Alternative, BandGap, FitResult, OpticalConstants,
+                         ParamResult)
+    if not isinstance(d, Mapping):
+        raise RecipeError("(result)", "must be an object")
+    for k in ("params", "curves", "chisqr", "redchi", "ndata", "nvarys", "nfev"):
+        if k not in d:
+            raise RecipeError(k, "is missing")
+    c = d["curves"]
+    if not isinstance(c, Mapping) or "wavelength_nm" not in c:
+        raise RecipeError("curves", "must hold wavelength_nm and the fitted curves")
+    wl = _floats(c["wavelength_nm"], "curves.wavelength_nm")
+    arrays = {k: _floats(c.get(k), f"curves.{k}", size=wl.size)
+              for k in ("measured", "fitted", "residuals", "sigma")}
+    used = np.asarray(_floats(c.get("used"), "curves.used", size=wl.size) != 0)
+    params = {}
+    if not isinstance(d["params"], Mapping):
+        raise RecipeError("params", "must be an object")
+    for name, p in d["params"].items():
+        w = f"params.{name}"
+        if not isinstance(p, Mapping) or "value" not in p:
+            raise RecipeError(w, "must hold at least a value")
+        lo, hi = p.get("min"), p.get("max")
+        params[name] = ParamResult(
+            name, _num(p["value"], f"{w}.value"),
+            None if p.get("stderr") is None else _num(p["stderr"], f"{w}.stderr"),
+            None if p.get("init_value") is None else _num(p["init_value"], f"{w}.init_value"),
+            -math.inf if lo is None else _num(lo, f"{w}.min"),
+            math.inf if hi is None else _num(hi, f"{w}.max"),
+            bool(p.get("vary", True)), str(p.get("unit", "")), p.get("expr"))
+    optical = {}
+    for layer, o in (d.get("optical") or {}).items():
+        w = f"optical.{layer}"
+        if not isinstance(o, Mapping):
+            raise RecipeError(w, "must be an object")
+        owl = _floats(o.get("wavelength_nm"), f"{w}.wavelength_nm")
+        optical[layer] = OpticalConstants(
+            str(o.get("layer", layer)), owl,
+            *(_floats(o.get(k), f"{w}.{k}", size=owl.size) for k in ("n", "k", "alpha_cm")),
+            *(_floats(o.get(k), f"{w}.{k}", size=owl.size, optional=True)
+              for k in ("n_sigma", "k_sigma", "alpha_sigma")))
+    gap = d.get("band_gap")
+    if gap is not None:
+        try:
+            gap = BandGap(_num(gap["Eg_eV"], "band_gap.Eg_eV"),
+                          _num(gap.get("sigma_eV"), "band_gap.sigma_eV"),
+                          str(gap["transition"]), tuple(_floats(gap["fit_range_eV"],
+                                                                "band_gap.fit_range_eV", size=2)),
+                          _num(gap.get("r_squared"), "band_gap.r_squared"),
+                          str(gap.get("layer", "")))
+        except (KeyError, TypeError):
+            raise RecipeError("band_gap", "must hold Eg_eV, transition and fit_range_eV") \
+                from None
+    try:
+        alts = tuple(Alternative(_num(a["thickness_nm"], "alternatives"),
+                                 _num(a["chisqr"], "alternatives"),
+                                 _num(a["redchi"], "alternatives"))
+                     for a in d.get("alternatives") or ())
+    except (KeyError, TypeError):
+        raise RecipeError("alternatives", "each must hold thickness_nm, chisqr, redchi") \
+            from None
+    matrix = lambda k: None if d.get(k) is None else np.array(  # noqa: E731
+        [[np.nan if x is None else x for x in row] for row in d[k]], dtype=float)
+    kw = dict(success=bool(d.get("success")), aborted=bool(d.get("aborted")),
+              message=str(d.get("message", "")), params=params,
+              var_names=tuple(d.get("var_names") or ()), covar=matrix("covar"),
+              correl=matrix("correl"), chisqr=_num(d["chisqr"], "chisqr"),
+              redchi=_num(d["redchi"], "redchi"), ndata=int(d["ndata"]),
+              nvarys=int(d["nvarys"]), nfev=int(d["nfev"]),
+              elapsed_s=_num(d.get("elapsed_s", 0.0), "elapsed_s"), wavelength_nm=wl,
+              used=used, quantity=str(d.get("quantity", "T")), optical=optical,
+              alternatives=alts, band_gap=gap, warnings=tuple(d.get("warnings") or ()),
+              stack=dict(d.get("stack") or {}), method=str(d.get("method", "")),
+              spectrum=dict(d.get("spectrum") or {}), extra=dict(d.get("extra") or {}),
+              **arrays)
+    # Fields added later pass through when they are plain text (a verdict and its
+    # reasons); structured records this function cannot rebuild are left at their
+    # defaults rather than handed on as bare dicts.
+    for f in fields(FitResult):
+        if f.name in kw or f.name not in d:
+            continue
+        v = d[f.name]
+        if isinstance(v, str):
+            kw[f.name] = v
+        elif isinstance(v, list) and all(isinstance(x, str) for x in v):
+            kw[f.name] = tuple(v)
+    return FitResult(**kw)
+
+
 def save_project(project: Project, path) -> Path:
-    """Write a project file atomically; spectrum paths become relative where possible."""
+    """Write a project file atomically; file paths become relative where possible."""
     path = Path(path)
     d = project.to_dict(base=path.resolve().parent)
     return atomic_write_text(path, json.dumps(d, indent=2, ensure_ascii=False,

@@ -599,3 +599,187 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
             _footer(fig, footer, n, len(pages))
             pdf.savefig(fig)
     return atomic_write_bytes(pdf_path, buf.getvalue())
+
+
+# -- the report of one fit ------------------------------------------------------------
+_FIT_PARAM_ROWS = 34       # parameter rows on the first page; more continue on page 2
+
+
+def _param_cells(p) -> tuple[str, str, str, str]:
+    value = f"{p.value:.6g}"
+    if p.expr:
+        sd = f"= {p.expr}"
+    elif not p.vary:
+        sd = "fixed"
+    elif p.stderr is not None and math.isfinite(p.stderr):
+        sd = f"{p.stderr:.3g}"
+    else:
+        sd = "not estimated"
+    if p.at_bound:
+        sd += "  AT BOUND"
+    return p.name, value, sd, p.unit
+
+
+def _fit_text_page(fig, result, info, provenance, params):
+    """Headline, statistics, warnings, provenance and the parameter table."""
+    fig.text(0.06, 0.955, "Pellucid fit report", fontsize=17, weight="bold")
+    name = (result.spectrum or {}).get("name") or info["input_file"] or "spectrum"
+    fig.text(0.06, 0.93, _short(str(name), 80), fontsize=10, color="#333333")
+    try:
+        d, sd = result.thickness()
+        head = f"thickness {_pm(_num(d), _num(sd))} nm"
+        layer_name = next((k[: -len("_thickness")] for k in result.params
+                           if k.endswith("_thickness")), "film")
+        head += f"   ({layer_name}, ± 1σ)"
+    except KeyError:
+        head = "no film layer"
+    fig.text(0.06, 0.895, head, fontsize=15, weight="bold")
+    status = "converged" if result.success else "did NOT converge"
+    if result.aborted:
+        status = "stopped before it finished"
+    verdict = getattr(result, "verdict", None)
+    y = 0.865
+    if verdict:
+        reasons = "; ".join(getattr(result, "verdict_reasons", ()) or ())
+        fig.text(0.06, y, _clip(f"verdict: {verdict}" + (f" ({reasons})" if reasons else ""),
+                                110), fontsize=9, weight="bold")
+        y -= 0.02
+    why = "" if result.message.strip().lower() == status else f": {_clip(result.message, 90)}"
+    stats = [("fit", f"{status}{why}"),
+             ("goodness", f"χ² = {result.chisqr:.4g}, reduced χ² = {result.redchi:.4g} "
+                          f"({result.ndata} points, {result.nvarys} fitted parameters)"),
+             ("work", f"{result.method or '–'}, {result.nfev} model evaluations, "
+                      f"{result.elapsed_s:.1f} s")]
+    if result.band_gap is not None:
+        g = result.band_gap
+        stats.append(("band gap", f"{g.Eg_eV:.3f} ± {g.sigma_eV:.3f} eV (Tauc, "
+                                  f"{g.transition} transition)"))
+    if result.alternatives:
+        stats.append(("other thicknesses", ", ".join(f"{a.thickness_nm:.0f} nm (χ²_red "
+                                                     f"{a.redchi:.3g})"
+                                                     for a in result.alternatives[:5])))
+    for k, v in stats:
+        fig.text(0.06, y, k, fontsize=8.5, color="#555555")
+        fig.text(0.22, y, v, fontsize=8.5)
+        y -= 0.018
+    y -= 0.008
+    warnings = list(result.warnings)
+    fig.text(0.06, y, "Warnings" if warnings else "Warnings: none", fontsize=10,
+             weight="bold")
+    y -= 0.02
+    shown = 0
+    for w in warnings:
+        lines = textwrap.wrap(str(w), 110)
+        if shown + len(lines) > 12:
+            fig.text(0.08, y, f"… {len(warnings)} warnings in all; see the text report",
+                     fontsize=7.5, color="#666666")
+            y -= 0.016
+            break
+        fig.text(0.065, y, "•", fontsize=7.8, va="top")
+        fig.text(0.08, y, "\n".join(lines), fontsize=7.8, va="top", linespacing=1.3)
+        y -= 0.0135 * len(lines) + 0.004
+        shown += len(lines)
+    y -= 0.01
+    fig.text(0.06, y, "Provenance", fontsize=10, weight="bold")
+    y -= 0.02
+    prov_rows = [("software", info["software"]), ("recipe hash", info["recipe_hash"] or "–"),
+                 ("input file", _short(info["input_file"] or "–", 90)),
+                 ("input SHA-256", info["input_sha256"] or "–"), ("created", info["created"])]
+    prov_rows += [(str(k).replace("_", " "), _clip(v, 95)) for k, v in provenance.items()
+                  if k not in ("software", "recipe_hash", "input_file", "input_sha256",
+                               "created") and v not in (None, "")]
+    for k, v in prov_rows:
+        fig.text(0.06, y, k, fontsize=7.8, color="#555555")
+        fig.text(0.22, y, str(v), fontsize=7.8, family=_MONO if "hash" in k or "SHA" in k
+                 else None)
+        y -= 0.016
+    y -= 0.012
+    return _fit_param_table(fig, y, params, "Parameters")
+
+
+def _fit_param_table(fig, top, params, title):
+    fig.text(0.06, top, title, fontsize=10, weight="bold")
+    y = top - 0.022
+    cols = ((0.06, "left", "parameter"), (0.50, "right", "value"), (0.56, "left", "± 1σ"),
+            (0.84, "left", "unit"))
+    for x, ha, label in cols:
+        fig.text(x, y, label, fontsize=8, color="#555555", ha=ha)
+    y -= 0.004
+    fig.add_artist(_hline(fig, y))
+    y -= 0.016
+    for p in params:
+        for (x, ha, _label), text in zip(cols, _param_cells(p)):
+            fig.text(x, y, _short(text, 52), fontsize=7.8, ha=ha,
+                     family=_MONO if ha == "right" else None,
+                     color=PALETTE["fail"] if "AT BOUND" in text else None)
+        y -= 0.0155
+    return y
+
+
+def _hline(fig, y):
+    from matplotlib.lines import Line2D
+    return Line2D([0.06, 0.94], [y, y], transform=fig.transFigure, color="#999999", lw=0.6)
+
+
+def write_fit_report(result, pdf_path, *, provenance: Mapping | None = None) -> Path:
+    """Write the report of one fit as a PDF (atomically) and return its path.
+
+    Page 1 holds the headline (first film's thickness ± 1σ), the fit status,
+    χ² and reduced χ², the verdict when the result carries one, every warning,
+    the provenance and the parameter table. Page 2 holds the measured and
+    fitted spectrum with residuals (:func:`fitting.plots.fit_figure`) and, when
+    the stack has a film, n and κ with their 1σ bands
+    (:func:`fitting.plots.optical_figure`). Parameters that do not fit on page 1
+    continue on a page of their own. Every page carries the provenance footer
+    (:func:`fitting.export.provenance_footer`) and "page i of N".
+
+    Parameters
+    ----------
+    result : FitResult
+    pdf_path : path
+        Replaced only once the new file is complete.
+    provenance : dict, optional
+        From :func:`fitting.export.make_provenance` (software, recipe hash, input
+        file and SHA-256, creation time); further keys are listed too.
+    """
+    from .plots import optical_figure
+    prov = dict(provenance or {})
+    spec = dict(result.spectrum or {})
+    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    info = {"software": prov.get("software") or f"pellucid {__version__}",
+            "recipe_hash": prov.get("recipe_hash") or "",
+            "input_file": prov.get("input_file") or spec.get("source") or "",
+            "input_sha256": prov.get("input_sha256") or spec.get("sha256") or "",
+            "created": created}
+    footer = provenance_footer({**prov, **info})
+    params = list(result.params.values())
+    first, rest = params[:_FIT_PARAM_ROWS], params[_FIT_PARAM_ROWS:]
+    pages: list[tuple[bool, Callable[[Figure], None]]] = [
+        (False, lambda fig: _fit_text_page(fig, result, info, prov, first))]
+    for start in range(0, len(rest), 50):
+        pages.append((False, lambda fig, chunk=rest[start:start + 50]: _fit_param_table(
+            fig, 0.955, chunk, "Parameters (continued)")))
+
+    def figures(fig):
+        ratios = (5, 6) if result.optical else (5,)
+        subs = _panels(fig, "Fit and optical constants" if result.optical else "Fit", ratios)
+        fit_figure(result, fig=subs[0])
+        if result.optical:
+            optical_figure(result, fig=subs[1])
+    pages.append((True, figures))
+
+    name = spec.get("name") or Path(info["input_file"]).stem or "spectrum"
+    meta = {"Title": f"Pellucid fit report: {name}", "Creator": info["software"],
+            "Subject": f"recipe_hash={info['recipe_hash']}; "
+                       f"input_sha256={info['input_sha256']}; created={created}"}
+    buf = io.BytesIO()
+    with PdfPages(buf, metadata=meta) as pdf:
+        for n, (constrained, draw) in enumerate(pages, start=1):
+            fig = _page(constrained)
+            draw(fig)
+            _footer(fig, footer, n, len(pages))
+            pdf.savefig(fig)
+    return atomic_write_bytes(Path(pdf_path), buf.getvalue())
+
+
+__all__.append("write_fit_report")      # kept beside the function it names

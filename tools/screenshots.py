@@ -4,8 +4,11 @@
 
 States: ``empty`` (just started), ``loaded`` (a demo spectrum with its recipe and a
 masked window, the live model curve), ``fitted`` (after Fit: summary), ``optical``
-(n, κ, α tab), ``tauc`` (Tauc tab), ``correlation`` (heat map), ``batch`` (batch dialog after a small run),
-``import`` (the import preview) and ``dark`` (fitted, dark theme). Uses the
+(n, κ, α tab), ``tauc`` (Tauc tab), ``correlation`` (heat map), ``stale`` (the model
+changed after the fit: the result is marked out of date), ``export`` (the export
+dialog), ``batch`` (batch dialog after a small run), ``import`` (the import preview),
+``counts`` (the preview of raw detector counts, asking for the 100 % line) and
+``dark`` (fitted, dark theme). Uses the
 synthetic spectra in ``demo_data/`` (invented scenario). Each PNG is written with
 an adaptive palette if Pillow is installed, so it stays well below 300 kB.
 """
@@ -43,11 +46,12 @@ def _save(widget, path: Path) -> Path:
 
 
 def _settle(app, qtbot_ms: int = 200):
+    """Let the event loop run for a while (a QEventLoop: PySide6 6.12 mishandles
+    ``processEvents()`` called from Python many times)."""
     from PySide6.QtCore import QEventLoop, QTimer
     loop = QEventLoop()
     QTimer.singleShot(qtbot_ms, loop.quit)
     loop.exec()
-    app.processEvents()
 
 
 def _wait(app, cond, timeout_s: float = 120.0):
@@ -57,6 +61,12 @@ def _wait(app, cond, timeout_s: float = 120.0):
         if time.monotonic() - t0 > timeout_s:
             raise TimeoutError("the app did not reach the expected state in time")
         _settle(app, 50)
+
+
+def _drawn(win):
+    """True when the plot and the result tab on show are drawn."""
+    tab = win.results.currentWidget()
+    return not win.plot.pending and not getattr(tab, "busy", False)
 
 
 def main(argv=None) -> int:
@@ -98,20 +108,44 @@ def main(argv=None) -> int:
         _wait(app, lambda: win.fit_job is not None and not win.fit_job.is_running()
               and win.session.result is not None)
         _settle(app, 600)
+        _wait(app, lambda: _drawn(win))
         written.append(_save(win, out / "fitted.png"))
         for name, tab in (("optical", win.results.optical_tab),
                           ("tauc", win.results.tauc_tab),
                           ("correlation", win.results.corr_tab)):
             win.results.setCurrentWidget(tab)
-            _settle(app, 600)
+            _settle(app, 300)
+            _wait(app, lambda t=tab: t.figure is not None and not t.busy)
+            _settle(app, 300)
             written.append(_save(win, out / f"{name}.png"))
         win.results.setCurrentIndex(0)
+
+        # The technician tries another model: the result says it is out of date.
+        win.session.set_layer_model(0, "cauchy")
+        _settle(app, 400)
+        _wait(app, lambda: _drawn(win))
+        written.append(_save(win, out / "stale.png"))
+        win.act_undo.trigger()
+        _settle(app, 400)
+
+        from app.export_dialog import ExportDialog
+        dlg = ExportDialog(str(tmp / "exports"), settings, win)
+        dlg.show()
+        _settle(app, 300)
+        written.append(_save(dlg, out / "export.png"))
+        dlg.close()
 
         from app.import_dialog import ImportDialog
         dlg = ImportDialog(ROOT / "demo_data" / "spectra" / "PL2-T-0102.csv", parent=win)
         dlg.show()
         _settle(app, 300)
         written.append(_save(dlg, out / "import.png"))
+        dlg.close()
+        refs = ROOT / "demo_data" / "references"
+        dlg = ImportDialog(refs / "PL2-T-0115_raw_counts.txt", parent=win)
+        dlg.show()
+        _settle(app, 300)
+        written.append(_save(dlg, out / "counts.png"))
         dlg.close()
 
         spectra = tmp / "spectra"
@@ -131,8 +165,10 @@ def main(argv=None) -> int:
         apply_theme(app, "dark")
         win.set_theme("dark")
         _settle(app, 600)
+        _wait(app, lambda: _drawn(win))
         written.append(_save(win, out / "dark.png"))
         win.shutdown_jobs()
+        win.session.mark_saved()
         win.close()
     finally:
         shutil.rmtree(tmp, ignore_errors=True)

@@ -30,6 +30,27 @@ def demo_csv(tmp_path):
     return synthetic_spectrum(tmp_path / "demo_film.csv")
 
 
+@pytest.fixture(autouse=True)
+def no_unexpected_modal(monkeypatch):
+    """A modal dialog no test answers would wait forever: fail at once and name it.
+
+    Tests that expect a dialog patch its ``exec`` (or use ``dialogs`` for message
+    boxes), which overrides this guard.
+    """
+    from PySide6.QtWidgets import QDialog, QFileDialog, QMessageBox
+
+    def refuse(self):
+        raise AssertionError(f"unexpected modal dialog {type(self).__name__}: "
+                             f"{self.windowTitle()!r}")
+
+    monkeypatch.setattr(QDialog, "exec", refuse)
+    monkeypatch.setattr(QMessageBox, "exec", refuse)
+    for name in ("getOpenFileName", "getSaveFileName", "getExistingDirectory"):
+        monkeypatch.setattr(QFileDialog, name, staticmethod(
+            lambda *a, _n=name, **k: refuse(type("QFileDialog", (), {
+                "windowTitle": lambda self: _n})())))
+
+
 @pytest.fixture
 def dialogs(monkeypatch):
     """Record QMessageBox texts instead of blocking; returns the list of records."""
@@ -60,3 +81,5 @@ def window(qtbot, settings, dialogs):
     w.show()
     yield w
     w.shutdown_jobs()
+    w.session.mark_saved()        # close without the "Save changes?" question
+    w.close()

@@ -48,7 +48,7 @@ def test_import_dialog_shows_lines_detection_and_applies_corrections(qtbot, tmp_
     assert not dlg.buttons.button(dlg.buttons.StandardButton.Ok).isEnabled()
 
 
-def test_open_with_preview_uses_the_corrected_options(window, monkeypatch, tmp_path):
+def test_open_with_preview_uses_the_corrected_options(window, monkeypatch, tmp_path, qtbot):
     from app.import_dialog import ImportDialog
 
     def accept(self):
@@ -61,6 +61,7 @@ def test_open_with_preview_uses_the_corrected_options(window, monkeypatch, tmp_p
     assert window.session.spectrum.quantity == "R"
     assert window.session.reader_options.y_kind == "R_fraction"
     assert not window._preview_every_time()          # remembered in settings
+    qtbot.waitUntil(lambda: not window.plot.pending)
     assert "Reflectance" in window.plot.ax.get_ylabel()
 
 
@@ -75,8 +76,14 @@ def test_reference_correction_of_demo_counts():
 
 
 def test_reference_dialog_in_the_window(window, monkeypatch):
+    from app.import_dialog import ImportDialog
     from app.reference_dialog import ReferenceDialog
-    assert window.open_spectrum(REFS / "PL2-T-0115_raw_counts.txt")
+    from fitting.reader import ReaderOptions
+    # A T file that is really a raw signal: the reference dialog ratios it (read as counts).
+    monkeypatch.setattr(ImportDialog, "exec", lambda self: ImportDialog.Rejected)
+    assert window.open_spectrum(REFS / "PL2-T-0115_raw_counts.txt",
+                                options=ReaderOptions(y_kind="T_fraction"))
+    assert window.session.spectrum.values.max() > 100          # not a transmittance yet
 
     def accept(self):
         self.baseline.setText(str(REFS / "baseline_100pct.txt"))
@@ -86,7 +93,9 @@ def test_reference_dialog_in_the_window(window, monkeypatch):
     monkeypatch.setattr(ReferenceDialog, "exec", accept)
     window.reference_correction()
     assert window.session.spectrum.values.max() < 1.0
+    assert window.session.reference["baseline"].endswith("baseline_100pct.txt")
     assert "Reference correction applied" in window.statusBar().currentMessage()
+    assert "Reference-corrected" in window.spectrum_panel.info.text()
 
 
 def test_reference_dialog_refuses_mismatched_files(window, monkeypatch, dialogs, demo_csv):

@@ -1,10 +1,13 @@
-"""The main window driven like a technician would: open, build, fit, judge, export, save."""
+"""The main window driven like a technician would: open, build, fit, judge, export, save.
+
+Every wait is on a signal or a condition (qtbot.waitSignal / waitUntil), never a fixed
+sleep or a wall-clock threshold: the machine may be loaded (speed is measured by
+``python -m app.bench``, not here).
+"""
 
 import json
-import time
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 pytest.importorskip("PySide6")
@@ -14,10 +17,17 @@ from tests.app.conftest import synthetic_spectrum  # noqa: E402
 
 
 def _fit(window, qtbot, timeout=30000):
-    with qtbot.waitSignal(window.session.result_changed, timeout=timeout):
-        assert window.start_fit()
-    qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=timeout)
-    qtbot.wait(20)
+    """Start a fit and wait until the window has handled its end (job ``done``)."""
+    ended = []
+    assert window.start_fit()
+    window.fit_job.done.connect(lambda: ended.append(True))
+    qtbot.waitUntil(lambda: bool(ended), timeout=timeout)
+
+
+def _shown(tab, qtbot):
+    """Wait until a result tab shows its figure (drawn in a worker thread)."""
+    qtbot.waitUntil(lambda: tab.figure is not None and not tab.busy, timeout=30000)
+    return tab.figure
 
 
 def test_empty_window_explains_first_step(window):
@@ -36,9 +46,9 @@ def test_open_fit_and_read_result(window, qtbot, demo_csv):
     assert model is not None and model.shape == s.values.shape
     assert window.fit_panel.fit_button.isEnabled()
 
-    qtbot.mouseClick(window.fit_panel.fit_button, Qt.LeftButton)
-    qtbot.waitUntil(lambda: window.session.result is not None, timeout=30000)
-    qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=30000)
+    with qtbot.waitSignal(window.session.result_changed, timeout=30000):
+        qtbot.mouseClick(window.fit_panel.fit_button, Qt.LeftButton)
+    qtbot.waitUntil(lambda: not window.fit_panel.cancel_button.isEnabled(), timeout=30000)
     r = window.session.result
     d, sd = r.thickness()
     # Synthetic data were made with 650 nm (invented demo film); the fit must find it.
@@ -55,11 +65,12 @@ def test_open_fit_and_read_result(window, qtbot, demo_csv):
     assert sigma_cell != ""
     # Correlations tab has a heat map with one row/column per varied parameter.
     window.results.setCurrentWidget(window.results.corr_tab)
-    ax = window.results.corr_tab.figure.axes[0]
+    ax = _shown(window.results.corr_tab, qtbot).axes[0]
     assert ax.images and ax.images[0].get_array().shape == (r.nvarys, r.nvarys)
+    assert not window.results.corr_tab.image.pixmap().isNull()
     # n, κ, α tab drew three panels.
     window.results.setCurrentWidget(window.results.optical_tab)
-    assert len(window.results.optical_tab.figure.axes) >= 3
+    assert len(_shown(window.results.optical_tab, qtbot).axes) >= 3
 
 
 def test_broken_file_is_refused_with_a_dialog(window, dialogs, tmp_path):
@@ -144,6 +155,7 @@ def test_mask_drag_axis_and_cursor(window, qtbot, demo_csv):
     plot.mask_button.setChecked(True)
     plot._on_span(600.0, 650.0)          # what the SpanSelector calls after a drag
     assert window.session.masks == [(600.0, 650.0)]
+    qtbot.waitUntil(lambda: not plot.pending)
     assert window.fit_panel.mask_list.count() == 1
     assert "not fitted" in [t.get_text() for t in plot.ax.get_legend().get_texts()]
     plot.set_axis("eV")
@@ -177,33 +189,33 @@ def _open_slow_setup(window, tmp_path):
 
 
 def test_fit_cancel_and_gui_stays_responsive(window, qtbot, tmp_path):
+    """The event loop keeps running while a fit runs, and Esc stops the fit.
+
+    Judged by events, not by the clock: a 20 ms heartbeat must tick many times while
+    the fit thread is still busy (a frozen GUI ticks not at all), and after Esc the job
+    must end with an aborted result. How long the GUI stalls is measured by
+    ``python -m app.bench``.
+    """
     s = _open_slow_setup(window, tmp_path)
-    qtbot.wait(300)                      # let the pending plot redraw happen first
+    qtbot.waitUntil(lambda: not window.plot.pending)      # the plot's redraw is done
     ticks = []
     timer = QTimer()
     timer.setInterval(20)
-    timer.timeout.connect(lambda: ticks.append(time.monotonic()))
-    timer.start()
+    timer.timeout.connect(lambda: ticks.append(window.fit_job.is_running()))
     assert window.start_fit()
     ended = []
-    window.fit_job.done.connect(lambda: ended.append(time.monotonic()))
-    assert not window.stack_panel.isEnabled() or not window.boxes[1].isEnabled()
-    qtbot.wait(1500)
-    assert window.fit_job.is_running()
+    window.fit_job.done.connect(lambda: ended.append(True))
+    timer.start()
+    assert not window.boxes[1].isEnabled()
+    # A progress report arrives through the event loop, then beats go on while it runs.
+    with qtbot.waitSignal(window.fit_job.progress, timeout=30000):
+        pass
+    qtbot.waitUntil(lambda: sum(ticks) >= 15, timeout=30000)
+    assert window.fit_job.is_running() and not ended
     assert window.fit_panel.cancel_button.isEnabled()
-    t0 = time.monotonic()
     qtbot.keyClick(window, Qt.Key_Escape)
-    qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=10000)
-    stop_s = time.monotonic() - t0
-    qtbot.waitUntil(lambda: bool(ended), timeout=10000)
+    qtbot.waitUntil(lambda: bool(ended), timeout=30000)
     timer.stop()
-    # Only while the fit thread ran: drawing the result afterwards is GUI work.
-    running = [t for t in ticks if t < ended[0]]
-    gaps = np.diff(running)
-    # 1.5 s at 20 ms is 75 ticks; a loaded CI machine gets fewer, a frozen GUI none.
-    assert len(running) > 30, np.round(gaps, 3)
-    assert gaps.max() < 0.25, np.round(gaps, 3)
-    assert stop_s < 5.0
     r = s.result
     assert r is not None and r.aborted
     assert "stopped" in window.results.headline.text()
@@ -406,9 +418,10 @@ def test_no_edits_while_a_fit_runs(window, qtbot, tmp_path):
     assert not window.start_fit()                       # a second fit is refused
     assert not window.open_spectrum(path)               # so is opening a file
     assert "cancel it (Esc)" in window.statusBar().currentMessage()
+    ended = []
+    window.fit_job.done.connect(lambda: ended.append(True))
     window.cancel()
-    qtbot.waitUntil(lambda: not window.fit_job.is_running(), timeout=10000)
-    qtbot.wait(50)
+    qtbot.waitUntil(lambda: bool(ended), timeout=30000)
     assert window.act_undo.isEnabled() and window.act_fit.isEnabled()
 
 
@@ -431,10 +444,11 @@ def test_roughness_layer_follows_the_film(window, qtbot, demo_csv):
     assert "Ties removed" in window.statusBar().currentMessage()
 
 
-def test_mask_by_real_mouse_drag_and_right_click(window, demo_csv):
+def test_mask_by_real_mouse_drag_and_right_click(window, demo_csv, qtbot):
     from matplotlib.backend_bases import MouseEvent
     window.open_spectrum(demo_csv)
     plot = window.plot
+    qtbot.waitUntil(lambda: not plot.pending)
     plot.canvas.draw()
     plot.mask_button.setChecked(True)
     canvas, ax = plot.canvas, plot.ax
@@ -464,10 +478,9 @@ def test_batch_can_be_cancelled_and_resumed(window, qtbot, tmp_path):
     dlg = window.batch()
     dlg.input_edit.setText(str(src))
     dlg.output_edit.setText(str(tmp_path / "out"))
-    assert dlg.start()
-    dlg.job.stepped.connect(lambda _s: dlg.cancel())      # stop after the first spectrum
-    qtbot.waitUntil(lambda: not dlg.is_running(), timeout=60000)
-    qtbot.wait(50)
+    with qtbot.waitSignal(dlg.finished_run, timeout=60000):
+        assert dlg.start()
+        dlg.job.stepped.connect(lambda _s: dlg.cancel())  # stop after the first spectrum
     assert dlg.summary is not None and dlg.summary.stopped
     done = dlg.table.rowCount()
     assert 1 <= done < 4
@@ -496,8 +509,15 @@ def test_file_dialog_paths_save_recipe_project_and_export(window, qtbot, demo_cs
     window.export_dialog()                                # nothing to export yet
     assert dialogs[-1]["title"] == "Nothing to export"
     _fit(window, qtbot)
+    from app.export_dialog import ExportDialog
     monkeypatch.setattr(QFileDialog, "getExistingDirectory",
                         staticmethod(lambda *a, **k: str(tmp_path / "exports")))
+
+    def choose(self):
+        self._browse()                                    # the Browse… button's path
+        return ExportDialog.Accepted
+
+    monkeypatch.setattr(ExportDialog, "exec", choose)
     window.export_dialog()
     assert dialogs[-1]["title"] == "Export done"
     assert any(p.suffix == ".png" for p in (tmp_path / "exports").iterdir())
