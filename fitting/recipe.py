@@ -140,9 +140,10 @@ Two hashes identify a recipe:
   ``pellucid batch --resume``. It covers everything that can change a result:
   the models and their kinds, every bound, the fixed/varied flags, the values of
   fixed parameters, ties, which layers are known and all their values (a
-  known layer's table numbers included; its ``source`` is left out), the substrate and media, non-uniformity and bandwidth,
-  the reader, the fit window, masks and options, the limits, the outputs and
-  the *content* (SHA-256) of the reference files. It leaves out the name, the
+  known layer's table numbers included; its ``source`` is left out), the
+  substrate and media, non-uniformity and bandwidth, the reader, the fit
+  window, masks and options, the limits, the outputs and the *content*
+  (SHA-256) of the reference files. It leaves out the name, the
   notes, the location of the reference files and the start values of varied
   parameters: the automatic start finds its own starting point from the data,
   so one interactive fit that moved the start values does not make a resumed
