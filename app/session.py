@@ -361,7 +361,7 @@ class Session(QObject):
 
         def apply():
             layer.name = name
-            for p in self.stack.parameters().values():   # ties follow the new name
+            for p in self.stack.parameters(live=True).values():   # ties follow the new name
                 if p.expr:
                     p.expr = pattern.sub(f"{name}_", p.expr)
 

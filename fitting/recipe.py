@@ -7,13 +7,14 @@ which exports to write. It is plain JSON: readable, diffable, and free of code
 (models are rebuilt through the registry in :mod:`fitting.dispersion`; nothing
 is pickled or evaluated).
 
-File format ``pellucid-recipe``, version 1
+File format ``pellucid-recipe``, version 2
 ------------------------------------------
 ::
 
     {
       "format": "pellucid-recipe",          # required, exactly this string
-      "version": 1,                         # required; 0 is upgraded on load
+      "version": 2,                         # required; 1 if no layer is known
+                                            #   (see "Versions" below)
       "name": "ITO on glass, line 3",       # free text
       "notes": "",                          # free text
       "stack": { ... },                     # Stack.to_dict(): ambient, layers,
@@ -56,6 +57,32 @@ and the substrate is ``{"library": "fused_silica", "thickness_mm": 1.0}`` or
 ``{"material": {...}, "thickness_mm": ...}``. Model kinds and their parameters
 are those of :data:`fitting.dispersion.MODEL_KINDS`; ``null`` bounds are open.
 
+A *known* layer (measured earlier; held as a whole by every fit, see
+:class:`fitting.stack.Layer`) adds ``"known": true``; its thickness value is
+required. Its material is usually the n, κ table of an earlier result, either
+named by file (read from the recipe's folder when relative, checked and
+embedded on load, see :func:`fitting.known.embed_table_files`)::
+
+    {"name": "barrier", "known": true,
+     "material": {"kind": "tabulated", "file": "barrier_nk.csv"},
+     "thickness": {"value": 98.2}}        # left out: taken from the result JSON
+                                          #   beside an exported table
+
+or embedded, which is how Pellucid saves it, so that a recipe saved beside batch
+results needs no other file::
+
+    {"name": "barrier", "known": true,
+     "material": {"kind": "tabulated", "name": "barrier_nk.csv",
+                  "wavelength_nm": [350.0, ...], "n": [1.66, ...], "k": [0.0, ...]},
+     "thickness": {"value": 98.2, "min": 0.0, "max": 50000.0, "vary": false},
+     "source": {"file": "barrier_nk.csv", "sha256": "3f1c...", "layer": "barrier",
+                "fit": {"software": ..., "input_file": ..., "input_sha256": ...},
+                "thickness": {"value": 98.2, "from": "s017_result.json", ...}}}
+
+``source`` (optional, any layer) is provenance only: where the values came
+from. A known layer's own fit flags and ties are kept but not applied; a tie
+in another layer may refer to a known layer's parameters.
+
 Each parameter in the stack is ``{"value", "min", "max", "vary"}`` plus an
 optional ``"expr"``: an lmfit constraint tying it to other parameters by their
 global names (``film2_thickness = "2 * film1_thickness"``). Ties are checked
@@ -74,6 +101,12 @@ Limit keys are result quantities:
 
 A limit is either ``{"target": x, "tol": t}`` (t > 0) or ``{"min": a, "max": b}``
 with at least one of the two.
+
+Versions. A recipe is saved with the lowest version that holds it: version 2
+only when a layer carries ``known`` or ``source`` (added in version 2), else
+version 1, so recipes without known layers keep their bytes and hashes. Version
+1 files load unchanged; an older Pellucid refuses a version 2 file with "newer
+than this Pellucid understands" instead of misreading it.
 
 Version 0 (earlier layout, upgraded automatically by :func:`upgrade`): no
 ``reader``, ``limits`` or ``outputs`` sections; each layer had a flat
@@ -106,9 +139,11 @@ Two hashes identify a recipe:
 * :func:`recipe_identity` decides whether an earlier result may be reused by
   ``pellucid batch --resume``. It covers everything that can change a result:
   the models and their kinds, every bound, the fixed/varied flags, the values of
-  fixed parameters, ties, the substrate and media, non-uniformity and bandwidth,
-  the reader, the fit window, masks and options, the limits, the outputs and
-  the *content* (SHA-256) of the reference files. It leaves out the name, the
+  fixed parameters, ties, which layers are known and all their values (a
+  known layer's table numbers included; its ``source`` is left out), the
+  substrate and media, non-uniformity and bandwidth, the reader, the fit
+  window, masks and options, the limits, the outputs and the *content*
+  (SHA-256) of the reference files. It leaves out the name, the
   notes, the location of the reference files and the start values of varied
   parameters: the automatic start finds its own starting point from the data,
   so one interactive fit that moved the start values does not make a resumed
@@ -132,6 +167,7 @@ from typing import Any, Mapping
 
 from .atomic import atomic_write_text
 from .errors import PellucidError, RecipeError
+from .known import embed_table_files
 from .stack import Stack
 
 __all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", "recipe_hash",
@@ -140,7 +176,10 @@ __all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", 
            "MAX_NUMBER", "MAX_DEPTH"]
 
 FORMAT = "pellucid-recipe"
-VERSION = 1
+#: Newest format version this build reads and writes. A recipe is saved with the lowest
+#: version that holds its content (1 unless a layer is known or has a source), so
+#: recipes without known layers keep their bytes and hashes.
+VERSION = 2
 
 #: Per-spectrum exports a recipe may ask for: n/κ tables, measured-vs-fitted curves,
 #: the full JSON result, the text report and the figures (see fitting.export).
@@ -670,8 +709,9 @@ class Recipe:
 
     # -- persistence ---------------------------------------------------------------
     def to_dict(self) -> dict:
-        return {"format": FORMAT, "version": VERSION, "name": self.name, "notes": self.notes,
-                "stack": self.stack.to_dict(), "reader": dict(self.reader),
+        stack = self.stack.to_dict()
+        return {"format": FORMAT, "version": _version_needed(stack), "name": self.name,
+                "notes": self.notes, "stack": stack, "reader": dict(self.reader),
                 "fit": {"range_nm": list(self.range_nm),
                         "masks_nm": [list(m) for m in self.masks_nm],
                         "options": dict(self.fit_options)},
@@ -687,6 +727,12 @@ class Recipe:
 
     def hash(self) -> str:
         return recipe_hash(self)
+
+
+def _version_needed(stack: dict) -> int:
+    """Lowest format version that holds this stack dict: 2 for known layers or sources."""
+    new = any("known" in ld or "source" in ld for ld in stack.get("layers", []))
+    return 2 if new else 1
 
 
 def _reference_section(ref):
@@ -784,6 +830,8 @@ def recipe_from_dict(d: Mapping, *, path=None, source_dir=None) -> Recipe:
             raise RecipeError(sorted(extra)[0], "unknown field")
         if "stack" not in d:
             raise RecipeError("stack", "is missing")
+        # Table files named by layers are read (from the recipe's folder) and embedded.
+        d["stack"] = embed_table_files(d["stack"], source_dir, where="stack")
         # Ties are checked for syntax before anything else touches the data.
         for w, expr in _walk_exprs(d["stack"], "stack"):
             validate_expression(expr, _ANY_NAME, field_name=w)
@@ -877,10 +925,15 @@ def recipe_identity(recipe, reference_sha256: Mapping | None = None) -> str:
     for key in ("name", "notes"):
         d.pop(key, None)
     for layer in d["stack"]["layers"]:
+        # Where a known table came from is provenance; its numbers are the model.
+        layer.pop("source", None)
+        if layer.get("known"):
+            continue               # every value of a known layer is part of the model
         params = [layer["thickness"], *layer["material"].get("params", {}).values()]
         for p in params:
             if isinstance(p, dict) and p.get("vary") is True and not p.get("expr"):
                 p.pop("value", None)            # a start value, not part of the model
+    d["version"] = _version_needed(d["stack"])   # a source alone changes no result
     if "reference" in d:
         d["reference"] = dict(reference_sha256 or {"files": "unhashed"})
     d["identity"] = "pellucid-recipe-identity-1"

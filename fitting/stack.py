@@ -19,15 +19,23 @@ quadrature nodes:
 
 Global parameter names are ``{layer}_{param}``, e.g. ``film_thickness``,
 ``film_A``, ``film_o1_E0``.
+
+A layer can be *known* as a whole (``Layer(..., known=True)``): a film measured
+earlier, whose thickness and optical constants every fit holds while it fits
+the others. :meth:`Stack.parameters` hands a fit held copies of its parameters,
+so the fit engine needs no notion of it; :mod:`fitting.known` loads such a
+layer from an earlier result's n, κ export.
 """
 
 from __future__ import annotations
 
 import copy
 import functools
+import json
 import math
 import re
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Mapping
 
 import numpy as np
@@ -39,9 +47,11 @@ from .optics import films_RT, outer_media
 from .params import PARAM_FIELDS, Param, check_finite, refuse_unknown_fields
 from .substrates import Substrate
 
-__all__ = ["Layer", "Stack", "StackModel", "POLARIZATIONS"]
+__all__ = ["Layer", "Stack", "StackModel", "POLARIZATIONS", "LAYER_FIELDS"]
 
 POLARIZATIONS = ("s", "p", "u")
+#: Fields of a saved layer ("known" and "source" only when used).
+LAYER_FIELDS = ("name", "material", "thickness", "known", "source")
 _NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9]*$")
 
 # 7-point Gauss-Hermite nodes/weights for E[f(x)], x ~ N(0, 1).
@@ -78,14 +88,49 @@ def _slit_rule(m: int = 6):
 _SLIT_U, _SLIT_W = _slit_rule()
 
 
+def _medium(m: Dispersion) -> str:
+    """Ambient or exit medium in words: "air (n = 1)", "n = 1.33", or the model."""
+    if isinstance(m, Constant):
+        n, k = m.params["n"].value, m.params["k"].value
+        if n == 1 and k == 0:
+            return "air (n = 1)"
+        return f"n = {n:g}" + (f", κ = {k:g}" if k else "")
+    return m.describe()
+
+
 @dataclass
 class Layer:
-    """One coherent film: a name, a material and a thickness parameter (nm)."""
+    """One coherent film: a name, a material and a thickness parameter (nm).
+
+    Parameters
+    ----------
+    name : str
+        Letters and digits, starting with a letter; prefixes the global parameter
+        names (``film_thickness``, ``film_A``).
+    material : Dispersion
+    thickness : Param or float
+        Physical thickness in nm; a number becomes a parameter with bounds
+        [0, max(50 µm, 2d)].
+    known : bool
+        The layer is known as a whole (measured earlier): its thickness and every
+        material parameter are held at their values by every fit, whatever their
+        own fit flags say, and ties *inside* it are suspended (it keeps its stored
+        values). The flags and ties stay stored, so unticking ``known`` restores
+        them. A tie in another layer that refers to a known layer's parameter
+        still works: it reads the held value.
+    source : dict or None
+        Where the layer's values came from (a JSON object; provenance only, it
+        does not change the optics): for a layer loaded from an earlier result's
+        n, κ export, the table file and its SHA-256, the earlier fit's provenance
+        and where the thickness came from (see :mod:`fitting.known`).
+    """
 
     name: str
     material: Dispersion
     thickness: Param = field(default_factory=lambda: Param(
         "thickness", 500.0, 0.0, 50000.0, "nm", "physical film thickness"))
+    known: bool = False
+    source: dict | None = field(default=None, repr=False)
 
     def __post_init__(self):
         if not _NAME_RE.match(self.name or ""):
@@ -100,14 +145,64 @@ class Layer:
         if self.thickness.value < 0:
             raise ParameterError(f"{self.name}_thickness", self.thickness.value,
                                  "thickness must not be negative")
+        if not isinstance(self.known, (bool, np.bool_)):
+            # "false" as text would read as true: refuse instead of guessing.
+            raise ParameterError(f"{self.name} known", self.known, "must be True or False")
+        self.known = bool(self.known)
+        if self.source is not None:
+            if not isinstance(self.source, Mapping):
+                raise ParameterError(f"{self.name} source", self.source,
+                                     "must be a mapping (file, sha256, ...) or None")
+            try:   # a deep, JSON-clean copy: it is saved in recipes as it is
+                self.source = json.loads(json.dumps(dict(self.source), allow_nan=False))
+            except (TypeError, ValueError) as e:
+                raise ParameterError(f"{self.name} source", self.source,
+                                     f"must hold only text, numbers and lists ({e})") from None
 
     @property
     def thickness_nm(self) -> float:
         return self.thickness.value
 
+    def parameters(self, *, live: bool = False) -> dict[str, Param]:
+        """Local parameters (``thickness`` and the material's) as a fit sees them.
+
+        For a known layer these are held copies (``vary=False``, no tie) unless
+        ``live``; otherwise, and always with ``live=True``, the layer's own
+        objects, which an editor may change in place.
+        """
+        out = {"thickness": self.thickness, **self.material.params}
+        if self.known and not live:
+            out = {k: p.copy(vary=False, expr=None) for k, p in out.items()}
+        return out
+
+    def describe(self) -> str:
+        """One line for lists and reports: name, material, thickness, known or fitted."""
+        d = self.thickness
+        text = f"{self.name}: {self.material.describe()}, {d.value:.6g} nm"
+        if self.known:
+            text += ", known (held, not fitted)"
+            tied = [k for k, p in self.parameters(live=True).items() if p.expr]
+            if tied:
+                text += f"; tie on {', '.join(tied)} suspended"
+        else:
+            text += ", thickness fitted" if d.vary and not d.expr else \
+                (f", thickness tied: {d.expr}" if d.expr else ", thickness fixed")
+        src = self.source or {}
+        if src.get("file"):
+            sha = str(src.get("sha256") or "")
+            text += f"; from {Path(str(src['file'])).name}" + (f" (SHA-256 {sha[:12]}…)"
+                                                              if sha else "")
+        return text
+
     def to_dict(self) -> dict:
-        return {"name": self.name, "material": self.material.to_dict(),
-                "thickness": self.thickness.to_dict()}
+        d = {"name": self.name, "material": self.material.to_dict(),
+             "thickness": self.thickness.to_dict()}
+        # Only when used, so stacks without them keep their layout and hash.
+        if self.known:
+            d["known"] = True
+        if self.source is not None:
+            d["source"] = json.loads(json.dumps(self.source))
+        return d
 
 
 @dataclass
@@ -149,21 +244,42 @@ class Stack:
                                  "a relative spread above 0.3 (30 %) is not a film")
 
     # -- parameters -----------------------------------------------------------------
-    def parameters(self) -> dict[str, Param]:
-        """All film parameters by global name ``{layer}_{param}`` (live objects)."""
+    def parameters(self, *, live: bool = False) -> dict[str, Param]:
+        """All film parameters by global name ``{layer}_{param}``, as a fit sees them.
+
+        The layers' own objects, except for a known layer, whose entries are held
+        copies (``vary=False``, no tie: see :class:`Layer`). Editors that change
+        flags or ties in place pass ``live=True`` to get the own objects of every
+        layer; :meth:`set_values` always writes into them.
+        """
         out: dict[str, Param] = {}
         for layer in self.layers:
-            out[f"{layer.name}_thickness"] = layer.thickness
-            for k, p in layer.material.params.items():
+            for k, p in layer.parameters(live=live).items():
                 out[f"{layer.name}_{k}"] = p
         return out
+
+    def known_layers(self) -> list[str]:
+        """Names of the layers marked known (held as a whole by every fit)."""
+        return [layer.name for layer in self.layers if layer.known]
+
+    def describe(self) -> str:
+        """The stack in words, ambient side first, one layer per line."""
+        lines = [f"ambient: {_medium(self.ambient)}"]
+        lines += [f"  {layer.describe()}" for layer in self.layers] or ["  (no films)"]
+        lines.append(f"substrate: {self.substrate.name}, {self.substrate.thickness_mm:g} mm")
+        lines.append(f"exit medium: {_medium(self.exit_medium)}")
+        if self.thickness_spread:
+            lines.append(f"thickness spread: {100 * self.thickness_spread:.3g} % (1σ)")
+        if self.bandwidth_nm:
+            lines.append(f"bandwidth: {self.bandwidth_nm:g} nm")
+        return "\n".join(lines)
 
     def values(self) -> dict[str, float]:
         return {k: p.value for k, p in self.parameters().items()}
 
     def set_values(self, values: Mapping[str, float]) -> None:
         """Write values (global names) into the stack's parameters, widening no bounds."""
-        params = self.parameters()
+        params = self.parameters(live=True)
         for k, v in values.items():
             if k in params:
                 params[k].value = check_finite(k, v)
@@ -230,9 +346,28 @@ class Stack:
             w = f"{where}.layers[{i}]"
             if not isinstance(ld, Mapping) or "material" not in ld:
                 raise RecipeError(w, "must be an object with 'name', 'material', 'thickness'")
-            refuse_unknown_fields(ld, ("name", "material", "thickness"), w)
+            refuse_unknown_fields(ld, LAYER_FIELDS, w)
             if isinstance(ld.get("thickness"), Mapping):
                 refuse_unknown_fields(ld["thickness"], PARAM_FIELDS, f"{w}.thickness")
+            known_flag = ld.get("known", False)
+            if not isinstance(known_flag, bool):
+                raise RecipeError(f"{w}.known",
+                                  f"must be true or false (without quotes), got {known_flag!r}")
+            if known_flag and (not isinstance(ld.get("thickness"), (Mapping, int, float))
+                               or (isinstance(ld["thickness"], Mapping)
+                                   and "value" not in ld["thickness"])):
+                # The 500 nm default would be a silent guess for a layer said to be known.
+                raise RecipeError(f"{w}.thickness", "is missing; a known layer needs its "
+                                                   'thickness in nm, e.g. {"value": 98.2}')
+            if "source" in ld and not isinstance(ld["source"], (Mapping, type(None))):
+                raise RecipeError(f"{w}.source", "must be an object (file, sha256, ...)")
+            mat_d = ld["material"]
+            if isinstance(mat_d, Mapping) and "file" in mat_d:
+                raise RecipeError(f"{w}.material.file",
+                                  "a table file can be named only in a recipe file (it is "
+                                  "read from the recipe's folder and embedded); here give "
+                                  "the table itself, e.g. from fitting.known."
+                                  "known_layer_from_export")
             th = ld.get("thickness", {})
             try:
                 if isinstance(th, Mapping):
@@ -245,10 +380,12 @@ class Stack:
                 else:
                     tp = float(th)
                 layers.append(Layer(str(ld.get("name", f"film{i + 1}")),
-                                    model_from_dict(ld["material"], where=f"{w}.material"), tp))
+                                    model_from_dict(ld["material"], where=f"{w}.material"), tp,
+                                    known_flag, ld.get("source")))
             except ParameterError as e:
-                raise RecipeError(f"{w}.thickness" if "thickness" in e.name else f"{w}.name",
-                                  e.reason) from None
+                field_name = ("thickness" if "thickness" in e.name else
+                              "source" if e.name.endswith(" source") else "name")
+                raise RecipeError(f"{w}.{field_name}", e.reason) from None
         try:
             return cls(layers, Substrate.from_dict(d["substrate"], where=f"{where}.substrate"),
                        model_from_dict(d.get("ambient", Constant(1.0).to_dict()),

@@ -396,3 +396,73 @@ def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
         with pytest.raises(RecipeError) as ei:
             make_recipe(reference=bad)
         assert ei.value.field == field
+
+
+# -- known layers (format version 2; see also tests/test_known.py) -----------------------
+def _known_recipe():
+    r = make_recipe()
+    r.stack.layers[1].known = True
+    r.stack.layers[1].source = {"file": "cap_nk.csv", "sha256": "cd" * 32}
+    return r
+
+
+def test_recipes_without_known_layers_stay_version_1(tmp_path):
+    # Old files load unchanged and are written back as they were: same version, same keys,
+    # so their hashes (and a resumed batch's identity) do not move.
+    d = make_recipe().to_dict()
+    assert d["version"] == 1
+    assert all(set(ld) == {"name", "material", "thickness"} for ld in d["stack"]["layers"])
+    path = tmp_path / "old.json"
+    path.write_text(json.dumps(d, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+    before = path.read_bytes()
+    save_recipe(load_recipe(path), path)
+    assert path.read_bytes() == before
+
+
+def test_known_layer_recipe_round_trip_is_version_2(tmp_path):
+    r = _known_recipe()
+    path = save_recipe(r, tmp_path / "k.json")
+    d = json.loads(path.read_text(encoding="utf-8"))
+    assert d["version"] == 2 and d["stack"]["layers"][1]["known"] is True
+    back = load_recipe(path)
+    assert back.to_dict() == r.to_dict() and back.stack.layer("cap").known
+    assert back.stack.layer("cap").source == {"file": "cap_nk.csv", "sha256": "cd" * 32}
+    assert recipe_hash(back) == recipe_hash(r) != recipe_hash(make_recipe())
+    d["version"] = 3
+    with pytest.raises(RecipeError, match="newer than this Pellucid"):
+        recipe_from_dict(d)
+    # A project keeps the known layer through its embedded recipe.
+    proj = load_project(save_project(Project(r), tmp_path / "p.json"))
+    assert proj.recipe.stack.layer("cap").known and proj.recipe.to_dict() == r.to_dict()
+
+
+def test_identity_holds_every_value_of_a_known_layer():
+    from fitting.recipe import recipe_identity
+    r = _known_recipe()
+    base = recipe_identity(r)
+    moved = _known_recipe()
+    moved.stack.layer("cap").material.params["o1_A"].value += 1.0   # varied flag, but known
+    assert recipe_identity(moved) != base
+    unknown = _known_recipe()
+    unknown.stack.layer("cap").known = False
+    assert recipe_identity(unknown) != base
+    other_source = _known_recipe()
+    other_source.stack.layer("cap").source = None               # provenance only
+    assert recipe_identity(other_source) == base
+
+
+def test_documented_known_layer_example_loads(tmp_path):
+    # The file form of a known layer shown in the module docstring, as written there.
+    import re
+    import fitting.recipe as module
+    doc = module.__doc__
+    start = doc.index('{"name": "barrier", "known": true,\n     "material": {"kind": "tabulated", '
+                      '"file"')
+    block = doc[start:doc.index("or embedded", start)]
+    layer = json.loads(re.sub(r"#.*", "", block))
+    (tmp_path / "barrier_nk.csv").write_text("wavelength_nm,n,k\n300,1.67,0\n1100,1.65,0\n",
+                                             encoding="utf-8")
+    d = make_recipe().to_dict()
+    d["stack"]["layers"].append(layer)
+    r = recipe_from_dict(d, path=tmp_path / "r.json")
+    assert r.stack.layer("barrier").known and r.stack.layer("barrier").thickness.value == 98.2

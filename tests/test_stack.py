@@ -388,3 +388,79 @@ def test_bad_stack_records(mutate, match):
     mutate(d)
     with pytest.raises(RecipeError, match=match):
         Stack.from_dict(d)
+
+
+# -- known layers (held as a whole by fits; see also tests/test_known.py) -------------------
+def _with_known(known=True):
+    barrier = Layer("barrier", Cauchy(1.65, 0.006), 100.0, known=known,
+                    source={"file": "week1_nk_barrier.csv", "sha256": "ab" * 32})
+    barrier.thickness.expr = "film_thickness / 4"
+    return Stack([Layer("film", Cauchy(2.0, 0.02), 420.0), barrier],
+                 library_substrate("fused_silica"))
+
+
+def test_known_layer_parameters_are_held_copies_and_the_optics_unchanged():
+    st = _with_known()
+    held = st.parameters()
+    live = st.parameters(live=True)
+    layer = st.layer("barrier")
+    for k in ("barrier_thickness", "barrier_A", "barrier_B", "barrier_C"):
+        assert not held[k].vary and held[k].expr is None
+        assert held[k] is not live[k] and held[k].value == live[k].value
+    assert live["barrier_thickness"] is layer.thickness
+    assert live["barrier_thickness"].expr == "film_thickness / 4"     # kept, only suspended
+    assert held["film_thickness"] is st.layer("film").thickness       # other layers: live
+    # Written values reach the layer itself (a fit writes its held values back unchanged).
+    st.set_values({"barrier_thickness": 101.0, "barrier_A": 1.66})
+    assert layer.thickness.value == 101.0 and layer.material.params["A"].value == 1.66
+    assert layer.thickness.vary and layer.thickness.expr == "film_thickness / 4"
+    assert st.known_layers() == ["barrier"]
+    # "known" is about fitting only: same R, T as the same stack not known (tmm-checked optics).
+    wl = np.linspace(400, 900, 20)
+    np.testing.assert_array_equal(np.array(_with_known().RT(wl)),
+                                  np.array(_with_known(False).RT(wl)))
+
+
+def test_known_layer_is_shown_in_repr_and_describe():
+    st = _with_known()
+    assert "known=True" in repr(st.layer("barrier")) and "known=False" in repr(st.layer("film"))
+    text = st.describe()
+    assert "film: Cauchy, 420 nm, thickness fitted" in text
+    assert "barrier: Cauchy, 100 nm, known (held, not fitted); tie on thickness suspended" in text
+    assert "from week1_nk_barrier.csv (SHA-256 abababababab…)" in text
+    assert text.splitlines()[0] == "ambient: air (n = 1)"
+
+
+def test_known_layer_round_trip_and_old_layout():
+    st = _with_known()
+    d = st.to_dict()
+    assert d["layers"][1]["known"] is True and d["layers"][1]["source"]["file"] == \
+        "week1_nk_barrier.csv"
+    back = Stack.from_dict(d)
+    assert back.to_dict() == d and back.layer("barrier").known
+    # Layers that are not known are written exactly as before (no new keys).
+    assert set(d["layers"][0]) == {"name", "material", "thickness"}
+    assert not Stack.from_dict(_simple().to_dict()).layers[0].known
+
+
+@pytest.mark.parametrize("mutate,match", [
+    (lambda ld: ld.update(known="true"), r"layers\[1\].known.*true or false"),
+    (lambda ld: ld.pop("thickness"), r"layers\[1\].thickness.*known layer needs its thickness"),
+    (lambda ld: ld["thickness"].pop("value"), r"layers\[1\].thickness.*is missing"),
+    (lambda ld: ld.update(source="week1.csv"), r"layers\[1\].source.*object"),
+    (lambda ld: ld.update(source={"file": float("nan")}), r"layers\[1\].source"),
+    (lambda ld: ld.update(material={"kind": "tabulated", "file": "x.csv"}),
+     r"layers\[1\].material.file.*only in a recipe file"),
+    (lambda ld: ld.update(knwon=True), r"layers\[1\].knwon.*did you mean 'known'"),
+])
+def test_bad_known_layer_records(mutate, match):
+    d = _with_known().to_dict()
+    mutate(d["layers"][1])
+    with pytest.raises(RecipeError, match=match):
+        Stack.from_dict(d)
+
+
+def test_known_flag_must_be_a_boolean():
+    with pytest.raises(ParameterError, match="True or False"):
+        Layer("barrier", Cauchy(), 100.0, known="no")
+    assert Layer("barrier", Cauchy(), 100.0, known=np.bool_(True)).known is True
