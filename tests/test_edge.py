@@ -38,9 +38,10 @@ from validation.materials import material, substrate  # noqa: E402
 from validation.synth import Instrument, measure  # noqa: E402
 
 FS = substrate("fused_silica")
+NOISE_ONLY = Instrument(noise=0.002)
 
 
-def _edge(key, d, lo, hi, instrument=Instrument(noise=0.002), seed=3, seeded=True):
+def _edge(key, d, lo, hi, instrument=NOISE_ONLY, seed=3, seeded=True):
     """(wl, T, true αd, published n, EdgeData) of a tmm spectrum on a 1 nm grid.
 
     ``seeded``: the envelope window from the true thickness and median index, as a
@@ -97,7 +98,7 @@ def asi():
 
 
 def test_asi_opaque_clear_and_edge(asi):
-    wl, T, ad, n, e = asi
+    wl, _T, ad, _n, e = asi
     assert e.absorbs
     # opaque: T at the noise floor below opaque_below_nm, where the true αd exceeds the
     # module's OPAQUE_AD = 3.5 (T < 3 % of clear) within the factor-2 tolerance
@@ -113,7 +114,7 @@ def test_asi_opaque_clear_and_edge(asi):
 
 
 def test_asi_alpha_d_along_the_edge(asi):
-    wl, T, ad, n, e = asi
+    wl, _T, ad, n, e = asi
     true = np.interp(e.wavelength_nm, wl, ad)
     mid = (true >= 1.0) & (true <= OPAQUE_AD)         # where a start model needs it
     assert mid.sum() > 50
@@ -129,7 +130,7 @@ def tio2():
 
 
 def test_titania_edge_at_the_envelope_resolution(tio2):
-    wl, T, ad, n, e = tio2
+    wl, _T, ad, n, e = tio2
     assert e.absorbs and e.opaque_below_nm is not None
     assert ad[wl <= e.opaque_below_nm].min() > OPAQUE_AD / 2
     assert e.alpha_d.size > 0
@@ -145,7 +146,7 @@ def test_titania_edge_at_the_envelope_resolution(tio2):
     "αd (true 1.9-4.4, estimated 0.18-0.75): 5-11x low, not the 'factor of order two' "
     "the module promises"))
 def test_titania_alpha_d_pointwise_within_a_factor_3(tio2):
-    wl, T, ad, n, e = tio2
+    wl, _T, ad, _n, e = tio2
     true = np.interp(e.wavelength_nm, wl, ad)
     mid = (true >= 1.0) & (true <= OPAQUE_AD)
     assert mid.any()
@@ -159,7 +160,7 @@ def test_titania_alpha_d_pointwise_within_a_factor_3(tio2):
     "reach of the running maximum; fit.py then scans the thickness on points where the "
     "film absorbs strongly"))
 def test_titania_clear_span_starts_where_the_film_is_clear(tio2):
-    wl, T, ad, n, e = tio2
+    wl, _T, ad, _n, e = tio2
     assert ad[(wl >= e.clear_nm[0]) & (wl <= e.clear_nm[1])].max() <= 3 * -math.log(CLEAR)
 
 
@@ -174,7 +175,7 @@ def test_transparent_films_do_not_absorb(key, d, lo, hi, inst):
     # No κ in the range (HfO2: Cauchy formula) or next to none (SiO2: αd < 0.005 at
     # 300 nm from the table), and the ordinary instrument errors of issue 11 must not
     # look like absorption.
-    wl, T, ad, n, e = _edge(key, d, lo, hi, inst)
+    _wl, _T, ad, _n, e = _edge(key, d, lo, hi, inst)
     assert ad.max() < 0.005
     assert not e.absorbs and e.opaque_below_nm is None and e.opaque_above_nm is None
     assert e.clear_nm == (lo, hi)
@@ -187,7 +188,7 @@ def test_transparent_films_do_not_absorb(key, d, lo, hi, inst):
     "from the defaults on a 2 nm grid, this film comes out at 20.7 nm, verdict poor)"))
 def test_a_spectrum_opaque_everywhere_has_no_clear_span():
     for seeded in (True, False):
-        wl, T, ad, n, e = _edge("a-Si", 3000.0, 400.0, 650.0, seeded=seeded)
+        _wl, T, ad, _n, e = _edge("a-Si", 3000.0, 400.0, 650.0, seeded=seeded)
         assert ad.min() > 10 and T.max() < 0.01
         assert e.absorbs and e.clear_nm is None
 
@@ -200,7 +201,7 @@ def test_a_spectrum_opaque_everywhere_has_no_clear_span():
     "defaults (2 nm grid) FitResult.extra['edge'] shows the same, so the thickness scan "
     "is limited to 450-528 nm (the thickness still came out right, 90.4 nm)"))
 def test_thin_transparent_film_without_a_seed_does_not_absorb():
-    wl, T, ad, n, e = _edge("Ta2O5", 90.0, 450.0, 1100.0, seeded=False)
+    wl, _T, ad, _n, e = _edge("Ta2O5", 90.0, 450.0, 1100.0, seeded=False)
     assert ad.max() < 1e-3
     assert not e.absorbs
     assert e.clear_nm[1] - e.clear_nm[0] > 0.9 * (wl[-1] - wl[0])

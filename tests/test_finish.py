@@ -263,8 +263,8 @@ def test_warnings_in_plain_words():
     assert any("not a Kramers-Kronig pair (off by 0.01)" in x for x in w)
     assert "n of film could not be computed" in w
     none = finish.warnings({}, names, None, None, {}, ["film"], {}, [], True)
-    assert none == ["Uncertainties could not be estimated: the fit ended early, away from "
-                    "a minimum."]
+    assert none == [("Uncertainties could not be estimated: the fit ended early, away from "
+                     "a minimum.")]
 
 
 def test_quantities_outside_the_measured_range_are_not_reported():

@@ -59,7 +59,7 @@ def test_labels_are_unique_and_say_what_the_model_is_for():
     labels = list(MODEL_CHOICES.values())
     assert len(set(labels)) == len(labels)
     assert all(len(v) > 5 and v[0].isupper() for v in labels)
-    assert list(MODEL_CHOICES)[0] == "cauchy"      # the default comes first in the menu
+    assert next(iter(MODEL_CHOICES)) == "cauchy"      # the default comes first in the menu
 
 
 def test_bad_choices_are_refused_with_the_list_of_choices():

@@ -212,7 +212,7 @@ def test_model_choice_is_a_rectangular_half_difference():
 
 
 # -- coverage: does U(k = 2) cover the real error? -----------------------------------------
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _ideal(spread: float) -> np.ndarray:
     return averaged_transmittance(material(FILM), D_NM, substrate("fused_silica"), WL, spread)
 

@@ -31,7 +31,7 @@ import numpy as np
 import pytest
 
 from fitting import verdict
-from fitting.result import Alternative, OpticalConstants, ParamResult, Uncertainty
+from fitting.result import Alternative, ParamResult, Uncertainty
 from fitting.verdict import diagnose, judge, reasons, runs_test_z
 
 pytest.importorskip("tmm")
