@@ -4,7 +4,9 @@ Reference values: T = (S - D)/(B - D) computed by hand below (dark-corrected rat
 against a 100 % line, common practice of spectrophotometry); the normal quantile
 Phi^-1(3/4) from scipy.stats (MAD consistency factor, Hampel 1974); the variance
 of the second difference of white noise, (1 + 4 + 1) sigma^2 = 6 sigma^2, by
-arithmetic.
+arithmetic, and of the k-th difference, C(2k, k) sigma^2 (Vandermonde's identity);
+fringe spectra for the higher-order estimate from ``tmm`` with published n, κ
+(validation/materials.py names the sources).
 """
 
 from __future__ import annotations
@@ -151,3 +153,67 @@ def test_noise_estimate_is_robust_and_never_zero():
         estimate_noise(np.ones(4))
     with pytest.raises(ParameterError, match="window"):
         estimate_noise(np.ones(40), window=2)
+
+
+# --------------------------------------------------------------------- higher-order differences
+
+@pytest.mark.parametrize("order", [2, 3, 4, 5, 6])
+def test_difference_variance_factor_is_binomial(order):
+    # The k-th difference of white noise is a sum of k+1 independent terms with
+    # binomial weights, so its variance is sum_j C(k, j)^2 sigma^2 = C(2k, k) sigma^2
+    # (Vandermonde's identity): 6, 20, 70, 252, 924. Pure white noise (no signal) must
+    # give sigma back at every order.
+    rng = np.random.default_rng(100 + order)
+    y = 0.4 + 0.003 * rng.standard_normal(20000)
+    assert estimate_noise(y, order=order, window=None)[0] == pytest.approx(0.003, rel=0.04)
+
+
+def _fringe_spectrum():
+    """T of a 1.5 µm Ta2O5 film on fused silica from ``tmm``, 16-20 points per fringe.
+
+    Published n, κ: Ta2O5 from Gao et al. 2012, fused silica from Malitson 1965 (see
+    validation/materials.py). The grid is uniform in wavenumber, as interference fringes
+    are, with 20 points per period of 1/(2nd) at n = 2.1, so every fringe is sampled
+    with 15-30 points (the group index of Ta2O5 puts it at ~17 in the blue).
+    """
+    from validation.materials import material, substrate
+    from validation.synth import transmittance
+    d, n = 1500.0, 2.1
+    nu = np.arange(1 / 1100, 1 / 420, 1 / (2 * n * d * 20))
+    wl = np.sort(1 / nu)
+    T = transmittance(material("Ta2O5"), d, substrate("fused_silica"), wl)
+    return wl, T
+
+
+def test_fourth_differences_recover_the_noise_under_dense_fringes():
+    pytest.importorskip("tmm")
+    wl, clean = _fringe_spectrum()
+    assert np.ptp(clean) > 0.15                  # strong fringes, not a flat line
+    sigma = 0.002
+    rng = np.random.default_rng(2718)
+    est2, est4 = [], []
+    for _ in range(15):
+        y = clean + sigma * rng.standard_normal(wl.size)
+        est2.append(np.median(estimate_noise(y, order=2)))
+        est4.append(np.median(estimate_noise(y, order=4)))
+    # A fringe of P points per period leaks into the k-th difference with amplitude
+    # (2 sin(pi/P))^k (the transfer function of the difference operator), against a
+    # noise of sqrt(C(2k, k)) sigma: at P = 20 and a fringe amplitude of 0.1, 0.0098
+    # against 0.0049 for k = 2 (the estimate is inflated) but 0.00096 against 0.017
+    # for k = 4 (negligible).
+    assert np.median(est4) == pytest.approx(sigma, rel=0.12)
+    assert np.median(est2) > 1.4 * sigma
+    assert np.median(est2) > 1.3 * np.median(est4)
+
+
+def test_order_is_checked_and_short_spectra_fall_back_to_second_differences():
+    with pytest.raises(ParameterError, match="order"):
+        estimate_noise(np.ones(40), order=1)
+    with pytest.raises(ParameterError, match="order"):
+        estimate_noise(np.ones(40), order=7)
+    # Eight points hold too few 6th differences for a robust scale: the plain second
+    # difference is used, which a straight line leaves at zero.
+    line = np.linspace(0.2, 0.9, 8)
+    rng = np.random.default_rng(3)
+    y = line + 0.01 * rng.standard_normal(8)
+    np.testing.assert_allclose(estimate_noise(y, order=6), estimate_noise(y, order=2))
