@@ -8,8 +8,11 @@ that sinking as the film's transparency
 
     x(λ) = U(λ) / (T_s(λ) · c),
 
-with U the upper envelope of the measured spectrum (a running maximum over one
-fringe period λ²/(2nd) from the fringe seed), T_s = 2s/(s² + 1) the bare
+with U the upper envelope of the measured spectrum (the smaller of the running
+maxima over one fringe period λ²/(2nd) on either side, from the fringe seed:
+at an edge the envelope never reaches into the clear side, so a clear span
+never holds absorbing points, at the price of edge estimates that may come
+from a maximum up to a period away on the absorbing side), T_s = 2s/(s² + 1) the bare
 substrate's transmittance and c the level of U/T_s where the film is clearest.
 Interference averages out of an envelope, so -ln x ≈ αd: a first estimate of
 the absorption coefficient along the edge, good to a factor of order two,
@@ -81,10 +84,29 @@ def opaque_floor(y: np.ndarray, sigma: np.ndarray) -> np.ndarray:
     return y < np.maximum(4.0 * sigma, 0.005)
 
 
-def _running_max(wl: np.ndarray, y: np.ndarray, width: np.ndarray) -> np.ndarray:
-    lo = np.searchsorted(wl, wl - width / 2)
-    hi = np.searchsorted(wl, wl + width / 2, side="right")
-    return np.array([y[a:b].max() for a, b in zip(lo, np.maximum(hi, lo + 1))])
+def _running_max(wl: np.ndarray, y: np.ndarray, width: np.ndarray,
+                 floor: np.ndarray | None = None) -> np.ndarray:
+    """Upper envelope: the smaller of the maxima over one window to the left and one
+    to the right of each point. Each window holds a fringe maximum where the film is
+    clear; at an absorption edge the window on the absorbing side does not reach
+    into the clear side, as a centred window would (it would lift the envelope
+    half a period into the edge)."""
+    lo = np.searchsorted(wl, wl - width)
+    hi = np.searchsorted(wl, wl + width, side="right")
+    idx = np.arange(wl.size)
+    left = np.array([y[a:i + 1].max() for a, i in zip(lo, idx)])
+    right = np.array([y[i:b].max() for i, b in zip(idx, np.maximum(hi, idx + 1))])
+    # A window cut short by the end of the data may hold no maximum: there the
+    # other side alone counts (both cut: the larger) - unless the cut window holds
+    # opaque points, whose darkness is the film's, not the data's end.
+    dark = np.zeros(wl.size, bool) if floor is None else floor
+    cs = np.r_[0, np.cumsum(dark)]
+    cut_l = (wl - width < wl[0]) & (cs[idx + 1] - cs[lo] == 0)
+    cut_r = (wl + width > wl[-1]) & (cs[np.maximum(hi, idx + 1)] - cs[idx] == 0)
+    out = np.minimum(left, right)
+    out = np.where(cut_l & ~cut_r, right, out)
+    out = np.where(cut_r & ~cut_l, left, out)
+    return np.where(cut_l & cut_r, np.maximum(left, right), out)
 
 
 def absorption_edge(wl, y, sigma, substrate_n, *, thickness_nm: float | None,
@@ -99,7 +121,8 @@ def absorption_edge(wl, y, sigma, substrate_n, *, thickness_nm: float | None,
         Real index of the substrate.
     thickness_nm, n_film : float or None
         Rough thickness and index from the fringes (sets the envelope window);
-        without them a window of 30 nm is used.
+        without them (no fringes: a thin film's one broad extremum) the window is
+        the whole range.
     """
     wl = np.asarray(wl, float)
     y = np.asarray(y, float)
@@ -112,19 +135,22 @@ def absorption_edge(wl, y, sigma, substrate_n, *, thickness_nm: float | None,
         width = np.clip(wl * wl / (2 * n_film * thickness_nm), 4 * np.median(np.diff(wl)),
                         float(wl[-1] - wl[0]))
     else:
-        width = np.full(wl.size, 30.0)
-    U = _running_max(wl, y, 1.05 * width)
-    # Smooth the envelope over the same window: the running maximum of noise is
-    # biased up by about 2σ, but evenly.
+        width = np.full(wl.size, float(wl[-1] - wl[0]))
+    # The running maximum of noise is biased up by about 2σ, but evenly.
+    sig = np.asarray(sigma, float)
+    U = _running_max(wl, y, 1.3 * width, opaque_floor(y, sig))
     ratio = U / Ts
-    level = float(np.percentile(ratio, 95))
+    above = ~opaque_floor(U, sig)
+    if not above.any():                 # at the noise floor everywhere: opaque
+        return EdgeData(None, float(wl[-1]), None, absorbs=True)
+    level = float(np.percentile(ratio[above], 95))
     if not level > 0:
         return EdgeData(None)
     x = np.clip(ratio / level, 1e-6, None)
-    floor = opaque_floor(y, np.asarray(sigma, float)) | (x < 0.03)
-    clear = x >= CLEAR
+    floor = opaque_floor(y, sig) | (x < 0.03)
+    clear = (x >= CLEAR) & ~floor
     if not clear.any():
-        return EdgeData(None, absorbs=True)
+        return EdgeData(None, float(wl[floor].max()) if floor.any() else None, absorbs=True)
     # The clear span: the longest run of clear points.
     edges = np.flatnonzero(np.diff(np.r_[0, clear.astype(int), 0]))
     runs = edges.reshape(-1, 2)
