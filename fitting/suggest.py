@@ -125,7 +125,7 @@ from .uncertainty import with_model_choice
 __all__ = ["suggest_model", "iter_suggest", "classify", "candidate_stack", "Suggestion",
            "Candidate", "Appearance", "FAMILIES", "SUGGESTABLE", "ABSORBING_TRANSPARENCY",
            "LOSSLESS_N_MAX", "FALLOFF_DROP", "lossless_floor", "falloff_start",
-           "INDISTINGUISHABLE", "CREDIBLE", "evidence_words"]
+           "INDISTINGUISHABLE", "CREDIBLE", "evidence_words", "add_model_choice"]
 
 #: Model families per appearance of the data, most plausible first (issue 11).
 FAMILIES = {
@@ -825,7 +825,8 @@ def _reason(chosen: Candidate, runner: Candidate | None, how: str, ranked: list,
     else:
         d = runner.bic - chosen.bic
         if how == "lowest":
-            parts.append(f"{name}: lowest BIC, by {d:.0f} over {runner.label} "
+            margin = f"{d:.1f}" if d < 10 else f"{d:.0f}"
+            parts.append(f"{name}: lowest BIC, by {margin} over {runner.label} "
                          f"({evidence_words(d)} evidence, Kass & Raftery 1995)")
         elif how == "indistinguishable":
             if chosen.k < runner.k:
@@ -860,30 +861,41 @@ def _reason(chosen: Candidate, runner: Candidate | None, how: str, ranked: list,
     return "; ".join(parts)
 
 
-def _amend(s: Suggestion, chosen: Candidate, other: Candidate | None) -> Suggestion:
-    """Model-choice lines in the chosen result's budget, the ranking in its ``extra``."""
-    r = chosen.result
-    unc = dict(r.uncertainty)
-    if other is not None:
-        for key, u in unc.items():
-            alt = other.result.uncertainty.get(key)
-            if alt is None and key.endswith("_thickness") and key in other.result.params:
-                alt_value = other.result.params[key].value
-            elif alt is not None:
-                alt_value = alt.value
-            else:
-                continue
-            unc[key] = with_model_choice(u, alt_value, other.label)
-    amended = dataclasses.replace(r, uncertainty=unc,
-                                  extra={**r.extra, "model_suggestion": s.to_dict()})
+def add_model_choice(result: FitResult, other: Candidate | None) -> FitResult:
+    """``result`` with a model-choice line per budget quantity the runner-up also has.
+
+    The line is :func:`fitting.uncertainty.with_model_choice` of the runner-up's
+    value (half the difference, rectangular, GUM 4.3.7); the verdict is judged
+    again with the wider budget. ``other`` None returns ``result`` unchanged.
+    """
+    if other is None or other.result is None:
+        return result
+    unc = dict(result.uncertainty)
+    for key, u in unc.items():
+        alt = other.result.uncertainty.get(key)
+        if alt is not None:
+            alt_value = alt.value
+        elif key.endswith("_thickness") and key in other.result.params:
+            alt_value = other.result.params[key].value
+        else:
+            continue
+        unc[key] = with_model_choice(u, alt_value, other.label)
+    amended = dataclasses.replace(result, uncertainty=unc)
     status, reasons = _verdict.judge(amended)
-    amended = dataclasses.replace(amended, verdict=status, verdict_reasons=reasons)
-    cands = tuple(dataclasses.replace(c, result=amended, verdict=status) if c is chosen else c
-                  for c in s.candidates)
-    s = dataclasses.replace(s, candidates=cands)
-    # The ranking stored in the result shows the final verdict too.
-    final = dataclasses.replace(amended, extra={**amended.extra,
-                                                "model_suggestion": s.to_dict()})
-    cands = tuple(dataclasses.replace(c, result=final) if c.model == s.chosen else c
-                  for c in s.candidates)
-    return dataclasses.replace(s, candidates=cands)
+    return dataclasses.replace(amended, verdict=status, verdict_reasons=reasons)
+
+
+def _amend(s: Suggestion, chosen: Candidate, other: Candidate | None) -> Suggestion:
+    """The chosen result with its model-choice lines and, in ``extra``, the ranking."""
+    amended = add_model_choice(chosen.result, other)
+
+    def put(sug, result):
+        return dataclasses.replace(sug, candidates=tuple(
+            dataclasses.replace(c, result=result, verdict=result.verdict) if c is chosen
+            or c.model == chosen.model and c.current == chosen.current else c
+            for c in sug.candidates))
+
+    s = put(s, amended)
+    # Stored after the verdict is final, so the ranking in the result shows it.
+    return put(s, dataclasses.replace(amended, extra={**amended.extra,
+                                                      "model_suggestion": s.to_dict()}))
