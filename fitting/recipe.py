@@ -124,13 +124,13 @@ Two hashes identify a recipe:
   the models and their kinds, every bound, the fixed/varied flags, the values of
   fixed parameters, ties, the substrate and media, non-uniformity and bandwidth,
   the reader, the fit window, masks and options, the model suggestion, the
-  limits, the outputs and the *content* (SHA-256) of the reference files. It leaves out the name, the
-  notes, the location of the reference files and the start values of varied
-  parameters: the automatic start finds its own starting point from the data,
-  so one interactive fit that moved the start values does not make a resumed
-  batch refit everything. (With a purely local method, ``"leastsq"`` or
-  ``"least_squares"``, start values can change the answer; run without
-  ``--resume`` after changing them.)
+  limits, the outputs and the *content* (SHA-256) of the reference files. It
+  leaves out the name, the notes, the location of the reference files and the
+  start values of varied parameters: the automatic start finds its own
+  starting point from the data, so one interactive fit that moved the start
+  values does not make a resumed batch refit everything. (With a purely local
+  method, ``"leastsq"`` or ``"least_squares"``, start values can change the
+  answer; run without ``--resume`` after changing them.)
 """
 
 from __future__ import annotations

@@ -4,22 +4,30 @@
 trial: Cauchy or Sellmeier for a clear film, Tauc-Lorentz or a Cauchy with an
 Urbach tail when it absorbs, Drude + Lorentz for a transparent conductor. It
 
-1. **reads the spectrum** (:func:`classify`): the fringe seed
-   (:func:`fitting.autostart.fringe_seed`) sets the envelope window and
-   :func:`fitting.edge.absorption_edge` measures the film's transparency
-   x(λ) along the spectrum. A film is said to *absorb* on a side of its
-   clear span when its envelope there sinks below 85 % of the clear level
-   (αd > -ln 0.85 = 0.16) or T reaches the noise floor. That is far outside
-   the ±1 % of an ordinary 100 % line and the ~2σ bias of a running
-   maximum of noise, so a clear film is not called absorbing (common
-   practice; threshold set here, not taken from a publication). Loss on the
-   short-wavelength side is an *absorption edge*, loss on the long-wavelength
-   side of the clear span a *free-carrier fall-off* (the plasma edge of a
-   transparent conductor, Drude 1900);
+1. **reads the spectrum** (:func:`classify`, no model involved). Where the
+   film shows fringes (:data:`MIN_EXTREMA` or more extrema standing 6σ above
+   the noise), the fringe seed (:func:`fitting.autostart.fringe_seed`) sets
+   the envelope window and :func:`fitting.edge.absorption_edge` measures the
+   film's transparency x(λ); the film has an *absorption edge* when its
+   envelope sinks below :data:`ABSORBING_TRANSPARENCY` (85 %) of the clear
+   level on the short-wavelength side (αd > -ln 0.85 = 0.16) or T reaches
+   the noise floor there - far outside the ±1 % of an ordinary 100 % line
+   and the ~2σ bias of a running maximum of noise. With fewer fringes a thin
+   film's own quarter-wave dip looks like loss to an envelope, so an edge is
+   claimed only where T falls below what any lossless film of index up to
+   :data:`LOSSLESS_N_MAX` can give (:func:`lossless_floor`); otherwise the
+   data are *undetermined* and both kinds of model are tried. A
+   *free-carrier fall-off* (the plasma edge of a transparent conductor,
+   Drude 1900) is a steady fall of T towards the infrared that no fringe
+   makes (:func:`falloff_start`). These thresholds are common practice, set
+   here on the project's validation spectra, not taken from a publication;
+   a false alarm costs one more candidate fit, which the ranking then sorts
+   out, while a miss would leave the right model untried;
 2. **picks the families** (:data:`FAMILIES`): transparent - Cauchy,
    Cauchy + Urbach tail, Sellmeier; absorption edge - Tauc-Lorentz,
-   Cauchy + Urbach tail; free-carrier fall-off - Drude + Lorentz (with the
-   absorption-edge families when both show). The user's own model is always
+   Cauchy + Urbach tail; free-carrier fall-off - Drude + Lorentz (and
+   Tauc-Lorentz when the band gap side cannot be read); undetermined - the
+   transparent ones and Tauc-Lorentz. The user's own model is always
    a candidate, fitted exactly as the user set it up; every other family is
    fitted from its defaults (:func:`fitting.presets.make_model`) in the same
    layer of the same stack, with the same substrate, other layers and fit
@@ -66,8 +74,13 @@ The rules of the choice, in order:
 * ΔBIC < 2 is "not worth more than a bare mention" (Kass & Raftery 1995,
   sec. 3.2: 0-2 barely worth mentioning, 2-6 positive, 6-10 strong, > 10 very
   strong evidence). Candidates within 2 of the best are treated as
-  indistinguishable and the simplest of them (fewest varied parameters; then
-  the better verdict; then the lower BIC) is chosen, and the reason says so.
+  indistinguishable, and the one chosen among them is, in this order, one
+  whose n and κ pass the Kramers-Kronig check (:mod:`fitting.kramers_kronig`:
+  n and κ of a real material are linked, and a model that breaks the link,
+  such as a Cauchy index with an Urbach tail, describes the film less
+  faithfully), the simplest (fewest varied parameters), the one with the
+  better verdict, the one with the lower BIC; the reason says which rule
+  decided.
 
 The chosen result gets a *model choice* line in its uncertainty budget
 (:func:`fitting.uncertainty.with_model_choice`, half the difference to the
@@ -266,9 +279,20 @@ def falloff_start(wl: np.ndarray, y: np.ndarray, sigma: np.ndarray,
     fringes come before it, either lasts longer than 1.5 fringe half-periods
     (in 1/λ), which no falling half of a fringe does, or ends that much below
     the last fringe minimum (a clear film with normal dispersion has shallower
-    minima towards the infrared, Swanepoel 1983). These
-    thresholds are set here (common practice, no publication); a false
-    alarm costs one more candidate fit, which the BIC then ranks.
+    minima towards the infrared, Swanepoel 1983). These thresholds are set
+    here (common practice, no publication); a false alarm costs one more
+    candidate fit, which the BIC then ranks.
+
+    Parameters
+    ----------
+    wl, y, sigma, substrate_n : ndarray of shape (W,)
+        Wavelengths (nm, increasing), measured T, its 1σ and the substrate's
+        real index.
+
+    Returns
+    -------
+    float or None
+        The wavelength (nm) where the fall starts; None if there is none.
     """
     if wl.size < 20:
         return None
@@ -303,8 +327,9 @@ def falloff_start(wl: np.ndarray, y: np.ndarray, sigma: np.ndarray,
 def classify(spectrum, stack: Stack, options=None) -> Appearance:
     """Read from the spectrum alone whether the film is clear, has an edge or free carriers.
 
-    With fringes (:data:`MIN_EXTREMA` or more extrema), the absorption edge is read from the
-    envelope (:func:`fitting.edge.absorption_edge`, module docstring). Without
+    With fringes (:data:`MIN_EXTREMA` or more extrema), the absorption edge is
+    read from the envelope (:func:`fitting.edge.absorption_edge`, module
+    docstring). Without
     them a thin film's own interference dip looks like loss to an envelope, so
     an edge is claimed only where T falls below what any lossless film of
     index up to :data:`LOSSLESS_N_MAX` could give (:func:`lossless_floor`)
@@ -755,7 +780,8 @@ def _choose(ranked: list) -> tuple:
     pool = usable or ranked
     top = pool[0]
     close = [c for c in pool if c.bic - top.bic < INDISTINGUISHABLE]
-    chosen = min(close, key=lambda c: (c.k, _VERDICT_RANK.get(c.verdict, 1), c.bic))
+    chosen = min(close, key=lambda c: (not _kk_ok(c), c.k, _VERDICT_RANK.get(c.verdict, 1),
+                                       c.bic))
     others = [c for c in ranked if c is not chosen]
     runner = others[0] if others else None
     if not usable:
@@ -769,6 +795,11 @@ def _choose(ranked: list) -> tuple:
     else:
         how = "lowest"
     return chosen, runner, how
+
+
+def _kk_ok(c: Candidate) -> bool:
+    """No fitted layer of the candidate fails the Kramers-Kronig check (unchecked passes)."""
+    return not any(k.consistent is False for k in (getattr(c.result, "kk", None) or {}).values())
 
 
 def _credible(ranked: list, chosen: Candidate) -> Candidate | None:
@@ -829,7 +860,10 @@ def _reason(chosen: Candidate, runner: Candidate | None, how: str, ranked: list,
             parts.append(f"{name}: lowest BIC, by {margin} over {runner.label} "
                          f"({evidence_words(d)} evidence, Kass & Raftery 1995)")
         elif how == "indistinguishable":
-            if chosen.k < runner.k:
+            if _kk_ok(chosen) and not _kk_ok(runner):
+                how_chosen = (f"so the one whose n and κ obey the Kramers-Kronig relations "
+                              f"is chosen ({runner.label}'s do not)")
+            elif chosen.k < runner.k:
                 how_chosen = (f"so the simpler model is chosen ({chosen.k} parameters "
                               f"against {runner.k})")
             elif _VERDICT_RANK.get(chosen.verdict, 1) < _VERDICT_RANK.get(runner.verdict, 1):

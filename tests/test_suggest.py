@@ -24,8 +24,9 @@ from fitting.presets import default_stack, make_model, tie_roughness  # noqa: E4
 from fitting.spectrum import Spectrum  # noqa: E402
 from fitting.stack import Layer, Stack  # noqa: E402
 from fitting.substrates import library_substrate  # noqa: E402
-from fitting.suggest import (FAMILIES, Candidate, add_model_choice, candidate_stack,  # noqa: E402,E501
-                             classify, evidence_words, falloff_start, lossless_floor, suggest_model)
+from fitting.suggest import (FAMILIES, Candidate, add_model_choice,  # noqa: E402
+                             candidate_stack, classify, evidence_words, falloff_start,
+                             lossless_floor, suggest_model)
 from validation.materials import Material, material, substrate  # noqa: E402
 from validation.synth import Instrument, grid, measure, transmittance  # noqa: E402
 
@@ -224,6 +225,16 @@ def test_indistinguishable_models_give_the_simpler_one():
     text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
                            ()), 1.0)
     assert "not distinguishable" in text and "simpler" in text
+    # Among indistinguishable ones, n and κ that obey Kramers-Kronig come first.
+    kk_bad = _cand("cauchy_urbach", 100.0, 8, "check")
+    kk_bad.result.kk = {"film": SimpleNamespace(consistent=False)}
+    kk_good = _cand("tauc_lorentz", 100.7, 9, "check")
+    kk_good.result.kk = {"film": SimpleNamespace(consistent=True)}
+    chosen, runner, how = suggest._choose([kk_bad, kk_good])
+    assert chosen is kk_good and how == "indistinguishable"
+    text = suggest._reason(chosen, runner, how, [kk_bad, kk_good],
+                           suggest.Appearance(("absorption edge",), ()), 1.0)
+    assert "Kramers-Kronig" in text
     # ... but 2 or more apart, the lower BIC wins whatever its size.
     c = _cand("cauchy", 102.5, 7, "good")
     assert suggest._choose([a, c])[0] is a
