@@ -63,8 +63,9 @@ Urbach tail when it absorbs, Drude + Lorentz for a transparent conductor. It
 
 The rules of the choice, in order:
 
-* a candidate whose fit failed to start (an error) or was stopped is not
-  ranked;
+* a candidate whose fit failed to start (an error) or was stopped by the
+  user is not ranked; one that ran out of time or evaluations is ranked but
+  has the verdict "poor" (next rule);
 * a candidate with the verdict "poor" (:mod:`fitting.verdict`: it grossly
   misses the data, its thickness ended at a bound, ...) is passed over for
   the best one that is not poor, whatever their BIC: a metrology tool must
@@ -713,7 +714,11 @@ def iter_suggest(spectrum, stack: Stack, options=None, *, families=None, layer=N
             result = None
             for item in _fit.iter_fit(spectrum, st, options, progress=sub, stop=stop):
                 result = item if isinstance(item, FitResult) else result
+            # A fit the user stopped is not comparable; one that ran out of time or
+            # evaluations is (its verdict "poor" keeps it from being chosen).
+            user_stop = result.aborted and stop is not None and stop.is_set()
             done.append(Candidate(key, label, is_current, result,
+                                  error="stopped before it finished" if user_stop else "",
                                   elapsed_s=time.perf_counter() - t0))
         except PellucidError as e:
             done.append(Candidate(key, label, is_current, None, error=str(e),
@@ -738,17 +743,17 @@ def iter_suggest(spectrum, stack: Stack, options=None, *, families=None, layer=N
 def _rank(done: list, appearance: Appearance, layer: str, stopped: bool,
           planned: int) -> Suggestion:
     """BIC of every fitted candidate, the choice by the rules of the module, the reason."""
-    fitted = [c for c in done if c.result is not None and not c.result.aborted]
+    fitted = [c for c in done if c.result is not None and not c.error]
     n_pts = max((c.result.ndata for c in fitted), default=0)
     redchis = [c.result.redchi for c in fitted if math.isfinite(c.result.redchi)]
     c_hat = max(1.0, min(redchis)) if redchis else 1.0
     scored = []
     for c in done:
         r = c.result
-        if r is None or r.aborted or not math.isfinite(r.chisqr):
+        if r is None or c.error or not math.isfinite(r.chisqr):
             scored.append(dataclasses.replace(
                 c, k=0 if r is None else r.nvarys, verdict="" if r is None else r.verdict,
-                error=c.error or ("stopped before it finished" if r is not None else "")))
+                error=c.error or "no finite χ²"))
             continue
         bic = r.chisqr / c_hat + r.nvarys * math.log(r.ndata)
         scored.append(dataclasses.replace(c, bic=bic, k=r.nvarys, verdict=r.verdict,
@@ -761,7 +766,9 @@ def _rank(done: list, appearance: Appearance, layer: str, stopped: bool,
         # Everything stopped or failed: keep the user's model's result as it is.
         chosen = next((c for c in rest if c.result is not None), None)
         reason = (f"stopped before any candidate finished; {chosen.label} is the fit of the "
-                  f"user's model so far" if stopped else "no candidate could be ranked")
+                  f"user's model so far" if stopped else
+                  f"no candidate could be ranked ({chosen.error}); {chosen.label}'s fit is kept "
+                  f"as it is")
         return Suggestion(tuple(rest), chosen.model, reason, appearance, layer, c_hat, n_pts,
                           stopped)
     chosen, runner, why = _choose(ranked)

@@ -324,3 +324,15 @@ def test_a_tie_to_the_film_model_is_refused_by_name():
     st = Stack([a, b], library_substrate("fused_silica", 1.0))
     with pytest.raises(FitError, match="'b_A' is tied to the film's model"):
         candidate_stack(st, 0, "sellmeier")
+
+
+def test_fits_out_of_budget_are_ranked_but_never_recommended_as_good():
+    # Every candidate runs out of its evaluation budget: each result is "poor"
+    # (fitting.verdict), ranked all the same, and the reason says none fits.
+    from fitting.fit import FitOptions
+    sp = _spectrum("HfO2", 300.0, grid(400.0, 1100.0, 10.0))
+    s = suggest_model(sp, default_stack("cauchy", "fused_silica"), FitOptions(max_nfev=30))
+    assert not s.stopped and len(s.ranking()) == len(s.candidates)
+    assert all(c.result.aborted and c.verdict == "poor" for c in s.candidates)
+    assert "no candidate describes the data well" in s.reason
+    _check_ranking(s)
