@@ -72,6 +72,10 @@ The rules of the choice, in order:
   not recommend a result it would itself tell the user not to use. If every
   candidate is poor, the lowest BIC is still reported and the reason says
   that none describes the data;
+* a candidate with the verdict "check" (a parameter at its bound, an index
+  no dense film has, ...) yields to a "good" one whose BIC is higher by
+  less than :data:`CREDIBLE` (10): evidence short of "very strong" does not
+  outweigh a warning about the model itself;
 * ΔBIC < 2 is "not worth more than a bare mention" (Kass & Raftery 1995,
   sec. 3.2: 0-2 barely worth mentioning, 2-6 positive, 6-10 strong, > 10 very
   strong evidence). Candidates within 2 of the best are treated as
@@ -785,6 +789,9 @@ def _choose(ranked: list) -> tuple:
     """(chosen, the one it is compared with, how it was chosen) by the module's rules."""
     usable = [c for c in ranked if c.verdict != "poor"]
     pool = usable or ranked
+    if pool[0].verdict == "check":
+        good = [c for c in pool if c.verdict == "good" and c.bic - pool[0].bic < CREDIBLE]
+        pool = good or pool
     top = pool[0]
     close = [c for c in pool if c.bic - top.bic < INDISTINGUISHABLE]
     chosen = min(close, key=lambda c: (not _kk_ok(c), c.k, _VERDICT_RANK.get(c.verdict, 1),
@@ -796,6 +803,9 @@ def _choose(ranked: list) -> tuple:
     elif len(close) > 1:
         how = "indistinguishable"
         runner = next(c for c in close if c is not chosen)
+    elif top is not usable[0]:
+        how = "check passed over"
+        runner = usable[0]
     elif top is not ranked[0]:
         how = "poor passed over"
         runner = ranked[0]
@@ -879,6 +889,12 @@ def _reason(chosen: Candidate, runner: Candidate | None, how: str, ranked: list,
                 how_chosen = "both as simple, so the lower BIC is chosen"
             parts.append(f"{name}: {runner.label} fits as well (ΔBIC {abs(d):.1f} < 2, not "
                          f"distinguishable), {how_chosen}")
+        elif how == "check passed over":
+            first = (runner.result.verdict_reasons or ("",))[0]
+            parts.append(f"{name}: {runner.label} has a BIC lower by {-d:.1f} "
+                         f"({evidence_words(-d)} evidence, short of very strong) but its fit "
+                         f"needs checking ({first.split(':')[0].rstrip('.')}); "
+                         f"{chosen.label} fits without a warning")
         elif how == "poor passed over":
             first = (runner.result.verdict_reasons or ("",))[0]
             parts.append(f"{name}: {runner.label} has a BIC lower by {-d:.0f} but its fit is "

@@ -217,6 +217,18 @@ def test_a_poor_fit_is_passed_over_for_a_usable_one():
     assert "its fit is poor" in text and "by 30" in text
 
 
+def test_a_check_yields_to_a_good_fit_unless_the_evidence_is_very_strong():
+    a, b = _cand("sellmeier", 100.0, 6, "check"), _cand("cauchy", 106.0, 7, "good")
+    chosen, runner, how = suggest._choose([a, b])
+    assert chosen is b and runner is a and how == "check passed over"
+    text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
+                           ()), 1.0)
+    assert "needs checking" in text and "by 6.0" in text and "strong evidence" in text
+    # Very strong evidence (ΔBIC >= 10, Kass & Raftery 1995) keeps the lower BIC.
+    c = _cand("cauchy", 110.5, 7, "good")
+    assert suggest._choose([a, c])[0] is a
+
+
 def test_indistinguishable_models_give_the_simpler_one():
     # Kass & Raftery (1995): ΔBIC 0-2 is "not worth more than a bare mention".
     a, b = _cand("cauchy_urbach", 100.0, 9, "good"), _cand("cauchy", 101.5, 7, "good")
