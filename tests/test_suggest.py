@@ -208,21 +208,24 @@ def _cand(model, bic, k, verdict, current=False):
                      verdict=verdict, ranked=True)
 
 
+def _decide(cands, traits=("transparent",)):
+    """(chosen, runner-up, rule, reason) for hand-made candidates."""
+    chosen, runner, how = suggest._choose(cands)
+    return chosen, runner, how, suggest._reason(chosen, runner, how, cands,
+                                                suggest.Appearance(traits, ()), 1.0)
+
+
 def test_a_poor_fit_is_passed_over_for_a_usable_one():
     a, b = _cand("tauc_lorentz", 100.0, 9, "poor"), _cand("cauchy", 130.0, 7, "check")
-    chosen, runner, how = suggest._choose([a, b])
+    chosen, runner, how, text = _decide([a, b])
     assert chosen is b and runner is a and how == "poor passed over"
-    text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
-                           ()), 1.0)
     assert "its fit is poor" in text and "by 30" in text
 
 
 def test_a_check_yields_to_a_good_fit_unless_the_evidence_is_very_strong():
     a, b = _cand("sellmeier", 100.0, 6, "check"), _cand("cauchy", 106.0, 7, "good")
-    chosen, runner, how = suggest._choose([a, b])
+    chosen, runner, how, text = _decide([a, b])
     assert chosen is b and runner is a and how == "check passed over"
-    text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
-                           ()), 1.0)
     assert "needs checking" in text and "by 6.0" in text and "strong evidence" in text
     # Very strong evidence (ΔBIC >= 10, Kass & Raftery 1995) keeps the lower BIC.
     c = _cand("cauchy", 110.5, 7, "good")
@@ -232,20 +235,16 @@ def test_a_check_yields_to_a_good_fit_unless_the_evidence_is_very_strong():
 def test_indistinguishable_models_give_the_simpler_one():
     # Kass & Raftery (1995): ΔBIC 0-2 is "not worth more than a bare mention".
     a, b = _cand("cauchy_urbach", 100.0, 9, "good"), _cand("cauchy", 101.5, 7, "good")
-    chosen, runner, how = suggest._choose([a, b])
+    chosen, runner, how, text = _decide([a, b])
     assert chosen is b and how == "indistinguishable"
-    text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
-                           ()), 1.0)
     assert "not distinguishable" in text and "simpler" in text
     # Among indistinguishable ones, n and κ that obey Kramers-Kronig come first.
     kk_bad = _cand("cauchy_urbach", 100.0, 8, "check")
     kk_bad.result.kk = {"film": SimpleNamespace(consistent=False)}
     kk_good = _cand("tauc_lorentz", 100.7, 9, "check")
     kk_good.result.kk = {"film": SimpleNamespace(consistent=True)}
-    chosen, runner, how = suggest._choose([kk_bad, kk_good])
+    chosen, runner, how, text = _decide([kk_bad, kk_good], ("absorption edge",))
     assert chosen is kk_good and how == "indistinguishable"
-    text = suggest._reason(chosen, runner, how, [kk_bad, kk_good],
-                           suggest.Appearance(("absorption edge",), ()), 1.0)
     assert "Kramers-Kronig" in text
     # ... but 2 or more apart, the lower BIC wins whatever its size.
     c = _cand("cauchy", 102.5, 7, "good")
@@ -254,10 +253,8 @@ def test_indistinguishable_models_give_the_simpler_one():
 
 def test_when_every_candidate_is_poor_the_reason_says_so():
     a, b = _cand("tauc_lorentz", 100.0, 9, "poor"), _cand("cauchy", 500.0, 7, "poor")
-    chosen, runner, how = suggest._choose([a, b])
+    chosen, runner, how, text = _decide([a, b])
     assert chosen is a and how == "all poor"
-    text = suggest._reason(chosen, runner, how, [a, b], suggest.Appearance(("transparent",),
-                           ()), 1.0)
     assert "no candidate describes the data well" in text
 
 
