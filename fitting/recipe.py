@@ -95,7 +95,8 @@ own. ``false`` or leaving it out fits the stack's model only. The models are
 tried on the first film whose thickness is fitted. **Each spectrum then takes
 one full fit per candidate, typically 3-4 times as long**; the result says
 which model was chosen and why (``extra.model_suggestion`` in its JSON, the
-``model`` column of a batch summary).
+``model`` column of a batch summary). The option is part of
+:func:`recipe_identity`: a resumed batch refits spectra done without it.
 
 Reference correction (optional ``reference`` section): every spectrum is read
 as the raw signal S and turned into T = (S - D) / (B - D) with the 100 % line B
@@ -123,14 +124,14 @@ Two hashes identify a recipe:
   ``pellucid batch --resume``. It covers everything that can change a result:
   the models and their kinds, every bound, the fixed/varied flags, the values of
   fixed parameters, ties, the substrate and media, non-uniformity and bandwidth,
-  the reader, the fit window, masks and options, the model suggestion, the
-  limits, the outputs and the *content* (SHA-256) of the reference files. It
-  leaves out the name, the notes, the location of the reference files and the
-  start values of varied parameters: the automatic start finds its own
-  starting point from the data, so one interactive fit that moved the start
-  values does not make a resumed batch refit everything. (With a purely local
-  method, ``"leastsq"`` or ``"least_squares"``, start values can change the
-  answer; run without ``--resume`` after changing them.)
+  the reader, the fit window, masks and options, the limits, the outputs and
+  the *content* (SHA-256) of the reference files. It leaves out the name, the
+  notes, the location of the reference files and the start values of varied
+  parameters: the automatic start finds its own starting point from the data,
+  so one interactive fit that moved the start values does not make a resumed
+  batch refit everything. (With a purely local method, ``"leastsq"`` or
+  ``"least_squares"``, start values can change the answer; run without
+  ``--resume`` after changing them.)
 """
 
 from __future__ import annotations

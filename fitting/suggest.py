@@ -430,10 +430,12 @@ def _target_layer(stack: Stack, layer: str | None) -> int:
             raise FitError(f"layer {layer!r} is not in the stack (layers: {', '.join(names)}); "
                            f"name the film to try models on")
         return names.index(layer)
-    films = [i for i, x in enumerate(stack.layers) if not isinstance(x.material, Bruggeman)]
+    # A roughness mixture follows its film; a known layer (measured earlier) is held.
+    films = [i for i, x in enumerate(stack.layers) if not isinstance(x.material, Bruggeman)
+             and not getattr(x, "known", False)]
     if not films:
-        raise FitError("every layer of the stack is a roughness (Bruggeman) layer: a model "
-                       "suggestion needs a film to try models on")
+        raise FitError("the stack has no film to try models on (only roughness or known "
+                       "layers); add the film whose model is unknown")
     varied = [i for i in films if stack.layers[i].thickness.vary]
     return (varied or films)[0]
 

@@ -370,34 +370,6 @@ def test_identity_ignores_start_values_name_and_notes_only():
     assert recipe_identity(d4) != ident
 
 
-# -- reference correction in a recipe -------------------------------------------------------
-def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
-    (tmp_path / "refs").mkdir()
-    (tmp_path / "refs" / "b.csv").write_text("400,1000\n500,1000\n")
-    r = make_recipe(reference={"baseline": "refs/b.csv"})
-    assert r.to_dict()["reference"] == {"baseline": "refs/b.csv", "dark": None}
-    path = save_recipe(r, tmp_path / "r.json")
-    loaded = load_recipe(path)
-    files = loaded.reference_files()
-    assert files == {"baseline": (tmp_path / "refs" / "b.csv").resolve(), "dark": None}
-    resolved = loaded.resolved()
-    assert resolved.reference["baseline"] == str((tmp_path / "refs" / "b.csv").resolve())
-    # No reference: the section is not written, so older recipes keep their hash.
-    assert "reference" not in make_recipe().to_dict()
-    missing = make_recipe(reference={"baseline": "refs/nope.csv", "dark": "refs/dark.csv"})
-    missing.source_dir = tmp_path
-    with pytest.raises(RecipeError, match="does not exist.*folder of the recipe") as ei:
-        missing.reference_files()
-    assert ei.value.field == "reference.baseline"
-    for bad, field in (({"dark": "d.csv"}, "reference.baseline"),
-                       ({"baseline": 5}, "reference.baseline"),
-                       ({"baseline": "b.csv", "flat": "x"}, "reference.flat"),
-                       ("b.csv", "reference")):
-        with pytest.raises(RecipeError) as ei:
-            make_recipe(reference=bad)
-        assert ei.value.field == field
-
-
 # -- model suggestion -----------------------------------------------------------------------
 def test_suggest_model_option_round_trips_and_counts_for_resume(tmp_path):
     from fitting.recipe import recipe_identity
@@ -428,3 +400,32 @@ def test_suggest_model_option_is_validated(value, field, words):
     with pytest.raises(RecipeError) as e:
         recipe_from_dict(d)
     assert e.value.field == field and words in str(e.value)
+
+
+# -- reference correction in a recipe -------------------------------------------------------
+def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
+    (tmp_path / "refs").mkdir()
+    (tmp_path / "refs" / "b.csv").write_text("400,1000\n500,1000\n")
+    r = make_recipe(reference={"baseline": "refs/b.csv"})
+    assert r.to_dict()["reference"] == {"baseline": "refs/b.csv", "dark": None}
+    path = save_recipe(r, tmp_path / "r.json")
+    loaded = load_recipe(path)
+    files = loaded.reference_files()
+    assert files == {"baseline": (tmp_path / "refs" / "b.csv").resolve(), "dark": None}
+    resolved = loaded.resolved()
+    assert resolved.reference["baseline"] == str((tmp_path / "refs" / "b.csv").resolve())
+    # No reference: the section is not written, so older recipes keep their hash.
+    assert "reference" not in make_recipe().to_dict()
+    missing = make_recipe(reference={"baseline": "refs/nope.csv", "dark": "refs/dark.csv"})
+    missing.source_dir = tmp_path
+    with pytest.raises(RecipeError, match="does not exist.*folder of the recipe") as ei:
+        missing.reference_files()
+    assert ei.value.field == "reference.baseline"
+    for bad, field in (({"dark": "d.csv"}, "reference.baseline"),
+                       ({"baseline": 5}, "reference.baseline"),
+                       ({"baseline": "b.csv", "flat": "x"}, "reference.flat"),
+                       ("b.csv", "reference")):
+        with pytest.raises(RecipeError) as ei:
+            make_recipe(reference=bad)
+        assert ei.value.field == field
+
