@@ -495,6 +495,28 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
     return obj.to_dict()
 
 
+def _suggest_section(v):
+    """Validate ``fit.suggest_model``: true/false, or a list of model keys to try."""
+    where = "fit.suggest_model"
+    if isinstance(v, bool):
+        return v
+    if v is None:
+        return False
+    if not isinstance(v, (list, tuple)):
+        raise RecipeError(where, f"must be true, false or a list of film models such as "
+                                 f'["cauchy", "tauc_lorentz"], got {v!r}')
+    from .presets import MODEL_CHOICES
+    allowed = [k for k in MODEL_CHOICES if k not in ("tabulated", "roughness")]
+    if not v:
+        raise RecipeError(where, "the list of models is empty; give at least one, or true to "
+                                 "let the data decide")
+    for i, key in enumerate(v):
+        if key not in allowed:
+            raise RecipeError(f"{where}[{i}]", f"unknown film model {key!r}; choose from "
+                                               f"{', '.join(allowed)}")
+    return tuple(dict.fromkeys(v))
+
+
 def _range_pair(v, where):
     if v is None:
         return (None, None)
@@ -714,28 +736,6 @@ class Recipe:
 
     def hash(self) -> str:
         return recipe_hash(self)
-
-
-def _suggest_section(v):
-    """Validate ``fit.suggest_model``: true/false, or a list of model keys to try."""
-    where = "fit.suggest_model"
-    if isinstance(v, bool):
-        return v
-    if v is None:
-        return False
-    if not isinstance(v, (list, tuple)):
-        raise RecipeError(where, f"must be true, false or a list of film models such as "
-                                 f'["cauchy", "tauc_lorentz"], got {v!r}')
-    from .presets import MODEL_CHOICES
-    allowed = [k for k in MODEL_CHOICES if k not in ("tabulated", "roughness")]
-    if not v:
-        raise RecipeError(where, "the list of models is empty; give at least one, or true to "
-                                 "let the data decide")
-    for i, key in enumerate(v):
-        if key not in allowed:
-            raise RecipeError(f"{where}[{i}]", f"unknown film model {key!r}; choose from "
-                                               f"{', '.join(allowed)}")
-    return tuple(dict.fromkeys(v))
 
 
 def _reference_section(ref):

@@ -428,4 +428,3 @@ def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
         with pytest.raises(RecipeError) as ei:
             make_recipe(reference=bad)
         assert ei.value.field == field
-
