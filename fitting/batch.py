@@ -56,7 +56,9 @@ columns ``file,recipe``. The summary then has the columns of all recipes, the
 recipes are saved under ``recipes/`` and each gets its own report.
 
 Summary row columns (see :func:`summary_columns`): ``index, file, sha256,
-status, verdict, reason``; per film layer ``L``: ``L_thickness`` and
+status, verdict, reason, model`` (the film model of the result, a key of
+:data:`fitting.presets.MODEL_CHOICES`; with ``fit.suggest_model`` the one the
+suggestion chose, and ``model_reason`` says why); per film layer ``L``: ``L_thickness`` and
 ``L_thickness_sigma`` (nm), ``L_n@550 L_k@550 L_n@633 L_k@633 L_n@1000
 L_k@1000``; ``band_gap``, ``band_gap_sigma`` (eV), ``redchi``, ``chisqr``,
 ``nfev``, ``warnings``, ``verdict_reasons``; a value column for each limit on
@@ -101,7 +103,7 @@ from .spectrum import sha256_of_file
 __all__ = ["iter_batch", "run_batch", "process_spectrum", "expand_inputs", "read_manifest",
            "summary_columns", "summary_row", "prepare", "BatchStep", "BatchSummary",
            "BatchInputError", "SPECTRUM_SUFFIXES", "SPREADSHEET_SUFFIXES", "MARKER_NAME",
-           "STATUSES", "VERDICTS"]
+           "STATUSES", "VERDICTS", "result_model"]
 
 #: File endings picked up when a folder is given as input (case-insensitive).
 SPECTRUM_SUFFIXES = (".csv", ".txt", ".dat", ".tsv", ".asc", ".prn", ".sp", ".jdx", ".dx")
@@ -324,7 +326,9 @@ def read_manifest(path) -> list[tuple[str, Recipe]]:
 def summary_columns(*recipes: Recipe) -> list[str]:
     """Column names of the summary table for these recipes (all their layers and
     limits, first appearance first)."""
-    head = ["index", "file", "sha256", "status", "verdict", "reason"]
+    head = ["index", "file", "sha256", "status", "verdict", "reason", "model"]
+    if any(r.suggest_model for r in recipes):
+        head.append("model_reason")
     body: list[str] = []
     for recipe in recipes:
         for layer in recipe.stack.layers:
@@ -376,6 +380,24 @@ def result_verdict(result) -> tuple[str, tuple]:
     return (v if v in VERDICTS else ""), tuple(str(r) for r in (reasons or ()))
 
 
+def result_model(result) -> str | None:
+    """The film model of a result: the suggestion's choice, else the model of the first
+    film with a fitted thickness (a :data:`fitting.presets.MODEL_CHOICES` key)."""
+    chosen = (getattr(result, "extra", None) or {}).get("model_suggestion", {}).get("chosen")
+    if chosen:
+        return str(chosen)
+    layers = (getattr(result, "stack", None) or {}).get("layers") or []
+    if not layers:
+        return None
+    pick = next((x for x in layers if (x.get("thickness") or {}).get("vary")), layers[0])
+    try:
+        from .dispersion import model_from_dict
+        from .presets import model_choice_of
+        return model_choice_of(model_from_dict(pick["material"]))
+    except (PellucidError, KeyError, TypeError, ValueError):
+        return None
+
+
 def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash: str,
                 status: str, reason: str = "", output: str = "",
                 elapsed_s: float | None = None) -> dict:
@@ -399,7 +421,9 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
             row["band_gap"] = _num(result.band_gap.Eg_eV)
             row["band_gap_sigma"] = _num(result.band_gap.sigma_eV)
         row.update(redchi=_num(result.redchi), chisqr=_num(result.chisqr), nfev=result.nfev,
-                   warnings="; ".join(result.warnings))
+                   warnings="; ".join(result.warnings), model=result_model(result))
+        if "model_reason" in row:
+            row["model_reason"] = (result.extra.get("model_suggestion") or {}).get("reason")
         verdict, reasons = result_verdict(result)
         if status == "ok":
             row["verdict"] = verdict or None
@@ -460,6 +484,23 @@ class Prepared:
 
     def reference_sha256(self) -> dict:
         return {k: v["sha256"] for k, v in self.reference.items()}
+
+    def fit(self, spectrum, *, stop=None, suggest=None):
+        """Fit one spectrum the way the recipe says: (result, Suggestion or None).
+
+        With ``fit.suggest_model`` (or ``suggest``: True or a tuple of model
+        keys, overriding the recipe) the film models are ranked by
+        :func:`fitting.suggest.suggest_model` and the chosen one's result is
+        returned; otherwise the stack's own model is fitted.
+        """
+        stack, options = self.recipe.new_stack(), self.recipe.make_fit_options(spectrum)
+        want = self.recipe.suggest_model if suggest is None else suggest
+        if not want:
+            return self.fit_spectrum(spectrum, stack, options, stop=stop), None
+        from .suggest import suggest_model
+        s = suggest_model(spectrum, stack, options, stop=stop,
+                          families=want if isinstance(want, (tuple, list)) else None)
+        return s.result, s
 
     def spectrum(self, path):
         """Read a spectrum file and apply the reference correction of the recipe."""
@@ -584,9 +625,9 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
     result, files, tb = None, [], ""
     try:
         spectrum = prep.spectrum(path)
-        result = prep.fit_spectrum(spectrum, prep.recipe.new_stack(),
-                                   prep.recipe.make_fit_options(spectrum), stop=stop)
-        if result.aborted and stop is not None and stop.is_set():
+        result, suggestion = prep.fit(spectrum, stop=stop)
+        stopped = result.aborted or (suggestion is not None and suggestion.stopped)
+        if stopped and stop is not None and stop.is_set():
             return row(result, "stopped", "stopped by the user")
         status, reason = ("ok", "") if result.success else ("failed", result.message or
                                                             "the fit did not converge")

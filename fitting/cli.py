@@ -128,6 +128,11 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--out", required=True, metavar="DIR", help="folder for the exports")
     f.add_argument("--no-figures", action="store_true",
                    help="leave out the figures even if the recipe asks for them")
+    f.add_argument("--suggest-model", action="store_true",
+                   help="also fit the other film models the data make plausible, rank them "
+                        "by the Bayesian information criterion (BIC), print the ranking and "
+                        "keep the best (as the recipe's fit.suggest_model: true does); takes "
+                        "one fit per candidate, typically 3-4 times as long")
 
     b = sub.add_parser("batch", help="fit many spectra with one recipe (or several)",
                        description="Fit every spectrum with its recipe, in parallel. A bad "
@@ -236,14 +241,19 @@ def _fit(args, out) -> int:
     outdir = Path(args.out)
     if outdir.exists() and not outdir.is_dir():
         raise _UsageError(f"--out {outdir} is a file; give a folder for the exports")
+    if getattr(args, "suggest_model", False) and not recipe.suggest_model:
+        import dataclasses
+        recipe = dataclasses.replace(recipe, suggest_model=True)
     prep = batch.Prepared(recipe.resolved())        # reads the recipe's reference files
     spectrum = prep.spectrum(path)
-    result = prep.fit_spectrum(spectrum, recipe.new_stack(), recipe.make_fit_options(spectrum))
+    result, suggestion = prep.fit(spectrum)
     outdir.mkdir(parents=True, exist_ok=True)
     # Say what was fitted: a reflectance file fits as R under an "auto" reader setting.
     what = 'transmittance T' if spectrum.quantity == 'T' else 'reflectance R'
     ref = " after dividing by the 100 % line" if prep.reference else ""
     out.write(f"fitted {what} of {path.name} ({len(spectrum)} points){ref}\n")
+    if suggestion is not None:
+        out.write(suggestion.ranking_table() + "\n\n")
     prov = prep.provenance(path, sha256_of_file(path))
     files = batch._export(result, outdir, batch.export_stem(path), prov, prep.recipe)
     out.write(result.report() + "\n")

@@ -24,7 +24,9 @@ File format ``pellucid-recipe``, version 2
       "fit": {
         "range_nm": [400.0, 1100.0],        # fit window; null = open end
         "masks_nm": [[655.0, 657.0]],       # windows left out (lamp switch-over ...)
-        "options": { ... }                  # FitOptions.to_dict(): method, nuisance flags
+        "options": { ... },                 # FitOptions.to_dict(): method, nuisance flags
+        "suggest_model": true               # optional: try the plausible film models and
+                                            #   keep the one the BIC prefers (see below)
       },
       "limits": {                           # optional specification limits
         "film_thickness": {"target": 500, "tol": 25},   # nm, pass if |x - target| <= tol
@@ -113,6 +115,21 @@ Version 0 (earlier layout, upgraded automatically by :func:`upgrade`): no
 ``"thickness_nm": 500`` with optional ``"thickness_range_nm": [lo, hi]`` and
 ``"fit_thickness": true``; the fit window was a top-level ``"range_nm"`` and
 the method a top-level ``"method"``.
+
+Model suggestion (optional ``fit.suggest_model``): ``true`` fits, for every
+spectrum, the film models the data make plausible (transparent: Cauchy,
+Cauchy + Urbach tail, Sellmeier; absorption edge: Tauc-Lorentz, Cauchy + Urbach
+tail; free-carrier fall-off in the infrared: Drude + Lorentz) besides the
+stack's own model, and keeps the one with the lowest Bayesian information
+criterion (:mod:`fitting.suggest`); a list of model keys
+(``["cauchy", "tauc_lorentz"]``, keys of :data:`fitting.presets.MODEL_CHOICES`
+except ``tabulated`` and ``roughness``) tries exactly those besides the stack's
+own. ``false`` or leaving it out fits the stack's model only. The models are
+tried on the first film whose thickness is fitted. **Each spectrum then takes
+one full fit per candidate, typically 3-4 times as long**; the result says
+which model was chosen and why (``extra.model_suggestion`` in its JSON, the
+``model`` column of a batch summary). The option is part of
+:func:`recipe_identity`: a resumed batch refits spectra done without it.
 
 Reference correction (optional ``reference`` section): every spectrum is read
 as the raw signal S and turned into T = (S - D) / (B - D) with the 100 % line B
@@ -517,6 +534,28 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
     return obj.to_dict()
 
 
+def _suggest_section(v):
+    """Validate ``fit.suggest_model``: true/false, or a list of model keys to try."""
+    where = "fit.suggest_model"
+    if isinstance(v, bool):
+        return v
+    if v is None:
+        return False
+    if not isinstance(v, (list, tuple)):
+        raise RecipeError(where, f"must be true, false or a list of film models such as "
+                                 f'["cauchy", "tauc_lorentz"], got {v!r}')
+    from .presets import MODEL_CHOICES
+    allowed = [k for k in MODEL_CHOICES if k not in ("tabulated", "roughness")]
+    if not v:
+        raise RecipeError(where, "the list of models is empty; give at least one, or true to "
+                                 "let the data decide")
+    for i, key in enumerate(v):
+        if key not in allowed:
+            raise RecipeError(f"{where}[{i}]", f"unknown film model {key!r}; choose from "
+                                               f"{', '.join(allowed)}")
+    return tuple(dict.fromkeys(v))
+
+
 def _range_pair(v, where):
     if v is None:
         return (None, None)
@@ -564,6 +603,11 @@ class Recipe:
         ``{"baseline": path, "dark": path or None}``: divide every spectrum by
         this 100 % line after subtracting the dark signal (see the module
         docstring); None for spectra that are already T or R.
+    suggest_model : bool or tuple of str
+        Try other film models and keep the one the BIC prefers: True for the
+        families the data make plausible, a tuple of model keys for exactly
+        those (see the module docstring); False (the default) fits the
+        stack's model only.
     source_dir : Path or None
         Folder relative reference paths are resolved from (the recipe file's
         folder; set by :func:`load_recipe`). Not saved, not hashed.
@@ -580,12 +624,14 @@ class Recipe:
     exports: tuple = EXPORT_CHOICES
     plot_formats: tuple = ("png",)
     reference: dict | None = None
+    suggest_model: Any = False
     source_dir: Path | None = field(default=None, compare=False, repr=False)
 
     def __post_init__(self):
         if not isinstance(self.stack, Stack):
             raise RecipeError("stack", "must be a Stack")
         self.reference = _reference_section(self.reference)
+        self.suggest_model = _suggest_section(self.suggest_model)
         for what in ("name", "notes"):
             if not isinstance(getattr(self, what), str):
                 raise RecipeError(what, "must be text")
@@ -714,7 +760,10 @@ class Recipe:
                 "notes": self.notes, "stack": stack, "reader": dict(self.reader),
                 "fit": {"range_nm": list(self.range_nm),
                         "masks_nm": [list(m) for m in self.masks_nm],
-                        "options": dict(self.fit_options)},
+                        "options": dict(self.fit_options),
+                # Only when used, so recipes without it keep their hash.
+                **({"suggest_model": (list(self.suggest_model) if isinstance(
+                    self.suggest_model, tuple) else True)} if self.suggest_model else {})},
                 "limits": {k: v.to_dict() for k, v in self.limits.items()},
                 "outputs": {"exports": list(self.exports),
                             "plot_formats": list(self.plot_formats)},
@@ -839,7 +888,7 @@ def recipe_from_dict(d: Mapping, *, path=None, source_dir=None) -> Recipe:
         fit = d.get("fit", {})
         if not isinstance(fit, Mapping):
             raise RecipeError("fit", "must be an object")
-        extra = set(fit) - {"range_nm", "masks_nm", "options"}
+        extra = set(fit) - {"range_nm", "masks_nm", "options", "suggest_model"}
         if extra:
             raise RecipeError(f"fit.{sorted(extra)[0]}", "unknown field")
         outputs = d.get("outputs", {})
@@ -857,6 +906,7 @@ def recipe_from_dict(d: Mapping, *, path=None, source_dir=None) -> Recipe:
                       plot_formats=outputs.get("plot_formats",
                                                defaults["plot_formats"].default),
                       reference=d.get("reference"),
+                      suggest_model=fit.get("suggest_model", False),
                       source_dir=None if source_dir is None else Path(source_dir))
     except RecipeError as e:
         if path is not None and e.path is None:

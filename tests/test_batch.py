@@ -60,6 +60,8 @@ def test_broken_files_are_reported_and_the_rest_recovered(batch27):
         assert r["spec_film_thickness"] == expected
         assert r["spec_film_n@633"] == "pass"
         assert r["spec_pass"] == expected
+        assert r["model"] == "cauchy"                 # the recipe's own film model
+    assert all(by_name[name]["model"] is None for name in BROKEN)
 
 
 def test_every_row_and_file_carries_provenance(batch27):
@@ -605,3 +607,24 @@ def test_per_spectrum_work_does_not_grow_with_the_batch(tmp_path, monkeypatch):
         per[n] = (len(writes), len(reads) / n)
     assert per[2][0] == per[6][0] == 1
     assert per[2][1] == per[6][1] <= 2
+
+
+def test_a_recipe_asking_for_a_model_suggestion_keeps_the_chosen_model(tmp_path):
+    # One transparent Cauchy film: the candidates are the transparent families
+    # (fitting.suggest.FAMILIES); each row names the chosen model and why.
+    from fitting.suggest import FAMILIES
+    truth = write_spectra(tmp_path / "in", [520.0], seed=5)
+    recipe = make_recipe(suggest_model=True, exports=("json",))
+    summary = run_batch([tmp_path / "in"], recipe, tmp_path / "out", jobs=1, report=False)
+    assert summary.counts.get("ok") == 1
+    doc = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert doc["columns"] == summary_columns(recipe) and "model_reason" in doc["columns"]
+    row = doc["rows"][0]
+    assert row["model"] in FAMILIES["transparent"]
+    assert row["model_reason"].startswith(("Cauchy", "Sellmeier"))
+    assert row["film_thickness"] == pytest.approx(truth["s000.txt"], rel=0.01)
+    folder = tmp_path / "out" / row["result_dir"]
+    result = json.loads((folder / "s000_result.json").read_text())
+    ranking = result["extra"]["model_suggestion"]
+    assert ranking["chosen"] == row["model"] and ranking["reason"] == row["model_reason"]
+    assert {c["model"] for c in ranking["candidates"]} == set(FAMILIES["transparent"])

@@ -89,6 +89,25 @@ def test_fit_one_spectrum_writes_exports(recipe_file, tmp_path):
     assert doc["provenance"]["recipe_hash"] == recipe_hash(make_recipe())
 
 
+def test_fit_with_suggest_model_prints_the_ranking(recipe_file, tmp_path):
+    write_spectra(tmp_path / "in", [560.0], seed=12)
+    code, out, err = run(["fit", str(tmp_path / "in" / "s000.txt"), "--recipe",
+                          str(recipe_file), "--out", str(tmp_path / "res"), "--suggest-model"])
+    assert code in (0, 3), err
+    assert "Model suggestion for layer 'film'" in out and "\nchosen: " in out
+    for label in ("Cauchy (yours)", "Cauchy + Urbach tail", "Sellmeier"):
+        assert label in out
+    doc = json.loads((tmp_path / "res" / "s000_result.json").read_text())
+    chosen = doc["extra"]["model_suggestion"]["chosen"]
+    assert doc["provenance"]["recipe_hash"] == recipe_hash(
+        make_recipe(suggest_model=True))                     # the recipe that was run
+    assert chosen in ("cauchy", "cauchy_urbach", "sellmeier")
+    # Without the flag (and without the recipe option) no ranking is printed.
+    code, out, err = run(["fit", str(tmp_path / "in" / "s000.txt"), "--recipe",
+                          str(recipe_file), "--out", str(tmp_path / "res2")])
+    assert "Model suggestion" not in out
+
+
 @pytest.mark.parametrize("edit,field", [
     (lambda d: d["stack"]["layers"][0]["material"].update(kind="plasma"),
      "stack.layers[0].material.kind"),

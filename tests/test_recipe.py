@@ -370,6 +370,38 @@ def test_identity_ignores_start_values_name_and_notes_only():
     assert recipe_identity(d4) != ident
 
 
+# -- model suggestion -----------------------------------------------------------------------
+def test_suggest_model_option_round_trips_and_counts_for_resume(tmp_path):
+    from fitting.recipe import recipe_identity
+    plain = make_recipe()
+    assert "suggest_model" not in plain.to_dict()["fit"]          # older hashes unchanged
+    auto = make_recipe(suggest_model=True)
+    chosen = make_recipe(suggest_model=["tauc_lorentz", "cauchy", "tauc_lorentz"])
+    assert chosen.suggest_model == ("tauc_lorentz", "cauchy")
+    for r in (auto, chosen):
+        loaded = load_recipe(save_recipe(r, tmp_path / "r.json"))
+        assert loaded.suggest_model == r.suggest_model
+        assert loaded.to_dict() == r.to_dict() and recipe_hash(loaded) == recipe_hash(r)
+    idents = {recipe_identity(r) for r in (plain, auto, chosen)}
+    assert len(idents) == 3
+    assert make_recipe(suggest_model=False).to_dict() == plain.to_dict()
+
+
+@pytest.mark.parametrize("value,field,words", [
+    ("yes", "fit.suggest_model", "must be true, false or a list"),
+    (1, "fit.suggest_model", "must be true, false or a list"),
+    ([], "fit.suggest_model", "empty"),
+    (["cauchy", "plasma"], "fit.suggest_model[1]", "unknown film model 'plasma'"),
+    (["tabulated"], "fit.suggest_model[0]", "unknown film model 'tabulated'"),
+])
+def test_suggest_model_option_is_validated(value, field, words):
+    d = make_recipe().to_dict()
+    d["fit"]["suggest_model"] = value
+    with pytest.raises(RecipeError) as e:
+        recipe_from_dict(d)
+    assert e.value.field == field and words in str(e.value)
+
+
 # -- reference correction in a recipe -------------------------------------------------------
 def test_reference_paths_resolve_from_the_recipe_folder(tmp_path):
     (tmp_path / "refs").mkdir()
