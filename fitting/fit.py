@@ -44,7 +44,6 @@ References
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import threading
 import time
@@ -56,16 +55,15 @@ import numpy as np
 from . import autostart
 from .errors import FitError, PellucidError, RecipeError
 from .finish import finish, scanned_film
-from .objective import Objective, Part, _Stop, build_part
+from .objective import Objective, _Stop, build_part, stage_span
 from .result import FitProgress, FitResult
 from .stack import POLARIZATIONS, Stack
+from .startplan import plan_starts
 
 __all__ = ["FitOptions", "fit_spectrum", "fit_joint", "iter_fit", "iter_fit_joint",
            "FitResult", "FitProgress", "METHODS"]
 
 METHODS = ("auto", "leastsq", "least_squares", "differential_evolution", "basinhopping")
-#: How many scan basins the automatic start polishes.
-N_POLISH = 3
 
 
 @dataclass(frozen=True)
@@ -335,35 +333,37 @@ def _run(obj: Objective, options: FitOptions):
     times: dict = {}             # wall time of each stage, s (for the benchmark)
     info["stage_times_s"] = times
     try:
-        obj.set_stage("start", 0.0, 0.05, message="preparing")
+        obj.enter("start", message="preparing")
         obj.check()
         if method == "auto":
-            starts, plan = _auto_starts(obj, options, start, info)
+            plan = plan_starts(obj, start, info)
+            starts = plan.starts
             times["seed_and_scan"] = obj.elapsed
-            yield FitProgress("scan", 0.3, obj.nfev, obj.best_chisqr,
+            yield FitProgress("scan", stage_span("scan")[2], obj.nfev, obj.best_chisqr,
                               f"{len(starts)} start(s) from the thickness scan")
-            if plan is not None:
+            if plan.stages:
                 starts = _fringe_stages(obj, starts, plan, info, fallback)
             times["fringe_stages"] = obj.elapsed - sum(times.values())
             for i, (label, values) in enumerate(starts):
-                lo = 0.55 + 0.4 * i / len(starts)
-                obj.set_stage("polish", lo, lo + 0.4 / len(starts), 60 * len(obj.var_names),
-                              f"polishing {label}")
+                end = obj.enter("polish", i, len(starts), 60 * len(obj.var_names),
+                                f"polishing {label}")
                 # Starts come best first: the others only need to show whether they
                 # are real alternatives, so a slow crawl along a valley is cut short.
                 cap = None if i == 0 else 50 * (len(obj.var_names) + 1)
                 polished.append(_polish(obj, values, label, max_nfev=cap))
-                yield FitProgress("polish", lo + 0.4 / len(starts), obj.nfev, obj.best_chisqr,
+                yield FitProgress("polish", end, obj.nfev, obj.best_chisqr,
                                   f"polished {label}")
                 obj.check()
         elif method in ("leastsq", "least_squares"):
-            obj.set_stage("polish", 0.05, 0.95, 60 * len(obj.var_names), method)
+            obj.enter("local", expect_nfev=60 * len(obj.var_names), message=method)
             polished.append(_polish(obj, start, "start values", method=method))
         else:
             polished.append(_global(obj, options, start))
-            yield FitProgress("polish", 0.8, obj.nfev, obj.best_chisqr, f"{method} done")
+            yield FitProgress("polish", stage_span("global")[2], obj.nfev, obj.best_chisqr,
+                              f"{method} done")
             obj.check()
-            obj.set_stage("polish", 0.8, 0.95, 60 * len(obj.var_names), "local polish")
+            obj.enter("global_polish", expect_nfev=60 * len(obj.var_names),
+                      message="local polish")
             polished.append(_polish(obj, polished[-1].values, f"{method} + polish"))
         if method == "auto" and options.fit_spread == "auto":
             _auto_spread(obj, polished)
@@ -403,8 +403,7 @@ def _auto_spread(obj: Objective, polished: list) -> None:
     s0 = _spread_gain(obj, best.values)
     if s0 is None:
         return
-    obj.set_stage("polish", 0.95, 0.99, 60 * len(obj.var_names),
-                  "trying a thickness non-uniformity")
+    obj.enter("refine", 0, 2, 60 * len(obj.var_names), "trying a thickness non-uniformity")
     trial = _polish(obj, {**best.values, "thickness_spread": s0},
                     best.label + " with non-uniformity", free=("thickness_spread",),
                     max_nfev=60 * (len(obj.var_names) + 2))
@@ -501,7 +500,7 @@ def _mirror(obj: Objective, polished: list) -> None:
         if gmap[pre + k] in obj.var_names:
             v[gmap[pre + k]] = x
     v[tname] = best.values[tname] * n / n_m
-    obj.set_stage("polish", 0.97, 0.99, 60 * len(obj.var_names), "trying the mirror solution")
+    obj.enter("refine", 1, 2, 60 * len(obj.var_names), "trying the mirror solution")
     q = _polish(obj, v, "mirror of " + best.label, max_nfev=60 * (len(obj.var_names) + 1))
     n_q = _film_n(obj, q.values, wl_ref)
     q.implausible = bool(n_q < autostart.PLAUSIBLE_N_MIN)
@@ -540,7 +539,7 @@ def _refit_free(obj: Objective, trial):
     return res
 
 
-def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: list):
+def _fringe_stages(obj: Objective, starts, plan, info: dict, fallback: list):
     """Polish every start on the fringe region(s) with the absorption edge held.
 
     Each stage runs for every surviving start; one whose χ² is more than 3 times
@@ -549,16 +548,15 @@ def _fringe_stages(obj: Objective, starts, plan: dict, info: dict, fallback: lis
     at 10 (P + 1) evaluations. Returns the surviving (label, values), best first.
     """
     pool = [(math.inf, label, values) for label, values in starts]
-    n_st = len(plan["stages"])
+    n_st = len(plan.stages)
     cap = 10 * (len(obj.var_names) + 1)
     first = 3 * (len(obj.var_names) + 1)
-    for j, masks in enumerate(plan["stages"]):
+    for j, masks in enumerate(plan.stages):
         done = []
         for i, (_, label, values) in enumerate(pool):
-            lo = 0.3 + 0.25 * (j + i / len(pool)) / n_st
-            obj.set_stage("polish", lo, lo + 0.25 / (n_st * len(pool)), cap,
-                          f"fringe fit of {label}")
-            kw = dict(fixed=plan["fixed"], masks=masks, x_scale="jac")
+            obj.enter("fringe", j * len(pool) + i, n_st * len(pool), cap,
+                      f"fringe fit of {label}")
+            kw = dict(fixed=plan.fixed, masks=masks, x_scale="jac")
             if len(done) >= 2:
                 # Starts after the two best of the scan get a few steps first; one
                 # still far worse than the best so far is not worth the rest (a
@@ -609,7 +607,8 @@ def _polish(obj: Objective, values: dict, label: str, method: str = "least_squar
 
 def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     method = options.method
-    obj.set_stage("scan", 0.05, 0.8, min(options.max_nfev, 5000), f"global search ({method})")
+    obj.enter("global", expect_nfev=min(options.max_nfev, 5000),
+              message=f"global search ({method})")
     if method == "differential_evolution":
         open_ = [k for k in obj.var_names
                  if not (np.isfinite(obj.params[k].min) and np.isfinite(obj.params[k].max))]
@@ -629,292 +628,3 @@ def _global(obj: Objective, options: FitOptions, start: dict) -> _Polished:
     if obj.best_values is not None and obj.best_chisqr < chi2:
         vals, chi2 = dict(obj.best_values), obj.best_chisqr
     return _Polished(vals, chi2, None, method)
-
-
-def _hold_higher_orders(obj: Objective, layer, gmap: dict, seed, info: dict) -> None:
-    """Hold higher dispersion terms the fringes cannot support (the model's
-    ``higher_orders``: a third Cauchy term follows a high-index film into the UV,
-    but on a film with few fringes it only trades off against the thickness)."""
-    for local, need in layer.material.higher_orders:
-        g = gmap.get(f"{layer.name}_{local}")
-        if g in obj.var_names and seed.n_extrema < need and obj.params[g].value == 0:
-            obj.hold(g)
-            info.setdefault("held", []).append(
-                f"{g}: held at 0, only {seed.n_extrema} fringe extrema (needs {need})")
-
-
-def _low_contrast(part: Part, seed, sub_n: np.ndarray) -> bool:
-    """Faint fringes: seed index within 0.12 of the substrate's, below it, or a T
-    swing under 2 % in the long-wavelength half (common practice thresholds)."""
-    if part.quantity != "T":
-        return False
-    if seed.below_substrate:
-        return True
-    if seed.n_ref and abs(seed.n_ref - float(np.interp(seed.wl_ref, part.wl, sub_n))) < 0.12:
-        return True
-    half = part.wl >= np.median(part.wl)
-    y = part.y[half]
-    return y.size > 10 and float(np.percentile(y, 95) - np.percentile(y, 5)) < 0.02
-
-
-def _pick_edge(obj: Objective, li: int, tname: str, local: dict, edge, seed, free,
-               start: dict, info: dict) -> dict:
-    """The film's absorption start that best fits the whole spectrum near the seed.
-
-    Candidates are the edge shapes of :func:`autostart.edge_candidates` and the
-    start as it was; each is scanned over the seed thickness ±15 % on all used
-    points (absorption included, nuisance terms solved), and the lowest χ² wins.
-    """
-    part = obj.parts[0]
-    mat = part.stack.layers[li].material
-    cands = autostart.edge_candidates(mat, local, edge, seed, free, float(part.wl.min()),
-                                      float(part.wl.max()))
-    if len(cands) == 1 and cands[0] == local:
-        return local
-    cands.append(dict(local))
-    d0 = seed.thickness_nm
-    pth = obj.params[tname]
-    lo, hi = max(0.85 * d0, pth.min), min(1.15 * d0, pth.max)
-    if not hi > lo:
-        return cands[0]
-    n_hi = max(float(np.max(mat.N_unchecked(part.wl, c).real)) for c in cands)
-    K = int(min(400, max(8, (hi - lo) / (float(part.wl.min()) / (16 * n_hi)))))
-    locs = {loc: start[g] for g, loc in part.names}
-    try:
-        scan = autostart.scan_thickness([part], li, [locs], np.linspace(lo, hi, K), None,
-                                        n_hi, float(np.median(part.wl)),
-                                        autostart.Nuisance.from_options(obj.options),
-                                        check=obj.check, candidates=cands)
-    except PellucidError:
-        return cands[0]
-    best = int(np.argmin(scan.chisqr.min(axis=1)))
-    info["edge_choice"] = {"candidates": len(cands), "chosen": best,
-                           "chisqr": [float(c) for c in scan.chisqr.min(axis=1)]}
-    return cands[best]
-
-
-def _seed_and_edge(part: Part, sub_n: np.ndarray):
-    """Fringe seed and absorption edge of the first part, each from the data alone.
-
-    Points at the noise floor (an opaque film) are left out of the fringe
-    search, where noise would make false extrema; once the edge shows where the
-    film is clear, the seed is taken again from the clear part only, where the
-    extrema heights are those of a transparent film.
-    """
-    from .edge import absorption_edge, opaque_floor
-    if part.quantity != "T":
-        return _choose_seed(part, sub_n), None
-    keep = ~opaque_floor(part.y, part.sigma)
-    seed = _choose_seed(part, sub_n, keep)
-    edge = absorption_edge(part.wl, part.y, part.sigma, sub_n,
-                           thickness_nm=seed.thickness_nm, n_film=seed.n_ref)
-    if edge.absorbs and edge.clear_nm is not None:
-        clear = (part.wl >= edge.clear_nm[0]) & (part.wl <= edge.clear_nm[1])
-        again = _choose_seed(part, sub_n, clear)
-        if again.has_fringes and again.n_ref:
-            seed = again
-    return seed, edge
-
-
-def _choose_seed(part: Part, sub_n: np.ndarray, keep=None) -> autostart.Seed:
-    """The envelope seed, or the simple fringe seed where the envelope method is weak.
-
-    The envelope method assumes a film index above the substrate's; when the
-    fringes say otherwise (maxima above the bare-substrate line) the simple seed,
-    which knows both cases, is used. It also needs clear envelopes: when it sees
-    far fewer extrema than the simple count (strong dispersion or absorption),
-    the simple seed is the better one. (Both read T against the bare-substrate
-    line, so a baseline error biases n a little; the scan's index levels absorb it.)
-    """
-    if keep is None or keep.sum() < 12:
-        keep = np.ones(part.wl.size, bool)
-    wl, y, sn = part.wl[keep], part.y[keep], sub_n[keep]
-    simple = autostart.fringe_seed(wl, y, part.quantity, sn)
-    env = None if simple.below_substrate else autostart.envelope_seed(wl, y, part.quantity, sn)
-    if env is not None and 1.5 * env.n_extrema + 2 >= simple.n_extrema:
-        return env
-    return simple
-
-
-def _auto_starts(obj: Objective, options: FitOptions, start: dict, info: dict):
-    """Seed, scan and basins: a list of (label, start values) to polish."""
-    found = scanned_film(obj)
-    if found is None:
-        info["scan"] = "no film thickness is fitted: a single local fit from the start values"
-        return [("start values", start)], None
-    tname, li = found
-    part = obj.parts[0]
-    layer = part.stack.layers[li]
-    mat = layer.material
-    gmap = dict((loc, g) for g, loc in part.names)
-    sub_n = part.stack.substrate.N(part.wl).real
-    seed, edge = _seed_and_edge(part, sub_n)
-    info["seed"] = seed.to_dict()
-    if edge is not None:
-        info["edge"] = edge.to_dict()
-    _hold_higher_orders(obj, layer, gmap, seed, info)
-    # Fringes closer than ~4 data points are not resolved: their extrema heights (and
-    # so the seed's n there) are wrong, and a fit there can slip orders.
-    wl_res = 0.0
-    if seed.has_fringes and seed.thickness_nm and seed.n_ref and part.wl.size > 1:
-        dl = float(np.median(np.diff(part.wl)))
-        wl_res = math.sqrt(8 * 1.15 * seed.n_ref * seed.thickness_nm * dl)
-        if seed.n_points:
-            lam, nn = (np.asarray(a, float) for a in seed.n_points)
-            ok = lam >= wl_res
-            seed = dataclasses.replace(seed, n_points=(lam[ok], nn[ok]))
-    pre = layer.name + "_"
-    local = {k: start[gmap[pre + k]] for k in mat.params}
-    free = [k for k in mat.params if gmap[pre + k] in obj.var_names]
-    seeded = autostart.apply_seed(mat, local, seed, free)
-    if edge is not None and part.quantity == "T":
-        seeded = _pick_edge(obj, li, tname, seeded, edge, seed, free, start, info)
-    values = dict(start)
-    for k, v in seeded.items():
-        g = gmap[pre + k]
-        if g in obj.var_names:
-            values[g] = v
-    local = {k: values[gmap[pre + k]] for k in mat.params}
-    wl_mid = float(np.median(part.wl))
-    n_film = mat.N_unchecked(part.wl, local).real
-    level = autostart.n_level_param(mat)
-    if level is not None and gmap[pre + level] not in obj.var_names:
-        level = None
-    if level is not None and seed.has_fringes and _low_contrast(part, seed, sub_n):
-        # Faint fringes: a film close to the substrate's index, on either side. The
-        # seed's n is unreliable (a 1 % baseline error moves it a lot) and the
-        # fringe amplitude grows fast with |n - n_s|: scan a dense ladder of index
-        # levels on both sides (from dense fluorides up), never n_s itself.
-        wl_ref = seed.wl_ref or wl_mid
-        n_try = autostart.contrast_levels(float(np.interp(wl_ref, part.wl, sub_n)))
-        n_ref = max(n_try)
-        info["low_contrast"] = True
-    elif seed.n_ref:
-        n_ref, wl_ref, n_try = seed.n_ref, seed.wl_ref, seed.n_ref
-    elif level is not None:
-        # No fringes, so no index from the data: try the usual range of films.
-        n_ref, wl_ref, n_try = max(autostart.BLIND_LEVELS), wl_mid, autostart.BLIND_LEVELS
-    else:
-        n_ref, wl_ref = float(np.median(n_film)), wl_mid
-        n_try = n_ref
-    pth = obj.params[tname]
-    lo, hi = autostart.scan_range(seed, (pth.min, pth.max), float(part.wl.min()),
-                                  float(part.wl.max()), options.thickness_range_nm)
-    n_hi = 1.15 * max(float(n_film.max()), n_ref) * 1.06
-    step = float(part.wl.min()) / (16 * n_hi)
-    K = int(min(autostart._MAX_SCAN_POINTS, max(8, math.ceil((hi - lo) / step) + 1)))
-    grid = np.linspace(lo, hi, K)
-    obj.set_stage("scan", 0.05, 0.3, 1, f"scanning {K} thicknesses {lo:.0f}-{hi:.0f} nm")
-    # Parts that share this thickness add their χ²; each is scanned at its own film.
-    scan_parts, scan_locals = [], []
-    for p in obj.parts:
-        pm = dict((loc, g) for g, loc in p.names)
-        if pm.get(f"{layer.name}_thickness") == tname:
-            scan_parts.append(p)
-            scan_locals.append({loc: values[g] for g, loc in p.names})
-    t0 = time.perf_counter()
-    # Below the shortest fringe the film absorbs: those points say little about d
-    # but much about the (not yet fitted) absorption, so the scan leaves them out.
-    # Without fringes the same holds for the part of the range where the film at its
-    # start values would absorb noticeably at half the scan's largest thickness.
-    wl_range = (0.0, math.inf)
-    if seed.fringe_range_nm is not None:
-        # Above the longest fringe, too, if the next extremum (about λ²/(4nd) further
-        # on) would lie inside the data: the fringes die out there (free carriers).
-        f_lo, f_hi = seed.fringe_range_nm
-        nxt = f_hi + 1.2 * f_hi ** 2 / (4 * (seed.n_ref or 2.0) * (seed.thickness_nm or 1e3))
-        wl_range = (max(0.97 * f_lo, wl_res), nxt if nxt < float(part.wl.max()) else math.inf)
-    if edge is not None and edge.clear_nm is not None and edge.absorbs:
-        # Where the data say the film absorbs, the fringes say little about d.
-        c_lo, c_hi = edge.clear_nm
-        wl_range = (max(wl_range[0], c_lo), min(wl_range[1], c_hi if c_hi < float(
-            part.wl.max()) else math.inf))
-    d_typ = seed.thickness_nm if seed.has_fringes and seed.thickness_nm else 0.5 * hi
-    # Many fringes: scan on the long-wavelength part (in wavenumber) only, where the
-    # start's dispersion error shifts the fringe phase least; the staged polish then
-    # extends to the whole fringe region (continuation in wavelength).
-    ranges = [wl_range]
-    if seed.n_extrema >= 12 and seed.fringe_range_nm is not None:
-        w_lo = max(wl_range[0], float(part.wl.min()))
-        w_hi = min(seed.fringe_range_nm[1], wl_range[1], float(part.wl.max()))
-        nu_lo, nu_hi = 1.0 / w_hi, 1.0 / w_lo
-        # Half the fringes (in wavenumber), and for many fringes first a third: each
-        # holds enough fringes to fix the order. The side is where the start model
-        # disperses least, so its dispersion error matters least: the long end for
-        # films with UV resonances (Cauchy, Tauc-Lorentz), the short end for free
-        # carriers (Drude), whose index falls towards the infrared.
-        fracs = (1 / 3, 1 / 2) if seed.n_extrema >= 24 else (1 / 2,)
-        long_side = [(1.0 / (nu_lo + f * (nu_hi - nu_lo)), wl_range[1]) for f in fracs]
-        short_side = [(wl_range[0], 1.0 / (nu_hi - f * (nu_hi - nu_lo))) for f in fracs]
-
-        def spread(r):
-            sel = (part.wl >= r[0]) & (part.wl <= r[1])
-            return float(np.ptp(n_film[sel])) if sel.sum() > 1 else math.inf
-
-        side = long_side if spread(long_side[0]) <= spread(short_side[0]) else short_side
-        ranges = side + ranges
-    scan = autostart.scan_thickness(scan_parts, li, scan_locals, grid, level, n_try, wl_ref,
-                                    autostart.Nuisance.from_options(options), check=obj.check,
-                                    wl_range=ranges[0], d_typical=d_typ)
-    n_lv = [autostart._n_at(mat, wl_ref, lv) for lv in scan.levels]
-    basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv,
-                                   same_nd=float(part.wl.min()) / 8)
-    # The seed's own thickness is a start too: when the start dispersion is far off,
-    # the χ² scan can prefer a smooth thin film or a double thickness to the right
-    # order, while the fringe analysis already has it.
-    if seed.has_fringes and seed.thickness_nm and lo <= seed.thickness_nm <= hi:
-        mid = len(scan.levels) // 2
-        nd = seed.thickness_nm * n_lv[mid]
-        if all(abs(nd - b[0] * autostart._n_at(mat, wl_ref, b[1])) >= float(part.wl.min()) / 8
-               for b in basins):
-            basins.append((float(seed.thickness_nm), scan.levels[mid], math.nan))
-    info["scan"] = {"thickness_range_nm": [lo, hi], "points": K, "step_nm": (hi - lo) / (K - 1),
-                    "levels": len(scan.levels), "time_s": time.perf_counter() - t0,
-                    "basins_nm": [b[0] for b in basins]}
-    starts = []
-    for d, lv, chi in basins:
-        v = dict(values)
-        v[tname] = d
-        for k, x in lv.items():
-            g = gmap[pre + k]
-            if g in obj.var_names:
-                v[g] = x
-        starts.append((f"basin at {d:.1f} nm", v))
-    # Joint fits: further films of other parts with their own thickness get their best basin.
-    for p in obj.parts[1:]:
-        pm = dict((loc, g) for g, loc in p.names)
-        g2 = pm.get(f"{layer.name}_thickness")
-        if g2 is None or g2 == tname or g2 not in obj.var_names:
-            continue
-        pp = obj.params[g2]
-        sd = autostart.fringe_seed(p.wl, p.y, p.quantity, p.stack.substrate.N(p.wl).real)
-        lo2, hi2 = autostart.scan_range(sd, (pp.min, pp.max), float(p.wl.min()),
-                                        float(p.wl.max()), options.thickness_range_nm)
-        K2 = int(min(autostart._MAX_SCAN_POINTS,
-                     max(8, math.ceil((hi2 - lo2) / (float(p.wl.min()) / (16 * n_hi))) + 1)))
-        sc = autostart.scan_thickness([p], li, [{loc: values[g] for g, loc in p.names}],
-                                      np.linspace(lo2, hi2, K2), None, n_ref, wl_ref,
-                                      autostart.Nuisance.from_options(options), check=obj.check)
-        b = autostart.pick_basins(sc, 1)
-        if b:
-            for _, v in starts:
-                v[g2] = b[0][0]
-    # The staged polish: which points make up each fringe stage (the ranges above,
-    # nearly transparent points only), and which parameters (the film's absorption
-    # edge) wait for the full fit.
-    edge = set(autostart.edge_params(mat))
-    fixed = [gmap[pre + k] for k in mat.params if k in edge and gmap[pre + k] in obj.var_names]
-    stages = []
-    for rng in ranges:
-        masks = []
-        for p in obj.parts:
-            m = (autostart.fringe_region(p, mat, local, rng, d_typ)
-                 if any(p is q for q in scan_parts) else None)
-            masks.append(np.ones(p.wl.size, bool) if m is None else m)
-        if all(m.all() for m in masks):
-            if not fixed:
-                continue            # the same as the final fit
-            masks = None
-        stages.append(masks)
-    plan = {"stages": stages, "fixed": fixed} if stages else None
-    return starts or [("start values", values)], plan

@@ -36,7 +36,6 @@ import re
 import threading
 import time
 from dataclasses import dataclass, field
-from types import SimpleNamespace
 from typing import Callable
 
 import lmfit
@@ -47,7 +46,8 @@ from .reference import estimate_noise
 from .result import FitProgress
 from .stack import Stack, StackModel
 
-__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "robust_sigma"]
+__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "robust_sigma", "STAGES",
+           "stage_span", "RunResult"]
 
 #: Noise assumed when a spectrum carries no σ: 0.2 % T, typical of a double-beam
 #: UV-Vis-NIR spectrometer over most of its range (common practice).
@@ -190,6 +190,51 @@ def build_part(index: int, spectrum, stack: Stack, options) -> Part:
         raise FitError(f"{name}: the stack cannot be computed on the data: {e}") from e
     return Part(index, spectrum, stack, used, in_range, wl_used, spectrum.values[used], sig,
                 sigma_given, model, u, spectrum.quantity, options.angle_deg, options.polarization)
+
+
+#: The stages of a fit, as reported to a progress bar: (key, reported stage name,
+#: share of the bar). The shares of an automatic fit add up to 1; the local and
+#: global methods use the "local" and "global" rows.
+STAGES = (("start", "start", 0.05), ("scan", "scan", 0.25), ("fringe", "polish", 0.25),
+          ("polish", "polish", 0.38), ("refine", "polish", 0.07))
+_OTHER_STAGES = {"global": ("scan", 0.05, 0.8), "local": ("polish", 0.05, 0.95),
+                 "global_polish": ("polish", 0.8, 0.95)}
+
+
+def stage_span(key: str, i: int = 0, n: int = 1) -> tuple[str, float, float]:
+    """(reported name, start, end) of the i-th of n runs of a stage on the progress bar."""
+    if key in _OTHER_STAGES:
+        name, lo, hi = _OTHER_STAGES[key]
+    else:
+        lo = 0.0
+        for k, name, share in STAGES:
+            if k == key:
+                hi = lo + share
+                break
+            lo += share
+        else:
+            raise KeyError(key)
+    width = (hi - lo) / max(n, 1)
+    return name, lo + i * width, lo + (i + 1) * width
+
+
+@dataclass
+class RunResult:
+    """A minimiser run that was cut short: the best point it saw, in lmfit's terms.
+
+    Has the attributes of lmfit's ``MinimizerResult`` that the engine reads
+    (``params``, ``aborted``, ``success``, ``message``, ``chisqr``, ``nfev``,
+    ``var_names``, ``covar``), so both kinds of run are handled alike.
+    """
+
+    params: lmfit.Parameters
+    aborted: bool
+    success: bool
+    message: str
+    chisqr: float
+    nfev: int
+    var_names: list
+    covar: None = None
 
 
 class _Stop(Exception):
@@ -396,6 +441,13 @@ class Objective:
     def remaining_nfev(self) -> int:
         return max(self.max_nfev - self.nfev, 1)
 
+    def enter(self, key: str, i: int = 0, n: int = 1, expect_nfev: int = 100,
+              message: str = "") -> float:
+        """Start the i-th of n runs of a stage of :data:`STAGES`; returns its end."""
+        name, lo, hi = stage_span(key, i, n)
+        self.set_stage(name, lo, hi, expect_nfev, message)
+        return hi
+
     def set_stage(self, stage: str, frac_lo: float, frac_hi: float, expect_nfev: int = 100,
                   message: str = "") -> None:
         self.stage, self._frac = stage, (frac_lo, frac_hi)
@@ -480,6 +532,6 @@ class Objective:
                 if k in out and not out[k].expr:
                     out[k].value = v
             out.update_constraints()
-        return SimpleNamespace(params=out, aborted=True, success=False, covar=None,
-                               var_names=[k for k, p in out.items() if p.vary and not p.expr],
-                               message="stopped early", chisqr=chi2, nfev=self.nfev)
+        return RunResult(params=out, aborted=True, success=False, message="stopped early",
+                         chisqr=chi2, nfev=self.nfev,
+                         var_names=[k for k, p in out.items() if p.vary and not p.expr])
