@@ -344,14 +344,17 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     lo = np.array([material.params[k].min for k in names])
     hi = np.array([material.params[k].max for k in names])
 
+    lam_all = np.r_[lam_t, lam_n]          # one model call for both sets of points
+
     def resid(x, base):
         v = {**base, **dict(zip(names, x))}
+        n_pri = len(priors(base))
         try:
             with np.errstate(all="ignore"):
-                N_t = material.N_unchecked(lam_t, v)
-                N_n = material.N_unchecked(lam_n, v) if n_n.size else np.zeros(0)
+                N_all = material.N_unchecked(lam_all, v)
         except Exception:  # impossible combination while searching
-            return np.full(lam_t.size + n_n.size, 10.0)
+            return np.full(lam_t.size + n_n.size + n_pri, 10.0)
+        N_t, N_n = N_all[:lam_t.size], N_all[lam_t.size:]
         a = alpha_per_cm(np.maximum(N_t.imag, 0.0), lam_t)
         # n from the fringes is good to about 0.03, α from the envelope to a factor
         # of about 2.7 (one unit of log α); weak priors (log-normal) keep an
@@ -381,7 +384,7 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
         try:
             # A start needs the right neighbourhood, not the last digit.
             sol = least_squares(resid, x0, bounds=(lo, hi), args=(base,), x_scale="jac",
-                                max_nfev=80, ftol=1e-4, xtol=1e-4)
+                                max_nfev=50, ftol=1e-3, xtol=1e-3)
         except ValueError:
             continue
         found.append((float(sol.cost), {**base, **dict(zip(names, (float(v) for v in sol.x)))}))

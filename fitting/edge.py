@@ -192,8 +192,8 @@ def alpha_targets(edge: EdgeData, thickness_nm: float, wl_min: float, wl_max: fl
 
 def target_residuals(alpha_model: np.ndarray, targets) -> np.ndarray:
     """Log-ratio residuals of model α against :func:`alpha_targets` (one-sided for < >)."""
-    r = np.empty(len(targets))
-    for i, ((_, a, kind), am) in enumerate(zip(targets, alpha_model)):
-        q = math.log(max(am, 1e-3) / a)
-        r[i] = q if kind == "=" else (max(q, 0.0) if kind == "<" else min(q, 0.0))
-    return r
+    a = np.array([t[1] for t in targets], dtype=float)
+    kind = np.array([t[2] for t in targets])
+    q = np.log(np.maximum(np.asarray(alpha_model, float), 1e-3) / a)
+    return np.where(kind == "=", q, np.where(kind == "<", np.maximum(q, 0.0),
+                                              np.minimum(q, 0.0)))
