@@ -279,9 +279,12 @@ class Objective:
         self.var_names = [k for k, p in self.params.items() if p.vary and not p.expr]
         if not [k for k in self.var_names if k not in _NUISANCE
                 and not any(k == f"p{p.index + 1}_{n}" for p in parts for n in _NUISANCE)]:
-            raise FitError("no parameter is free to vary: tick 'fit' for at least one "
-                           "thickness or material parameter (the 100 % line scale and "
-                           "tilt alone are not a fit)")
+            every_known = all(getattr(layer, "known", False) for p in parts
+                              for layer in p.stack.layers)
+            raise FitError("no parameter is free to vary: " + (
+                "every layer is marked known; untick 'known' on a layer to fit it"
+                if every_known else "tick 'fit' for at least one thickness or material "
+                "parameter (the 100 % line scale and tilt alone are not a fit)"))
         for part in parts:
             try:
                 part.evaluate(self.local_values(part, self.params))

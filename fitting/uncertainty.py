@@ -151,6 +151,22 @@ def _influences(obj, values: dict, options):
             finally:
                 p.stack.thickness_spread = old
         out.append(("thickness non-uniformity", SPREAD_U, "not fitted", dr_of(models)))
+    for layer in parts[0].stack.layers:
+        # A known layer's thickness came from an earlier fit with its own σ: it is an
+        # influence quantity of this one (fitting.known keeps it in layer.source).
+        src = (getattr(layer, "source", None) or {}).get("thickness") or {}
+        u = src.get("stderr")
+        key = f"{layer.name}_thickness"
+        if not getattr(layer, "known", False) or not isinstance(u, (int, float)) \
+                or not math.isfinite(u) or u <= 0:
+            continue
+        models = []
+        for p, local in zip(parts, locs):
+            with np.errstate(all="ignore"):
+                models.append(p.evaluate({**local, key: local[key] + u}) if key in local
+                              else p.evaluate(local))
+        out.append((f"{layer.name} thickness (known)", float(u), f"±{u:.3g} nm from its "
+                    f"earlier fit", dr_of(models)))
     sub = parts[0].stack.substrate
     catalogue = bool(sub.library) and sub.library != "generic_glass"
     u_n = SUBSTRATE_INDEX_U if catalogue else SUBSTRATE_INDEX_U_OTHER

@@ -122,6 +122,22 @@ def test_known_barrier_loaded_from_an_earlier_export(barrier_export, two_layer_s
     # The result says which known layer it stood on.
     saved = res.to_dict()["stack"]["layers"][1]
     assert saved["known"] is True and saved["source"]["sha256"] == layer.source["sha256"]
+    # The known thickness's own σ is an influence quantity of this fit (GUM 5.1.2):
+    # its budget line agrees with local refits of the top film, from the result, on
+    # a barrier moved by ±σ (the linear propagation against the direct computation;
+    # same non-uniformity and scale setting, so only the barrier moves).
+    item = {i.source: i.u for i in res.uncertainty["film_thickness"].items}
+    u_lin = item["barrier thickness (known)"]
+    s = layer.source["thickness"]["stderr"]
+    moved = []
+    for sign in (+1, -1):
+        st = Stack.from_dict(res.stack)
+        st.layers[1].thickness = st.layers[1].thickness.copy(
+            value=layer.thickness.value + sign * s)
+        r2 = fit_spectrum(two_layer_spectrum, st, FitOptions(method="least_squares",
+                                                             fit_spread=False))
+        moved.append(abs(r2.thickness("film")[0] - d))
+    assert 0.6 * np.mean(moved) <= u_lin <= 1.6 * np.mean(moved), (u_lin, moved)
 
 
 def test_reused_n_k_with_only_the_thickness_fitted(barrier_export):
@@ -184,7 +200,7 @@ def test_known_layer_unchanged_by_a_joint_fit(two_layer_spectrum):
 def test_a_stack_of_only_known_layers_is_refused():
     stack = Stack([Layer("barrier", Cauchy(A=1.65), D_BARRIER, known=True)],
                   library_substrate("fused_silica"))
-    with pytest.raises(FitError, match="no parameter is free"):
+    with pytest.raises(FitError, match="every layer is marked known"):
         fit_spectrum(_tmm_T([(BARRIER, D_BARRIER)], wl=WL[::4]), stack,
                      FitOptions(fit_scale=False, fit_tilt=False, fit_spread=False))
 
