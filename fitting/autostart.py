@@ -113,6 +113,13 @@ def _noise(y: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(d2)) / math.sqrt(6))
 
 
+def _extrema(y: np.ndarray, prominence: float):
+    """(all extrema, maxima, minima) indices with at least this prominence."""
+    imax, _ = find_peaks(y, prominence=prominence)
+    imin, _ = find_peaks(-y, prominence=prominence)
+    return np.sort(np.concatenate([imax, imin])), imax, imin
+
+
 def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.ndarray) -> Seed:
     """Thickness and index of a film from the extrema of its fringes.
 
@@ -126,10 +133,20 @@ def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.nd
     if wl.size < 12:
         return Seed(False, message="too few points to look for fringes")
     noise = _noise(y)
-    prom = max(5 * noise, 0.003)
-    imax, _ = find_peaks(y, prominence=prom)
-    imin, _ = find_peaks(-y, prominence=prom)
-    ext = np.sort(np.concatenate([imax, imin]))
+    # 8σ: the largest of hundreds of noise wiggles reaches about ±3σ, so a 6σ swing
+    # of noise alone is common; real fringes worth a seed stand well above it.
+    ext, imax, imin = _extrema(y, max(8 * noise, 0.003))
+    if ext.size < 3 and wl.size >= 100:
+        # Faint, broad fringes (a film close to the substrate's index) can hide in
+        # the noise point by point: look again on a Savitzky-Golay smoothed copy
+        # (31 points, quadratic), whose noise is σ·|h| (h its coefficients).
+        from scipy.signal import savgol_coeffs, savgol_filter
+        w = 31
+        ys = savgol_filter(y, w, 2)
+        h = savgol_coeffs(w, 2)
+        again = _extrema(ys, max(8 * noise * float(np.sqrt(h @ h)), 0.0015))
+        if again[0].size > ext.size:
+            ext, imax, imin = again
     if ext.size < 3:
         return Seed(False, message=f"no interference fringes found ({ext.size} extrema)",
                     n_extrema=int(ext.size))

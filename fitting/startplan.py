@@ -234,13 +234,16 @@ def index_levels(obj: Objective, film: Film, seed, sub_n: np.ndarray,
     level = autostart.n_level_param(film.material)
     if level is not None and film.g(level) not in obj.var_names:
         level = None
-    if level is not None and seed.has_fringes and low_contrast(part, seed, sub_n):
-        # Faint fringes: a film close to the substrate's index, on either side. The
+    if level is not None and low_contrast(part, seed, sub_n):
+        # Faint or no fringes on a flat spectrum: a film close to the substrate's index,
+        # on either side (or a very thin one, which the low levels cover). The
         # seed's n is unreliable (a 1 % baseline error moves it a lot) and the
         # fringe amplitude grows fast with |n - n_s|: scan a dense ladder of index
         # levels on both sides (from dense fluorides up), never n_s itself.
         wl_ref = seed.wl_ref or wl_mid
         n_try = autostart.contrast_levels(float(np.interp(wl_ref, part.wl, sub_n)))
+        if not seed.has_fringes:        # a thin film of any index is flat too
+            n_try = sorted(set(n_try) | set(autostart.BLIND_LEVELS))
         return Levels(level, n_try, max(n_try), wl_ref, True)
     if seed.n_ref:
         return Levels(level, seed.n_ref, seed.n_ref, seed.wl_ref)
@@ -323,7 +326,9 @@ def scan_basins(obj: Objective, film: Film, values: dict, seed, lv: Levels, wind
                                     check=obj.check, wl_range=window, d_typical=d_typ)
     n_lv = [autostart._n_at(mat, lv.wl_ref, x) for x in scan.levels]
     same = float(part.wl.min()) / 8
-    basins = autostart.pick_basins(scan, N_POLISH, n_of_level=n_lv, same_nd=same)
+    # Faint fringes leave many near-equal basins: polish more of them.
+    n_max = N_POLISH + 2 if lv.low_contrast else N_POLISH
+    basins = autostart.pick_basins(scan, n_max, n_of_level=n_lv, same_nd=same)
     if seed.has_fringes and seed.thickness_nm and lo <= seed.thickness_nm <= hi:
         mid = len(scan.levels) // 2
         nd = seed.thickness_nm * n_lv[mid]
