@@ -59,6 +59,8 @@ THICKNESS_CORRELATION = 0.98
 #: A scale further than this from 1 (2.5σ of its ±1 % prior) is a baseline or model
 #: problem, not an instrument tolerance.
 SCALE_LIMIT = 0.025
+#: Runs-test z below which a misfit is systematic however small (chance: |z| < 4).
+SYSTEMATIC_RUNS_Z = -8.0
 #: A fitted thickness non-uniformity above this (rms, relative) is more than coatings
 #: show over a spectrometer's spot: the fit is using it to hide a model error.
 SPREAD_LIMIT = 0.05
@@ -222,6 +224,14 @@ def reasons(result) -> list[Reason]:
                                        f"{100 * d.rms_residual:.2f} % RMS, more than the noise "
                                        f"({100 * d.noise_sigma:.2f} %) and than an ordinary "
                                        f"instrument's accuracy: {_misfit_advice(result)}."))
+    if d is not None and math.isfinite(d.redchi) and d.redchi > 1.5 \
+            and d.runs_z < SYSTEMATIC_RUNS_Z and d.rms_residual <= PHOTOMETRIC_ACCURACY:
+        # Small but far from chance: a film close to the substrate's index can sit in a
+        # wrong basin with a misfit this small (the validation set's faint-fringe cases).
+        out.append(Reason("check", f"The model misses the data by only "
+                                   f"{100 * d.rms_residual:.2f} % RMS, but systematically "
+                                   f"(runs test z = {d.runs_z:.0f}): with faint fringes another "
+                                   f"thickness may fit better; {_misfit_advice(result)}."))
     for a in result.alternatives:
         extra = f" ({a.note})" if getattr(a, "note", "") else ""
         out.append(Reason("check", f"Another solution fits almost as well: thickness "

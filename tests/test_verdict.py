@@ -235,7 +235,8 @@ def test_not_converged_is_check_and_stopped_is_poor(good):
 @pytest.mark.parametrize("rms, runs_z, redchi, expected", [
     (0.030, -12.0, 200.0, "poor"),     # misses by more than 2 % RMS, with a shape
     (0.006, -12.0, 9.0, "check"),      # above an instrument's 0.3 % accuracy
-    (0.0025, -12.0, 2.5, "good"),      # shaped, but within the photometric accuracy
+    (0.0025, -6.0, 2.5, "good"),       # shaped, but within the photometric accuracy
+    (0.0025, -12.0, 2.5, "check"),     # ... unless far from chance (a faint-fringe basin)
     (0.030, -1.0, 200.0, "good"),      # large but shapeless: the noise was misjudged
     (0.030, -12.0, 1.5, "good"),       # within the noise
 ])
