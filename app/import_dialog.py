@@ -182,7 +182,7 @@ class ImportDialog(QDialog):
         detected = "<b>Detected:</b> " + escape(pv.dialect.describe())
         if pv.notes:
             items = "".join(f"<li>{escape(str(n))}</li>" for n in pv.notes)
-            detected += (f"<br><b>The reader chose or skipped:</b>"
+            detected += (f"<br><b>Notes from reading the file:</b>"
                          f"<ul style='margin:0'>{items}</ul>")
         self.detected.setText(detected)
         reference = self.reference()

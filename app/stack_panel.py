@@ -404,11 +404,18 @@ class StackPanel(QWidget):
         path = path or self._export_file()
         if path is None:
             return None
+        # The table must cover what the fit will use: the spectrum within the fit range.
+        spectrum, covers = self.session.spectrum, None
+        if spectrum is not None:
+            covers = spectrum.wavelength_nm
+            rng = self.session.options.get("fit_range_nm")
+            if rng is not None:
+                covers = covers[(covers >= rng[0]) & (covers <= rng[1])]
         thickness = None
         while True:
             try:
                 layer = known_layer_from_export(path, thickness, fit_thickness=fit_thickness,
-                                                covers_nm=self.session.spectrum)
+                                                covers_nm=covers)
                 break
             except ParameterError as exc:
                 if exc.name == "thickness_nm" and exc.value is None and thickness is None:

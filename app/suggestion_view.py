@@ -18,8 +18,8 @@ from html import escape
 
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QFont
-from PySide6.QtWidgets import (QHeaderView, QLabel, QPushButton, QTableWidget,
-                               QTableWidgetItem, QVBoxLayout, QWidget)
+from PySide6.QtWidgets import (QAbstractScrollArea, QHeaderView, QLabel, QPushButton,
+                               QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
 from fitting.presets import model_choice_of
 from fitting.suggest import evidence_words
@@ -50,6 +50,11 @@ def _num(x, fmt: str) -> str:
     return "" if x is None or not math.isfinite(x) else format(x, fmt)
 
 
+def _bic(x) -> str:
+    """One decimal where differences of about 2 matter; whole numbers beyond 1000."""
+    return _num(x, ".1f" if x is not None and abs(x) < 1000 else ".0f")
+
+
 class SuggestionView(QWidget):
     """Reason, ranking table and the "Use … in the stack" button of a model suggestion.
 
@@ -75,9 +80,10 @@ class SuggestionView(QWidget):
         self.table.verticalHeader().setVisible(False)
         h = self.table.horizontalHeader()
         h.setSectionResizeMode(QHeaderView.ResizeToContents)
-        h.setSectionResizeMode(0, QHeaderView.Stretch)
+        h.setStretchLastSection(False)      # a stretched last column starts 100 px wide
         self.table.setEditTriggers(QTableWidget.NoEditTriggers)
-        self.table.setWordWrap(True)
+        # As tall as its rows: the footnote and the button sit right under it.
+        self.table.setSizeAdjustPolicy(QAbstractScrollArea.AdjustToContents)
         self.table.setToolTip("Every film model fitted, best BIC first; hover a header for "
                               "what the column means")
         self.footnote = QLabel("")
@@ -89,9 +95,10 @@ class SuggestionView(QWidget):
         self.adopt_button.clicked.connect(self.adopt_requested)
         lay = QVBoxLayout(self)
         lay.addWidget(self.reason)
-        lay.addWidget(self.table, 1)
+        lay.addWidget(self.table)
         lay.addWidget(self.footnote)
         lay.addWidget(self.adopt_button)
+        lay.addStretch(1)
         session.stack_changed.connect(self._update_button)
 
     # -- view -------------------------------------------------------------------------------
@@ -124,26 +131,29 @@ class SuggestionView(QWidget):
             f"BIC = χ²/ĉ + k·ln N with N = {n} points"
             + (f", ĉ = {c_hat:.3g}" if isinstance(c_hat, (int, float)) else "")
             + " (Schwarz 1978). Lower is better; a ΔBIC above 10 is very strong evidence "
-            "against a model (Kass & Raftery 1995).")
+            "against a model (Kass & Raftery 1995). Verdict: "
+            + ", ".join(f"{sym} {words}" for sym, _c, words in VERDICT_STYLE.values()) + ".")
         self._update_button()
         return True
 
     def _fill_row(self, i: int, c: dict, is_chosen: bool):
-        # "(yours)" on a line of its own: the column is narrow in the result area.
-        name = ("✔ " if is_chosen else "") + str(c.get("label", c.get("model", "?"))) + (
-            "\n(yours)" if c.get("current") else "")
+        # Long names over two lines: the result area is narrow.
+        label = str(c.get("label", c.get("model", "?"))).replace(" + ", "\n+ ")
+        name = ("✔ " if is_chosen else "") + label + ("\n(yours)" if c.get("current") else "")
         if c.get("ranked"):
             d_bic = c.get("delta_bic")
             cells = (name, str(c.get("k", "")), _num(c.get("redchi"), ".3g"),
-                     _num(c.get("bic"), ".1f"), _num(d_bic, ".1f"),
+                     _bic(c.get("bic")), _bic(d_bic),
                      self._verdict(c.get("verdict")), _num(c.get("thickness_nm"), ".1f"))
         else:
             why = c.get("error") or "not ranked"
-            cells = (name, "", "", "", "", "not ranked", _num(c.get("thickness_nm"), ".1f"))
+            cells = (name, "", "", "", "", "–", _num(c.get("thickness_nm"), ".1f"))
         for j, txt in enumerate(cells):
             it = QTableWidgetItem(txt)
             if j in (1, 2, 3, 4, 6):
                 it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
+            elif j == 5:
+                it.setTextAlignment(Qt.AlignCenter)
             if is_chosen:
                 f = QFont(it.font())
                 f.setBold(True)
@@ -160,8 +170,8 @@ class SuggestionView(QWidget):
 
     @staticmethod
     def _verdict(v) -> str:
-        sym, _colour, _words = VERDICT_STYLE.get(str(v), ("•", "", str(v)))
-        return f"{sym} {v}" if v else ""
+        """The verdict's symbol (its words are in the cell's tooltip and the footnote)."""
+        return VERDICT_STYLE.get(str(v), ("•", "", str(v)))[0] if v else ""
 
     def chosen_label(self) -> str:
         info = self.info or {}

@@ -129,3 +129,20 @@ def test_load_errors_are_shown_with_what_to_do(window, export, tmp_path, dialogs
     assert sp.load_known(bad) is None
     assert export.name in dialogs[-1]["text"] + dialogs[-1]["info"]
     assert len(s.stack.layers) == 1
+
+
+def test_a_table_that_covers_the_fit_range_is_enough(window, export, tmp_path, qtbot):
+    """The fit uses only the fit range, so a table covering it is accepted, and the
+    live model curve is drawn there instead of not at all."""
+    sp, s = window.stack_panel, window.session
+    window.open_spectrum(synthetic_spectrum(tmp_path / "wide.csv", points=100))
+    s.set_option("fit_range_nm", (360.0, 1000.0))
+    assert sp.load_known(export) == "film2"
+    qtbot.waitUntil(lambda: not window.plot.pending)
+    model = window.plot.image_data()["model"]
+    wl = s.spectrum.wavelength_nm
+    inside = (wl >= 360.0) & (wl <= 1000.0)
+    assert model is not None and model.size == inside.sum() < wl.size
+    s.set_option("fit_range_nm", None)                  # the whole spectrum again: refused
+    qtbot.waitUntil(lambda: not window.plot.pending)
+    assert window.plot.image_data()["model"] is None

@@ -105,6 +105,6 @@ def test_import_preview_lists_what_the_reader_skipped(qtbot, tmp_path):
     dlg = ImportDialog(f)
     qtbot.addWidget(dlg)
     text = dlg.detected.text()
-    assert "chose or skipped" in text
+    assert "Notes from reading the file" in text
     assert "line 5" in text and "lamp change" in text      # the line and what it held
     assert "line 5" not in dlg.result_label.text()        # said once, not twice

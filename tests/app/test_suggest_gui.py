@@ -59,12 +59,14 @@ def test_suggest_button_ranks_the_models_and_keeps_the_users_when_it_wins(window
     # The table lists every candidate in ranked order with the suggestion's numbers.
     rows = _table(view)
     assert len(rows) == len(s.candidates)
-    for row, c in zip(rows, s.candidates):
-        assert row[0].replace("✔ ", "").split("\n")[0] == c.label
+    for i, (row, c) in enumerate(zip(rows, s.candidates)):
+        assert row[0].replace("✔ ", "").replace("\n+ ", " + ").split("\n")[0] == c.label
         assert row[1] == str(c.k)
-        assert float(row[3]) == pytest.approx(c.bic, abs=0.05)
-        assert float(row[4]) == pytest.approx(c.delta_bic, abs=0.05)
-        assert row[5].endswith(c.verdict)
+        for cell, x in ((row[3], c.bic), (row[4], c.delta_bic)):   # as rounded on show
+            assert float(cell) == pytest.approx(x, abs=0.05 if abs(x) < 1000 else 0.5)
+        sym = {"good": "✔", "check": "⚠", "poor": "✖"}[c.verdict]
+        assert row[5] == sym
+        assert c.verdict in view.table.item(i, 5).toolTip()          # and in words
     assert rows[0][0].startswith("✔") and rows[0][0].endswith("(yours)")
     assert "Chosen for layer 'film': Cauchy" in view.reason.text()
     assert "lowest BIC" in view.reason.text()
