@@ -543,6 +543,13 @@ def _obj(v, where) -> Mapping:
     return v
 
 
+def _entries(d, key):
+    """(name, field path, object) of every entry of the object ``d`` found under ``key``."""
+    for name, v in _obj(d, key).items():
+        w = f"{key}.{name}"
+        yield name, w, _obj(v, w)
+
+
 def _matrix(d, key):
     if d.get(key) is None:
         return None
@@ -574,9 +581,7 @@ def _params(d) -> dict:
 
 def _optical(d) -> dict:
     out = {}
-    for layer, o in _obj(d, "optical").items():
-        w = f"optical.{layer}"
-        o = _obj(o, w)
+    for layer, w, o in _entries(d, "optical"):
         owl = _floats(o.get("wavelength_nm"), f"{w}.wavelength_nm")
         out[layer] = OpticalConstants(
             str(o.get("layer", layer)), owl,
@@ -630,9 +635,7 @@ def _diagnostics(d) -> Diagnostics | None:
 
 def _uncertainty(d) -> dict:
     out = {}
-    for key, u in _obj(d, "uncertainty").items():
-        w = f"uncertainty.{key}"
-        u = _obj(u, w)
+    for key, w, u in _entries(d, "uncertainty"):
         if not isinstance(u.get("items"), list) or "u_combined" not in u:
             raise RecipeError(w, "must hold items (the budget lines) and u_combined")
         items = []
@@ -650,9 +653,7 @@ def _uncertainty(d) -> dict:
 
 def _kk(d) -> dict:
     out = {}
-    for layer, c in _obj(d, "kk").items():
-        w = f"kk.{layer}"
-        c = _obj(c, w)
+    for layer, w, c in _entries(d, "kk"):
         consistent = c.get("consistent")
         if consistent is not None and not isinstance(consistent, bool):
             raise RecipeError(f"{w}.consistent", f"must be true, false or null, found "
