@@ -12,12 +12,16 @@ Where things live:
 ``spectrum_panel.py``  section 1: the loaded file
 ``import_dialog.py``   import preview with correctable detection
 ``reference_dialog.py`` 100 % line and dark correction (also used by the import preview)
-``stack_panel.py``     section 2: substrate, layers, models
+``stack_panel.py``     section 2: substrate, layers, models, known layers (also from an
+                       earlier result's n, κ export)
 ``param_table.py``     the parameter table (QAbstractTableModel) with refusals
-``fit_panel.py``       section 3: range, geometry, corrections, start, band gap, Fit/Cancel
+``fit_panel.py``       section 3: range, geometry, corrections, start, band gap,
+                       Fit / Suggest a model / Cancel
 ``plot_panel.py``      the central plot: measured, model, residuals, masks, cursor read-out
 ``result_panel.py``    section 4: summary, n κ α, Tauc, correlation, report; the
                        out-of-date banner; figures drawn off the GUI thread
+``suggestion_view.py`` the Models result tab: a model suggestion's choice, reason and BIC
+                       ranking, and "Use … in the stack"
 ``export_dialog.py``   which files an export writes (tables, curves, JSON, text, figures, PDF)
 ``batch_dialog.py``    batch run of a folder with progress and summary table
 ``dialogs.py``         error boxes that say what to do

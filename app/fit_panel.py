@@ -1,13 +1,17 @@
 """The "Fit" section: what part of the spectrum to fit, geometry, extras, and the Fit button.
 
 The fit itself runs in :class:`app.worker.Job`; this panel only shows its
-progress and offers Cancel. The options are written into the
+progress and offers Cancel. "Suggest a model" beside Fit asks for a model
+suggestion instead (:func:`fitting.suggest.suggest_model`: the plausible film
+models fitted and ranked by BIC), run the same way. The options are written into the
 :class:`~app.session.Session` (undoable), from which ``FitOptions`` are built.
 
 "More settings" holds what most fits leave alone but some need: the film's
 thickness non-uniformity over the light spot and the instrument's spectral
 bandwidth (both properties of the stack, :class:`fitting.stack.Stack`), fitting
-the angle, and the fit's evaluation budget (``max_nfev``) and time limit. It
+the angle, the fit's evaluation budget (``max_nfev``) and time limit, and the
+recipe option ``fit.suggest_model`` (every Fit, here and in a batch, tries the
+plausible film models and keeps the one the BIC prefers). It
 opens by itself when one of them is not at its default, so a loaded recipe never
 hides a setting that changes the fit.
 """
@@ -37,11 +41,12 @@ class FitPanel(QWidget):
 
     Signals
     -------
-    fit_requested(), cancel_requested()
+    fit_requested(), suggest_requested(), cancel_requested()
     status(str, bool)
     """
 
     fit_requested = Signal()
+    suggest_requested = Signal()
     cancel_requested = Signal()
     status = Signal(str, bool)
 
@@ -164,6 +169,12 @@ class FitPanel(QWidget):
         self.time_limit.setToolTip("Time limit (time_limit_s): the fit stops after this "
                                    "many seconds and shows the best result so far")
         self.time_limit.valueChanged.connect(lambda v: self._set("time_limit_s", float(v)))
+        self.suggest_option = QCheckBox("Every fit tries other film models")
+        self.suggest_option.setToolTip(
+            "Saved in recipes (fit.suggest_model), so batch runs do the same: every fit also "
+            "fits the film models that suit the spectrum and keeps the one the BIC prefers. "
+            "Each spectrum then takes 3-4 fits.")
+        self.suggest_option.toggled.connect(self._on_suggest_option)
         self.more_button = QToolButton()
         self.more_button.setText("More settings")
         self.more_button.setCheckable(True)
@@ -183,6 +194,7 @@ class FitPanel(QWidget):
         more.addRow("", self.fit_angle)
         more.addRow("Evaluation budget:", self.max_nfev)
         more.addRow("Time limit:", self.time_limit)
+        more.addRow("Model choice:", self.suggest_option)
         self.more.setVisible(False)
 
         self.mask_list = QListWidget()
@@ -202,6 +214,13 @@ class FitPanel(QWidget):
         f.setPointSizeF(f.pointSizeF() * 1.15)
         self.fit_button.setFont(f)
         self.fit_button.clicked.connect(self.fit_requested)
+        self.suggest_button = QPushButton("Suggest a model")
+        self.suggest_button.setToolTip(
+            "Not sure which model suits this film? Fits your model and the others that suit "
+            "the spectrum (Cauchy, Sellmeier, Tauc-Lorentz, …), ranks them by BIC and says "
+            "which one fits best and why. Takes one fit per model.")
+        self.suggest_button.setMinimumHeight(32)
+        self.suggest_button.clicked.connect(self.suggest_requested)
         self.cancel_button = QPushButton("Cancel")
         self.cancel_button.setToolTip("Stop the running fit or batch (Esc)")
         self.cancel_button.setEnabled(False)
@@ -242,6 +261,7 @@ class FitPanel(QWidget):
         form.addRow("Masked:", masks)
         run = QHBoxLayout()
         run.addWidget(self.fit_button, 2)
+        run.addWidget(self.suggest_button, 2)
         run.addWidget(self.cancel_button, 1)
         lay = QVBoxLayout(self)
         lay.setContentsMargins(4, 4, 4, 4)
@@ -308,6 +328,15 @@ class FitPanel(QWidget):
             self.fit_angle.setChecked(bool(o.get("fit_angle")))
             self.max_nfev.setValue(int(o.get("max_nfev", self.max_nfev.value())))
             self.time_limit.setValue(float(o.get("time_limit_s", self.time_limit.value())))
+            want = o.get("suggest_model", False)
+            self.suggest_option.setChecked(bool(want))
+            if isinstance(want, tuple):
+                from fitting.presets import MODEL_CHOICES
+                names = ", ".join(MODEL_CHOICES.get(k, k).split(" (")[0] for k in want)
+                self.suggest_option.setText(f"Every fit also tries: {names}")
+            else:
+                self.suggest_option.setText("Every fit tries other film models")
+            self.fit_button.setText("Fit + choose model" if want else "Fit")
             if self._more_differs() and not self.more_button.isChecked():
                 self.more_button.setChecked(True)
             self.mask_list.clear()
@@ -315,12 +344,14 @@ class FitPanel(QWidget):
                 self.mask_list.addItem(f"{lo:.1f} – {hi:.1f} nm")
             self.unmask_button.setEnabled(bool(self.session.masks))
             self.fit_button.setEnabled(s is not None and not self.cancel_button.isEnabled())
+            self.suggest_button.setEnabled(self.fit_button.isEnabled())
         finally:
             self._updating = False
 
     def set_running(self, running: bool):
         self.cancel_button.setEnabled(running)
         self.fit_button.setEnabled(not running and self.session.spectrum is not None)
+        self.suggest_button.setEnabled(self.fit_button.isEnabled())
         if running:
             self.progress.setValue(0)
             self.progress.setFormat("starting…")
@@ -331,7 +362,7 @@ class FitPanel(QWidget):
         o, st, d = self.session.options, self.session.stack, default_fit_options()
         return bool(st.thickness_spread or st.bandwidth_nm or any(
             o.get(k) != d.get(k) for k in ("fit_spread", "fit_angle", "max_nfev",
-                                           "time_limit_s")))
+                                           "time_limit_s")) or o.get("suggest_model"))
 
     def _show_more(self, on: bool):
         self.more.setVisible(on)
@@ -369,6 +400,12 @@ class FitPanel(QWidget):
         except PellucidError as exc:
             self.status.emit(str(exc), True)
             self.refresh()
+
+    def _on_suggest_option(self, on: bool):
+        if self._updating:
+            return
+        # Ticking again after a recipe's list of models asks the data to decide.
+        self._set("suggest_model", bool(on))
 
     def _set_stack(self, name, value):
         if self._updating:

@@ -2,7 +2,10 @@
 
 The dialog shows the raw lines and the detected layout (separator, decimal
 mark, columns, units, percent or fraction) from :func:`fitting.reader.preview`;
-every detection can be overridden before the file is loaded. The result is a
+every detection can be overridden before the file is loaded. What the reader
+chose without being told or left out (a column picked among several, skipped
+lines with their numbers: :attr:`fitting.reader.Preview.notes`) is listed under
+the detection, so nothing is dropped silently. The result is a
 :class:`fitting.reader.ReaderOptions`, which is also what a recipe saves.
 
 A file of raw detector counts is not a transmittance: the preview says so, and
@@ -13,6 +16,9 @@ The correction chosen is :meth:`ImportDialog.reference`.
 
 from __future__ import annotations
 
+from html import escape
+
+from PySide6.QtCore import Qt
 from PySide6.QtGui import QFontDatabase
 from PySide6.QtWidgets import (QCheckBox, QComboBox, QDialog, QDialogButtonBox, QFormLayout,
                                QGroupBox, QHBoxLayout, QLabel, QPlainTextEdit, QPushButton,
@@ -66,6 +72,7 @@ class ImportDialog(QDialog):
         self.lines.setToolTip("The first lines of the file exactly as stored")
         self.detected = QLabel("")
         self.detected.setWordWrap(True)
+        self.detected.setTextFormat(Qt.RichText)
         self.result_label = QLabel("")
         self.result_label.setWordWrap(True)
 
@@ -172,7 +179,12 @@ class ImportDialog(QDialog):
             self.spectrum = None
             ok.setEnabled(False)
             return
-        self.detected.setText("<b>Detected:</b> " + pv.dialect.describe())
+        detected = "<b>Detected:</b> " + escape(pv.dialect.describe())
+        if pv.notes:
+            items = "".join(f"<li>{escape(str(n))}</li>" for n in pv.notes)
+            detected += (f"<br><b>Notes from reading the file:</b>"
+                         f"<ul style='margin:0'>{items}</ul>")
+        self.detected.setText(detected)
         reference = self.reference()
         try:
             s = read_with_reference(self.path, opts, reference)
@@ -200,8 +212,9 @@ class ImportDialog(QDialog):
                f"values {100 * s.values.min():.1f}–{100 * s.values.max():.1f} %.")
         if reference:
             txt += f"<br><b>Corrected:</b> {describe_reference(reference)}."
-        if s.warnings:
-            txt += "<br><b>Notes:</b> " + "; ".join(s.warnings)
+        more = [w for w in s.warnings if w not in pv.notes]     # the rest are listed above
+        if more:
+            txt += "<br><b>Notes:</b> " + escape("; ".join(more))
         self.result_label.setText(txt)
         ok.setEnabled(True)
         ok.setToolTip("Load the spectrum as shown")

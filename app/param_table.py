@@ -6,7 +6,9 @@ back through :meth:`Session.set_param`, so every change is undoable. An entry
 that the fitting core refuses (value outside its bounds, min >= max, a
 negative thickness, text that is not a number) is not stored: the cell keeps
 its old value and :attr:`ParamTableModel.refused` carries the reason for the
-status bar and a tooltip at the cell.
+status bar and a tooltip at the cell. The parameters of a *known* layer are
+held by every fit: their Fit ticks show as off and cannot be changed until the
+layer is fitted again (its own ticks then come back).
 """
 
 from __future__ import annotations
@@ -105,17 +107,26 @@ class ParamTableModel(QAbstractTableModel):
                 return _COL_TIPS[section]
         return None
 
+    def layer_known(self) -> bool:
+        layers = self.session.stack.layers
+        return 0 <= self.layer_index < len(layers) and layers[self.layer_index].known
+
     def flags(self, index):
         f = Qt.ItemIsEnabled | Qt.ItemIsSelectable
         if index.column() in _FIELD:
             f |= Qt.ItemIsEditable
         if index.column() == 5:
-            f |= Qt.ItemIsUserCheckable
+            # A known layer's parameters are held: the tick is shown off, not editable.
+            f = Qt.ItemIsSelectable if self.layer_known() else f | Qt.ItemIsUserCheckable
         return f
 
     def _sigma(self, name: str):
         r = self.session.result
         if r is None or name not in r.params:
+            return None
+        # Only when the result fitted this layer's model (a suggested model that was
+        # not adopted has other parameters: its σ would sit beside the wrong values).
+        if any(g not in r.params for g, _local in self._rows):
             return None
         return r.params[name].stderr
 
@@ -145,13 +156,16 @@ class ParamTableModel(QAbstractTableModel):
         if role == Qt.ForegroundRole and col == 6 and self.session.result_stale:
             return QBrush(QColor(128, 128, 128))
         if role == Qt.CheckStateRole and col == 5:
-            return Qt.Checked if p.vary else Qt.Unchecked
+            return Qt.Checked if p.vary and not self.layer_known() else Qt.Unchecked
         if role == Qt.ToolTipRole:
             bad = self._bad.get((index.row(), col))
             if bad:
                 return bad
             if col == 6 and self.session.result_stale and self._sigma(name) is not None:
                 return "σ of the last fit, which is out of date (the setup changed since)"
+            if col == 5 and self.layer_known():
+                return ("Held: the layer is known, so nothing of it is fitted. Untick "
+                        "'Known' to fit it again.")
             tip = f"{name}: {p.doc or 'model parameter'}"
             if p.expr:
                 tip += f"\nTied to: {p.expr}"
@@ -169,6 +183,9 @@ class ParamTableModel(QAbstractTableModel):
         col = index.column()
         try:
             if col == 5 and role == Qt.CheckStateRole:
+                if self.layer_known():
+                    raise PellucidError(f"{name} is held: the layer is known; untick "
+                                        "'Known' to fit its parameters")
                 checked = value is True or value == Qt.Checked or value == 2 or (
                     getattr(value, "value", None) == 2)
                 self.session.set_param(name, vary=bool(checked))

@@ -231,7 +231,7 @@ class PlotPanel(QWidget):
             q = s.quantity
             parts.append(f"measured {q} = {100 * np.interp(wl, s.wavelength_nm, s.values):.2f} %")
             curve = self._shown_model()
-            if curve is not None:
+            if curve is not None and curve[0][0] <= wl <= curve[0][-1]:
                 parts.append(f"model {q} = {100 * np.interp(wl, curve[0], curve[1]):.2f} %")
         self.cursor_text.emit("    ".join(parts))
 
@@ -242,13 +242,25 @@ class PlotPanel(QWidget):
         if s is None or len(s) == 0:
             return
         opts = self.session.options
+        wl = s.wavelength_nm
         try:
-            R, T = self.session.stack.RT(s.wavelength_nm, angle_deg=opts.get("angle_deg", 0.0),
+            R, T = self.session.stack.RT(wl, angle_deg=opts.get("angle_deg", 0.0),
                                          polarization=opts.get("polarization", "u"))
         except PellucidError as exc:
-            self._model_error = str(exc)
-            return
-        self._model = (s.wavelength_nm, T if s.quantity == "T" else R)
+            # An n, κ table may cover only the fit range (a known layer from an earlier
+            # result): then the model is drawn where the fit uses it.
+            rng = opts.get("fit_range_nm")
+            sel = wl if rng is None else wl[(wl >= rng[0]) & (wl <= rng[1])]
+            try:
+                if rng is None or sel.size < 2:
+                    raise exc
+                R, T = self.session.stack.RT(sel, angle_deg=opts.get("angle_deg", 0.0),
+                                             polarization=opts.get("polarization", "u"))
+            except PellucidError as exc2:
+                self._model_error = str(exc2)
+                return
+            wl = sel
+        self._model = (wl, T if s.quantity == "T" else R)
 
     def _shown_model(self):
         r = self.session.result

@@ -1,4 +1,5 @@
-"""The "Result" area: summary, optical constants, Tauc plot, correlations and the report.
+"""The "Result" area: summary, optical constants, Tauc plot, correlations, the report and,
+after a model suggestion, the ranking of the models (:mod:`app.suggestion_view`).
 
 Everything shown comes from the session's :class:`~fitting.result.FitResult`;
 figures are drawn by :mod:`fitting.plots` (the same drawings as the exported PNG
@@ -35,7 +36,7 @@ def _pm(value, sigma, unit="", digits=2):
 
 #: verdict -> (symbol, colour, words); symbol and words carry the meaning, the
 #: colour (Okabe-Ito blue, orange, vermillion) only helps.
-_VERDICT = {"good": ("✔", "#0072B2", "good"),
+VERDICT_STYLE = {"good": ("✔", "#0072B2", "good"),
             "check": ("⚠", "#B36B00", "check before use"),
             "poor": ("✖", "#D55E00", "poor: do not use as it is")}
 
@@ -45,7 +46,7 @@ def verdict_html(r) -> str:
     v = getattr(r, "verdict", None)
     if not v:
         return ""
-    sym, colour, words = _VERDICT.get(str(v), ("•", "#555555", str(v)))
+    sym, colour, words = VERDICT_STYLE.get(str(v), ("•", "#555555", str(v)))
     reasons = "; ".join(escape(str(x)) for x in (getattr(r, "verdict_reasons", ()) or ()))
     return (f"<br><span style='color:{colour}'>{sym} <b>Verdict: {escape(words)}</b></span>"
             + (f" — {reasons}" if reasons else ""))
@@ -273,7 +274,14 @@ class _FigureTab(QWidget):
 
 
 class ResultPanel(QTabWidget):
-    """Tabs showing the session's last fit result."""
+    """Tabs showing the session's last fit result.
+
+    Signals
+    -------
+    adopt_requested() : "Use … in the stack" was pressed on the Models tab
+    """
+
+    adopt_requested = Signal()
 
     def __init__(self, session, parent=None):
         super().__init__(parent)
@@ -336,6 +344,13 @@ class ResultPanel(QTabWidget):
         self.report.setToolTip("The plain-text fit report (the same text is exported)")
         self.addTab(self.report, "Report")
         self.setTabToolTip(4, "Full text report of the fit")
+        from .suggestion_view import SuggestionView
+        self.models = SuggestionView(session)
+        self.models.adopt_requested.connect(self.adopt_requested)
+        self.addTab(self.models, "Models")
+        self.setTabToolTip(5, "Which film model the data prefer: the models fitted, ranked "
+                              "by BIC, and why one was chosen")
+        self.setTabVisible(5, False)         # only after a model suggestion
 
         # Above the tabs (the window places it): says when the result no longer
         # matches the setup, in words and with a symbol, not by colour alone.
@@ -379,6 +394,11 @@ class ResultPanel(QTabWidget):
                     "and an estimated covariance.")
         return ""
 
+    def show_models(self):
+        """Bring the Models tab to the front (after a model suggestion)."""
+        if self.isTabVisible(self.indexOf(self.models)):
+            self.setCurrentWidget(self.models)
+
     def shutdown(self):
         """Wait for any figure still being drawn (the window is closing)."""
         for tab in self._figure_tabs.values():
@@ -417,9 +437,17 @@ class ResultPanel(QTabWidget):
             for tab in (self.optical_tab, self.tauc_tab, self.corr_tab):
                 tab.message("No fit result yet.")
             self.report.setPlainText("")
+            self.models.show_result(None)
+            if self.currentWidget() is self.models:
+                self.setCurrentIndex(0)
+            self.setTabVisible(self.indexOf(self.models), False)
             self._update_banner()
             return
         self._summary(r)
+        has_models = self.models.show_result(r)
+        if not has_models and self.currentWidget() is self.models:
+            self.setCurrentIndex(0)
+        self.setTabVisible(self.indexOf(self.models), has_models)
         self.report.setPlainText(r.report())
         self._update_banner()
         self._show_figure(self.currentIndex())
@@ -430,8 +458,18 @@ class ResultPanel(QTabWidget):
             status = "was stopped before it finished"
         name = (r.spectrum or {}).get("name", "") if isinstance(r.spectrum, dict) else ""
         why = "" if r.success and not r.aborted else f" {escape(r.message)}"
+        info = (r.extra or {}).get("model_suggestion")
+        model = ""
+        if isinstance(info, dict) and info.get("candidates"):
+            label = next((c.get("label") for c in info["candidates"]
+                          if c.get("model") == info.get("chosen")), "?")
+            n = sum(1 for c in info["candidates"] if c.get("ranked"))
+            model = (f"<br>Model chosen by BIC among {n}: <b>{escape(str(label))}</b> "
+                     "(see the Models tab)." if n else
+                     "<br>The model suggestion stopped before any model finished (see the "
+                     "Models tab).")
         self.headline.setText(f"Fit of <b>{escape(name) or 'the spectrum'}</b> {status}.{why}"
-                              + verdict_html(r))
+                              + model + verdict_html(r))
         try:
             d, sd = r.thickness()
             self.thickness_label.setText("Thickness  " + _pm(d, sd, "nm", 1))

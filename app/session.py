@@ -12,6 +12,13 @@ for all of them. A command stores the whole editable state before and after
 (the stack as :meth:`fitting.stack.Stack.to_dict`, a few kilobytes), which is
 simpler and safer than per-field inverse operations.
 
+A recipe loaded into the app keeps what the app has no control for: its
+notes, specification limits, outputs and reference section (the 100 % line and
+dark files, made absolute so the recipe can be saved anywhere) stay in
+:attr:`Session.extras` and are written back by :meth:`Session.recipe`; limits
+follow a renamed layer and are dropped, with a message, when their quantity
+leaves the stack. ``fit.suggest_model`` is kept with the fit options.
+
 The session also keeps the result honest. When a result arrives it takes a
 fingerprint of the setup (stack, options, masks, spectrum and its correction);
 any later difference marks the result *out of date* (:attr:`Session.result_stale`,
@@ -26,11 +33,12 @@ import copy
 import json
 import math
 import re
+from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
 
-from fitting.errors import FitError, ParameterError, PellucidError
+from fitting.errors import FitError, ParameterError, PellucidError, RecipeError
 # Imported at start-up, not on the first Fit: importing the fit engine (lmfit, scipy)
 # takes a second or more, which must not freeze the window when the user clicks Fit.
 from fitting.fit import FitOptions
@@ -47,10 +55,17 @@ __all__ = ["Session", "MODEL_CHOICES", "make_model", "model_choice_of", "default
 def default_options() -> dict:
     """The fit options a new session starts with: every ``FitOptions`` field but the
     masked windows (kept in :attr:`Session.masks`), so a recipe's options survive
-    a load and save through the app unchanged."""
+    a load and save through the app unchanged, plus the recipe's ``suggest_model``
+    (False, True or a tuple of model keys; see :mod:`fitting.suggest`), which is
+    not a ``FitOptions`` field but decides, like them, what Fit does."""
     d = default_fit_options()
     d.pop("mask_windows_nm", None)
+    d["suggest_model"] = False
     return d
+
+
+#: Recipe sections the app has no control for, kept from a loaded recipe and saved back.
+_EXTRA_KEYS = ("notes", "limits", "exports", "plot_formats", "reference")
 
 
 class _StateCommand(QUndoCommand):
@@ -106,12 +121,14 @@ class Session(QObject):
         self.options: dict = default_options()
         self.masks: list[tuple[float, float]] = []
         self.reference = None         # {"baseline", "dark", "raw_counts"} of the correction
+        self.extras: dict = {}        # a loaded recipe's sections without controls (_EXTRA_KEYS)
         self.result = None            # fitting.result.FitResult or None
         self.result_recipe_hash = ""  # hash of the recipe that produced the result
         self.result_stale = False     # the setup changed since the result arrived
         self.stale_reason = ""        # what changed, in words
         self.project_path = ""
         self._result_fp: dict | None = None
+        self._result_stacks: set = set()   # other stacks the result is current for (adopted)
         self._result_frozen = False    # stored as out of date: stays so until a new fit
         self._saved_fp = self._save_fingerprint()
         self._modified = False
@@ -143,12 +160,14 @@ class Session(QObject):
         if not self.project_path:
             fp["spectrum"] = json.dumps(self.reference, sort_keys=True, default=str)
         fp["result"] = f"{id(self.result)} {self.result_stale}" if self.result else ""
+        fp["extras"] = json.dumps(self.extras, sort_keys=True, default=str)
         return fp
 
     def _setup_changed(self) -> None:
         if self._result_fp is not None and self.result is not None and not self._result_frozen:
             now = self._fingerprint()
-            changed = [k for k in self._PARTS if now[k] != self._result_fp[k]]
+            changed = [k for k in self._PARTS if now[k] != self._result_fp[k]
+                       and not (k == "stack" and now[k] in self._result_stacks)]
             self._set_stale(bool(changed), " and ".join(self._PARTS[k] for k in changed))
         self._update_modified()
 
@@ -177,7 +196,7 @@ class Session(QObject):
     # -- snapshots for undo -----------------------------------------------------------
     def _state(self) -> dict:
         return {"stack": self.stack.to_dict(), "options": copy.deepcopy(self.options),
-                "masks": list(self.masks)}
+                "masks": list(self.masks), "extras": copy.deepcopy(self.extras)}
 
     def _restore(self, state: dict) -> None:
         self.stack = Stack.from_dict(state["stack"])
@@ -185,6 +204,7 @@ class Session(QObject):
         changed_masks = state["masks"] != self.masks
         self.options = copy.deepcopy(state["options"])
         self.masks = list(state["masks"])
+        self.extras = copy.deepcopy(state.get("extras", {}))
         self.stack_changed.emit()
         if changed_opts:
             self.options_changed.emit()
@@ -316,6 +336,7 @@ class Session(QObject):
         def apply():
             self.stack.layers.pop(index)
             self._repair_ties()
+            self._repair_limits()
 
         self._edit(f"Remove layer {name}", apply)
         self.stack_changed.emit()
@@ -346,6 +367,7 @@ class Session(QObject):
             if choice == "roughness" and index + 1 < len(layers):
                 tie_roughness(layer, layers[index + 1])
             self._repair_ties()
+            self._repair_limits()
 
         self._edit(f"Model of {layer.name}: {MODEL_CHOICES[choice].split(' (')[0]}", apply)
         self.stack_changed.emit()
@@ -364,6 +386,10 @@ class Session(QObject):
             for p in self.stack.parameters(live=True).values():   # ties follow the new name
                 if p.expr:
                     p.expr = pattern.sub(f"{name}_", p.expr)
+            if self.extras.get("limits"):                          # so do the recipe's limits
+                self.extras["limits"] = {
+                    (f"{name}_{k[len(old) + 1:]}" if k.startswith(f"{old}_") else k): v
+                    for k, v in self.extras["limits"].items()}
 
         self._edit(f"Rename layer to {name}", apply)
         self.stack_changed.emit()
@@ -383,6 +409,51 @@ class Session(QObject):
             self.message.emit("Ties removed (their parameters no longer exist): "
                               + ", ".join(dropped), True)
         return dropped
+
+    def _repair_limits(self) -> list[str]:
+        """Drop recipe limits whose quantity is no longer in the stack (and say so)."""
+        limits = self.extras.get("limits") or {}
+        dropped = []
+        for key in list(limits):
+            try:       # the recipe's own check of a limit key against a stack
+                Recipe(self.stack, limits={key: limits[key]})
+            except RecipeError as e:
+                if e.field.startswith("limits."):
+                    dropped.append(key)
+                    limits.pop(key)
+        if dropped:
+            self.message.emit("Recipe limits removed (their quantity is no longer in the "
+                              "stack): " + ", ".join(dropped), True)
+        return dropped
+
+    def set_layer_known(self, index: int, known: bool) -> None:
+        """Hold a layer as known (measured earlier: nothing of it is fitted) or fit it again.
+
+        Its own fit flags and ties are kept and come back when ``known`` is
+        cleared (:class:`fitting.stack.Layer`). Undoable.
+        """
+        layer = self.stack.layers[index]
+        known = bool(known)
+        if layer.known == known:
+            return
+        text = f"Hold layer {layer.name} as known" if known else f"Fit layer {layer.name} again"
+        self._edit(text, lambda: setattr(layer, "known", known))
+        self.stack_changed.emit()
+
+    def insert_layer(self, layer: Layer, *, index: int | None = None) -> str:
+        """Insert a ready-made layer (ambient side first; default on top). Returns its name,
+        which gets a number when another layer already has it."""
+        layers = self.stack.layers
+        index = 0 if index is None else max(0, min(index, len(layers)))
+        layer.name = self._new_layer_name(layer.name)
+
+        def apply():
+            self.stack.layers.insert(index, layer)
+
+        what = "known layer" if layer.known else "layer"
+        self._edit(f"Add {what} {layer.name}", apply)
+        self.stack_changed.emit()
+        return layer.name
 
     def set_substrate(self, key: str | None = None, *, thickness_mm: float | None = None,
                       n: float | None = None, material=None) -> None:
@@ -433,6 +504,26 @@ class Session(QObject):
         self._edit(text, apply)
         self.stack_changed.emit()
 
+    def adopt_result_stack(self, text: str = "Use the fitted model") -> None:
+        """Put the result's fitted stack (its models and values) into the setup (undoable).
+
+        For a model suggestion whose choice is not the user's model: the result
+        stays current both for the setup it was made from and for the adopted
+        stack, since it describes exactly that stack.
+        """
+        r = self.result
+        if r is None or not r.stack:
+            raise FitError("there is no fit result whose stack could be used; fit first")
+        fitted = Stack.from_dict(r.stack)
+        self._result_stacks.add(json.dumps(fitted.to_dict(), sort_keys=True, default=str))
+
+        def apply():
+            self.stack = fitted
+            self._repair_limits()
+
+        self._edit(text, apply)
+        self.stack_changed.emit()
+
     # -- options and masks ------------------------------------------------------------
     def set_option(self, name: str, value) -> None:
         if name not in self.options:
@@ -441,6 +532,8 @@ class Session(QObject):
             value = check_finite("angle of incidence", value)
             if not 0 <= value < 90:
                 raise ParameterError("angle of incidence", value, "must be in [0, 90) degrees")
+        if name == "suggest_model":
+            value = value if isinstance(value, tuple) else bool(value)
         if name == "fit_range_nm" and value is not None:
             lo, hi = (check_finite("fit range start", value[0]),
                       check_finite("fit range end", value[1]))
@@ -476,20 +569,39 @@ class Session(QObject):
             self.masks_changed.emit()
 
     # -- fit --------------------------------------------------------------------------
-    def recipe(self, name: str = ""):
+    def recipe(self, name: str = "", *, relative_to=None):
         """The current setup as a :class:`fitting.recipe.Recipe` (what a batch would run).
 
         The single fit in the app goes through the same recipe, so it gives
-        exactly what a batch run of the same file would give.
+        exactly what a batch run of the same file would give. A loaded recipe's
+        sections the app has no control for (:attr:`extras`) are written back as
+        they were. ``relative_to`` (the folder the recipe will be saved in)
+        writes reference files inside that folder as relative paths, as
+        recipes usually name them.
         """
         o = self.options
-        fit = FitOptions.from_dict({k: v for k, v in o.items() if k != "fit_range_nm"},
+        fit = FitOptions.from_dict({k: v for k, v in o.items()
+                                    if k not in ("fit_range_nm", "suggest_model")},
                                    where="fit options")
         reader = self.reader_options.to_dict() if self.reader_options is not None else {}
         rng = o.get("fit_range_nm") or (None, None)
-        return Recipe(Stack.from_dict(self.stack.to_dict()), name=name, reader=reader,
-                      fit_options=fit.to_dict(), range_nm=tuple(rng),
-                      masks_nm=[tuple(m) for m in self.masks])
+        extra = {k: copy.deepcopy(self.extras[k]) for k in _EXTRA_KEYS if k in self.extras}
+        if extra.get("reference") and relative_to is not None:
+            extra["reference"] = {k: None if v is None else _relative(v, relative_to)
+                                  for k, v in extra["reference"].items()}
+        limits = extra.pop("limits", {})
+        while True:
+            try:
+                return Recipe(Stack.from_dict(self.stack.to_dict()), name=name, reader=reader,
+                              fit_options=fit.to_dict(), range_nm=tuple(rng),
+                              masks_nm=[tuple(m) for m in self.masks], limits=limits,
+                              suggest_model=o.get("suggest_model", False), **extra)
+            except RecipeError as e:
+                # A limit the stack no longer has (edits drop them, this is the backstop).
+                key = e.field[len("limits."):]
+                if not e.field.startswith("limits.") or key not in limits:
+                    raise
+                limits.pop(key)
 
     def fit_inputs(self):
         """(spectrum, fresh stack copy, FitOptions with range and masks) for one fit."""
@@ -499,22 +611,33 @@ class Session(QObject):
         return self.spectrum, recipe.new_stack(), recipe.make_fit_options(self.spectrum)
 
     def apply_recipe(self, recipe, text: str = "Load recipe") -> None:
-        """Take stack, fit options, range and masks from a recipe (undoable)."""
+        """Take the whole setup from a recipe (undoable): stack, fit options, range,
+        masks, ``suggest_model`` and, kept for saving, the sections without controls."""
         fo = dict(recipe.fit_options or {})
         options = default_options()
         for k in options:
             if k in fo and k != "fit_range_nm":
                 options[k] = copy.deepcopy(fo[k])
+        options["suggest_model"] = recipe.suggest_model
         lo, hi = recipe.range_nm
         if lo is not None or hi is not None:
             options["fit_range_nm"] = (lo if lo is not None else 1.0,
                                        hi if hi is not None else 1e5)
         stack = recipe.new_stack()
+        extras = {"notes": recipe.notes,
+                  "limits": {k: v.to_dict() for k, v in recipe.limits.items()},
+                  "exports": list(recipe.exports), "plot_formats": list(recipe.plot_formats)}
+        if recipe.reference:
+            # Absolute, so the recipe can be saved anywhere and still find its files.
+            base = Path(recipe.source_dir) if recipe.source_dir is not None else Path.cwd()
+            extras["reference"] = {k: None if v is None else str(base / Path(v).expanduser())
+                                   for k, v in recipe.reference.items()}
 
         def apply():
             self.stack = stack
             self.options = options
             self.masks = [tuple(m) for m in recipe.masks_nm]
+            self.extras = extras
 
         self._edit(text, apply)
         if recipe.reader:
@@ -540,6 +663,7 @@ class Session(QObject):
         started: options, masks or spectrum changed while it ran make it out of date.
         """
         self._result_fp = None           # no staleness checks while the fit is applied
+        self._result_stacks = set()
         self.result = result
         self.result_recipe_hash = recipe_hash if result is not None else ""
         if result is not None and apply and not result.aborted and result.stack:
@@ -577,3 +701,11 @@ class Session(QObject):
         if self.masks:
             s = s.masked_windows(self.masks)
         return s
+
+
+def _relative(path, folder) -> str:
+    """``path`` relative to ``folder`` when it lies inside it (POSIX form), else as given."""
+    try:
+        return Path(path).resolve().relative_to(Path(folder).resolve()).as_posix()
+    except (ValueError, OSError):
+        return str(path)

@@ -3,16 +3,21 @@
 Layers are listed as they sit on the sample, from the ambient (top) down to
 the substrate (bottom), which is how the light meets them. All edits go
 through the :class:`~app.session.Session` and can be undone.
+
+A layer measured earlier can be held as *known* (``Layer.known``: nothing of it
+is fitted), and a known layer can be made from an earlier result's n, κ export
+(:func:`fitting.known.known_layer_from_export`), with its thickness held too or
+fitted.
 """
 
 from __future__ import annotations
 
 from PySide6.QtCore import Qt, Signal
-from PySide6.QtWidgets import (QComboBox, QDoubleSpinBox, QFileDialog, QFormLayout,
+from PySide6.QtWidgets import (QCheckBox, QComboBox, QDoubleSpinBox, QFileDialog, QFormLayout,
                                QHBoxLayout, QInputDialog, QLabel, QListWidget, QListWidgetItem,
                                QPushButton, QToolButton, QVBoxLayout, QWidget)
 
-from fitting.errors import PellucidError
+from fitting.errors import ParameterError, PellucidError
 from fitting.substrates import SUBSTRATE_LIBRARY
 
 from .param_table import ParamTableModel, ParamTableView
@@ -125,6 +130,16 @@ class StackPanel(QWidget):
         for key, label in MODEL_CHOICES.items():
             act = menu.addAction(label)
             act.triggered.connect(lambda _=False, k=key: self.add_layer(k))
+        menu.addSeparator()
+        act = menu.addAction("Load n, κ from an earlier result (known layer)…")
+        act.setToolTip("A layer measured before, from its n, κ export (<name>_nk_<layer>.csv): "
+                       "n, κ and thickness are held, nothing of it is fitted")
+        act.triggered.connect(lambda: self.load_known(fit_thickness=False))
+        act = menu.addAction("Load n, κ from an earlier result, fit the thickness…")
+        act.setToolTip("Reuse an earlier result's n, κ for a new film of the same material; "
+                       "only its thickness is fitted")
+        act.triggered.connect(lambda: self.load_known(fit_thickness=True))
+        menu.setToolTipsVisible(True)
         self.add_button.setMenu(menu)
         self.remove_button = QPushButton("Remove")
         self.remove_button.setToolTip("Remove the selected layer (can be undone)")
@@ -142,6 +157,11 @@ class StackPanel(QWidget):
         self.model_combo.setToolTip("Dispersion model of the selected layer: how n and κ "
                                     "vary with wavelength")
         self.model_combo.activated.connect(self._on_model)
+        self.known_box = QCheckBox("Known (do not fit)")
+        self.known_box.setToolTip("Tick for a layer measured earlier: its thickness and n, κ "
+                                  "stay at the values in the table in every fit. Untick to "
+                                  "fit it again with its own Fit ticks.")
+        self.known_box.toggled.connect(self._on_known)
 
         self.table_model = ParamTableModel(session, self)
         self.table = ParamTableView(self.table_model)
@@ -167,7 +187,10 @@ class StackPanel(QWidget):
         lay.addLayout(buttons)
         model_row = QFormLayout()
         model_row.setFieldGrowthPolicy(QFormLayout.AllNonFixedFieldsGrow)
-        model_row.addRow("Model:", self.model_combo)
+        model_line = QHBoxLayout()
+        model_line.addWidget(self.model_combo, 1)
+        model_line.addWidget(self.known_box)
+        model_row.addRow("Model:", model_line)
         lay.addLayout(model_row)
         lay.addWidget(self.table, 1)
 
@@ -197,16 +220,24 @@ class StackPanel(QWidget):
             self.layer_list.clear()
             for layer in st.layers:
                 kind = model_label(layer.material)
-                it = QListWidgetItem(f"{layer.name}  —  {kind}, {layer.thickness.value:.1f} nm")
-                it.setToolTip(f"Layer '{layer.name}': {kind} ({layer.material.describe()}), "
-                              f"{len(layer.material.params)} parameters")
+                held = ", known" if layer.known else ""
+                it = QListWidgetItem(f"{layer.name}  —  {kind}, {layer.thickness.value:.1f} nm"
+                                     f"{held}")
+                tip = (f"Layer '{layer.name}': {kind} ({layer.material.describe()}), "
+                       f"{len(layer.material.params)} parameters")
+                if layer.known:
+                    tip += "; known: held at these values, not fitted"
+                src = (layer.source or {}).get("file")
+                if src:
+                    tip += f"\nn, κ from {src}"
+                it.setToolTip(tip)
                 self.layer_list.addItem(it)
             if st.layers:
                 row = min(max(row, 0), len(st.layers) - 1)
                 self.layer_list.setCurrentRow(row)
             has = bool(st.layers)
             for w in (self.remove_button, self.up_button, self.down_button, self.model_combo,
-                      self.table):
+                      self.table, self.known_box):
                 w.setEnabled(has)
             self._sync_layer(row if has else -1)
         finally:
@@ -228,6 +259,9 @@ class StackPanel(QWidget):
                 if i >= 0:
                     self.model_combo.removeItem(i)
                 self.model_combo.setCurrentIndex(self.model_combo.findData(key))
+        self.known_box.blockSignals(True)
+        self.known_box.setChecked(0 <= row < len(layers) and layers[row].known)
+        self.known_box.blockSignals(False)
         if self.table_model.layer_index != row:
             self.table_model.set_layer(row)
         self.table.resizeColumnsToContents()
@@ -334,6 +368,73 @@ class StackPanel(QWidget):
         if name is not None:
             self.layer_list.setCurrentRow(row)
             self.status.emit(f"Added layer '{name}'", False)
+        return name
+
+    def _on_known(self, on: bool):
+        row = self.selected_row()
+        if self._updating or row < 0:
+            return
+        self._guard("Layer not changed", self.session.set_layer_known, row, on)
+
+    def _export_file(self):
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Open the n, κ export of an earlier result", "",
+            "n, κ exports (*_nk_*.csv);;n, κ tables (*.csv *.txt *.dat *.nk);;All files (*)")
+        return path or None
+
+    def _ask_thickness(self, path, *, start: bool) -> float | None:
+        from pathlib import Path
+        what = ("a start value for its thickness in nm (the fit adjusts it)" if start else
+                "the layer's thickness in nm (from the earlier fit's report or another "
+                "measurement); it is held in every fit")
+        d, ok = QInputDialog.getDouble(
+            self, "Thickness of the layer",
+            f"{Path(path).name} carries no thickness, and no fit result of the same fit "
+            f"lies beside it.\nEnter {what}:", 100.0, 0.001, 1e6, 2)
+        return d if ok else None
+
+    def load_known(self, path=None, *, fit_thickness: bool = False) -> str | None:
+        """Add a layer from an earlier result's n, κ export above the selected layer.
+
+        Its thickness comes from the fit result beside the table; when there is none,
+        the user is asked for it. Held as known unless ``fit_thickness``. Returns the
+        new layer's name (None if nothing was added).
+        """
+        from fitting.known import known_layer_from_export
+        path = path or self._export_file()
+        if path is None:
+            return None
+        # The table must cover what the fit will use: the spectrum within the fit range.
+        spectrum, covers = self.session.spectrum, None
+        if spectrum is not None:
+            covers = spectrum.wavelength_nm
+            rng = self.session.options.get("fit_range_nm")
+            if rng is not None:
+                covers = covers[(covers >= rng[0]) & (covers <= rng[1])]
+        thickness = None
+        while True:
+            try:
+                layer = known_layer_from_export(path, thickness, fit_thickness=fit_thickness,
+                                                covers_nm=covers)
+                break
+            except ParameterError as exc:
+                if exc.name == "thickness_nm" and exc.value is None and thickness is None:
+                    thickness = self._ask_thickness(path, start=fit_thickness)
+                    if thickness is not None:
+                        continue
+                    return None
+                self.error.emit("Layer not added", str(exc))
+                return None
+            except PellucidError as exc:
+                self.error.emit("Layer not added", str(exc))
+                return None
+        row = max(self.selected_row(), 0)
+        name = self._guard("Layer not added", self.session.insert_layer, layer, index=row)
+        if name is not None:
+            self.layer_list.setCurrentRow(row)
+            held = ("held as known" if layer.known else "its thickness will be fitted")
+            self.status.emit(f"Added layer '{name}' with n, κ from {layer.source.get('file')}"
+                             f" ({layer.thickness.value:.1f} nm, {held})", False)
         return name
 
     def _remove(self):

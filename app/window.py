@@ -9,6 +9,7 @@ shortcuts, settings and file dialogs, and starts the fit in a
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 from PySide6.QtCore import QSettings, Qt
@@ -18,6 +19,7 @@ from PySide6.QtWidgets import (QApplication, QFileDialog, QGroupBox, QLabel, QMa
 
 from fitting.errors import PellucidError
 from fitting.fit import fit_spectrum
+from fitting.suggest import Suggestion, suggest_model
 
 from .dialogs import ask_save_discard_cancel, ask_yes_no, show_error, show_info
 from .fit_panel import FitPanel
@@ -124,6 +126,8 @@ class MainWindow(QMainWindow):
         self.stack_panel.status.connect(self.status)
         self.fit_panel.status.connect(self.status)
         self.fit_panel.fit_requested.connect(self.start_fit)
+        self.fit_panel.suggest_requested.connect(self.start_suggestion)
+        self.results.adopt_requested.connect(self.adopt_suggested_model)
         self.fit_panel.cancel_requested.connect(self.cancel)
         s.message.connect(self.status)
         s.modified_changed.connect(self._on_clean_changed)
@@ -191,6 +195,9 @@ class MainWindow(QMainWindow):
         f = mb.addMenu("F&it")
         self.act_fit = self._action(f, "&Fit", self.start_fit, ["Ctrl+R", "F5"],
                                     "Fit the model to the spectrum")
+        self.act_suggest = self._action(f, "&Suggest a model", self.start_suggestion, None,
+                                        "Fit the film models that suit the spectrum and "
+                                        "rank them by BIC")
         self.act_cancel = self._action(f, "&Cancel", self.cancel, "Esc",
                                        "Stop the running fit")
 
@@ -421,19 +428,40 @@ class MainWindow(QMainWindow):
             return True
         return False
 
-    def start_fit(self) -> bool:
+    def start_suggestion(self) -> bool:
+        """Fit the plausible film models and rank them by BIC (the "Suggest a model" button)."""
+        return self.start_fit(suggest=True)
+
+    def start_fit(self, suggest: bool | None = None) -> bool:
+        """Start a fit in the worker thread.
+
+        ``suggest`` None follows the recipe option ``fit.suggest_model`` (as a
+        batch would); True runs a model suggestion (its list of models, if the
+        option holds one), False fits the stack's own model only.
+        """
         if self._busy("starting another"):
             return False
         try:
             spectrum, stack, options = self.session.fit_inputs()
+            recipe = self.session.recipe(name="interactive fit")
+            want = recipe.suggest_model if suggest is None else (
+                (recipe.suggest_model or True) if suggest else False)
+            if want and not recipe.suggest_model:
+                # The provenance names the recipe that reproduces this result in a batch.
+                recipe = dataclasses.replace(recipe, suggest_model=True)
             # What the result will be judged against: the recipe and setup it ran with.
-            self._fit_origin = (self.session.recipe(name="interactive fit").hash(),
-                                self.session.setup_fingerprint())
+            self._fit_origin = (recipe.hash(), self.session.setup_fingerprint())
         except PellucidError as exc:
             show_error(self, "Fit not started", exc)
             return False
+        self._suggesting = bool(want)
+        self._last_suggestion = None
+        families = want if isinstance(want, tuple) else None
 
         def target(stop, report):
+            if want:
+                return suggest_model(spectrum, stack, options, families=families,
+                                     progress=report, stop=stop)
             return fit_spectrum(spectrum, stack, options, progress=report, stop=stop)
 
         job = Job(target, parent=self)
@@ -443,7 +471,8 @@ class MainWindow(QMainWindow):
         job.done.connect(self._fit_ended)
         self.fit_job = job
         self._set_running(True)
-        self.status("Fitting… (Esc to cancel)")
+        self.status("Fitting the candidate models… (Esc to cancel)" if want
+                    else "Fitting… (Esc to cancel)")
         job.start()
         return True
 
@@ -452,6 +481,7 @@ class MainWindow(QMainWindow):
         for box in self.boxes[:2]:
             box.setEnabled(not running)
         self.act_fit.setEnabled(not running)
+        self.act_suggest.setEnabled(not running)
         # The fit works on a copy and writes its result back at the end: no stack edits
         # (and no undo of them) meanwhile. QUndoStack re-enables these on its next change.
         self.act_undo.setEnabled(not running and self.session.undo.canUndo())
@@ -467,8 +497,13 @@ class MainWindow(QMainWindow):
             self.batch_dialog.cancel()
 
     _fit_origin = ("", None)
+    _suggesting = False
+    _last_suggestion = None
 
     def _fit_done(self, result):
+        if isinstance(result, Suggestion):
+            self._suggestion_done(result)
+            return
         rhash, setup = self._fit_origin
         self.session.set_result(result, recipe_hash=rhash, setup=setup)
         if result.aborted:
@@ -488,14 +523,65 @@ class MainWindow(QMainWindow):
             except KeyError:
                 self.status(f"Fit done: reduced χ² {result.redchi:.3g}")
 
+    def _suggestion_done(self, s: Suggestion):
+        """Show the ranking; the chosen model's fit becomes the result. A chosen model
+        that is not the user's is offered for adoption, not put into the stack."""
+        self._last_suggestion = s
+        r = s.result
+        if r is None:
+            self.status("The model suggestion stopped before any model was fitted; nothing "
+                        "changed.", True)
+            return
+        if "model_suggestion" not in r.extra:
+            # Stopped before any model could be ranked: the result still says so.
+            r = dataclasses.replace(r, extra={**r.extra, "model_suggestion": s.to_dict()})
+        chosen = s.chosen_candidate
+        rhash, setup = self._fit_origin
+        self.session.set_result(r, apply=chosen.current, recipe_hash=rhash, setup=setup)
+        self.results.show_models()
+        label = chosen.label
+        if s.stopped:
+            msg = (f"Model suggestion stopped: not every model was fitted; {label} is the "
+                   "best of those that were.")
+        elif chosen.current:
+            msg = f"Model suggestion: your model, {label}, fits best; its fit is applied."
+        else:
+            msg = (f"Model suggestion: {label} fits best. Press 'Use {label} in the stack' "
+                   "(Result, Models tab) to adopt it.")
+        self.status(msg, s.stopped or self.session.result_stale)
+
+    def adopt_suggested_model(self):
+        """Put the suggested model, with its fitted values, into the stack (undoable)."""
+        r = self.session.result
+        info = (r.extra or {}).get("model_suggestion") if r is not None else None
+        label = next((c.get("label") for c in (info or {}).get("candidates", [])
+                      if c.get("model") == (info or {}).get("chosen")), "the suggested model")
+        if self._busy("changing the stack"):
+            return
+        try:
+            self.session.adopt_result_stack(f"Use {label} (suggested)")
+        except PellucidError as exc:
+            show_error(self, "Model not adopted", exc)
+            return
+        self.status(f"{label} and its fitted values are now in the stack (Ctrl+Z undoes it).")
+
     def _fit_failed(self, exc):
-        show_error(self, "The fit could not run", exc)
-        self.status(f"Fit failed: {exc}", True)
+        what = "model suggestion" if self._suggesting else "fit"
+        show_error(self, f"The {what} could not run", exc)
+        self.status(f"{what.capitalize()} failed: {exc}", True)
 
     def _fit_ended(self):
         self._set_running(False)
         r = self.session.result
-        if r is not None:
+        s = self._last_suggestion
+        if s is not None:
+            fitted = [c for c in s.candidates if c.result is not None]
+            text = (f"{'stopped' if s.stopped else 'done'}: {len(fitted)} models fitted, "
+                    f"{sum(c.elapsed_s for c in fitted):.1f} s")
+            self.fit_panel.stage.setText(text)
+            self.fit_panel.progress.setFormat(text)
+            self.fit_panel.progress.setValue(1000)
+        elif r is not None:
             text = (f"{'stopped' if r.aborted else 'done'}: {r.nfev} model evaluations, "
                     f"{r.elapsed_s:.1f} s")
             self.fit_panel.stage.setText(text)
@@ -680,20 +766,28 @@ class MainWindow(QMainWindow):
         return True
 
     def save_recipe_dialog(self):
-        from fitting.recipe import save_recipe
         path, _ = QFileDialog.getSaveFileName(self, "Save setup as recipe",
                                               self.folder("recipe"), RECIPE_FILTER)
         if not path:
             return
         if not path.endswith(".json"):
             path += ".recipe.json"
+        self.save_recipe_to(path)
+
+    def save_recipe_to(self, path) -> bool:
+        """Save the setup as a recipe (with what a loaded recipe had beyond the app's
+        controls); reference files inside the recipe's folder are named relative to it."""
+        from fitting.recipe import save_recipe
+        path = Path(path)
         try:
-            save_recipe(self.session.recipe(name=Path(path).name.split(".")[0]), path)
+            save_recipe(self.session.recipe(name=path.name.split(".")[0],
+                                            relative_to=path.parent), path)
         except (PellucidError, OSError) as exc:
             show_error(self, "Recipe not saved", exc)
-            return
+            return False
         self._remember_folder("recipe", path)
         self.status(f"Recipe saved to {path}")
+        return True
 
     def load_recipe_dialog(self):
         path, _ = QFileDialog.getOpenFileName(self, "Load a recipe", self.folder("recipe"),

@@ -52,13 +52,10 @@ Versions
 from __future__ import annotations
 
 import json
-import math
 import os
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
-
-import numpy as np
 
 from .atomic import atomic_write_text
 from .errors import RecipeError
@@ -280,125 +277,20 @@ def _portable(p: Path, base: Path | None) -> str:
 
 
 # -- a FitResult back from its JSON ---------------------------------------------------
-def _floats(v, where, *, size=None, optional=False):
-    if v is None and optional:
-        return None
-    try:
-        a = np.array([np.nan if x is None else x for x in v], dtype=float)
-    except (TypeError, ValueError):
-        raise RecipeError(where, "must be a list of numbers") from None
-    if size is not None and a.size != size:
-        raise RecipeError(where, f"has {a.size} values, expected {size} (one per wavelength)")
-    return a
-
-
-def _num(v, where) -> float:
-    if v is None:
-        return math.nan
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
-        raise RecipeError(where, f"must be a number, found {v!r}")
-    return float(v)
-
-
 def fit_result_from_dict(d: Mapping):
     """Rebuild a :class:`fitting.result.FitResult` from ``FitResult.to_dict(curves=True)``.
 
-    Values written as ``null`` (NaN or infinity in the result) come back as NaN,
-    open bounds as ±inf. Fields of ``FitResult`` this function does not name are
-    taken when they hold text (a verdict and its reasons) and otherwise left at
-    their defaults.
+    The reading is :meth:`fitting.result.FitResult.from_dict` (every record typed:
+    diagnostics, uncertainty budgets, Kramers-Kronig checks); kept here under its
+    old name for callers of this module.
 
     Raises
     ------
     RecipeError
         naming the field, if the dict is not such a result.
     """
-    from .result import (Alternative, BandGap, FitResult, OpticalConstants,
-                         ParamResult)
-    if not isinstance(d, Mapping):
-        raise RecipeError("(result)", "must be an object")
-    for k in ("params", "curves", "chisqr", "redchi", "ndata", "nvarys", "nfev"):
-        if k not in d:
-            raise RecipeError(k, "is missing")
-    c = d["curves"]
-    if not isinstance(c, Mapping) or "wavelength_nm" not in c:
-        raise RecipeError("curves", "must hold wavelength_nm and the fitted curves")
-    wl = _floats(c["wavelength_nm"], "curves.wavelength_nm")
-    arrays = {k: _floats(c.get(k), f"curves.{k}", size=wl.size)
-              for k in ("measured", "fitted", "residuals", "sigma")}
-    used = np.asarray(_floats(c.get("used"), "curves.used", size=wl.size) != 0)
-    params = {}
-    if not isinstance(d["params"], Mapping):
-        raise RecipeError("params", "must be an object")
-    for name, p in d["params"].items():
-        w = f"params.{name}"
-        if not isinstance(p, Mapping) or "value" not in p:
-            raise RecipeError(w, "must hold at least a value")
-        lo, hi = p.get("min"), p.get("max")
-        params[name] = ParamResult(
-            name, _num(p["value"], f"{w}.value"),
-            None if p.get("stderr") is None else _num(p["stderr"], f"{w}.stderr"),
-            None if p.get("init_value") is None else _num(p["init_value"], f"{w}.init_value"),
-            -math.inf if lo is None else _num(lo, f"{w}.min"),
-            math.inf if hi is None else _num(hi, f"{w}.max"),
-            bool(p.get("vary", True)), str(p.get("unit", "")), p.get("expr"))
-    optical = {}
-    for layer, o in (d.get("optical") or {}).items():
-        w = f"optical.{layer}"
-        if not isinstance(o, Mapping):
-            raise RecipeError(w, "must be an object")
-        owl = _floats(o.get("wavelength_nm"), f"{w}.wavelength_nm")
-        optical[layer] = OpticalConstants(
-            str(o.get("layer", layer)), owl,
-            *(_floats(o.get(k), f"{w}.{k}", size=owl.size) for k in ("n", "k", "alpha_cm")),
-            *(_floats(o.get(k), f"{w}.{k}", size=owl.size, optional=True)
-              for k in ("n_sigma", "k_sigma", "alpha_sigma")))
-    gap = d.get("band_gap")
-    if gap is not None:
-        try:
-            gap = BandGap(_num(gap["Eg_eV"], "band_gap.Eg_eV"),
-                          _num(gap.get("sigma_eV"), "band_gap.sigma_eV"),
-                          str(gap["transition"]), tuple(_floats(gap["fit_range_eV"],
-                                                                "band_gap.fit_range_eV", size=2)),
-                          _num(gap.get("r_squared"), "band_gap.r_squared"),
-                          str(gap.get("layer", "")))
-        except (KeyError, TypeError):
-            raise RecipeError("band_gap", "must hold Eg_eV, transition and fit_range_eV") \
-                from None
-    try:
-        alts = tuple(Alternative(_num(a["thickness_nm"], "alternatives"),
-                                 _num(a["chisqr"], "alternatives"),
-                                 _num(a["redchi"], "alternatives"))
-                     for a in d.get("alternatives") or ())
-    except (KeyError, TypeError):
-        raise RecipeError("alternatives", "each must hold thickness_nm, chisqr, redchi") \
-            from None
-    matrix = lambda k: None if d.get(k) is None else np.array(  # noqa: E731
-        [[np.nan if x is None else x for x in row] for row in d[k]], dtype=float)
-    kw = dict(success=bool(d.get("success")), aborted=bool(d.get("aborted")),
-              message=str(d.get("message", "")), params=params,
-              var_names=tuple(d.get("var_names") or ()), covar=matrix("covar"),
-              correl=matrix("correl"), chisqr=_num(d["chisqr"], "chisqr"),
-              redchi=_num(d["redchi"], "redchi"), ndata=int(d["ndata"]),
-              nvarys=int(d["nvarys"]), nfev=int(d["nfev"]),
-              elapsed_s=_num(d.get("elapsed_s", 0.0), "elapsed_s"), wavelength_nm=wl,
-              used=used, quantity=str(d.get("quantity", "T")), optical=optical,
-              alternatives=alts, band_gap=gap, warnings=tuple(d.get("warnings") or ()),
-              stack=dict(d.get("stack") or {}), method=str(d.get("method", "")),
-              spectrum=dict(d.get("spectrum") or {}), extra=dict(d.get("extra") or {}),
-              **arrays)
-    # Fields added later pass through when they are plain text (a verdict and its
-    # reasons); structured records this function cannot rebuild are left at their
-    # defaults rather than handed on as bare dicts.
-    for f in fields(FitResult):
-        if f.name in kw or f.name not in d:
-            continue
-        v = d[f.name]
-        if isinstance(v, str):
-            kw[f.name] = v
-        elif isinstance(v, list) and all(isinstance(x, str) for x in v):
-            kw[f.name] = tuple(v)
-    return FitResult(**kw)
+    from . import result
+    return result.FitResult.from_dict(d)
 
 
 def save_project(project: Project, path) -> Path:

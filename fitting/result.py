@@ -2,16 +2,20 @@
 
 The fit engine fills a :class:`FitResult`; exports, the batch summary, the PDF
 report and the GUI only read it. It holds no methods that refit or plot.
+:meth:`FitResult.from_dict` reads the JSON form back (a saved project's result),
+record by record.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Any
+import math
+from dataclasses import dataclass, field, fields
+from typing import Any, Mapping
 
 import numpy as np
 
 from . import __version__
+from .errors import RecipeError
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
            "FitProgress", "Diagnostics", "BudgetItem", "Uncertainty", "ConsistencyCheck",
@@ -431,5 +435,230 @@ class FitResult:
         return d
 
 
+    @classmethod
+    def from_dict(cls, d: Mapping) -> "FitResult":
+        """Rebuild a result from :meth:`to_dict` (``curves=True``), every record typed.
+
+        Parameters, optical constants, band gap, alternative basins, diagnostics,
+        the uncertainty budgets (with their :class:`BudgetItem` lines) and the
+        Kramers-Kronig checks come back as their classes; ``to_dict`` of the
+        result is then the dict it was read from. Values written as ``null``
+        (NaN or infinity in the result) come back as NaN, open bounds as ±inf.
+        Diagnostics written by a version with other fields are left out (None)
+        rather than guessed; fields of ``FitResult`` not named here are taken
+        when they hold text (a newer version's verdict-like fields).
+
+        Raises
+        ------
+        RecipeError
+            Naming the field (``uncertainty.film_thickness.items[0].u``), if the
+            dict is not such a result.
+        """
+        if not isinstance(d, Mapping):
+            raise RecipeError("(result)", "must be an object")
+        for k in ("params", "curves", "chisqr", "redchi", "ndata", "nvarys", "nfev"):
+            if k not in d:
+                raise RecipeError(k, "is missing")
+        c = d["curves"]
+        if not isinstance(c, Mapping) or "wavelength_nm" not in c:
+            raise RecipeError("curves", "must hold wavelength_nm and the fitted curves")
+        wl = _floats(c["wavelength_nm"], "curves.wavelength_nm")
+        arrays = {k: _floats(c.get(k), f"curves.{k}", size=wl.size)
+                  for k in ("measured", "fitted", "residuals", "sigma")}
+        used = np.asarray(_floats(c.get("used"), "curves.used", size=wl.size) != 0)
+        kw = dict(
+            success=bool(d.get("success")), aborted=bool(d.get("aborted")),
+            message=str(d.get("message", "")), params=_params(d["params"]),
+            var_names=tuple(d.get("var_names") or ()), covar=_matrix(d, "covar"),
+            correl=_matrix(d, "correl"), chisqr=_num(d["chisqr"], "chisqr"),
+            redchi=_num(d["redchi"], "redchi"), ndata=_int(d["ndata"], "ndata"),
+            nvarys=_int(d["nvarys"], "nvarys"), nfev=_int(d["nfev"], "nfev"),
+            elapsed_s=_num(d.get("elapsed_s", 0.0), "elapsed_s"), wavelength_nm=wl,
+            used=used, quantity=str(d.get("quantity", "T")),
+            optical=_optical(d.get("optical") or {}), alternatives=_alternatives(d),
+            band_gap=_band_gap(d.get("band_gap")), warnings=tuple(d.get("warnings") or ()),
+            stack=dict(d.get("stack") or {}), method=str(d.get("method", "")),
+            spectrum=dict(d.get("spectrum") or {}), extra=dict(d.get("extra") or {}),
+            verdict=str(d.get("verdict") or ""),
+            verdict_reasons=tuple(str(x) for x in d.get("verdict_reasons") or ()),
+            diagnostics=_diagnostics(d.get("diagnostics")),
+            uncertainty=_uncertainty(d.get("uncertainty") or {}),
+            kk=_kk(d.get("kk") or {}), sigma_source=str(d.get("sigma_source") or ""),
+            **arrays)
+        names = {f.name for f in fields(cls)}
+        kw = {k: v for k, v in kw.items() if k in names}
+        # A newer version's fields pass through when they are plain text.
+        for f in fields(cls):
+            if f.name in kw or f.name not in d:
+                continue
+            v = d[f.name]
+            if isinstance(v, str):
+                kw[f.name] = v
+            elif isinstance(v, list) and all(isinstance(x, str) for x in v):
+                kw[f.name] = tuple(v)
+        return cls(**kw)
+
+
 def _jsonable(v) -> bool:
     return isinstance(v, (str, int, float, bool, list, dict, type(None)))
+
+
+# -- reading a result back from its JSON (FitResult.from_dict) -------------------------
+def _floats(v, where, *, size=None, optional=False):
+    if v is None and optional:
+        return None
+    try:
+        a = np.array([np.nan if x is None else x for x in v], dtype=float)
+    except (TypeError, ValueError):
+        raise RecipeError(where, "must be a list of numbers") from None
+    if a.ndim != 1:
+        raise RecipeError(where, "must be a flat list of numbers")
+    if size is not None and a.size != size:
+        raise RecipeError(where, f"has {a.size} values, expected {size} (one per wavelength)")
+    return a
+
+
+def _num(v, where, *, missing=math.nan) -> float:
+    if v is None:
+        return missing
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise RecipeError(where, f"must be a number, found {v!r}")
+    return float(v)
+
+
+def _opt(v, where) -> float | None:
+    """A number that may be absent (None stays None)."""
+    return None if v is None else _num(v, where)
+
+
+def _int(v, where) -> int:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or v != int(v):
+        raise RecipeError(where, f"must be a whole number, found {v!r}")
+    return int(v)
+
+
+def _obj(v, where) -> Mapping:
+    if not isinstance(v, Mapping):
+        raise RecipeError(where, "must be an object")
+    return v
+
+
+def _entries(d, key):
+    """(name, field path, object) of every entry of the object ``d`` found under ``key``."""
+    for name, v in _obj(d, key).items():
+        w = f"{key}.{name}"
+        yield name, w, _obj(v, w)
+
+
+def _matrix(d, key):
+    if d.get(key) is None:
+        return None
+    try:
+        m = np.array([[np.nan if x is None else x for x in row] for row in d[key]], dtype=float)
+    except (TypeError, ValueError):
+        raise RecipeError(key, "must be a square table (list of lists) of numbers") from None
+    if m.ndim != 2 or m.shape[0] != m.shape[1]:
+        raise RecipeError(key, f"must be square, found shape {m.shape}")
+    return m
+
+
+def _params(d) -> dict:
+    out = {}
+    for name, p in _obj(d, "params").items():
+        w = f"params.{name}"
+        if not isinstance(p, Mapping) or "value" not in p:
+            raise RecipeError(w, "must hold at least a value")
+        expr = p.get("expr")
+        out[name] = ParamResult(
+            name, _num(p["value"], f"{w}.value"), _opt(p.get("stderr"), f"{w}.stderr"),
+            _opt(p.get("init_value"), f"{w}.init_value"),
+            _num(p.get("min"), f"{w}.min", missing=-math.inf),
+            _num(p.get("max"), f"{w}.max", missing=math.inf),
+            bool(p.get("vary", True)), str(p.get("unit", "")),
+            None if expr is None else str(expr))
+    return out
+
+
+def _optical(d) -> dict:
+    out = {}
+    for layer, w, o in _entries(d, "optical"):
+        owl = _floats(o.get("wavelength_nm"), f"{w}.wavelength_nm")
+        out[layer] = OpticalConstants(
+            str(o.get("layer", layer)), owl,
+            *(_floats(o.get(k), f"{w}.{k}", size=owl.size) for k in ("n", "k", "alpha_cm")),
+            *(_floats(o.get(k), f"{w}.{k}", size=owl.size, optional=True)
+              for k in ("n_sigma", "k_sigma", "alpha_sigma")))
+    return out
+
+
+def _band_gap(gap) -> BandGap | None:
+    if gap is None:
+        return None
+    gap = _obj(gap, "band_gap")
+    try:
+        return BandGap(_num(gap["Eg_eV"], "band_gap.Eg_eV"),
+                       _num(gap.get("sigma_eV"), "band_gap.sigma_eV"), str(gap["transition"]),
+                       tuple(_floats(gap["fit_range_eV"], "band_gap.fit_range_eV", size=2)),
+                       _num(gap.get("r_squared"), "band_gap.r_squared"),
+                       str(gap.get("layer", "")))
+    except (KeyError, TypeError):
+        raise RecipeError("band_gap", "must hold Eg_eV, transition and fit_range_eV") from None
+
+
+def _alternatives(d) -> tuple:
+    out = []
+    for i, a in enumerate(d.get("alternatives") or ()):
+        w = f"alternatives[{i}]"
+        a = _obj(a, w)
+        if not {"thickness_nm", "chisqr", "redchi"} <= set(a):
+            raise RecipeError(w, "must hold thickness_nm, chisqr and redchi")
+        out.append(Alternative(_num(a["thickness_nm"], f"{w}.thickness_nm"),
+                               _num(a["chisqr"], f"{w}.chisqr"),
+                               _num(a["redchi"], f"{w}.redchi"), str(a.get("note", ""))))
+    return tuple(out)
+
+
+def _diagnostics(d) -> Diagnostics | None:
+    if d is None:
+        return None
+    d = _obj(d, "diagnostics")
+    names = [f.name for f in fields(Diagnostics)]
+    if set(d) != set(names):
+        return None          # another version's record: not guessed at
+    vals = {}
+    for k in names:
+        w = f"diagnostics.{k}"
+        vals[k] = (str(d[k]) if k == "noise_source" else
+                   _int(d[k], w) if k == "dof" else _num(d[k], w))
+    return Diagnostics(**vals)
+
+
+def _uncertainty(d) -> dict:
+    out = {}
+    for key, w, u in _entries(d, "uncertainty"):
+        if not isinstance(u.get("items"), list) or "u_combined" not in u:
+            raise RecipeError(w, "must hold items (the budget lines) and u_combined")
+        items = []
+        for i, it in enumerate(u["items"]):
+            wi = f"{w}.items[{i}]"
+            it = _obj(it, wi)
+            items.append(BudgetItem(str(it.get("source", "")), _num(it.get("u"), f"{wi}.u"),
+                                    str(it.get("note", ""))))
+        out[key] = Uncertainty(str(u.get("quantity", key)), _num(u.get("value"), f"{w}.value"),
+                               str(u.get("unit", "")), tuple(items),
+                               _num(u["u_combined"], f"{w}.u_combined"),
+                               _num(u.get("k", 2.0), f"{w}.k"))
+    return out
+
+
+def _kk(d) -> dict:
+    out = {}
+    for layer, w, c in _entries(d, "kk"):
+        consistent = c.get("consistent")
+        if consistent is not None and not isinstance(consistent, bool):
+            raise RecipeError(f"{w}.consistent", f"must be true, false or null, found "
+                                                 f"{consistent!r}")
+        out[layer] = ConsistencyCheck(str(layer), consistent, str(c.get("message", "")),
+                                      _opt(c.get("rms_dev"), f"{w}.rms_dev"),
+                                      _opt(c.get("max_dev"), f"{w}.max_dev"))
+    return out

@@ -7,8 +7,11 @@ masked window, the live model curve), ``fitted`` (after Fit: summary), ``optical
 (n, κ, α tab), ``tauc`` (Tauc tab), ``correlation`` (heat map), ``stale`` (the model
 changed after the fit: the result is marked out of date), ``export`` (the export
 dialog), ``batch`` (batch dialog after a small run), ``import`` (the import preview),
-``counts`` (the preview of raw detector counts, asking for the 100 % line) and
-``dark`` (fitted, dark theme). Uses the
+``counts`` (the preview of raw detector counts, asking for the 100 % line),
+``suggest`` (a technician's Cauchy guess on the absorbing demo film, then "Suggest a
+model": the Models tab with the ranking and the offer to use the chosen model),
+``known`` (a known layer loaded from an earlier result's n, κ export under the film)
+and ``dark`` (fitted, dark theme). Uses the
 synthetic spectra in ``demo_data/`` (invented scenario). Each PNG is written with
 an adaptive palette if Pillow is installed, so it stays well below 300 kB.
 """
@@ -67,6 +70,45 @@ def _drawn(win):
     """True when the plot and the result tab on show are drawn."""
     tab = win.results.currentWidget()
     return not win.plot.pending and not getattr(tab, "busy", False)
+
+
+def _known_layer_shot(app, win, tmp: Path, out: Path) -> Path:
+    """A clear film fitted over a known barrier loaded from an earlier result's export."""
+    import numpy as np
+
+    from fitting.dispersion import Cauchy
+    from fitting.export import export_result, make_provenance
+    from fitting.known import known_layer_from_export
+    from fitting.reader import write_spectrum
+    from fitting.spectrum import Spectrum
+    from fitting.stack import Layer, Stack
+    from fitting.substrates import library_substrate
+
+    r = win.session.result
+    export_result(r, tmp / "week1", stem="PL2-T-0101", provenance=make_provenance(r),
+                  parts=("nk", "json"))
+    table = tmp / "week1" / "PL2-T-0101_nk_film.csv"
+    truth = Stack([Layer("top", Cauchy(1.46, 0.004), 420.0),
+                   known_layer_from_export(table, name="barrier")],
+                  library_substrate("fused_silica", 1.0))
+    wl = np.arange(330.0, 1100.5, 1.0)
+    T = truth.transmittance(wl) + np.random.default_rng(7).normal(0.0, 0.002, wl.size)
+    path = tmp / "PL2-S-0301.csv"
+    write_spectrum(path, Spectrum(wl, T, name="PL2-S-0301"))
+    win.open_spectrum(path)
+    s = win.session
+    s.set_layer_model(0, "cauchy")
+    s.rename_layer(0, "top")
+    win.stack_panel.layer_list.setCurrentRow(0)
+    win.stack_panel.load_known(table)                  # lands above the selected layer
+    s.move_layer(0, +1)                                # the barrier lies on the substrate
+    s.rename_layer(1, "barrier")
+    win.start_fit()
+    _wait(app, lambda: win.fit_job is not None and not win.fit_job.is_running(), 300)
+    win.stack_panel.layer_list.setCurrentRow(1)
+    _settle(app, 600)
+    _wait(app, lambda: _drawn(win))
+    return _save(win, out / "known.png")
 
 
 def main(argv=None) -> int:
@@ -136,7 +178,7 @@ def main(argv=None) -> int:
         dlg.close()
 
         from app.import_dialog import ImportDialog
-        dlg = ImportDialog(ROOT / "demo_data" / "spectra" / "PL2-T-0102.csv", parent=win)
+        dlg = ImportDialog(ROOT / "demo_data" / "spectra" / "PL2-T-0103.txt", parent=win)
         dlg.show()
         _settle(app, 300)
         written.append(_save(dlg, out / "import.png"))
@@ -167,6 +209,23 @@ def main(argv=None) -> int:
         _settle(app, 600)
         _wait(app, lambda: _drawn(win))
         written.append(_save(win, out / "dark.png"))
+        apply_theme(app, args.theme)
+        win.set_theme(args.theme)
+
+        # Not sure of the model: the default Cauchy on an absorbing film, then Suggest.
+        win.session.set_layer_model(0, "cauchy")
+        win.start_suggestion()
+        _wait(app, lambda: win.fit_job is not None and not win.fit_job.is_running(), 300)
+        _settle(app, 600)
+        _wait(app, lambda: _drawn(win))
+        written.append(_save(win, out / "suggest.png"))
+        win.adopt_suggested_model()
+        win.results.setCurrentIndex(0)
+
+        # Last week's titania film is the barrier under a new clear film: its n, κ export
+        # becomes a known layer. The two-layer spectrum is invented for the picture
+        # (Pellucid's own stack engine, 0.2 % T noise), like the rest of the demo data.
+        written.append(_known_layer_shot(app, win, tmp, out))
         win.shutdown_jobs()
         win.session.mark_saved()
         win.close()
