@@ -298,7 +298,9 @@ class ResultPanel(QTabWidget):
         f.setPointSizeF(f.pointSizeF() * 1.6)
         f.setBold(True)
         self.thickness_label.setFont(f)
-        self.thickness_label.setToolTip("Fitted thickness of the first film ± 1σ")
+        self.thickness_label.setToolTip("Fitted thickness of the first film ± 1σ (statistical), "
+                                        "and U, the expanded uncertainty (k = 2) of its GUM "
+                                        "budget (see the Report tab)")
         self.chi_label = QLabel("")
         self.chi_label.setWordWrap(True)
         self.chi_label.setToolTip("Goodness of fit: reduced χ² near 1 means the model "
@@ -472,7 +474,13 @@ class ResultPanel(QTabWidget):
                               + model + verdict_html(r))
         try:
             d, sd = r.thickness()
-            self.thickness_label.setText("Thickness  " + _pm(d, sd, "nm", 1))
+            text = "Thickness  " + _pm(d, sd, "nm", 1)
+            names = [k for k in r.params if k.endswith("_thickness") and r.params[k].vary]
+            u = (getattr(r, "uncertainty", None) or {}).get(names[0]) if names else None
+            if u is not None:
+                # The expanded uncertainty (GUM, k = 2) is what a certificate states.
+                text += f"   (U = {u.expanded:.2g} nm, k = 2)"
+            self.thickness_label.setText(text)
         except KeyError:
             self.thickness_label.setText("No film layer")
         self.chi_label.setText(f"χ² = {r.chisqr:.4g}    reduced χ² = {r.redchi:.4g}    "

@@ -56,6 +56,7 @@ def test_open_fit_and_read_result(window, qtbot, demo_csv):
     assert "Thickness" in window.results.thickness_label.text()
     assert f"{d:.1f}" in window.results.thickness_label.text()
     assert "±" in window.results.thickness_label.text()
+    assert "(U = " in window.results.thickness_label.text() and "k = 2" in window.results.thickness_label.text()
     assert "χ²" in window.results.chi_label.text()
     assert "[[Fit statistics]]" in window.results.report.toPlainText()
     assert window.results.params_table.rowCount() == len(r.params)
