@@ -77,7 +77,6 @@ from __future__ import annotations
 import csv
 import dataclasses
 import glob
-import math
 import os
 import re
 import time
@@ -93,9 +92,10 @@ from typing import Iterable, Iterator, Mapping
 from . import __version__
 from .atomic import atomic_write_json
 from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,  # noqa: F401
-                          assign_folders, check_out_dir, export_stem, is_disk_full, json_safe,
+                          assign_folders, check_out_dir, export_stem, is_disk_full,
                           read_marker_record, safe_stem, write_stamp, write_summary_files)
 from .errors import PellucidError, RecipeError
+from .jsonsafe import finite_or_none, json_safe
 from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, _optional, load_recipe, recipe_from_dict,
                      recipe_hash, recipe_identity)
 from .spectrum import sha256_of_file
@@ -348,14 +348,6 @@ def summary_columns(*recipes: Recipe) -> list[str]:
     return list(dict.fromkeys(head + body + tail))
 
 
-def _num(x):
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
 def _quantity(result, key: str):
     m = re.match(r"^(?P<layer>.+)_(?P<q>[nk])@(?P<wl>[\d.]+)$", key)
     if m:
@@ -363,13 +355,13 @@ def _quantity(result, key: str):
         if oc is None:
             return None
         n, k = oc.at(float(m.group("wl")))
-        return _num(n if m.group("q") == "n" else k)
+        return finite_or_none(n if m.group("q") == "n" else k)
     if key == "band_gap":
-        return None if result.band_gap is None else _num(result.band_gap.Eg_eV)
+        return None if result.band_gap is None else finite_or_none(result.band_gap.Eg_eV)
     if key == "redchi":
-        return _num(result.redchi)
+        return finite_or_none(result.redchi)
     p = result.params.get(key)
-    return None if p is None else _num(p.value)
+    return None if p is None else finite_or_none(p.value)
 
 
 def result_verdict(result) -> tuple[str, tuple]:
@@ -413,15 +405,17 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
             L = layer.name
             p = result.params.get(f"{L}_thickness")
             if p is not None:
-                row[f"{L}_thickness"], row[f"{L}_thickness_sigma"] = _num(p.value), _num(p.stderr)
+                row[f"{L}_thickness"] = finite_or_none(p.value)
+                row[f"{L}_thickness_sigma"] = finite_or_none(p.stderr)
             for wl in STANDARD_WAVELENGTHS_NM:
                 row[f"{L}_n@{wl}"] = _quantity(result, f"{L}_n@{wl}")
                 row[f"{L}_k@{wl}"] = _quantity(result, f"{L}_k@{wl}")
         if result.band_gap is not None:
-            row["band_gap"] = _num(result.band_gap.Eg_eV)
-            row["band_gap_sigma"] = _num(result.band_gap.sigma_eV)
-        row.update(redchi=_num(result.redchi), chisqr=_num(result.chisqr), nfev=result.nfev,
-                   warnings="; ".join(result.warnings), model=result_model(result))
+            row["band_gap"] = finite_or_none(result.band_gap.Eg_eV)
+            row["band_gap_sigma"] = finite_or_none(result.band_gap.sigma_eV)
+        row.update(redchi=finite_or_none(result.redchi), chisqr=finite_or_none(result.chisqr),
+                   nfev=result.nfev, warnings="; ".join(result.warnings),
+                   model=result_model(result))
         if "model_reason" in row:
             row["model_reason"] = (result.extra.get("model_suggestion") or {}).get("reason")
         verdict, reasons = result_verdict(result)

@@ -49,6 +49,7 @@ from typing import Iterable, Mapping
 from . import __version__
 from .atomic import atomic_write_json, atomic_writer
 from .errors import PellucidError
+from .jsonsafe import json_safe
 
 __all__ = ["FolderLock", "check_out_dir", "assign_folders", "safe_stem", "export_stem",
            "write_stamp", "write_summary_files", "read_marker_record", "is_disk_full",
@@ -311,22 +312,6 @@ def _cell(v) -> str:
     if isinstance(v, float):
         return repr(v) if math.isfinite(v) else ""
     return str(v)
-
-
-def json_safe(obj):
-    """NaN/inf -> None, tuples -> lists, anything else unknown -> text (strict JSON)."""
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, Mapping):
-        return {str(k): json_safe(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [json_safe(v) for v in obj]
-    if isinstance(obj, (str, int, bool)) or obj is None:
-        return obj
-    try:
-        return json_safe(float(obj))
-    except (TypeError, ValueError):
-        return str(obj)
 
 
 class _Hashing:

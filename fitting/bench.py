@@ -40,7 +40,6 @@ Numbers depend on the BLAS/NumPy build: on machines that set
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import os
 import platform
@@ -56,6 +55,7 @@ import numpy as np
 from .atomic import atomic_write_json
 from .dispersion import Cauchy
 from .errors import PellucidError
+from .jsonsafe import json_safe
 from .stack import Layer, Stack
 from .substrates import library_substrate
 
@@ -857,7 +857,7 @@ def main(argv=None) -> int:
                         batch_counts=args.batch_counts, batch_figures=args.batch_figures,
                         batch_only=args.batch_only)
     print(format_report(res))
-    path = atomic_write_json(args.out, json.loads(json.dumps(res, default=str)))
+    path = atomic_write_json(args.out, json_safe(res))
     print(f"results written to {path}")
     return 0 if res["all_agree"] else 1
 

@@ -62,7 +62,7 @@ import numpy as np
 
 from .atomic import atomic_write_text
 from .errors import RecipeError
-from .export import _json_clean as _clean     # NaN -> null, numpy -> Python: strict JSON
+from .jsonsafe import json_safe
 from .recipe import Recipe, recipe_from_dict
 from .spectrum import sha256_of_file
 
@@ -164,7 +164,7 @@ class Project:
                    "raw_counts": r.raw_counts}
         res = None
         if self.result is not None:
-            res = {"fit": _clean(self.result.fit.to_dict(curves=True)),
+            res = {"fit": json_safe(self.result.fit.to_dict(curves=True)),
                    "recipe_hash": self.result.recipe_hash, "current": bool(self.result.current)}
         return {"format": PROJECT_FORMAT, "version": PROJECT_VERSION, "name": self.name,
                 "recipe": self.recipe.to_dict(),

@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
+from .jsonsafe import finite_or_none, is_plain_json
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
            "FitProgress", "Diagnostics", "BudgetItem", "Uncertainty", "ConsistencyCheck",
@@ -51,7 +52,7 @@ class ParamResult:
         return bool(self.value - self.min <= tol or self.max - self.value <= tol)
 
     def to_dict(self) -> dict:
-        fin = lambda x: float(x) if x is not None and np.isfinite(x) else None  # noqa: E731
+        fin = finite_or_none
         return {"value": self.value, "stderr": fin(self.stderr), "init_value": fin(self.init_value),
                 "min": fin(self.min), "max": fin(self.max), "vary": self.vary, "unit": self.unit,
                 "expr": self.expr, "at_bound": self.at_bound}
@@ -164,7 +165,7 @@ class BudgetItem:
     note: str = ""
 
     def to_dict(self) -> dict:
-        return {"source": self.source, "u": _fin(self.u), "note": self.note}
+        return {"source": self.source, "u": finite_or_none(self.u), "note": self.note}
 
 
 @dataclass(frozen=True)
@@ -190,10 +191,10 @@ class Uncertainty:
         return self.k * self.u_combined
 
     def to_dict(self) -> dict:
-        return {"quantity": self.quantity, "value": _fin(self.value), "unit": self.unit,
+        return {"quantity": self.quantity, "value": finite_or_none(self.value), "unit": self.unit,
                 "items": [i.to_dict() for i in self.items],
-                "u_combined": _fin(self.u_combined), "k": self.k,
-                "expanded": _fin(self.expanded)}
+                "u_combined": finite_or_none(self.u_combined), "k": self.k,
+                "expanded": finite_or_none(self.expanded)}
 
 
 @dataclass(frozen=True)
@@ -208,11 +209,7 @@ class ConsistencyCheck:
 
     def to_dict(self) -> dict:
         return {"consistent": self.consistent, "message": self.message,
-                "rms_dev": _fin(self.rms_dev), "max_dev": _fin(self.max_dev)}
-
-
-def _fin(x):
-    return float(x) if x is not None and np.isfinite(x) else None
+                "rms_dev": finite_or_none(self.rms_dev), "max_dev": finite_or_none(self.max_dev)}
 
 
 @dataclass(frozen=True)
@@ -420,7 +417,7 @@ class FitResult:
             "uncertainty": {k: u.to_dict() for k, u in self.uncertainty.items()},
             "kk": {k: c.to_dict() for k, c in self.kk.items()},
             "sigma_source": self.sigma_source,
-            "extra": {k: v for k, v in self.extra.items() if _jsonable(v)},
+            "extra": {k: v for k, v in self.extra.items() if is_plain_json(v)},
         }
         if curves:
             d["curves"] = {"wavelength_nm": _arr(self.wavelength_nm),
@@ -429,7 +426,3 @@ class FitResult:
                            "sigma": _arr(self.sigma), "used": _arr(self.used)}
             d["optical"] = {k: v.to_dict() for k, v in self.optical.items()}
         return d
-
-
-def _jsonable(v) -> bool:
-    return isinstance(v, (str, int, float, bool, list, dict, type(None)))
