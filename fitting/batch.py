@@ -96,6 +96,7 @@ from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,
                           read_marker_record, safe_stem, write_stamp, write_summary_files)
 from .errors import PellucidError, RecipeError
 from .jsonsafe import finite_or_none, json_safe
+from .limits import overall_state
 from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, _optional, load_recipe, recipe_from_dict,
                      recipe_hash, recipe_identity)
 from .spectrum import sha256_of_file
@@ -426,13 +427,9 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
             if row.get(key) is None:
                 row[key] = _quantity(result, key)
     if recipe.limits:
-        verdicts = []
         for key, lim in recipe.limits.items():
-            v = lim.check(row.get(key)) if status == "ok" else "n/a"
-            row[f"spec_{key}"] = v
-            verdicts.append(v)
-        row["spec_pass"] = ("fail" if "fail" in verdicts else
-                            "n/a" if "n/a" in verdicts else "pass")
+            row[f"spec_{key}"] = lim.check(row.get(key)) if status == "ok" else "n/a"
+        row["spec_pass"] = overall_state(row[f"spec_{key}"] for key in recipe.limits)
     return row
 
 

@@ -38,6 +38,7 @@ from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
+from .limits import Limit
 from .units import HC_EV_NM
 
 __all__ = ["PALETTE", "fit_figure", "optical_figure", "tauc_figure", "thickness_trend_figure",
@@ -373,18 +374,13 @@ def spec_bounds(spec: Mapping | None, key: str) -> tuple[float | None, float | N
     """(min, max) of one quantity's spec limit, None where open.
 
     A limit may be ``{"min": a, "max": b}`` (either may be left out),
-    ``{"target": x, "tol": t}`` or a :class:`fitting.recipe.Limit`.
+    ``{"target": x, "tol": t}`` or a :class:`fitting.limits.Limit`, read as
+    :meth:`fitting.limits.Limit.coerce` reads it.
     """
     lim = (spec or {}).get(key)
     if lim is None:
         return None, None
-    if hasattr(lim, "bounds"):
-        lo, hi = lim.bounds
-    elif lim.get("target") is not None and lim.get("tol") is not None:
-        t, tol = _num(lim["target"]), abs(_num(lim["tol"]))
-        lo, hi = t - tol, t + tol
-    else:
-        lo, hi = _num(lim.get("min")), _num(lim.get("max"))
+    lo, hi = Limit.coerce(lim).bounds
     return (lo if np.isfinite(lo) else None), (hi if np.isfinite(hi) else None)
 
 

@@ -185,6 +185,7 @@ from typing import Any, Mapping
 from .atomic import atomic_write_text
 from .errors import PellucidError, RecipeError
 from .known import embed_table_files
+from .limits import Limit
 from .stack import Stack
 
 __all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", "recipe_hash",
@@ -398,84 +399,6 @@ def _check_field_types(d: Mapping, cls, where: str) -> None:
         elif isinstance(default, float):
             if isinstance(v, bool) or not isinstance(v, (int, float)):
                 raise RecipeError(w, f"must be a number, got {v!r}")
-
-
-# ---------------------------------------------------------------------------------
-# Limits
-@dataclass(frozen=True)
-class Limit:
-    """A specification limit on one result quantity.
-
-    Either ``target`` with ``tol`` (pass if ``|x - target| <= tol``) or
-    ``min`` and/or ``max`` (inclusive).
-    """
-
-    target: float | None = None
-    tol: float | None = None
-    min: float | None = None
-    max: float | None = None
-
-    @property
-    def bounds(self) -> tuple[float, float]:
-        if self.target is not None:
-            return self.target - self.tol, self.target + self.tol
-        return (-math.inf if self.min is None else self.min,
-                math.inf if self.max is None else self.max)
-
-    def check(self, value) -> str:
-        """``"pass"``, ``"fail"`` or ``"n/a"`` (value missing or not a number)."""
-        try:
-            v = float(value)
-        except (TypeError, ValueError):
-            return "n/a"
-        if not math.isfinite(v):
-            return "n/a"
-        lo, hi = self.bounds
-        return "pass" if lo <= v <= hi else "fail"
-
-    def describe(self) -> str:
-        if self.target is not None:
-            return f"{self.target:g} ± {self.tol:g}"
-        lo, hi = self.min, self.max
-        if lo is not None and hi is not None:
-            return f"{lo:g} to {hi:g}"
-        return f">= {lo:g}" if lo is not None else f"<= {hi:g}"
-
-    def to_dict(self) -> dict:
-        if self.target is not None:
-            return {"target": self.target, "tol": self.tol}
-        return {k: v for k, v in (("min", self.min), ("max", self.max)) if v is not None}
-
-    @classmethod
-    def from_dict(cls, d, *, where: str = "limit") -> "Limit":
-        if not isinstance(d, Mapping):
-            raise RecipeError(where, 'must be an object like {"target": 500, "tol": 25} '
-                                     'or {"min": 480, "max": 520}')
-        extra = set(d) - {"target", "tol", "min", "max"}
-        if extra:
-            raise RecipeError(f"{where}.{sorted(extra)[0]}",
-                              "unknown field; use target/tol or min/max")
-        vals = {}
-        for k, v in d.items():
-            if v is None:
-                continue
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-                raise RecipeError(f"{where}.{k}", f"must be a finite number, got {v!r}")
-            vals[k] = float(v)
-        if "target" in vals or "tol" in vals:
-            if "min" in vals or "max" in vals:
-                raise RecipeError(where, "give either target/tol or min/max, not both")
-            if "target" not in vals or "tol" not in vals:
-                raise RecipeError(where, "target and tol must be given together")
-            if vals["tol"] <= 0:
-                raise RecipeError(f"{where}.tol", f"must be positive, got {vals['tol']:g}")
-            return cls(target=vals["target"], tol=vals["tol"])
-        if not vals:
-            raise RecipeError(where, "needs target/tol or at least one of min/max")
-        if "min" in vals and "max" in vals and vals["min"] >= vals["max"]:
-            raise RecipeError(where, f"min ({vals['min']:g}) must be smaller than "
-                                     f"max ({vals['max']:g})")
-        return cls(min=vals.get("min"), max=vals.get("max"))
 
 
 def _check_limit_key(key: str, stack: Stack, where: str) -> None:

@@ -66,6 +66,7 @@ from matplotlib.figure import Figure
 from . import __version__
 from .atomic import atomic_write_bytes
 from .export import provenance_footer, read_curves_csv, read_nk_csv
+from .limits import Limit, overall_state
 from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
                     spec_bounds, thickness_histogram_figure, thickness_trend_figure)
 
@@ -158,15 +159,13 @@ def _spec_state(row, spec, key) -> str | None:
     if not spec or not row_ok(row):
         return None
     states = []
-    for q in spec:
-        lo, hi = spec_bounds(spec, q)
+    for q, lim in spec.items():
         x = _num(row.get(q))
         if not math.isfinite(x) and q.endswith("_n@633"):
             x = _n633(row, q[: -len("_n@633")])
-        if not math.isfinite(x):
-            continue
-        states.append((lo is None or x >= lo) and (hi is None or x <= hi))
-    return None if not states else ("pass" if all(states) else "fail")
+        states.append(Limit.coerce(lim).check(x))
+    state = overall_state(states)         # a quantity the fit did not give cannot pass
+    return None if state == "n/a" else state
 
 
 def _short(text, width) -> str:

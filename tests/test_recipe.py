@@ -193,15 +193,6 @@ def test_load_errors_for_missing_and_broken_files(tmp_path):
         load_recipe(f)
 
 
-def test_limit_check():
-    assert Limit(target=500, tol=25).check(524.9) == "pass"
-    assert Limit(target=500, tol=25).check(475.0) == "pass"
-    assert Limit(target=500, tol=25).check(526) == "fail"
-    assert Limit(min=1.9).check(1.85) == "fail"
-    assert Limit(max=5).check(float("nan")) == "n/a"
-    assert Limit(max=5).check(None) == "n/a"
-
-
 def test_project_round_trip_and_change_detection(tmp_path):
     spectra = tmp_path / "spectra"
     spectra.mkdir()

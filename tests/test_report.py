@@ -277,3 +277,13 @@ def test_verdicts_are_counted_shown_and_rank_the_fits_to_look_at(batch, tmp_path
     # coupon_01 (poor) before coupon_03 (check), although its χ² is the lowest.
     assert first.index("coupon_01") < first.index("coupon_03")
     assert "no absorption below 400 nm" in first
+
+
+def test_spec_column_judges_rows_by_the_batch_summary_rule():
+    # Rows without a "spec_pass" are judged with fitting.limits, as the batch summary is:
+    # any limit failed -> FAIL; a limited quantity missing -> not judged, never "pass".
+    spec = {"film_thickness": {"min": 475, "max": 525}, "redchi": {"max": 5}}
+    assert report._spec_state({"film_thickness": 525.0, "redchi": 1.0}, spec, "") == "pass"
+    assert report._spec_state({"film_thickness": 500.0}, spec, "") is None
+    assert report._spec_state({"film_thickness": 530.0}, spec, "") == "fail"
+    assert report._spec_state({"film_thickness": 500.0, "spec_pass": "fail"}, spec, "") == "fail"
