@@ -333,11 +333,10 @@ def _hms(seconds: float) -> str:
 
 
 def _headline(row) -> str:
+    from .labels import format_pm
     for k, v in row.items():
         if k.endswith("_thickness") and isinstance(v, (int, float)):
-            sig = row.get(f"{k}_sigma")
-            pm = f" ± {sig:.2g}" if isinstance(sig, (int, float)) else ""
-            return f"{k} = {v:.1f}{pm} nm"
+            return f"{k} = {format_pm(v, row.get(f'{k}_sigma'), 'nm', sigma_fmt='.2g')}"
     return ""
 
 

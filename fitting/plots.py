@@ -38,6 +38,7 @@ from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
+from .labels import format_pm
 from .limits import Limit
 from .units import HC_EV_NM
 
@@ -91,15 +92,6 @@ def _get(obj, name, default=None):
 
 def _arr(x):
     return None if x is None else np.asarray(x, dtype=float)
-
-
-def _fmt_pm(value, sigma, unit="", digits=1):
-    if value is None or not np.isfinite(value):
-        return "–"
-    s = f"{value:.{digits}f}"
-    if sigma is not None and np.isfinite(sigma):
-        s += f" ± {sigma:.{digits}f}"
-    return f"{s} {unit}".rstrip()
 
 
 def _spectrum_name(result) -> str:
@@ -179,7 +171,7 @@ def fit_figure(result, *, fig: Figure | None = None, title: str | None = None) -
         title = _spectrum_name(result)
         d, sd = _thickness_of(result)
         if d is not None:
-            title += f"   d = {_fmt_pm(d, sd, 'nm')}"
+            title += f"   d = {format_pm(d, sd, 'nm')}"
         redchi = _get(result, "redchi")
         if redchi is not None and np.isfinite(redchi):
             title += rf"   $\chi^2_\mathrm{{red}}$ = {redchi:.3g}"
@@ -312,7 +304,7 @@ def tauc_figure(result, *, fig: Figure | None = None) -> Figure:
                 label=f"linear range {lo:.2f}–{hi:.2f} eV")
     # The gap goes in the legend: a note beside the line would sit on the rising curve.
     ax.axvline(gap.Eg_eV, color="#666666", lw=0.8, ls=":",
-               label=f"Eg = {gap.Eg_eV:.3f} ± {gap.sigma_eV:.3f} eV")
+               label=f"Eg = {format_pm(gap.Eg_eV, gap.sigma_eV, 'eV', fmt='.3f')}")
     ax.set_ylim(bottom=0)
     # Start the axis a little below the absorption edge, not at the data's low-energy
     # end, so the edge and the extrapolated line fill the plot.

@@ -66,6 +66,7 @@ from matplotlib.figure import Figure
 from . import __version__
 from .atomic import atomic_write_bytes
 from .export import provenance_footer, read_curves_csv, read_nk_csv
+from .labels import format_pm
 from .limits import Limit, overall_state
 from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
                     spec_bounds, thickness_histogram_figure, thickness_trend_figure)
@@ -108,9 +109,7 @@ def _n633(row, layer: str = "film") -> float:
 
 def _pm(value, sigma) -> str:
     """Thickness as "231.0 ± 0.06": one decimal, σ to two significant digits."""
-    if not math.isfinite(value):
-        return "–"
-    return f"{value:.1f} ± {sigma:.2g}" if math.isfinite(sigma) else f"{value:.1f}"
+    return format_pm(value, sigma, sigma_fmt=".2g")
 
 
 def _warn_texts(row) -> list[str]:
@@ -651,7 +650,7 @@ def _fit_text_page(fig, result, info, provenance, params):
                       f"{result.elapsed_s:.1f} s")]
     if result.band_gap is not None:
         g = result.band_gap
-        stats.append(("band gap", f"{g.Eg_eV:.3f} ± {g.sigma_eV:.3f} eV (Tauc, "
+        stats.append(("band gap", f"{format_pm(g.Eg_eV, g.sigma_eV, 'eV', fmt='.3f')} (Tauc, "
                                   f"{g.transition} transition)"))
     if result.alternatives:
         stats.append(("other thicknesses", ", ".join(f"{a.thickness_nm:.0f} nm (χ²_red "

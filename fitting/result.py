@@ -13,6 +13,7 @@ import numpy as np
 
 from . import __version__
 from .jsonsafe import finite_or_none, is_plain_json
+from .labels import format_pm
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
            "FitProgress", "Diagnostics", "BudgetItem", "Uncertainty", "ConsistencyCheck",
@@ -362,7 +363,7 @@ class FitResult:
         for p in self.params.values():
             if p.vary and p.stderr is not None and np.isfinite(p.stderr):
                 rel = f" ({100 * p.stderr / abs(p.value):.2f}%)" if p.value else ""
-                val = f"{p.value:.6g} +/- {p.stderr:.3g}{rel}"
+                val = format_pm(p.value, p.stderr, fmt=".6g", sigma_fmt=".3g", sep=" +/- ") + rel
             elif p.vary:
                 val = f"{p.value:.6g} +/- (not estimated)"
             else:
@@ -376,7 +377,8 @@ class FitResult:
         if self.band_gap is not None:
             g = self.band_gap
             lines.append("[[Band gap]]")
-            lines.append(f"    Tauc {g.transition}: Eg = {g.Eg_eV:.3f} +/- {g.sigma_eV:.3f} eV "
+            lines.append(f"    Tauc {g.transition}: Eg = "
+                         f"{format_pm(g.Eg_eV, g.sigma_eV, 'eV', fmt='.3f', sep=' +/- ')} "
                          f"(linear range {g.fit_range_eV[0]:.2f}-{g.fit_range_eV[1]:.2f} eV)")
         if self.uncertainty:
             lines.append("[[Uncertainty budget]] (GUM; standard uncertainties, "
