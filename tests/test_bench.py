@@ -18,7 +18,6 @@ from fitting.dispersion import Constant
 from fitting.stack import Stack
 from fitting.substrates import Substrate
 
-tmm = pytest.importorskip("tmm")
 
 
 @pytest.fixture(scope="module")

@@ -320,7 +320,7 @@ def test_save_figure_leaves_gui_figure_unchanged(tmp_path):
 
 def test_export_of_a_real_fit(tmp_path):
     # End to end with the fit engine: whatever fields a real FitResult fills must export.
-    fit = pytest.importorskip("fitting.fit")
+    from fitting import fit
     from fitting.spectrum import Spectrum
     wl = np.linspace(350.0, 1000.0, 200)
     truth = Stack([Layer("film", Cauchy(2.0, 0.02), 520.0)], library_substrate("fused_silica"))

@@ -20,6 +20,7 @@ import time
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy, Drude, Oscillators, TaucLorentz
 from fitting.errors import FitError, RecipeError
@@ -30,7 +31,6 @@ from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 WL_VIS = np.linspace(300.0, 1100.0, 360)
 WL_NIR = np.linspace(1000.0, 2500.0, 420)     # resolves the fringes of an 8 µm film
@@ -280,7 +280,6 @@ def test_other_basin_reported_on_a_narrow_range():
 
 
 def test_band_gap_of_absorbing_film():
-    pytest.importorskip("fitting.bandgap")
     params, d = {"eps_inf": 1.8, "A": 120.0, "E0": 5.0, "C": 1.5, "Eg": 3.3}, 400.0
     res = fit_spectrum(_measured("tauc_lorentz", params, d), _default_stack("tauc_lorentz"),
                        FitOptions(fit_scale=True, band_gap="indirect"))

@@ -12,6 +12,7 @@ import functools
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy
 from fitting.errors import FitError
@@ -20,7 +21,6 @@ from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
 from fitting.substrates import fused_silica, library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 WL = np.linspace(350.0, 1100.0, 300)
 NOISE = 0.002

@@ -21,6 +21,7 @@ import threading
 import lmfit
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy
 from fitting.errors import FitError
@@ -40,7 +41,6 @@ def _stack(d=D_NM, **cauchy):
 
 
 def _tmm_T(wl, d=D_NM):
-    tmm = pytest.importorskip("tmm")
     N_film = Cauchy(**CAUCHY).N(wl)
     N_sub = library_substrate("fused_silica").N(wl)
     return np.array([tmm.inc_tmm("s", [1.0, nf, ns, 1.0], [np.inf, d, 1e6, np.inf],

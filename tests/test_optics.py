@@ -7,10 +7,10 @@ independent transfer-matrix reference: `coh_tmm` for a semi-infinite substrate,
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.optics import coherent_rt, cos_theta, stack_RT
 
-tmm = pytest.importorskip("tmm")
 
 
 def _random_case(seed):

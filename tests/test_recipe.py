@@ -60,7 +60,7 @@ def test_new_stack_is_an_independent_copy():
 
 def test_fit_window_goes_into_fit_options():
     from fitting.spectrum import Spectrum
-    fit = pytest.importorskip("fitting.fit")
+    from fitting import fit
     opts = make_recipe(fit_options={"method": "least_squares"}).make_fit_options()
     assert isinstance(opts, fit.FitOptions) and opts.method == "least_squares"
     assert opts.fit_range_nm == (400.0, 1000.0) and opts.mask_windows_nm == ((655.0, 657.0),)
@@ -237,7 +237,7 @@ def test_project_errors_name_the_field(tmp_path):
 
 def test_round_trip_gives_identical_fit_results(tmp_path):
     # Save, load, fit the same spectrum with both: every parameter and χ² identical.
-    fit = pytest.importorskip("fitting.fit")
+    from fitting import fit
     from batch_helpers import make_recipe as single_film_recipe
     from batch_helpers import write_spectra
     from fitting.reader import read_spectrum
