@@ -464,7 +464,7 @@ def fringe_region(part, material, local: dict, wl_range, d_typical) -> np.ndarra
 
 def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
                    level_name: str | None, n_ref: float, wl_ref: float,
-                   nuisance: "Nuisance | None" = None, check=None, chunk: int = 256,
+                   nuisance: Nuisance | None = None, check=None, chunk: int = 256,
                    wl_range: tuple | None = None, d_typical: float | None = None,
                    candidates: list | None = None) -> ScanResult:
     """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
@@ -577,7 +577,7 @@ class Nuisance:
     tilt_sigma: float | None = None
 
     @classmethod
-    def from_options(cls, options) -> "Nuisance":
+    def from_options(cls, options) -> Nuisance:
         return cls(bool(options.fit_scale), bool(getattr(options, "fit_tilt", False)),
                    bool(options.fit_offset), getattr(options, "scale_sigma", None),
                    getattr(options, "tilt_sigma", None))

@@ -85,9 +85,9 @@ import uuid
 from concurrent.futures import FIRST_COMPLETED, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 from pathlib import Path
-from typing import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 
 from . import __version__
 from .atomic import atomic_write_json
@@ -399,7 +399,7 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
     row.update(index=index, file=str(path), sha256=sha256, status=status, reason=reason,
                result_dir=output, recipe_name=recipe.name, recipe_hash=rhash,
                software_version=__version__,
-               finished_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+               finished_utc=datetime.now(UTC).isoformat(timespec="seconds"),
                elapsed_s=None if elapsed_s is None else round(elapsed_s, 3))
     if result is not None:
         for layer in recipe.stack.layers:
@@ -504,7 +504,7 @@ class Prepared:
     def provenance(self, path, sha256: str) -> dict:
         prov = {"software": f"pellucid {__version__}", "recipe_hash": self.rhash,
                 "input_file": str(path), "input_sha256": sha256,
-                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "created": datetime.now(UTC).isoformat(timespec="seconds"),
                 "recipe_name": self.recipe.name, "recipe_identity": self.identity}
         for role, ref in self.reference.items():
             prov[f"reference_{role}"] = f"{ref['file']} (sha256 {ref['sha256']})"
@@ -891,7 +891,7 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
               "recipes": [{"name": r.name, "hash": context["recipes"][k]["hash"],
                            "identity": context["recipes"][k]["identity"]}
                           for k, r in recipes.items()],
-              "started_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+              "started_utc": datetime.now(UTC).isoformat(timespec="seconds"),
               "total": total, "run_id": run_id,
               "ignored_files": [str(p) for p in plan.ignored]}
     try:

@@ -42,9 +42,9 @@ import os
 import re
 import socket
 import time
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 from pathlib import Path
-from typing import Iterable, Mapping
+from collections.abc import Iterable, Mapping
 
 from . import __version__
 from .atomic import atomic_write_json, atomic_writer
@@ -209,7 +209,7 @@ def write_stamp(out_dir: Path, files: Mapping[str, str | None], **info) -> None:
         known[name if sha is not None else name.rstrip("/") + "/"] = sha
     doc = {"format": "pellucid-batch-folder", "version": 1,
            "software": f"pellucid {__version__}",
-           "updated_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+           "updated_utc": datetime.now(UTC).isoformat(timespec="seconds"),
            **info, "files": known}
     atomic_write_json(out_dir / STAMP_NAME, doc)
 
@@ -229,9 +229,9 @@ class FolderLock:
         self.path = self.folder / LOCK_NAME
         self.fd: int | None = None
 
-    def acquire(self) -> "FolderLock":
+    def acquire(self) -> FolderLock:
         me = {"pid": os.getpid(), "host": socket.gethostname(),
-              "started_utc": datetime.now(timezone.utc).isoformat(timespec="seconds")}
+              "started_utc": datetime.now(UTC).isoformat(timespec="seconds")}
         for _ in range(20):
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
             try:
@@ -334,7 +334,7 @@ def _write_pair(out_dir: Path, names, rows: Iterable[Mapping], columns, header) 
         w = csv.writer(hc, lineterminator="\n")
         w.writerow(columns)
         head = {"format": "pellucid-batch-summary", "version": 1, **header,
-                "updated_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "updated_utc": datetime.now(UTC).isoformat(timespec="seconds"),
                 "columns": list(columns)}
         hj.write(json.dumps(head, ensure_ascii=False, allow_nan=False)[:-1] + ', "rows": [')
         first = True
@@ -377,7 +377,7 @@ def write_summary_files(out_dir: Path, rows_factory, columns, header, *, attempt
             time.sleep(pause_s * (i + 1))
     # Not the disk: typically summary.csv open in a spreadsheet that locks it (Windows).
     if last is not None and not is_disk_full(last):
-        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+        stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
         alt = (f"summary-{stamp}.csv", f"summary-{stamp}.json")
         try:
             written = _write_pair(out_dir, alt, rows_factory(), columns, header)

@@ -17,7 +17,7 @@ import signal
 import sys
 import threading
 import time
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 from pathlib import Path
 
 from . import __version__
@@ -185,7 +185,7 @@ def _simulate(args, out) -> int:
              f"# recipe: {Path(args.recipe)}",
              f"# recipe_name: {' '.join(recipe.name.split())}",
              f"# recipe_hash: {recipe_hash(recipe)}",
-             f"# created: {datetime.now(timezone.utc).isoformat(timespec='seconds')}",
+             f"# created: {datetime.now(UTC).isoformat(timespec='seconds')}",
              f"# angle_deg: {angle:g}", f"# polarization: {pol}",
              "# columns: wavelength in nm; T and R as fractions (1.0 = 100 %)",
              "wavelength_nm,T,R"]

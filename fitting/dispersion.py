@@ -17,7 +17,8 @@ registry (:func:`model_from_dict`): nothing is pickled or executed.
 from __future__ import annotations
 
 import math
-from typing import ClassVar, Iterable, Mapping
+from typing import ClassVar
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
@@ -208,11 +209,11 @@ class Dispersion(_HasParams):
         return {}
 
     @classmethod
-    def from_shape(cls, d: Mapping, where: str) -> "Dispersion":
+    def from_shape(cls, d: Mapping, where: str) -> Dispersion:
         """A fresh model from the construction options of :meth:`to_dict` (not the values)."""
         return cls()
 
-    def copy(self) -> "Dispersion":
+    def copy(self) -> Dispersion:
         return model_from_dict(self.to_dict())
 
     def __repr__(self) -> str:
@@ -708,7 +709,7 @@ class Tabulated(Dispersion):
         self.params = {}
 
     @classmethod
-    def from_file(cls, path) -> "Tabulated":
+    def from_file(cls, path) -> Tabulated:
         """Read a table of wavelength, n and (optionally) κ.
 
         The table is parsed by the spectrum reader (:func:`fitting.reader.read_table`):

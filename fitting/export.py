@@ -32,9 +32,9 @@ import io
 import json
 import math
 import re
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 from pathlib import Path
-from typing import Mapping, Sequence
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 
@@ -103,12 +103,12 @@ def make_provenance(result=None, *, recipe_hash: str | None = None, input_path=N
     else:
         input_file = spec.get("source") or spec.get("path") or None
         sha = spec.get("sha256") or None
-    when = created or datetime.now(timezone.utc)
+    when = created or datetime.now(UTC)
     if when.tzinfo is None:
-        when = when.replace(tzinfo=timezone.utc)
+        when = when.replace(tzinfo=UTC)
     prov = {"software": f"pellucid {__version__}", "recipe_hash": recipe_hash,
             "input_file": input_file, "input_sha256": sha,
-            "created": when.astimezone(timezone.utc).isoformat(timespec="seconds")}
+            "created": when.astimezone(UTC).isoformat(timespec="seconds")}
     if recipe_name is not None:
         prov["recipe_name"] = recipe_name
     return prov

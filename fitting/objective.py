@@ -36,7 +36,7 @@ import re
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Callable
+from collections.abc import Callable
 
 import lmfit
 import numpy as np

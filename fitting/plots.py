@@ -28,7 +28,8 @@ References
 from __future__ import annotations
 
 import math
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
+from collections.abc import Iterable, Mapping, Sequence
 
 import matplotlib
 import numpy as np

@@ -56,7 +56,7 @@ import math
 import os
 from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Mapping
+from collections.abc import Mapping
 
 import numpy as np
 
@@ -83,7 +83,7 @@ class SpectrumRef:
     sha256: str
 
     @classmethod
-    def of(cls, path) -> "SpectrumRef":
+    def of(cls, path) -> SpectrumRef:
         p = Path(path).resolve()
         return cls(p, sha256_of_file(p))
 
@@ -110,7 +110,7 @@ class Reference:
     raw_counts: bool = True
 
     @classmethod
-    def of(cls, baseline, dark=None, *, raw_counts: bool = True) -> "Reference":
+    def of(cls, baseline, dark=None, *, raw_counts: bool = True) -> Reference:
         return cls(SpectrumRef.of(baseline), SpectrumRef.of(dark) if dark else None,
                    bool(raw_counts))
 
@@ -173,7 +173,7 @@ class Project:
                 "results": [dict(r) for r in self.results]}
 
     @classmethod
-    def from_dict(cls, d: Mapping, *, base: Path | None = None, path=None) -> "Project":
+    def from_dict(cls, d: Mapping, *, base: Path | None = None, path=None) -> Project:
         def err(f, problem):
             return RecipeError(f, problem, path=path)
 

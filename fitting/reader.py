@@ -541,7 +541,7 @@ class ReaderOptions:
         return d
 
     @classmethod
-    def from_dict(cls, data: dict) -> "ReaderOptions":
+    def from_dict(cls, data: dict) -> ReaderOptions:
         """Options from :meth:`to_dict` output; unknown keys are refused.
 
         Raises
@@ -927,7 +927,7 @@ def _key_value(s: str):
     return m.group(1).strip(), m.group(3).strip(), ("colon" if m.group(2) == ":" else "equals")
 
 
-def _layout(text: str, options: "ReaderOptions", path,
+def _layout(text: str, options: ReaderOptions, path,
             min_rows: int = MIN_POINTS) -> _Layout:
     """Dialect, start of the data, columns and preamble, from a bounded head of the text.
 

@@ -180,7 +180,8 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 from .atomic import atomic_write_text
 from .errors import PellucidError, RecipeError
@@ -638,7 +639,7 @@ class Recipe:
             out[role] = p.resolve()
         return out
 
-    def resolved(self) -> "Recipe":
+    def resolved(self) -> Recipe:
         """This recipe with absolute reference paths, ready to be saved anywhere."""
         if not self.reference:
             return self
@@ -694,7 +695,7 @@ class Recipe:
                 **({"reference": dict(self.reference)} if self.reference else {})}
 
     @classmethod
-    def from_dict(cls, d, *, path=None) -> "Recipe":
+    def from_dict(cls, d, *, path=None) -> Recipe:
         return recipe_from_dict(d, path=path)
 
     def hash(self) -> str:

@@ -55,9 +55,9 @@ import json
 import math
 import os
 import textwrap
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 from matplotlib.backends.backend_pdf import PdfPages
@@ -499,7 +499,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     rname, rhash = _recipe_info(recipe, prov)
     if spec is None:
         spec = _recipe_limits(recipe)
-    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    created = prov.get("created") or datetime.now(UTC).isoformat(timespec="seconds")
     info = {"software": prov.get("software") or f"pellucid {__version__}",
             "recipe_name": rname, "recipe_hash": rhash, "created": created,
             "results_dir": str(results_dir), "input_folder": _input_folder(rows)}
@@ -743,7 +743,7 @@ def write_fit_report(result, pdf_path, *, provenance: Mapping | None = None) -> 
     from .plots import optical_figure
     prov = dict(provenance or {})
     spec = dict(result.spectrum or {})
-    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    created = prov.get("created") or datetime.now(UTC).isoformat(timespec="seconds")
     info = {"software": prov.get("software") or f"pellucid {__version__}",
             "recipe_hash": prov.get("recipe_hash") or "",
             "input_file": prov.get("input_file") or spec.get("source") or "",

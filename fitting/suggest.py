@@ -124,7 +124,7 @@ import re
 import threading
 import time
 from dataclasses import dataclass
-from typing import Callable, Iterator
+from collections.abc import Callable, Iterator
 
 import numpy as np
 

@@ -13,7 +13,7 @@ import math
 import os
 import shutil
 import stat
-from datetime import datetime, timezone
+from datetime import datetime, timezone, UTC
 
 import numpy as np
 import pytest
@@ -209,7 +209,7 @@ def test_json_has_parameters_correlations_and_true_sha256(exported, spectrum_fil
     assert prov["recipe_hash"] == "abc123def456" and prov["recipe_name"] == "oxide on silica"
     created = datetime.fromisoformat(prov["created"])
     assert created.utcoffset().total_seconds() == 0
-    assert abs((datetime.now(timezone.utc) - created).total_seconds()) < 300
+    assert abs((datetime.now(UTC) - created).total_seconds()) < 300
     assert doc["params"]["film_thickness"]["value"] == 500.0
     assert doc["params"]["film_thickness"]["stderr"] == 1.3
     assert doc["params"]["film_C"]["stderr"] is None

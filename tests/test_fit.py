@@ -57,7 +57,7 @@ def _material(kind: str, p: dict | None = None):
     raise ValueError(kind)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _tmm_RT(kind: str, params: tuple, d_nm: float, grid: str, pol: str = "s",
             angle_deg: float = 0.0, substrate: str = "fused_silica"):
     """R and T of film | 1 mm substrate from tmm.inc_tmm, cached per case."""

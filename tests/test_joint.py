@@ -26,7 +26,7 @@ WL = np.linspace(350.0, 1100.0, 300)
 NOISE = 0.002
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _tmm_RT(A, B, k0, Eu, d_nm):
     Nf = Cauchy(A, B, urbach=True, k0=k0, Eu=Eu).N(WL)
     Ns = fused_silica().N(WL)
