@@ -42,7 +42,7 @@ import os
 import re
 import socket
 import time
-from datetime import datetime, timezone, UTC
+from datetime import UTC, datetime
 from pathlib import Path
 from collections.abc import Iterable, Mapping
 

@@ -17,7 +17,7 @@ import signal
 import sys
 import threading
 import time
-from datetime import datetime, timezone, UTC
+from datetime import UTC, datetime
 from pathlib import Path
 
 from . import __version__

@@ -32,7 +32,7 @@ import io
 import json
 import math
 import re
-from datetime import datetime, timezone, UTC
+from datetime import UTC, datetime
 from pathlib import Path
 from collections.abc import Mapping, Sequence
 

@@ -55,7 +55,7 @@ import json
 import math
 import os
 import textwrap
-from datetime import datetime, timezone, UTC
+from datetime import UTC, datetime
 from pathlib import Path
 from collections.abc import Callable, Mapping, Sequence
 

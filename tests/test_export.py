@@ -13,7 +13,7 @@ import math
 import os
 import shutil
 import stat
-from datetime import datetime, timezone, UTC
+from datetime import UTC, datetime
 
 import numpy as np
 import pytest

@@ -39,7 +39,7 @@ import traceback
 
 import numpy as np
 
-from .cases import CASES, Case, select
+from .cases import Case, select
 from .materials import material, substrate
 from .synth import grid, measure
 
