@@ -1099,7 +1099,7 @@ def _write_reports(out_dir, plan, state, folders, in_memory, context):
         rec = plan.recipes[key]
         limit_keys = set(rec.limits)
         rows = [r for r in _rows_in_order(out_dir, plan, state, folders, in_memory,
-                                          keys=lambda k: _report_key(k) or k in limit_keys)
+                                          keys=lambda k, lk=limit_keys: _report_key(k) or k in lk)
                 if len(keys) == 1 or plan.recipe_of[r["index"]] == key]
         if not rows:
             continue

@@ -346,7 +346,10 @@ class Cauchy(Dispersion):
 class Sellmeier(Dispersion):
     r"""Sellmeier dispersion with 1 to 3 terms.
 
-    .. math:: n^2(λ) = A + \sum_i \frac{B_i λ^2}{λ^2 - C_i} \quad (λ \text{ in µm}, C_i \text{ in µm}^2)
+    .. math::
+
+       n^2(λ) = A + \sum_i \frac{B_i λ^2}{λ^2 - C_i}
+       \quad (λ \text{ in µm}, C_i \text{ in µm}^2)
 
     With A = 1 this is the form used by glass makers' datasheets and by
     Malitson (1965) for fused silica.

@@ -207,9 +207,9 @@ def stage_span(key: str, i: int = 0, n: int = 1) -> tuple[str, float, float]:
         name, lo, hi = _OTHER_STAGES[key]
     else:
         lo = 0.0
-        for k, name, share in STAGES:
+        for k, stage_name, share in STAGES:
             if k == key:
-                hi = lo + share
+                name, hi = stage_name, lo + share
                 break
             lo += share
         else:
@@ -341,8 +341,8 @@ class Objective:
                     if p.expr:
                         # Rename the names the tie refers to the way this part's names are.
                         expr = _NAME_TOKEN.sub(
-                            lambda m: gname(m.group(0)) if m.group(0) in local_names
-                            else m.group(0), p.expr)
+                            lambda m, names=local_names: gname(m.group(0))
+                            if m.group(0) in names else m.group(0), p.expr)
                         pending_expr.append((g, expr))
         for g, expr in pending_expr:
             try:

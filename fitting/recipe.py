@@ -764,7 +764,7 @@ def _upgrade_0_to_1(d: dict, path) -> dict:
     stack = d.get("stack")
     if not isinstance(stack, dict):
         raise RecipeError("stack", "must be an object", path=path)
-    for i, layer in enumerate(stack.get("layers", []) or []):
+    for layer in stack.get("layers", []) or []:
         if not isinstance(layer, dict) or "thickness_nm" not in layer:
             continue
         d_nm = layer.pop("thickness_nm")

@@ -146,7 +146,7 @@ def test_auto_fit_very_thin_and_very_thick_films(kind, params, d, grid):
     n_true = _material(kind, dict(params)).N(np.array([wl_n]))
     assert abs(n_fit - n_true[0].real) < 0.01
     # Every pair of parameters correlated beyond 0.95 is named in a warning.
-    for a, b, c in res.correlations(0.95):
+    for a, b, _c in res.correlations(0.95):
         la, lb = param_label(a, ["film"]), param_label(b, ["film"])
         assert any(la in w and lb in w and "correlated" in w for w in res.warnings)
 
@@ -332,8 +332,9 @@ def test_thickness_spread_is_fitted():
     x = np.linspace(-4, 4, 41)
     w = np.exp(-x * x / 2)
     w /= w.sum()
-    T = sum(wi * _tmm_RT("cauchy", tuple(sorted(params.items())), float(round(d * (1 + spread * xi), 6)),
-                        "vis")[1] for xi, wi in zip(x, w))
+    cauchy = tuple(sorted(params.items()))
+    T = sum(wi * _tmm_RT("cauchy", cauchy, float(round(d * (1 + spread * xi), 6)), "vis")[1]
+            for xi, wi in zip(x, w))
     y = T + NOISE * np.random.default_rng(9).standard_normal(T.size)
     res = fit_spectrum(Spectrum(WL_VIS, y), _default_stack("cauchy"), FitOptions(fit_spread=True))
     assert abs(res.thickness()[0] - d) < 0.01 * d
