@@ -397,10 +397,6 @@ class ScanResult:
     chisqr: np.ndarray                      # shape (levels, K)
     levels: list = field(default_factory=list)   # dicts of local material values per level
 
-    @property
-    def profile(self) -> np.ndarray:
-        return self.chisqr.min(axis=0)
-
 
 def scan_range(seed: Seed, bounds: tuple[float, float], wl_min: float, wl_max: float,
                user: tuple[float, float] | None = None) -> tuple[float, float]:

@@ -1289,8 +1289,3 @@ def run_batch(paths, recipe: Recipe | None, out_dir, *, on_step=None, **kw) -> B
             return e.value
         if on_step is not None:
             on_step(step)
-
-
-def spectrum_folder(out_dir, path, sha256: str) -> Path:
-    """``<out>/spectra/<stem>-<sha256[:10]>`` of a spectrum batched on its own."""
-    return Path(out_dir) / assign_folders([path], [sha256])[0]

@@ -35,7 +35,6 @@ from __future__ import annotations
 import csv
 import errno
 import hashlib
-import io
 import json
 import math
 import os
@@ -399,8 +398,3 @@ def _why(e: BaseException | None) -> str:
     if isinstance(e, OSError):
         return f"{e.strerror or e}" + (f": {e.filename}" if e.filename else "")
     return str(e)
-
-
-def read_text_rows(text: str) -> list[dict]:
-    """Rows of a summary.csv text as dicts (for tests and scripts)."""
-    return list(csv.DictReader(io.StringIO(text)))

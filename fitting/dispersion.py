@@ -675,11 +675,6 @@ class Oscillators(Dispersion):
         return []
 
 
-def Lorentz_model(eps_inf=1.0, oscillators=((1.0, 5.0, 0.5),)) -> Oscillators:
-    """Convenience: ε∞ plus Lorentz oscillators given as (f, E0, gamma) triples."""
-    return Oscillators(eps_inf, [Lorentz(*o) for o in oscillators])
-
-
 # ----------------------------------------------------------------------------------------
 class Tabulated(Dispersion):
     """Tabulated n, κ interpolated linearly in wavelength.

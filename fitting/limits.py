@@ -22,10 +22,7 @@ from dataclasses import dataclass
 
 from .errors import RecipeError
 
-__all__ = ["Limit", "overall_state", "SPEC_STATES"]
-
-#: What a limit says of a value: inside, outside, or not judged (no finite value).
-SPEC_STATES = ("pass", "fail", "n/a")
+__all__ = ["Limit", "overall_state"]
 
 
 def _float_or_nan(x) -> float:

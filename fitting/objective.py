@@ -46,7 +46,7 @@ from .reference import estimate_noise
 from .result import FitProgress
 from .stack import Stack, StackModel
 
-__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "robust_sigma", "STAGES",
+__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "STAGES",
            "stage_span", "RunResult"]
 
 #: Noise assumed when a spectrum carries no σ: 0.2 % T, typical of a double-beam
@@ -65,21 +65,6 @@ _NUISANCE = {
 #: Gaussian priors of nuisance parameters: name -> (mean, FitOptions field holding 1σ).
 PRIORS = {"scale": (1.0, "scale_sigma"), "tilt": (0.0, "tilt_sigma")}
 _NAME_TOKEN = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
-
-
-def robust_sigma(residual: np.ndarray) -> float:
-    """1σ noise from residuals by the median absolute deviation (1.4826·MAD).
-
-    References
-    ----------
-    .. [1] P. J. Rousseeuw and C. Croux, "Alternatives to the median absolute
-           deviation", J. Am. Stat. Assoc. 88, 1273 (1993).
-    """
-    r = np.asarray(residual, dtype=float)
-    r = r[np.isfinite(r)]
-    if r.size < 3:
-        return DEFAULT_SIGMA
-    return float(1.4826 * np.median(np.abs(r - np.median(r))))
 
 
 @dataclass(eq=False)

@@ -71,12 +71,8 @@ from .limits import Limit, overall_state
 from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
                     spec_bounds, thickness_histogram_figure, thickness_trend_figure)
 
-__all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES", "VERDICTS"]
+__all__ = ["write_batch_report", "A4_INCHES", "VERDICTS"]
 
-#: Summary-row keys the report reads (see the module docstring).
-ROW_KEYS = ("file", "sha256", "status", "verdict", "verdict_reasons", "reason",
-            "film_thickness", "film_thickness_sigma", "n_633", "redchi", "warnings",
-            "spec_pass", "result_dir")
 #: Verdicts of the fit engine, best first; the report colours and ranks by them.
 VERDICTS = ("good", "check", "poor")
 A4_INCHES = (8.27, 11.69)

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field, replace
-from pathlib import Path
 
 import numpy as np
 
@@ -116,8 +115,3 @@ class Spectrum:
         for lo, hi in windows_nm:
             use &= ~((self.wavelength_nm >= lo) & (self.wavelength_nm <= hi))
         return replace(self, mask=use)
-
-    @classmethod
-    def from_file_provenance(cls, path, **kw) -> Spectrum:
-        p = Path(path)
-        return cls(name=kw.pop("name", p.stem), source=str(p), sha256=sha256_of_file(p), **kw)

@@ -519,8 +519,3 @@ class StackModel:
 
     def _rt(self, Ns, ds):
         return films_RT(self._outer, Ns, ds)
-
-    def N_layers(self, values: Mapping[str, float] | None = None) -> list[np.ndarray]:
-        """Each film's N on the bound grid (no bandwidth nodes)."""
-        return [layer.material.N(self.wavelength_nm, local)
-                for (layer, *_), (_, local) in zip(self._names, self.layer_values(values))]
