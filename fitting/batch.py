@@ -97,7 +97,7 @@ from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,
 from .errors import PellucidError, RecipeError
 from .jsonsafe import finite_or_none, json_safe
 from .limits import overall_state
-from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, _optional, load_recipe, recipe_from_dict,
+from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, load_recipe, recipe_from_dict,
                      recipe_hash, recipe_identity)
 from .spectrum import sha256_of_file
 
@@ -447,17 +447,15 @@ class Prepared:
                  reference_sha256: Mapping | None = None):
         self.recipe = recipe
         self.rhash = rhash or recipe_hash(recipe)
-        self.read_spectrum = _optional("reader", "read_spectrum")
-        self.fit_spectrum = _optional("fit", "fit_spectrum")
-        if self.read_spectrum is None or self.fit_spectrum is None:
-            raise PellucidError("this installation has no spectrum reader or fit engine "
-                                "(fitting.reader / fitting.fit missing)")
+        from .fit import fit_spectrum
+        from .reader import read_spectrum
+        self.read_spectrum, self.fit_spectrum = read_spectrum, fit_spectrum
         self.options = recipe.reader_options()
         self.baseline = self.dark = None
         self.reference: dict = {}
         if recipe.reference:
             files = recipe.reference_files()
-            if self.options is not None and getattr(self.options, "y_kind", None) == "auto":
+            if self.options.y_kind == "auto":
                 # Raw signals are ratioed as read: never let one file be taken for %T.
                 self.options = dataclasses.replace(self.options, y_kind="counts")
             for role in ("baseline", "dark"):
@@ -542,9 +540,9 @@ def _prepared(context: Mapping, key: str) -> Prepared:
 # One spectrum (runs in a worker process, a Dask worker or in-process)
 def _export(result, folder: Path, stem: str, provenance: dict, recipe: Recipe) -> list[str]:
     """The recipe's per-spectrum exports, exactly the parts it asks for."""
-    export_result = _optional("export", "export_result")
-    if export_result is None or not recipe.exports:
+    if not recipe.exports:
         return []
+    from .export import export_result      # matplotlib and the writers only when asked for
     parts = tuple(recipe.exports)
     plots = recipe.plot_formats if "plots" in parts else ()
     files = export_result(result, folder, stem=stem, provenance=provenance, plots=plots,
@@ -1090,9 +1088,7 @@ def _report_key(k: str) -> bool:
 
 def _write_reports(out_dir, plan, state, folders, in_memory, context):
     """One PDF per recipe (``report.pdf`` for a one-recipe batch): (paths, error text)."""
-    write_batch_report = _optional("report", "write_batch_report")
-    if write_batch_report is None:
-        return (), ""
+    from .report import write_batch_report
     keys = list(plan.recipes)
     pdfs, errors = [], []
     for key in keys:

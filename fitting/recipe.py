@@ -419,16 +419,10 @@ def _check_limit_key(key: str, stack: Stack, where: str) -> None:
 
 
 # ---------------------------------------------------------------------------------
-# Sections owned by other modules (reader, fit engine, exports), resolved lazily so
-# recipes load before those modules exist and nothing here imports them at start-up.
-def _optional(module: str, name: str):
-    try:
-        mod = importlib.import_module(f"fitting.{module}")
-    except ModuleNotFoundError as e:
-        if e.name == f"fitting.{module}":
-            return None
-        raise
-    return getattr(mod, name, None)
+# Sections owned by other modules (reader, fit engine), imported when first needed:
+# the modules that import recipe need not load the fit engine with it.
+def _lazy(module: str, name: str):
+    return getattr(importlib.import_module(f"fitting.{module}"), name)
 
 
 def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
@@ -439,9 +433,7 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
         d = d.to_dict()
     if not isinstance(d, Mapping):
         raise RecipeError(where, "must be an object")
-    cls = _optional(module, cls_name)
-    if cls is None or not hasattr(cls, "from_dict"):
-        return json.loads(json.dumps(dict(d)))
+    cls = _lazy(module, cls_name)
     _check_field_types(d, cls, where)
     try:
         if "where" in inspect.signature(cls.from_dict).parameters:
@@ -653,19 +645,15 @@ class Recipe:
         return Stack.from_dict(self.stack.to_dict())
 
     def reader_options(self):
-        """``ReaderOptions`` built from the ``reader`` section (None if no reader module)."""
-        cls = _optional("reader", "ReaderOptions")
-        return None if cls is None else cls.from_dict(dict(self.reader))
+        """``ReaderOptions`` built from the ``reader`` section."""
+        return _lazy("reader", "ReaderOptions").from_dict(dict(self.reader))
 
     def make_fit_options(self, spectrum=None):
         """``FitOptions`` from ``fit.options`` plus the fit window and masks.
 
         An open end of ``range_nm`` is closed with the spectrum's first or last
-        wavelength. Returns None if the fit engine module is not installed.
+        wavelength.
         """
-        cls = _optional("fit", "FitOptions")
-        if cls is None:
-            return None
         d = dict(self.fit_options)
         lo, hi = self.range_nm
         if spectrum is not None and len(spectrum):
@@ -675,7 +663,7 @@ class Recipe:
             d["fit_range_nm"] = [lo, hi]
         if self.masks_nm:
             d["mask_windows_nm"] = [list(m) for m in self.masks_nm]
-        return cls.from_dict(d)
+        return _lazy("fit", "FitOptions").from_dict(d)
 
     # -- persistence ---------------------------------------------------------------
     def to_dict(self) -> dict:
