@@ -163,17 +163,14 @@ def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.nd
 
 
 def envelope_seed(wl, y, quantity, substrate_n) -> Seed | None:
-    """Seed from :func:`fitting.envelope.swanepoel_envelope` if that module is present.
+    """Seed from :func:`fitting.envelope.swanepoel_envelope`.
 
-    Returns None when the module is missing or the envelope method fails, so
-    the caller falls back to :func:`fringe_seed`.
+    Returns None when the envelope method fails, so the caller falls back to
+    :func:`fringe_seed`.
     """
     if quantity != "T":
         return None
-    try:
-        from .envelope import swanepoel_envelope
-    except ImportError:
-        return None
+    from .envelope import swanepoel_envelope
     try:
         env = swanepoel_envelope(wl, y, substrate_n)
     except Exception:  # a seed is optional: any failure means "use the fallback"
