@@ -1,4 +1,4 @@
-"""Recipes and projects (fitting/recipe.py, fitting/project.py): format, validation, upgrade."""
+"""Recipes (fitting/recipe.py): format, validation, upgrade; a recipe inside a project."""
 
 import copy
 import json
@@ -191,48 +191,6 @@ def test_load_errors_for_missing_and_broken_files(tmp_path):
     f.write_text('{"format": "pellucid-recipe",\n "version": 1,,}', encoding="utf-8")
     with pytest.raises(RecipeError, match="line 2"):
         load_recipe(f)
-
-
-def test_project_round_trip_and_change_detection(tmp_path):
-    spectra = tmp_path / "spectra"
-    spectra.mkdir()
-    a, b = spectra / "a.csv", spectra / "b.csv"
-    a.write_text("wavelength_nm,T\n500,0.9\n")
-    b.write_text("wavelength_nm,T\n500,0.8\n")
-    proj = Project(make_recipe(), name="week 12")
-    proj.add_spectrum(a)
-    proj.add_spectrum(b)
-    proj.add_spectrum(a)                                    # same path: replaced, not doubled
-    proj.results.append({"file": str(a), "status": "ok", "film_thickness": 498.7})
-    path = save_project(proj, tmp_path / "p.pellucid.json")
-    raw = json.loads(path.read_text())
-    assert raw["format"] == "pellucid-project"
-    assert sorted(s["path"] for s in raw["spectra"]) == ["spectra/a.csv", "spectra/b.csv"]
-    back = load_project(path)
-    assert back.recipe.to_dict() == proj.recipe.to_dict()
-    assert {r.path for r in back.spectra} == {a.resolve(), b.resolve()}
-    assert back.results == proj.results and back.check_spectra() == []
-    b.write_text("wavelength_nm,T\n500,0.7\n")
-    a.unlink()
-    problems = back.check_spectra()
-    assert len(problems) == 2
-    assert any("not found" in p for p in problems) and any("changed" in p for p in problems)
-
-
-def test_project_errors_name_the_field(tmp_path):
-    d = Project(make_recipe()).to_dict()
-    d["recipe"]["stack"]["layers"][0]["material"]["kind"] = "plasma"
-    f = tmp_path / "p.json"
-    f.write_text(json.dumps(d))
-    with pytest.raises(RecipeError) as ei:
-        load_project(f)
-    assert ei.value.field == "recipe.stack.layers[0].material.kind"
-    d = Project(make_recipe()).to_dict()
-    d["spectra"] = [{"path": "x.csv", "sha256": "zz"}]
-    f.write_text(json.dumps(d))
-    with pytest.raises(RecipeError, match="hex") as ei:
-        load_project(f)
-    assert ei.value.field == "spectra[0].sha256"
 
 
 def test_round_trip_gives_identical_fit_results(tmp_path):
