@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
-from .jsonsafe import finite_or_none, is_plain_json
+from .jsonsafe import finite_or_none, is_plain_json, json_safe
 from .labels import format_pm
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
@@ -153,8 +153,7 @@ class Diagnostics:
     dof: int
 
     def to_dict(self) -> dict:
-        return {k: (v if not isinstance(v, float) or np.isfinite(v) else None)
-                for k, v in self.__dict__.items()}
+        return json_safe(self.__dict__)
 
 
 @dataclass(frozen=True)
