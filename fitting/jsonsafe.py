@@ -54,7 +54,8 @@ def json_safe(obj):
     if t is dict:
         return {str(k): json_safe(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple, np.ndarray)):
-        if len(obj) > 8 and (isinstance(obj, np.ndarray) or type(obj[0]) is float):
+        if len(obj) > 8 and (isinstance(obj, np.ndarray)
+                             or all(type(x) is float for x in obj)):
             clean = _float_run(obj)
             if clean is not None:
                 return clean
@@ -78,7 +79,11 @@ def json_safe(obj):
 
 
 def _float_run(obj) -> list | None:
-    """A flat run of real numbers cleaned at once, or None if ``obj`` is not one."""
+    """A flat run of real numbers cleaned at once, or None if ``obj`` is not one.
+
+    ``obj`` is an array or a list of Python floats only: a list that mixes in ints,
+    bools or texts goes element by element, so each keeps its type ("2" stays text).
+    """
     if isinstance(obj, np.ndarray):
         if obj.dtype.kind in "iub":
             return obj.tolist()         # always finite: Python ints and bools as they are

@@ -53,6 +53,8 @@ def test_long_python_float_list_keeps_its_texts_and_nones():
     assert json_safe(mixed) == [1.0] * 9 + ["n/a", None]
     gaps = [0.5] * 9 + [math.nan]
     assert json_safe(gaps) == [0.5] * 9 + [None]
+    kinds = [0.0] * 9 + [0, True, "2"]          # found by the property test below
+    assert [type(x) for x in json_safe(kinds)[-3:]] == [int, bool, str]
 
 
 def test_keys_become_text_and_mappings_plain_dicts():
