@@ -180,17 +180,14 @@ def fringe_seed(wl: np.ndarray, y: np.ndarray, quantity: str, substrate_n: np.nd
 
 
 def envelope_seed(wl, y, quantity, substrate_n) -> Seed | None:
-    """Seed from :func:`fitting.envelope.swanepoel_envelope` if that module is present.
+    """Seed from :func:`fitting.envelope.swanepoel_envelope`.
 
-    Returns None when the module is missing or the envelope method fails, so
-    the caller falls back to :func:`fringe_seed`.
+    Returns None when the envelope method fails, so the caller falls back to
+    :func:`fringe_seed`.
     """
     if quantity != "T":
         return None
-    try:
-        from .envelope import swanepoel_envelope
-    except ImportError:
-        return None
+    from .envelope import swanepoel_envelope
     try:
         env = swanepoel_envelope(wl, y, substrate_n)
     except Exception:  # a seed is optional: any failure means "use the fallback"
@@ -417,10 +414,6 @@ class ScanResult:
     chisqr: np.ndarray                      # shape (levels, K)
     levels: list = field(default_factory=list)   # dicts of local material values per level
 
-    @property
-    def profile(self) -> np.ndarray:
-        return self.chisqr.min(axis=0)
-
 
 def scan_range(seed: Seed, bounds: tuple[float, float], wl_min: float, wl_max: float,
                user: tuple[float, float] | None = None) -> tuple[float, float]:
@@ -484,7 +477,7 @@ def fringe_region(part, material, local: dict, wl_range, d_typical) -> np.ndarra
 
 def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.ndarray,
                    level_name: str | None, n_ref: float, wl_ref: float,
-                   nuisance: "Nuisance | None" = None, check=None, chunk: int = 256,
+                   nuisance: Nuisance | None = None, check=None, chunk: int = 256,
                    wl_range: tuple | None = None, d_typical: float | None = None,
                    candidates: list | None = None) -> ScanResult:
     """χ²(d) of the first varied film over ``d_grid``, vectorised over thickness.
@@ -597,7 +590,7 @@ class Nuisance:
     tilt_sigma: float | None = None
 
     @classmethod
-    def from_options(cls, options) -> "Nuisance":
+    def from_options(cls, options) -> Nuisance:
         return cls(bool(options.fit_scale), bool(getattr(options, "fit_tilt", False)),
                    bool(options.fit_offset), getattr(options, "scale_sigma", None),
                    getattr(options, "tilt_sigma", None))

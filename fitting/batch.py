@@ -77,7 +77,6 @@ from __future__ import annotations
 import csv
 import dataclasses
 import glob
-import math
 import os
 import re
 import time
@@ -86,17 +85,19 @@ import uuid
 from concurrent.futures import FIRST_COMPLETED, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 
 from . import __version__
 from .atomic import atomic_write_json
 from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,  # noqa: F401
-                          assign_folders, check_out_dir, export_stem, is_disk_full, json_safe,
+                          assign_folders, check_out_dir, export_stem, is_disk_full,
                           read_marker_record, safe_stem, write_stamp, write_summary_files)
 from .errors import PellucidError, RecipeError
-from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, _optional, load_recipe, recipe_from_dict,
+from .jsonsafe import finite_or_none, json_safe
+from .limits import overall_state
+from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, load_recipe, recipe_from_dict,
                      recipe_hash, recipe_identity)
 from .spectrum import sha256_of_file
 
@@ -348,14 +349,6 @@ def summary_columns(*recipes: Recipe) -> list[str]:
     return list(dict.fromkeys(head + body + tail))
 
 
-def _num(x):
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
 def _quantity(result, key: str):
     m = re.match(r"^(?P<layer>.+)_(?P<q>[nk])@(?P<wl>[\d.]+)$", key)
     if m:
@@ -363,13 +356,13 @@ def _quantity(result, key: str):
         if oc is None:
             return None
         n, k = oc.at(float(m.group("wl")))
-        return _num(n if m.group("q") == "n" else k)
+        return finite_or_none(n if m.group("q") == "n" else k)
     if key == "band_gap":
-        return None if result.band_gap is None else _num(result.band_gap.Eg_eV)
+        return None if result.band_gap is None else finite_or_none(result.band_gap.Eg_eV)
     if key == "redchi":
-        return _num(result.redchi)
+        return finite_or_none(result.redchi)
     p = result.params.get(key)
-    return None if p is None else _num(p.value)
+    return None if p is None else finite_or_none(p.value)
 
 
 def result_verdict(result) -> tuple[str, tuple]:
@@ -406,22 +399,24 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
     row.update(index=index, file=str(path), sha256=sha256, status=status, reason=reason,
                result_dir=output, recipe_name=recipe.name, recipe_hash=rhash,
                software_version=__version__,
-               finished_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+               finished_utc=datetime.now(UTC).isoformat(timespec="seconds"),
                elapsed_s=None if elapsed_s is None else round(elapsed_s, 3))
     if result is not None:
         for layer in recipe.stack.layers:
             L = layer.name
             p = result.params.get(f"{L}_thickness")
             if p is not None:
-                row[f"{L}_thickness"], row[f"{L}_thickness_sigma"] = _num(p.value), _num(p.stderr)
+                row[f"{L}_thickness"] = finite_or_none(p.value)
+                row[f"{L}_thickness_sigma"] = finite_or_none(p.stderr)
             for wl in STANDARD_WAVELENGTHS_NM:
                 row[f"{L}_n@{wl}"] = _quantity(result, f"{L}_n@{wl}")
                 row[f"{L}_k@{wl}"] = _quantity(result, f"{L}_k@{wl}")
         if result.band_gap is not None:
-            row["band_gap"] = _num(result.band_gap.Eg_eV)
-            row["band_gap_sigma"] = _num(result.band_gap.sigma_eV)
-        row.update(redchi=_num(result.redchi), chisqr=_num(result.chisqr), nfev=result.nfev,
-                   warnings="; ".join(result.warnings), model=result_model(result))
+            row["band_gap"] = finite_or_none(result.band_gap.Eg_eV)
+            row["band_gap_sigma"] = finite_or_none(result.band_gap.sigma_eV)
+        row.update(redchi=finite_or_none(result.redchi), chisqr=finite_or_none(result.chisqr),
+                   nfev=result.nfev, warnings="; ".join(result.warnings),
+                   model=result_model(result))
         if "model_reason" in row:
             row["model_reason"] = (result.extra.get("model_suggestion") or {}).get("reason")
         verdict, reasons = result_verdict(result)
@@ -432,13 +427,9 @@ def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash:
             if row.get(key) is None:
                 row[key] = _quantity(result, key)
     if recipe.limits:
-        verdicts = []
         for key, lim in recipe.limits.items():
-            v = lim.check(row.get(key)) if status == "ok" else "n/a"
-            row[f"spec_{key}"] = v
-            verdicts.append(v)
-        row["spec_pass"] = ("fail" if "fail" in verdicts else
-                            "n/a" if "n/a" in verdicts else "pass")
+            row[f"spec_{key}"] = lim.check(row.get(key)) if status == "ok" else "n/a"
+        row["spec_pass"] = overall_state(row[f"spec_{key}"] for key in recipe.limits)
     return row
 
 
@@ -456,17 +447,15 @@ class Prepared:
                  reference_sha256: Mapping | None = None):
         self.recipe = recipe
         self.rhash = rhash or recipe_hash(recipe)
-        self.read_spectrum = _optional("reader", "read_spectrum")
-        self.fit_spectrum = _optional("fit", "fit_spectrum")
-        if self.read_spectrum is None or self.fit_spectrum is None:
-            raise PellucidError("this installation has no spectrum reader or fit engine "
-                                "(fitting.reader / fitting.fit missing)")
+        from .fit import fit_spectrum
+        from .reader import read_spectrum
+        self.read_spectrum, self.fit_spectrum = read_spectrum, fit_spectrum
         self.options = recipe.reader_options()
         self.baseline = self.dark = None
         self.reference: dict = {}
         if recipe.reference:
             files = recipe.reference_files()
-            if self.options is not None and getattr(self.options, "y_kind", None) == "auto":
+            if self.options.y_kind == "auto":
                 # Raw signals are ratioed as read: never let one file be taken for %T.
                 self.options = dataclasses.replace(self.options, y_kind="counts")
             for role in ("baseline", "dark"):
@@ -513,7 +502,7 @@ class Prepared:
     def provenance(self, path, sha256: str) -> dict:
         prov = {"software": f"pellucid {__version__}", "recipe_hash": self.rhash,
                 "input_file": str(path), "input_sha256": sha256,
-                "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "created": datetime.now(UTC).isoformat(timespec="seconds"),
                 "recipe_name": self.recipe.name, "recipe_identity": self.identity}
         for role, ref in self.reference.items():
             prov[f"reference_{role}"] = f"{ref['file']} (sha256 {ref['sha256']})"
@@ -551,9 +540,9 @@ def _prepared(context: Mapping, key: str) -> Prepared:
 # One spectrum (runs in a worker process, a Dask worker or in-process)
 def _export(result, folder: Path, stem: str, provenance: dict, recipe: Recipe) -> list[str]:
     """The recipe's per-spectrum exports, exactly the parts it asks for."""
-    export_result = _optional("export", "export_result")
-    if export_result is None or not recipe.exports:
+    if not recipe.exports:
         return []
+    from .export import export_result      # matplotlib and the writers only when asked for
     parts = tuple(recipe.exports)
     plots = recipe.plot_formats if "plots" in parts else ()
     files = export_result(result, folder, stem=stem, provenance=provenance, plots=plots,
@@ -900,7 +889,7 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
               "recipes": [{"name": r.name, "hash": context["recipes"][k]["hash"],
                            "identity": context["recipes"][k]["identity"]}
                           for k, r in recipes.items()],
-              "started_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+              "started_utc": datetime.now(UTC).isoformat(timespec="seconds"),
               "total": total, "run_id": run_id,
               "ignored_files": [str(p) for p in plan.ignored]}
     try:
@@ -1099,16 +1088,14 @@ def _report_key(k: str) -> bool:
 
 def _write_reports(out_dir, plan, state, folders, in_memory, context):
     """One PDF per recipe (``report.pdf`` for a one-recipe batch): (paths, error text)."""
-    write_batch_report = _optional("report", "write_batch_report")
-    if write_batch_report is None:
-        return (), ""
+    from .report import write_batch_report
     keys = list(plan.recipes)
     pdfs, errors = [], []
     for key in keys:
         rec = plan.recipes[key]
         limit_keys = set(rec.limits)
         rows = [r for r in _rows_in_order(out_dir, plan, state, folders, in_memory,
-                                          keys=lambda k: _report_key(k) or k in limit_keys)
+                                          keys=lambda k, lk=limit_keys: _report_key(k) or k in lk)
                 if len(keys) == 1 or plan.recipe_of[r["index"]] == key]
         if not rows:
             continue
@@ -1298,8 +1285,3 @@ def run_batch(paths, recipe: Recipe | None, out_dir, *, on_step=None, **kw) -> B
             return e.value
         if on_step is not None:
             on_step(step)
-
-
-def spectrum_folder(out_dir, path, sha256: str) -> Path:
-    """``<out>/spectra/<stem>-<sha256[:10]>`` of a spectrum batched on its own."""
-    return Path(out_dir) / assign_folders([path], [sha256])[0]

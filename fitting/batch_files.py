@@ -35,20 +35,20 @@ from __future__ import annotations
 import csv
 import errno
 import hashlib
-import io
 import json
 import math
 import os
 import re
 import socket
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Iterable, Mapping
+from collections.abc import Iterable, Mapping
 
 from . import __version__
 from .atomic import atomic_write_json, atomic_writer
 from .errors import PellucidError
+from .jsonsafe import json_safe
 
 __all__ = ["FolderLock", "check_out_dir", "assign_folders", "safe_stem", "export_stem",
            "write_stamp", "write_summary_files", "read_marker_record", "is_disk_full",
@@ -208,7 +208,7 @@ def write_stamp(out_dir: Path, files: Mapping[str, str | None], **info) -> None:
         known[name if sha is not None else name.rstrip("/") + "/"] = sha
     doc = {"format": "pellucid-batch-folder", "version": 1,
            "software": f"pellucid {__version__}",
-           "updated_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+           "updated_utc": datetime.now(UTC).isoformat(timespec="seconds"),
            **info, "files": known}
     atomic_write_json(out_dir / STAMP_NAME, doc)
 
@@ -228,9 +228,9 @@ class FolderLock:
         self.path = self.folder / LOCK_NAME
         self.fd: int | None = None
 
-    def acquire(self) -> "FolderLock":
+    def acquire(self) -> FolderLock:
         me = {"pid": os.getpid(), "host": socket.gethostname(),
-              "started_utc": datetime.now(timezone.utc).isoformat(timespec="seconds")}
+              "started_utc": datetime.now(UTC).isoformat(timespec="seconds")}
         for _ in range(20):
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
             try:
@@ -313,22 +313,6 @@ def _cell(v) -> str:
     return str(v)
 
 
-def json_safe(obj):
-    """NaN/inf -> None, tuples -> lists, anything else unknown -> text (strict JSON)."""
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, Mapping):
-        return {str(k): json_safe(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [json_safe(v) for v in obj]
-    if isinstance(obj, (str, int, bool)) or obj is None:
-        return obj
-    try:
-        return json_safe(float(obj))
-    except (TypeError, ValueError):
-        return str(obj)
-
-
 class _Hashing:
     """A text file wrapper that also hashes what is written (for the ownership stamp)."""
 
@@ -349,7 +333,7 @@ def _write_pair(out_dir: Path, names, rows: Iterable[Mapping], columns, header) 
         w = csv.writer(hc, lineterminator="\n")
         w.writerow(columns)
         head = {"format": "pellucid-batch-summary", "version": 1, **header,
-                "updated_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                "updated_utc": datetime.now(UTC).isoformat(timespec="seconds"),
                 "columns": list(columns)}
         hj.write(json.dumps(head, ensure_ascii=False, allow_nan=False)[:-1] + ', "rows": [')
         first = True
@@ -392,7 +376,7 @@ def write_summary_files(out_dir: Path, rows_factory, columns, header, *, attempt
             time.sleep(pause_s * (i + 1))
     # Not the disk: typically summary.csv open in a spreadsheet that locks it (Windows).
     if last is not None and not is_disk_full(last):
-        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+        stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
         alt = (f"summary-{stamp}.csv", f"summary-{stamp}.json")
         try:
             written = _write_pair(out_dir, alt, rows_factory(), columns, header)
@@ -414,8 +398,3 @@ def _why(e: BaseException | None) -> str:
     if isinstance(e, OSError):
         return f"{e.strerror or e}" + (f": {e.filename}" if e.filename else "")
     return str(e)
-
-
-def read_text_rows(text: str) -> list[dict]:
-    """Rows of a summary.csv text as dicts (for tests and scripts)."""
-    return list(csv.DictReader(io.StringIO(text)))

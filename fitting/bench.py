@@ -40,7 +40,6 @@ Numbers depend on the BLAS/NumPy build: on machines that set
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import os
 import platform
@@ -56,6 +55,7 @@ import numpy as np
 from .atomic import atomic_write_json
 from .dispersion import Cauchy
 from .errors import PellucidError
+from .jsonsafe import json_safe
 from .stack import Layer, Stack
 from .substrates import library_substrate
 
@@ -234,7 +234,7 @@ def bench_forward(sizes, repeat: int, tmm_repeat: int) -> list[dict]:
                 R, T = stack.RT(wl, angle_deg=angle, polarization=pol)
                 ref = {}
 
-                def reference():
+                def reference(stack=stack, wl=wl, angle=angle, pol=pol, ref=ref):
                     ref["RT"] = tmm_RT(stack, wl, angle, pol)
 
                 row["tmm"] = time_calls(reference, tmm_repeat, warmup=0)
@@ -279,11 +279,8 @@ def _fit_start_stack() -> Stack:
 
 def bench_fit(n_points: int, seeds: int, *, warmup: bool = True) -> dict:
     """Complete fits from the automatic start of noisy synthetic spectra."""
-    try:
-        from .fit import FitOptions, fit_spectrum
-        from .spectrum import Spectrum
-    except ImportError as exc:
-        return {"skipped": f"fit engine not available ({exc})"}
+    from .fit import FitOptions, fit_spectrum
+    from .spectrum import Spectrum
     truth = Stack([Layer("film", Cauchy(2.1, 0.025, urbach=True, k0=0.003, Eu=0.22), 735.0)],
                   library_substrate("fused_silica", 1.0))
     wl = np.linspace(*_WL_RANGE_NM, n_points)
@@ -311,7 +308,8 @@ def bench_fit(n_points: int, seeds: int, *, warmup: bool = True) -> dict:
     # defaults is a ratio, whatever else the machine is doing.
     from .stack import StackModel
     sm = StackModel(truth, wl)
-    one_eval = time_calls(lambda: sm.RT({"film_A": 2.1 + 1e-9 * np.random.rand()}), 50)
+    rng = np.random.default_rng(0)     # a new A each call: nothing cached is timed
+    one_eval = time_calls(lambda: sm.RT({"film_A": 2.1 + 1e-9 * rng.random()}), 50)
     bare = FitOptions(method="auto", fit_scale=False, fit_tilt=False, fit_spread=False)
     ref = []
     for seed in range(seeds):
@@ -471,22 +469,15 @@ def _write_spectra(folder: Path, count: int, n_points: int) -> list[Path]:
     """Synthetic T spectra (thickness varies as over a coated batch) as two-column CSV."""
     rng = np.random.default_rng(7)
     wl = np.linspace(*_WL_RANGE_NM, n_points)
-    try:
-        from .reader import write_spectrum
-    except ImportError:
-        write_spectrum = None
+    from .reader import write_spectrum
+    from .spectrum import Spectrum
     paths = []
     for i in range(count):
         st = Stack([Layer("film", Cauchy(2.1, 0.025, urbach=True, k0=0.003, Eu=0.22),
                           700.0 + 0.4 * i)], library_substrate("fused_silica", 1.0))
         y = st.transmittance(wl) + 0.002 * rng.standard_normal(n_points)
         path = folder / f"sample_{i:04d}.csv"
-        if write_spectrum is not None:
-            from .spectrum import Spectrum
-            write_spectrum(path, Spectrum(wl, y, quantity="T", name=path.stem))
-        else:
-            np.savetxt(path, np.column_stack([wl, y]), delimiter=",",
-                       header="wavelength_nm,T", comments="", fmt="%.6f")
+        write_spectrum(path, Spectrum(wl, y, quantity="T", name=path.stem))
         paths.append(path)
     return paths
 
@@ -574,14 +565,11 @@ def _series_summary(runs, counts) -> dict:
     return out
 
 
-def _reference_fit_s(recipe_path: Path, spectrum: Path, repeat: int = 3) -> float | None:
+def _reference_fit_s(recipe_path: Path, spectrum: Path, repeat: int = 3) -> float:
     """Median in-process time of read + fit + table exports of one spectrum: the batch's
     ideal is ``jobs`` of these at once, measured in the same run on the same machine."""
-    try:
-        from .batch import Prepared, _export, export_stem
-        from .recipe import load_recipe
-    except ImportError:
-        return None
+    from .batch import Prepared, _export, export_stem
+    from .recipe import load_recipe
     recipe = load_recipe(recipe_path)
     recipe = type(recipe).from_dict({**recipe.to_dict(), "outputs": {
         "exports": list(TABLE_EXPORTS), "plot_formats": list(recipe.plot_formats)}},
@@ -609,11 +597,6 @@ def bench_batch(counts, jobs: int, n_points: int, figure_count: int) -> dict:
     shows what they add. The reference is the same work done in this process, one
     spectrum at a time: ``efficiency`` = measured spectra/s ÷ (jobs ÷ reference time).
     """
-    try:
-        from . import recipe  # noqa: F401
-        from .batch import iter_batch  # noqa: F401
-    except ImportError as exc:
-        return {"skipped": f"batch runner or recipes not available ({exc})"}
     if _rss_source() is None:
         return {"skipped": "no way to sample memory here (no /proc and no psutil)"}
     cmd = _pellucid_command()
@@ -633,7 +616,7 @@ def bench_batch(counts, jobs: int, n_points: int, figure_count: int) -> dict:
         result.update(_series_summary(
             _batch_series(cmd, tmp, recipe_path, paths, counts, jobs, "tables",
                           extra=("--no-figures",)), counts))
-        if ref and "spectra_per_s" in result:
+        if "spectra_per_s" in result:
             result["efficiency"] = result["spectra_per_s"] / (jobs / ref)
         if figure_count and "failed" not in result:
             fig_runs = _batch_series(cmd, tmp, recipe_path, paths, (figure_count,), jobs,
@@ -857,7 +840,7 @@ def main(argv=None) -> int:
                         batch_counts=args.batch_counts, batch_figures=args.batch_figures,
                         batch_only=args.batch_only)
     print(format_report(res))
-    path = atomic_write_json(args.out, json.loads(json.dumps(res, default=str)))
+    path = atomic_write_json(args.out, json_safe(res))
     print(f"results written to {path}")
     return 0 if res["all_agree"] else 1
 

@@ -17,7 +17,7 @@ import signal
 import sys
 import threading
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from . import __version__
@@ -185,7 +185,7 @@ def _simulate(args, out) -> int:
              f"# recipe: {Path(args.recipe)}",
              f"# recipe_name: {' '.join(recipe.name.split())}",
              f"# recipe_hash: {recipe_hash(recipe)}",
-             f"# created: {datetime.now(timezone.utc).isoformat(timespec='seconds')}",
+             f"# created: {datetime.now(UTC).isoformat(timespec='seconds')}",
              f"# angle_deg: {angle:g}", f"# polarization: {pol}",
              "# columns: wavelength in nm; T and R as fractions (1.0 = 100 %)",
              "wavelength_nm,T,R"]
@@ -333,11 +333,10 @@ def _hms(seconds: float) -> str:
 
 
 def _headline(row) -> str:
+    from .labels import format_pm
     for k, v in row.items():
         if k.endswith("_thickness") and isinstance(v, (int, float)):
-            sig = row.get(f"{k}_sigma")
-            pm = f" ± {sig:.2g}" if isinstance(sig, (int, float)) else ""
-            return f"{k} = {v:.1f}{pm} nm"
+            return f"{k} = {format_pm(v, row.get(f'{k}_sigma'), 'nm', sigma_fmt='.2g')}"
     return ""
 
 

@@ -17,7 +17,8 @@ registry (:func:`model_from_dict`): nothing is pickled or executed.
 from __future__ import annotations
 
 import math
-from typing import ClassVar, Iterable, Mapping
+from typing import ClassVar
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
@@ -208,11 +209,11 @@ class Dispersion(_HasParams):
         return {}
 
     @classmethod
-    def from_shape(cls, d: Mapping, where: str) -> "Dispersion":
+    def from_shape(cls, d: Mapping, where: str) -> Dispersion:
         """A fresh model from the construction options of :meth:`to_dict` (not the values)."""
         return cls()
 
-    def copy(self) -> "Dispersion":
+    def copy(self) -> Dispersion:
         return model_from_dict(self.to_dict())
 
     def __repr__(self) -> str:
@@ -345,7 +346,10 @@ class Cauchy(Dispersion):
 class Sellmeier(Dispersion):
     r"""Sellmeier dispersion with 1 to 3 terms.
 
-    .. math:: n^2(λ) = A + \sum_i \frac{B_i λ^2}{λ^2 - C_i} \quad (λ \text{ in µm}, C_i \text{ in µm}^2)
+    .. math::
+
+       n^2(λ) = A + \sum_i \frac{B_i λ^2}{λ^2 - C_i}
+       \quad (λ \text{ in µm}, C_i \text{ in µm}^2)
 
     With A = 1 this is the form used by glass makers' datasheets and by
     Malitson (1965) for fused silica.
@@ -671,11 +675,6 @@ class Oscillators(Dispersion):
         return []
 
 
-def Lorentz_model(eps_inf=1.0, oscillators=((1.0, 5.0, 0.5),)) -> Oscillators:
-    """Convenience: ε∞ plus Lorentz oscillators given as (f, E0, gamma) triples."""
-    return Oscillators(eps_inf, [Lorentz(*o) for o in oscillators])
-
-
 # ----------------------------------------------------------------------------------------
 class Tabulated(Dispersion):
     """Tabulated n, κ interpolated linearly in wavelength.
@@ -708,7 +707,7 @@ class Tabulated(Dispersion):
         self.params = {}
 
     @classmethod
-    def from_file(cls, path) -> "Tabulated":
+    def from_file(cls, path) -> Tabulated:
         """Read a table of wavelength, n and (optionally) κ.
 
         The table is parsed by the spectrum reader (:func:`fitting.reader.read_table`):

@@ -53,6 +53,7 @@ from scipy.interpolate import PchipInterpolator
 from scipy.signal import find_peaks, savgol_filter
 
 from .errors import ParameterError
+from .labels import format_pm
 
 __all__ = ["EnvelopeResult", "swanepoel_envelope", "cauchy_start", "sellmeier_start",
            "MIN_EXTREMA"]
@@ -402,7 +403,7 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
 
     asc = np.argsort(lam)
     msg = (f"{pos.size} fringe extrema between {lam.min():.0f} and {lam.max():.0f} nm: "
-           f"d = {d2:.1f} ± {d2_sigma:.1f} nm, n = {n2[asc][-1]:.3f} at {lam.max():.0f} nm "
+           f"d = {format_pm(d2, d2_sigma, 'nm')}, n = {n2[asc][-1]:.3f} at {lam.max():.0f} nm "
            f"to {n2[asc][0]:.3f} at {lam.min():.0f} nm")
     return EnvelopeResult(True, msg, d2, d2_sigma, lam[asc], n2[asc], m[asc], kinds[asc],
                           env_M, env_m, n1[asc], d1, alpha[asc])

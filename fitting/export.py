@@ -32,14 +32,15 @@ import io
 import json
 import math
 import re
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Mapping, Sequence
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 
 from . import __version__
 from .atomic import atomic_write_bytes, atomic_write_text, sync_dir
+from .jsonsafe import json_safe
 from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
@@ -102,12 +103,12 @@ def make_provenance(result=None, *, recipe_hash: str | None = None, input_path=N
     else:
         input_file = spec.get("source") or spec.get("path") or None
         sha = spec.get("sha256") or None
-    when = created or datetime.now(timezone.utc)
+    when = created or datetime.now(UTC)
     if when.tzinfo is None:
-        when = when.replace(tzinfo=timezone.utc)
+        when = when.replace(tzinfo=UTC)
     prov = {"software": f"pellucid {__version__}", "recipe_hash": recipe_hash,
             "input_file": input_file, "input_sha256": sha,
-            "created": when.astimezone(timezone.utc).isoformat(timespec="seconds")}
+            "created": when.astimezone(UTC).isoformat(timespec="seconds")}
     if recipe_name is not None:
         prov["recipe_name"] = recipe_name
     return prov
@@ -157,36 +158,6 @@ def _num(x) -> str:
 
 def _col(a, size):
     return np.full(size, np.nan) if a is None else np.asarray(a, dtype=float)
-
-
-def _json_clean(obj):
-    """NaN/inf -> None and numpy types -> Python ones, so the file is strict JSON."""
-    if isinstance(obj, dict) or (not isinstance(obj, (str, list, tuple, np.ndarray, float,
-                                                      int)) and isinstance(obj, Mapping)):
-        return {str(k): _json_clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        # Long runs of numbers (curves, n and κ) are cleaned in one vectorised step.
-        if len(obj) > 8 and (isinstance(obj, np.ndarray) or type(obj[0]) is float):
-            try:
-                a = np.asarray(obj, dtype=float)
-            except (TypeError, ValueError):
-                a = None
-            if a is not None and a.ndim == 1 and (not isinstance(obj, np.ndarray)
-                                                  or obj.dtype.kind in "fiu"):
-                ok = np.isfinite(a)
-                if ok.all():
-                    return a.tolist()
-                return [x if f else None for x, f in zip(a.tolist(), ok.tolist())]
-        if isinstance(obj, np.ndarray):
-            return _json_clean(obj.tolist())
-        return [_json_clean(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    return obj
 
 
 def _json_text(doc: Mapping) -> str:
@@ -331,7 +302,7 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
         doc = result.to_dict(curves=True)
         doc["provenance"] = prov
         written.append(atomic_write_text(out / f"{stem}_result.json",
-                                         _json_text(_json_clean(doc)), sync_dir=False))
+                                         _json_text(json_safe(doc)), sync_dir=False))
     if "report" in parts:
         text = "\n".join(["Pellucid fit report", f"spectrum: {name}",
                           *(line[2:] for line in _prov_lines(prov)), "", result.report(), ""])

@@ -48,7 +48,7 @@ import math
 import threading
 import time
 from dataclasses import asdict, dataclass, fields
-from typing import Iterator, Mapping
+from collections.abc import Iterator, Mapping
 
 import numpy as np
 
@@ -181,7 +181,7 @@ class FitOptions:
         return d
 
     @classmethod
-    def from_dict(cls, d: Mapping, *, where: str = "fit") -> "FitOptions":
+    def from_dict(cls, d: Mapping, *, where: str = "fit") -> FitOptions:
         """Rebuild from :meth:`to_dict`; refuses unknown keys with :class:`RecipeError`."""
         if not isinstance(d, Mapping):
             raise RecipeError(where, "must be an object of fit options")

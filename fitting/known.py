@@ -39,7 +39,7 @@ import json
 import math
 import re
 from pathlib import Path
-from typing import Mapping
+from collections.abc import Mapping
 
 import numpy as np
 

@@ -102,7 +102,8 @@ def _energy_grid(wavelength_nm, kappa, extend: bool, shape: str = "decay"):
     k = np.asarray(kappa, dtype=float)
     if wl.ndim != 1 or wl.size < 3 or k.shape != wl.shape:
         raise ParameterError("kappa", f"shape {k.shape}",
-                             f"must be 1-D with the shape of wavelength_nm {wl.shape} (>= 3 points)")
+                             f"must be 1-D with the shape of wavelength_nm {wl.shape} "
+                             "(>= 3 points)")
     if not (np.all(np.isfinite(wl)) and np.all(np.isfinite(k))) or np.any(wl <= 0):
         raise ParameterError("wavelength_nm", "NaN/inf or <= 0",
                              "wavelengths and κ must be finite, wavelengths positive")
@@ -164,8 +165,9 @@ def kk_n_from_kappa(wavelength_nm, kappa, *, n_anchor, extend: bool = True) -> n
         the contribution of absorption above the range.
     extend : bool
         Continue κ beyond the range: above it as κ_end (E_end/E)³ up to 30 E_max,
-        below it as the power law of the lowest points down to E_min/30. Off, κ is taken as zero outside,
-        which with a non-zero κ at an end leaves a logarithmic error near that end.
+        below it as the power law of the lowest points down to E_min/30. Off, κ is taken
+        as zero outside, which with a non-zero κ at an end leaves a logarithmic error
+        near that end.
 
     Returns
     -------

@@ -1,12 +1,15 @@
-"""Plain names for parameters, as the parameter table and the warnings show them.
+"""Plain text for people: parameter names and values with their uncertainty.
 
 Global parameter names (``film_o1_E0``) are precise but not for reading; every
-message a technician sees uses :func:`param_label` (``film, term 1: E₀``).
+message a technician sees uses :func:`param_label` (``film, term 1: E₀``). Every
+"value ± σ" in a report, plot, message or window is written by :func:`format_pm`.
 """
 
 from __future__ import annotations
 
-__all__ = ["pretty_name", "param_label", "NUISANCE_LABELS"]
+from .jsonsafe import finite_or_none
+
+__all__ = ["pretty_name", "param_label", "format_pm", "NUISANCE_LABELS"]
 
 _SYMBOL = {"k": "κ", "k0": "κ₀", "eps_inf": "ε∞", "gamma": "Γ", "Eu": "E_U", "E0": "E₀",
            "Eg": "E_g", "Ep": "E_p", "E_edge": "E_edge", "thickness": "thickness d"}
@@ -45,3 +48,33 @@ def param_label(name: str, layer_names=()) -> str:
         if name.startswith(layer + "_"):
             return f"{part}{layer}, {pretty_name(name[len(layer) + 1:])}"
     return part + name
+
+
+def format_pm(value, sigma=None, unit: str = "", *, fmt: str = ".1f",
+              sigma_fmt: str | None = None, sep: str = " ± ", missing: str = "–",
+              no_sigma: str = "") -> str:
+    """``"231.0 ± 0.06 nm"``: a value with its standard uncertainty (1σ) and unit.
+
+    Parameters
+    ----------
+    value, sigma : number or None
+        A value that is missing or not finite gives ``missing``; a σ that is missing or
+        not finite is left out (with ``no_sigma`` after the unit, if given), never
+        printed as "nan".
+    unit : str
+        Written after the number(s), separated by a space.
+    fmt, sigma_fmt : str
+        Format specs of the value and of σ (``sigma_fmt`` defaults to ``fmt``): ``".1f"``
+        for a thickness in nm; ``".2g"`` gives σ to two significant digits (GUM,
+        JCGM 100:2008, 7.2.6: "at most two significant digits").
+    sep : str
+        ``" ± "``; ``" +/- "`` for ASCII text reports.
+    """
+    v = finite_or_none(value)
+    if v is None:
+        return missing
+    s = finite_or_none(sigma)
+    text = format(v, fmt) if s is None else \
+        f"{format(v, fmt)}{sep}{format(s, sigma_fmt or fmt)}"
+    text = f"{text} {unit}".rstrip()
+    return f"{text} {no_sigma}" if s is None and no_sigma else text

@@ -36,7 +36,7 @@ import re
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Callable
+from collections.abc import Callable
 
 import lmfit
 import numpy as np
@@ -46,7 +46,7 @@ from .reference import estimate_noise
 from .result import FitProgress
 from .stack import Stack, StackModel
 
-__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "robust_sigma", "STAGES",
+__all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "STAGES",
            "stage_span", "RunResult"]
 
 #: Noise assumed when a spectrum carries no σ: 0.2 % T, typical of a double-beam
@@ -65,21 +65,6 @@ _NUISANCE = {
 #: Gaussian priors of nuisance parameters: name -> (mean, FitOptions field holding 1σ).
 PRIORS = {"scale": (1.0, "scale_sigma"), "tilt": (0.0, "tilt_sigma")}
 _NAME_TOKEN = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
-
-
-def robust_sigma(residual: np.ndarray) -> float:
-    """1σ noise from residuals by the median absolute deviation (1.4826·MAD).
-
-    References
-    ----------
-    .. [1] P. J. Rousseeuw and C. Croux, "Alternatives to the median absolute
-           deviation", J. Am. Stat. Assoc. 88, 1273 (1993).
-    """
-    r = np.asarray(residual, dtype=float)
-    r = r[np.isfinite(r)]
-    if r.size < 3:
-        return DEFAULT_SIGMA
-    return float(1.4826 * np.median(np.abs(r - np.median(r))))
 
 
 @dataclass(eq=False)
@@ -207,9 +192,9 @@ def stage_span(key: str, i: int = 0, n: int = 1) -> tuple[str, float, float]:
         name, lo, hi = _OTHER_STAGES[key]
     else:
         lo = 0.0
-        for k, name, share in STAGES:
+        for k, stage_name, share in STAGES:
             if k == key:
-                hi = lo + share
+                name, hi = stage_name, lo + share
                 break
             lo += share
         else:
@@ -344,8 +329,8 @@ class Objective:
                     if p.expr:
                         # Rename the names the tie refers to the way this part's names are.
                         expr = _NAME_TOKEN.sub(
-                            lambda m: gname(m.group(0)) if m.group(0) in local_names
-                            else m.group(0), p.expr)
+                            lambda m, names=local_names: gname(m.group(0))
+                            if m.group(0) in names else m.group(0), p.expr)
                         pending_expr.append((g, expr))
         for g, expr in pending_expr:
             try:

@@ -40,7 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["cos_theta", "interface_rt", "coherent_rt", "power_t_factor", "substrate_RT",
+__all__ = ["cos_theta", "interface_rt", "coherent_rt", "power_t_factor",
            "stack_RT", "OuterMedia", "outer_media", "films_RT"]
 
 # exp(-2·Im δ) below e^-70 is zero at double precision for our purposes; capping
@@ -110,39 +110,6 @@ def coherent_rt(pol: str, N, c, d_nm, wavelength_nm):
         den = 1 + rj * re2
         r, t = (rj + re2) / den, tj * t * e / den
     return r, t
-
-
-def substrate_RT(pol: str, N_front, c_front, d_front, N_sub, c_sub, sub_d_nm, N_exit, c_exit,
-                 wavelength_nm):
-    """Front-side R and T of films on a thick incoherent substrate.
-
-    ``N_front``/``c_front`` list the ambient and the film layers (ambient first),
-    ``d_front`` the film thicknesses. The substrate of thickness ``sub_d_nm`` is
-    followed by the exit medium. Multiple reflections inside the substrate add
-    in intensity:
-
-        T = T_f τ T_b / (1 - R_f' R_b τ²),
-        R = R_f + T_f T_f' R_b τ² / (1 - R_f' R_b τ²),
-
-    with T_f, R_f the film side seen from the ambient, T_f', R_f' seen from
-    inside the substrate, R_b, T_b the bare back interface and
-    τ = exp(-4π Im(N_s cos θ_s) d_s / λ) the single-pass internal transmittance.
-    """
-    Nf = list(N_front) + [N_sub]
-    cf = list(c_front) + [c_sub]
-    rf, tf = coherent_rt(pol, Nf, cf, d_front, wavelength_nm)
-    rr, tr = coherent_rt(pol, Nf[::-1], cf[::-1], list(d_front)[::-1], wavelength_nm)
-    Rf = np.abs(rf) ** 2
-    Tf = np.abs(tf) ** 2 * power_t_factor(pol, Nf[0], N_sub, cf[0], c_sub)
-    Rr = np.abs(rr) ** 2
-    Tr = np.abs(tr) ** 2 * power_t_factor(pol, N_sub, Nf[0], c_sub, cf[0])
-    rb, tb = interface_rt(pol, N_sub, N_exit, c_sub, c_exit)
-    Rb = np.abs(rb) ** 2
-    Tb = np.abs(tb) ** 2 * power_t_factor(pol, N_sub, N_exit, c_sub, c_exit)
-    tau = np.exp(-4 * np.pi * sub_d_nm * (N_sub * c_sub).imag / wavelength_nm)
-    tau2 = tau * tau
-    den = 1 - Rr * Rb * tau2
-    return Rf + Tf * Tr * Rb * tau2 / den, Tf * tau * Tb / den
 
 
 def stack_RT(wavelength_nm, N_ambient, N_films, d_films_nm, N_sub, sub_d_nm, N_exit, *,

@@ -85,7 +85,7 @@ class Param:
             raise ParameterError(self.name, self.value,
                                  f"must lie within its bounds [{self.min:g}, {self.max:g}]")
 
-    def copy(self, **changes) -> "Param":
+    def copy(self, **changes) -> Param:
         return replace(self, **changes)
 
     def to_dict(self) -> dict:

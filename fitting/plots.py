@@ -28,7 +28,8 @@ References
 from __future__ import annotations
 
 import math
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
+from collections.abc import Iterable, Mapping, Sequence
 
 import matplotlib
 import numpy as np
@@ -38,6 +39,8 @@ from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 
+from .labels import format_pm
+from .limits import Limit
 from .units import HC_EV_NM
 
 __all__ = ["PALETTE", "fit_figure", "optical_figure", "tauc_figure", "thickness_trend_figure",
@@ -90,15 +93,6 @@ def _get(obj, name, default=None):
 
 def _arr(x):
     return None if x is None else np.asarray(x, dtype=float)
-
-
-def _fmt_pm(value, sigma, unit="", digits=1):
-    if value is None or not np.isfinite(value):
-        return "–"
-    s = f"{value:.{digits}f}"
-    if sigma is not None and np.isfinite(sigma):
-        s += f" ± {sigma:.{digits}f}"
-    return f"{s} {unit}".rstrip()
 
 
 def _spectrum_name(result) -> str:
@@ -178,7 +172,7 @@ def fit_figure(result, *, fig: Figure | None = None, title: str | None = None) -
         title = _spectrum_name(result)
         d, sd = _thickness_of(result)
         if d is not None:
-            title += f"   d = {_fmt_pm(d, sd, 'nm')}"
+            title += f"   d = {format_pm(d, sd, 'nm')}"
         redchi = _get(result, "redchi")
         if redchi is not None and np.isfinite(redchi):
             title += rf"   $\chi^2_\mathrm{{red}}$ = {redchi:.3g}"
@@ -311,7 +305,7 @@ def tauc_figure(result, *, fig: Figure | None = None) -> Figure:
                 label=f"linear range {lo:.2f}–{hi:.2f} eV")
     # The gap goes in the legend: a note beside the line would sit on the rising curve.
     ax.axvline(gap.Eg_eV, color="#666666", lw=0.8, ls=":",
-               label=f"Eg = {gap.Eg_eV:.3f} ± {gap.sigma_eV:.3f} eV")
+               label=f"Eg = {format_pm(gap.Eg_eV, gap.sigma_eV, 'eV', fmt='.3f')}")
     ax.set_ylim(bottom=0)
     # Start the axis a little below the absorption edge, not at the data's low-energy
     # end, so the edge and the extrapolated line fill the plot.
@@ -373,18 +367,13 @@ def spec_bounds(spec: Mapping | None, key: str) -> tuple[float | None, float | N
     """(min, max) of one quantity's spec limit, None where open.
 
     A limit may be ``{"min": a, "max": b}`` (either may be left out),
-    ``{"target": x, "tol": t}`` or a :class:`fitting.recipe.Limit`.
+    ``{"target": x, "tol": t}`` or a :class:`fitting.limits.Limit`, read as
+    :meth:`fitting.limits.Limit.coerce` reads it.
     """
     lim = (spec or {}).get(key)
     if lim is None:
         return None, None
-    if hasattr(lim, "bounds"):
-        lo, hi = lim.bounds
-    elif lim.get("target") is not None and lim.get("tol") is not None:
-        t, tol = _num(lim["target"]), abs(_num(lim["tol"]))
-        lo, hi = t - tol, t + tol
-    else:
-        lo, hi = _num(lim.get("min")), _num(lim.get("max"))
+    lo, hi = Limit.coerce(lim).bounds
     return (lo if np.isfinite(lo) else None), (hi if np.isfinite(hi) else None)
 
 

@@ -55,11 +55,11 @@ import json
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Mapping
+from collections.abc import Mapping
 
 from .atomic import atomic_write_text
 from .errors import RecipeError
-from .export import _json_clean as _clean     # NaN -> null, numpy -> Python: strict JSON
+from .jsonsafe import json_safe
 from .recipe import Recipe, recipe_from_dict
 from .spectrum import sha256_of_file
 
@@ -80,7 +80,7 @@ class SpectrumRef:
     sha256: str
 
     @classmethod
-    def of(cls, path) -> "SpectrumRef":
+    def of(cls, path) -> SpectrumRef:
         p = Path(path).resolve()
         return cls(p, sha256_of_file(p))
 
@@ -107,7 +107,7 @@ class Reference:
     raw_counts: bool = True
 
     @classmethod
-    def of(cls, baseline, dark=None, *, raw_counts: bool = True) -> "Reference":
+    def of(cls, baseline, dark=None, *, raw_counts: bool = True) -> Reference:
         return cls(SpectrumRef.of(baseline), SpectrumRef.of(dark) if dark else None,
                    bool(raw_counts))
 
@@ -161,7 +161,7 @@ class Project:
                    "raw_counts": r.raw_counts}
         res = None
         if self.result is not None:
-            res = {"fit": _clean(self.result.fit.to_dict(curves=True)),
+            res = {"fit": json_safe(self.result.fit.to_dict(curves=True)),
                    "recipe_hash": self.result.recipe_hash, "current": bool(self.result.current)}
         return {"format": PROJECT_FORMAT, "version": PROJECT_VERSION, "name": self.name,
                 "recipe": self.recipe.to_dict(),
@@ -170,7 +170,7 @@ class Project:
                 "results": [dict(r) for r in self.results]}
 
     @classmethod
-    def from_dict(cls, d: Mapping, *, base: Path | None = None, path=None) -> "Project":
+    def from_dict(cls, d: Mapping, *, base: Path | None = None, path=None) -> Project:
         def err(f, problem):
             return RecipeError(f, problem, path=path)
 

@@ -38,7 +38,6 @@ import io
 import math
 import os
 import re
-import tempfile
 import time
 import unicodedata
 import warnings as _warnings
@@ -57,7 +56,7 @@ __all__ = [
     "Dialect", "Preview", "ReaderOptions", "read_spectrum", "parse_spectrum", "sniff",
     "preview", "write_spectrum", "reference_correct", "estimate_noise", "to_nm", "from_nm",
     "Table", "read_table", "abscissa_unit",
-    "bench_read", "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
+    "X_UNITS", "Y_KINDS", "DELIMITERS", "ENCODINGS", "METADATA_STYLES",
 ]
 
 #: Abscissa units understood everywhere ("um" is µm, "A" is Å).
@@ -541,7 +540,7 @@ class ReaderOptions:
         return d
 
     @classmethod
-    def from_dict(cls, data: dict) -> "ReaderOptions":
+    def from_dict(cls, data: dict) -> ReaderOptions:
         """Options from :meth:`to_dict` output; unknown keys are refused.
 
         Raises
@@ -927,7 +926,7 @@ def _key_value(s: str):
     return m.group(1).strip(), m.group(3).strip(), ("colon" if m.group(2) == ":" else "equals")
 
 
-def _layout(text: str, options: "ReaderOptions", path,
+def _layout(text: str, options: ReaderOptions, path,
             min_rows: int = MIN_POINTS) -> _Layout:
     """Dialect, start of the data, columns and preamble, from a bounded head of the text.
 
@@ -2256,30 +2255,6 @@ def write_spectrum(path, spectrum: Spectrum, *, dialect: Dialect | None = None,
                              f"cannot encode {exc.object[exc.start:exc.end]!r}; use utf-8") \
             from None
     return atomic_write_bytes(path, data)
-
-
-# --------------------------------------------------------------------------- benchmark
-
-def bench_read(size_mb: float = 20.0, *, folder=None, dialect: Dialect | None = None) -> dict:
-    """Time :func:`read_spectrum` on a synthetic file of about ``size_mb`` MB.
-
-    For ``python -m fitting.bench``; returns ``{"bytes", "points", "seconds",
-    "seconds_per_mb"}``. The file is written to ``folder`` (a temporary folder
-    if None) and removed afterwards.
-    """
-    n = max(int(size_mb * 1e6 / 26), MIN_POINTS)
-    wl = np.linspace(190.0, 3300.0, n)
-    t = 0.5 + 0.4 * np.cos(wl / 37.0)
-    spec = Spectrum(wl, t)
-    with tempfile.TemporaryDirectory(dir=folder) as tmp:
-        path = Path(tmp) / "bench.txt"
-        write_spectrum(path, spec, dialect=dialect or Dialect(metadata_style="none"))
-        size = path.stat().st_size
-        t0 = time.perf_counter()
-        out = read_spectrum(path)
-        seconds = time.perf_counter() - t0
-    return {"bytes": size, "points": len(out), "seconds": seconds,
-            "seconds_per_mb": seconds / (size / 1e6)}
 
 
 def _main(argv=None) -> int:

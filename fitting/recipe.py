@@ -180,11 +180,13 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 from .atomic import atomic_write_text
 from .errors import PellucidError, RecipeError
 from .known import embed_table_files
+from .limits import Limit
 from .stack import Stack
 
 __all__ = ["Recipe", "Limit", "load_recipe", "save_recipe", "recipe_from_dict", "recipe_hash",
@@ -400,84 +402,6 @@ def _check_field_types(d: Mapping, cls, where: str) -> None:
                 raise RecipeError(w, f"must be a number, got {v!r}")
 
 
-# ---------------------------------------------------------------------------------
-# Limits
-@dataclass(frozen=True)
-class Limit:
-    """A specification limit on one result quantity.
-
-    Either ``target`` with ``tol`` (pass if ``|x - target| <= tol``) or
-    ``min`` and/or ``max`` (inclusive).
-    """
-
-    target: float | None = None
-    tol: float | None = None
-    min: float | None = None
-    max: float | None = None
-
-    @property
-    def bounds(self) -> tuple[float, float]:
-        if self.target is not None:
-            return self.target - self.tol, self.target + self.tol
-        return (-math.inf if self.min is None else self.min,
-                math.inf if self.max is None else self.max)
-
-    def check(self, value) -> str:
-        """``"pass"``, ``"fail"`` or ``"n/a"`` (value missing or not a number)."""
-        try:
-            v = float(value)
-        except (TypeError, ValueError):
-            return "n/a"
-        if not math.isfinite(v):
-            return "n/a"
-        lo, hi = self.bounds
-        return "pass" if lo <= v <= hi else "fail"
-
-    def describe(self) -> str:
-        if self.target is not None:
-            return f"{self.target:g} ± {self.tol:g}"
-        lo, hi = self.min, self.max
-        if lo is not None and hi is not None:
-            return f"{lo:g} to {hi:g}"
-        return f">= {lo:g}" if lo is not None else f"<= {hi:g}"
-
-    def to_dict(self) -> dict:
-        if self.target is not None:
-            return {"target": self.target, "tol": self.tol}
-        return {k: v for k, v in (("min", self.min), ("max", self.max)) if v is not None}
-
-    @classmethod
-    def from_dict(cls, d, *, where: str = "limit") -> "Limit":
-        if not isinstance(d, Mapping):
-            raise RecipeError(where, 'must be an object like {"target": 500, "tol": 25} '
-                                     'or {"min": 480, "max": 520}')
-        extra = set(d) - {"target", "tol", "min", "max"}
-        if extra:
-            raise RecipeError(f"{where}.{sorted(extra)[0]}",
-                              "unknown field; use target/tol or min/max")
-        vals = {}
-        for k, v in d.items():
-            if v is None:
-                continue
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-                raise RecipeError(f"{where}.{k}", f"must be a finite number, got {v!r}")
-            vals[k] = float(v)
-        if "target" in vals or "tol" in vals:
-            if "min" in vals or "max" in vals:
-                raise RecipeError(where, "give either target/tol or min/max, not both")
-            if "target" not in vals or "tol" not in vals:
-                raise RecipeError(where, "target and tol must be given together")
-            if vals["tol"] <= 0:
-                raise RecipeError(f"{where}.tol", f"must be positive, got {vals['tol']:g}")
-            return cls(target=vals["target"], tol=vals["tol"])
-        if not vals:
-            raise RecipeError(where, "needs target/tol or at least one of min/max")
-        if "min" in vals and "max" in vals and vals["min"] >= vals["max"]:
-            raise RecipeError(where, f"min ({vals['min']:g}) must be smaller than "
-                                     f"max ({vals['max']:g})")
-        return cls(min=vals.get("min"), max=vals.get("max"))
-
-
 def _check_limit_key(key: str, stack: Stack, where: str) -> None:
     layers = [layer.name for layer in stack.layers]
     if key in ("band_gap", "redchi") or key in stack.parameters():
@@ -495,16 +419,10 @@ def _check_limit_key(key: str, stack: Stack, where: str) -> None:
 
 
 # ---------------------------------------------------------------------------------
-# Sections owned by other modules (reader, fit engine, exports), resolved lazily so
-# recipes load before those modules exist and nothing here imports them at start-up.
-def _optional(module: str, name: str):
-    try:
-        mod = importlib.import_module(f"fitting.{module}")
-    except ModuleNotFoundError as e:
-        if e.name == f"fitting.{module}":
-            return None
-        raise
-    return getattr(mod, name, None)
+# Sections owned by other modules (reader, fit engine), imported when first needed:
+# the modules that import recipe need not load the fit engine with it.
+def _lazy(module: str, name: str):
+    return getattr(importlib.import_module(f"fitting.{module}"), name)
 
 
 def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
@@ -515,9 +433,7 @@ def _normalise_section(d, module: str, cls_name: str, where: str) -> dict:
         d = d.to_dict()
     if not isinstance(d, Mapping):
         raise RecipeError(where, "must be an object")
-    cls = _optional(module, cls_name)
-    if cls is None or not hasattr(cls, "from_dict"):
-        return json.loads(json.dumps(dict(d)))
+    cls = _lazy(module, cls_name)
     _check_field_types(d, cls, where)
     try:
         if "where" in inspect.signature(cls.from_dict).parameters:
@@ -715,7 +631,7 @@ class Recipe:
             out[role] = p.resolve()
         return out
 
-    def resolved(self) -> "Recipe":
+    def resolved(self) -> Recipe:
         """This recipe with absolute reference paths, ready to be saved anywhere."""
         if not self.reference:
             return self
@@ -729,19 +645,15 @@ class Recipe:
         return Stack.from_dict(self.stack.to_dict())
 
     def reader_options(self):
-        """``ReaderOptions`` built from the ``reader`` section (None if no reader module)."""
-        cls = _optional("reader", "ReaderOptions")
-        return None if cls is None else cls.from_dict(dict(self.reader))
+        """``ReaderOptions`` built from the ``reader`` section."""
+        return _lazy("reader", "ReaderOptions").from_dict(dict(self.reader))
 
     def make_fit_options(self, spectrum=None):
         """``FitOptions`` from ``fit.options`` plus the fit window and masks.
 
         An open end of ``range_nm`` is closed with the spectrum's first or last
-        wavelength. Returns None if the fit engine module is not installed.
+        wavelength.
         """
-        cls = _optional("fit", "FitOptions")
-        if cls is None:
-            return None
         d = dict(self.fit_options)
         lo, hi = self.range_nm
         if spectrum is not None and len(spectrum):
@@ -751,7 +663,7 @@ class Recipe:
             d["fit_range_nm"] = [lo, hi]
         if self.masks_nm:
             d["mask_windows_nm"] = [list(m) for m in self.masks_nm]
-        return cls.from_dict(d)
+        return _lazy("fit", "FitOptions").from_dict(d)
 
     # -- persistence ---------------------------------------------------------------
     def to_dict(self) -> dict:
@@ -771,7 +683,7 @@ class Recipe:
                 **({"reference": dict(self.reference)} if self.reference else {})}
 
     @classmethod
-    def from_dict(cls, d, *, path=None) -> "Recipe":
+    def from_dict(cls, d, *, path=None) -> Recipe:
         return recipe_from_dict(d, path=path)
 
     def hash(self) -> str:
@@ -840,7 +752,7 @@ def _upgrade_0_to_1(d: dict, path) -> dict:
     stack = d.get("stack")
     if not isinstance(stack, dict):
         raise RecipeError("stack", "must be an object", path=path)
-    for i, layer in enumerate(stack.get("layers", []) or []):
+    for layer in stack.get("layers", []) or []:
         if not isinstance(layer, dict) or "thickness_nm" not in layer:
             continue
         d_nm = layer.pop("thickness_nm")

@@ -55,9 +55,9 @@ import json
 import math
 import os
 import textwrap
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 from matplotlib.backends.backend_pdf import PdfPages
@@ -66,15 +66,13 @@ from matplotlib.figure import Figure
 from . import __version__
 from .atomic import atomic_write_bytes
 from .export import provenance_footer, read_curves_csv, read_nk_csv
+from .labels import format_pm
+from .limits import Limit, overall_state
 from .plots import (PALETTE, fit_figure, nk_overlay_figure, row_ok, row_thickness_key,
                     spec_bounds, thickness_histogram_figure, thickness_trend_figure)
 
-__all__ = ["write_batch_report", "ROW_KEYS", "A4_INCHES", "VERDICTS"]
+__all__ = ["write_batch_report", "A4_INCHES", "VERDICTS"]
 
-#: Summary-row keys the report reads (see the module docstring).
-ROW_KEYS = ("file", "sha256", "status", "verdict", "verdict_reasons", "reason",
-            "film_thickness", "film_thickness_sigma", "n_633", "redchi", "warnings",
-            "spec_pass", "result_dir")
 #: Verdicts of the fit engine, best first; the report colours and ranks by them.
 VERDICTS = ("good", "check", "poor")
 A4_INCHES = (8.27, 11.69)
@@ -107,9 +105,7 @@ def _n633(row, layer: str = "film") -> float:
 
 def _pm(value, sigma) -> str:
     """Thickness as "231.0 ± 0.06": one decimal, σ to two significant digits."""
-    if not math.isfinite(value):
-        return "–"
-    return f"{value:.1f} ± {sigma:.2g}" if math.isfinite(sigma) else f"{value:.1f}"
+    return format_pm(value, sigma, sigma_fmt=".2g")
 
 
 def _warn_texts(row) -> list[str]:
@@ -158,15 +154,13 @@ def _spec_state(row, spec, key) -> str | None:
     if not spec or not row_ok(row):
         return None
     states = []
-    for q in spec:
-        lo, hi = spec_bounds(spec, q)
+    for q, lim in spec.items():
         x = _num(row.get(q))
         if not math.isfinite(x) and q.endswith("_n@633"):
             x = _n633(row, q[: -len("_n@633")])
-        if not math.isfinite(x):
-            continue
-        states.append((lo is None or x >= lo) and (hi is None or x <= hi))
-    return None if not states else ("pass" if all(states) else "fail")
+        states.append(Limit.coerce(lim).check(x))
+    state = overall_state(states)         # a quantity the fit did not give cannot pass
+    return None if state == "n/a" else state
 
 
 def _short(text, width) -> str:
@@ -501,7 +495,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     rname, rhash = _recipe_info(recipe, prov)
     if spec is None:
         spec = _recipe_limits(recipe)
-    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    created = prov.get("created") or datetime.now(UTC).isoformat(timespec="seconds")
     info = {"software": prov.get("software") or f"pellucid {__version__}",
             "recipe_name": rname, "recipe_hash": rhash, "created": created,
             "results_dir": str(results_dir), "input_folder": _input_folder(rows)}
@@ -652,7 +646,7 @@ def _fit_text_page(fig, result, info, provenance, params):
                       f"{result.elapsed_s:.1f} s")]
     if result.band_gap is not None:
         g = result.band_gap
-        stats.append(("band gap", f"{g.Eg_eV:.3f} ± {g.sigma_eV:.3f} eV (Tauc, "
+        stats.append(("band gap", f"{format_pm(g.Eg_eV, g.sigma_eV, 'eV', fmt='.3f')} (Tauc, "
                                   f"{g.transition} transition)"))
     if result.alternatives:
         stats.append(("other thicknesses", ", ".join(f"{a.thickness_nm:.0f} nm (χ²_red "
@@ -745,7 +739,7 @@ def write_fit_report(result, pdf_path, *, provenance: Mapping | None = None) -> 
     from .plots import optical_figure
     prov = dict(provenance or {})
     spec = dict(result.spectrum or {})
-    created = prov.get("created") or datetime.now(timezone.utc).isoformat(timespec="seconds")
+    created = prov.get("created") or datetime.now(UTC).isoformat(timespec="seconds")
     info = {"software": prov.get("software") or f"pellucid {__version__}",
             "recipe_hash": prov.get("recipe_hash") or "",
             "input_file": prov.get("input_file") or spec.get("source") or "",

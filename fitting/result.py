@@ -10,12 +10,15 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field, fields
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 import numpy as np
 
 from . import __version__
 from .errors import RecipeError
+from .jsonsafe import finite_or_none, is_plain_json, json_safe
+from .labels import format_pm
 
 __all__ = ["ParamResult", "OpticalConstants", "Alternative", "BandGap", "FitResult",
            "FitProgress", "Diagnostics", "BudgetItem", "Uncertainty", "ConsistencyCheck",
@@ -55,7 +58,7 @@ class ParamResult:
         return bool(self.value - self.min <= tol or self.max - self.value <= tol)
 
     def to_dict(self) -> dict:
-        fin = lambda x: float(x) if x is not None and np.isfinite(x) else None  # noqa: E731
+        fin = finite_or_none
         return {"value": self.value, "stderr": fin(self.stderr), "init_value": fin(self.init_value),
                 "min": fin(self.min), "max": fin(self.max), "vary": self.vary, "unit": self.unit,
                 "expr": self.expr, "at_bound": self.at_bound}
@@ -155,8 +158,7 @@ class Diagnostics:
     dof: int
 
     def to_dict(self) -> dict:
-        return {k: (v if not isinstance(v, float) or np.isfinite(v) else None)
-                for k, v in self.__dict__.items()}
+        return json_safe(self.__dict__)
 
 
 @dataclass(frozen=True)
@@ -168,7 +170,7 @@ class BudgetItem:
     note: str = ""
 
     def to_dict(self) -> dict:
-        return {"source": self.source, "u": _fin(self.u), "note": self.note}
+        return {"source": self.source, "u": finite_or_none(self.u), "note": self.note}
 
 
 @dataclass(frozen=True)
@@ -194,10 +196,10 @@ class Uncertainty:
         return self.k * self.u_combined
 
     def to_dict(self) -> dict:
-        return {"quantity": self.quantity, "value": _fin(self.value), "unit": self.unit,
+        return {"quantity": self.quantity, "value": finite_or_none(self.value), "unit": self.unit,
                 "items": [i.to_dict() for i in self.items],
-                "u_combined": _fin(self.u_combined), "k": self.k,
-                "expanded": _fin(self.expanded)}
+                "u_combined": finite_or_none(self.u_combined), "k": self.k,
+                "expanded": finite_or_none(self.expanded)}
 
 
 @dataclass(frozen=True)
@@ -212,11 +214,7 @@ class ConsistencyCheck:
 
     def to_dict(self) -> dict:
         return {"consistent": self.consistent, "message": self.message,
-                "rms_dev": _fin(self.rms_dev), "max_dev": _fin(self.max_dev)}
-
-
-def _fin(x):
-    return float(x) if x is not None and np.isfinite(x) else None
+                "rms_dev": finite_or_none(self.rms_dev), "max_dev": finite_or_none(self.max_dev)}
 
 
 @dataclass(frozen=True)
@@ -369,7 +367,7 @@ class FitResult:
         for p in self.params.values():
             if p.vary and p.stderr is not None and np.isfinite(p.stderr):
                 rel = f" ({100 * p.stderr / abs(p.value):.2f}%)" if p.value else ""
-                val = f"{p.value:.6g} +/- {p.stderr:.3g}{rel}"
+                val = format_pm(p.value, p.stderr, fmt=".6g", sigma_fmt=".3g", sep=" +/- ") + rel
             elif p.vary:
                 val = f"{p.value:.6g} +/- (not estimated)"
             else:
@@ -383,7 +381,8 @@ class FitResult:
         if self.band_gap is not None:
             g = self.band_gap
             lines.append("[[Band gap]]")
-            lines.append(f"    Tauc {g.transition}: Eg = {g.Eg_eV:.3f} +/- {g.sigma_eV:.3f} eV "
+            lines.append(f"    Tauc {g.transition}: Eg = "
+                         f"{format_pm(g.Eg_eV, g.sigma_eV, 'eV', fmt='.3f', sep=' +/- ')} "
                          f"(linear range {g.fit_range_eV[0]:.2f}-{g.fit_range_eV[1]:.2f} eV)")
         if self.uncertainty:
             lines.append("[[Uncertainty budget]] (GUM; standard uncertainties, "
@@ -424,7 +423,7 @@ class FitResult:
             "uncertainty": {k: u.to_dict() for k, u in self.uncertainty.items()},
             "kk": {k: c.to_dict() for k, c in self.kk.items()},
             "sigma_source": self.sigma_source,
-            "extra": {k: v for k, v in self.extra.items() if _jsonable(v)},
+            "extra": {k: v for k, v in self.extra.items() if is_plain_json(v)},
         }
         if curves:
             d["curves"] = {"wavelength_nm": _arr(self.wavelength_nm),
@@ -436,7 +435,7 @@ class FitResult:
 
 
     @classmethod
-    def from_dict(cls, d: Mapping) -> "FitResult":
+    def from_dict(cls, d: Mapping) -> FitResult:
         """Rebuild a result from :meth:`to_dict` (``curves=True``), every record typed.
 
         Parameters, optical constants, band gap, alternative basins, diagnostics,

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field, replace
-from pathlib import Path
 
 import numpy as np
 
@@ -98,10 +97,10 @@ class Spectrum:
             return np.ones(self.wavelength_nm.shape, dtype=bool)
         return self.mask
 
-    def with_mask(self, mask) -> "Spectrum":
+    def with_mask(self, mask) -> Spectrum:
         return replace(self, mask=np.asarray(mask, dtype=bool))
 
-    def cropped(self, start_nm: float | None = None, stop_nm: float | None = None) -> "Spectrum":
+    def cropped(self, start_nm: float | None = None, stop_nm: float | None = None) -> Spectrum:
         """A copy restricted to ``start_nm <= wavelength <= stop_nm``."""
         lo = -np.inf if start_nm is None else start_nm
         hi = np.inf if stop_nm is None else stop_nm
@@ -110,14 +109,9 @@ class Spectrum:
         return replace(self, wavelength_nm=self.wavelength_nm[keep], values=self.values[keep],
                        sigma=pick(self.sigma), mask=pick(self.mask))
 
-    def masked_windows(self, windows_nm) -> "Spectrum":
+    def masked_windows(self, windows_nm) -> Spectrum:
         """A copy with the given ``[(start, stop), ...]`` windows excluded from fits."""
         use = self.used.copy()
         for lo, hi in windows_nm:
             use &= ~((self.wavelength_nm >= lo) & (self.wavelength_nm <= hi))
         return replace(self, mask=use)
-
-    @classmethod
-    def from_file_provenance(cls, path, **kw) -> "Spectrum":
-        p = Path(path)
-        return cls(name=kw.pop("name", p.stem), source=str(p), sha256=sha256_of_file(p), **kw)

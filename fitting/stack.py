@@ -36,7 +36,7 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Mapping
+from collections.abc import Mapping
 
 import numpy as np
 from scipy.special import roots_jacobi
@@ -318,7 +318,7 @@ class Stack:
         return self.RT(wavelength_nm, **kw)[0]
 
     def evaluator(self, wavelength_nm, *, angle_deg: float = 0.0,
-                  polarization: str = "u") -> "StackModel":
+                  polarization: str = "u") -> StackModel:
         return StackModel(self, wavelength_nm, angle_deg=angle_deg, polarization=polarization)
 
     # -- persistence ----------------------------------------------------------------
@@ -328,7 +328,7 @@ class Stack:
                 "thickness_spread": self.thickness_spread, "bandwidth_nm": self.bandwidth_nm}
 
     @classmethod
-    def from_dict(cls, d: Mapping, *, where: str = "stack") -> "Stack":
+    def from_dict(cls, d: Mapping, *, where: str = "stack") -> Stack:
         if not isinstance(d, Mapping):
             raise RecipeError(where, "must be an object")
         known = {"ambient", "layers", "substrate", "exit_medium", "thickness_spread",
@@ -443,7 +443,7 @@ class StackModel:
         self._cache: list[tuple | None] = [None] * len(stack.layers)
 
     def with_substrate(self, *, dn: float = 0.0, thickness_nm: float | None = None
-                       ) -> "StackModel":
+                       ) -> StackModel:
         """A copy bound to the same grid with the substrate's index shifted by ``dn``
         (real part) or its thickness replaced: for uncertainty budgets."""
         out = copy.copy(self)
@@ -519,8 +519,3 @@ class StackModel:
 
     def _rt(self, Ns, ds):
         return films_RT(self._outer, Ns, ds)
-
-    def N_layers(self, values: Mapping[str, float] | None = None) -> list[np.ndarray]:
-        """Each film's N on the bound grid (no bandwidth nodes)."""
-        return [layer.material.N(self.wavelength_nm, local)
-                for (layer, *_), (_, local) in zip(self._names, self.layer_values(values))]

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Mapping
+from collections.abc import Mapping
 
 import numpy as np
 
@@ -155,7 +155,7 @@ class Substrate:
         return d
 
     @classmethod
-    def from_dict(cls, d: Mapping, *, where: str = "substrate") -> "Substrate":
+    def from_dict(cls, d: Mapping, *, where: str = "substrate") -> Substrate:
         if not isinstance(d, Mapping):
             raise RecipeError(where, "must be an object")
         known = {"thickness_mm", "kappa", "internal_transmittance", "library", "material", "n"}

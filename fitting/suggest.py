@@ -124,7 +124,7 @@ import re
 import threading
 import time
 from dataclasses import dataclass
-from typing import Callable, Iterator
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -134,6 +134,7 @@ from .autostart import Seed, fringe_seed
 from .dispersion import Bruggeman
 from .edge import EdgeData, absorption_edge, opaque_floor
 from .errors import FitError, PellucidError
+from .jsonsafe import finite_or_none as _fin
 from .objective import build_part
 from .presets import MODEL_CHOICES, make_model, model_choice_of, tie_roughness
 from .result import FitProgress, FitResult
@@ -188,10 +189,6 @@ def evidence_words(delta_bic: float) -> str:
 def _short(key: str) -> str:
     """'Cauchy + Urbach tail' from the menu label 'Cauchy + Urbach tail (weak ...)'."""
     return MODEL_CHOICES.get(key, key).split(" (")[0]
-
-
-def _fin(x):
-    return float(x) if x is not None and math.isfinite(x) else None
 
 
 # ----------------------------------------------------------------------------------------

@@ -225,7 +225,7 @@ def budget(obj, values: dict, J: np.ndarray, C: np.ndarray | None, inflation: fl
     quantities = []               # (key, value, unit, gradient)
     part = obj.parts[0]
     gmap = dict((loc, g) for g, loc in part.names)
-    for i, layer in enumerate(part.stack.layers):
+    for layer in part.stack.layers:
         k = gmap.get(f"{layer.name}_thickness")
         if k in names:
             g = np.zeros(len(names))

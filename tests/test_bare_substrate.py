@@ -7,13 +7,13 @@ J. Phys. E 16, 1214, eq. 3).
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.bare_substrate import substrate_from_bare_spectrum
 from fitting.errors import ParameterError
 from fitting.spectrum import Spectrum
 from fitting.substrates import fused_silica
 
-tmm = pytest.importorskip("tmm")
 
 
 def _tmm_bare_T(wl, N, d_nm):

@@ -104,7 +104,6 @@ def test_summary_csv_matches_summary_json(batch27):
 
 
 def test_report_pdf_is_written_at_the_end(tmp_path):
-    pytest.importorskip("fitting.report")
     write_spectra(tmp_path / "in", [450.0, 520.0], seed=4, broken=True)
     summary = run_batch([tmp_path / "in"], make_recipe(), tmp_path / "out", jobs=1)
     assert summary.report_error == ""

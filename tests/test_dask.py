@@ -6,11 +6,10 @@ A real two-process LocalCluster on loopback stands in for a lab's cluster.
 import json
 
 import pytest
+from dask import distributed
 
 from batch_helpers import make_recipe, write_spectra
 from fitting.batch import BatchInputError, run_batch
-
-distributed = pytest.importorskip("dask.distributed")
 
 
 def _rows(out):

@@ -465,7 +465,8 @@ def test_pole_on_a_requested_wavelength_is_an_error_not_nan():
 
 def test_outside_model_range():
     m = Sellmeier(1, valid_nm=(300.0, 1000.0))
-    with pytest.raises(WavelengthRangeError, match=r"Sellmeier \(1 term\) is valid from 300 to 1000 nm"):
+    with pytest.raises(WavelengthRangeError,
+                       match=r"Sellmeier \(1 term\) is valid from 300 to 1000 nm"):
         m.N([250.0, 500.0])
     # A mixture is valid only where both parts are.
     b = Bruggeman(Tabulated([400, 900], [2.0, 1.9]), m, 0.3)

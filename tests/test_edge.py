@@ -32,10 +32,9 @@ from fitting.edge import (CLEAR, OPAQUE_AD, EdgeData, absorption_edge, alpha_tar
                           opaque_floor, target_residuals)
 from fitting.reference import estimate_noise
 
-pytest.importorskip("tmm")
 
-from validation.materials import material, substrate  # noqa: E402
-from validation.synth import Instrument, measure  # noqa: E402
+from validation.materials import material, substrate
+from validation.synth import Instrument, measure
 
 FS = substrate("fused_silica")
 NOISE_ONLY = Instrument(noise=0.002)

@@ -25,6 +25,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting import finish
 from fitting.dispersion import Cauchy, Lorentz, Oscillators
@@ -38,7 +39,6 @@ from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
 from fitting.units import alpha_per_cm
 
-tmm = pytest.importorskip("tmm")
 
 CAUCHY = {"A": 2.0, "B": 0.015, "C": 0.0005}
 D_NM = 450.0

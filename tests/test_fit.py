@@ -20,6 +20,7 @@ import time
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy, Drude, Oscillators, TaucLorentz
 from fitting.errors import FitError, RecipeError
@@ -30,7 +31,6 @@ from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 WL_VIS = np.linspace(300.0, 1100.0, 360)
 WL_NIR = np.linspace(1000.0, 2500.0, 420)     # resolves the fringes of an 8 µm film
@@ -57,7 +57,7 @@ def _material(kind: str, p: dict | None = None):
     raise ValueError(kind)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _tmm_RT(kind: str, params: tuple, d_nm: float, grid: str, pol: str = "s",
             angle_deg: float = 0.0, substrate: str = "fused_silica"):
     """R and T of film | 1 mm substrate from tmm.inc_tmm, cached per case."""
@@ -146,7 +146,7 @@ def test_auto_fit_very_thin_and_very_thick_films(kind, params, d, grid):
     n_true = _material(kind, dict(params)).N(np.array([wl_n]))
     assert abs(n_fit - n_true[0].real) < 0.01
     # Every pair of parameters correlated beyond 0.95 is named in a warning.
-    for a, b, c in res.correlations(0.95):
+    for a, b, _c in res.correlations(0.95):
         la, lb = param_label(a, ["film"]), param_label(b, ["film"])
         assert any(la in w and lb in w and "correlated" in w for w in res.warnings)
 
@@ -280,7 +280,6 @@ def test_other_basin_reported_on_a_narrow_range():
 
 
 def test_band_gap_of_absorbing_film():
-    pytest.importorskip("fitting.bandgap")
     params, d = {"eps_inf": 1.8, "A": 120.0, "E0": 5.0, "C": 1.5, "Eg": 3.3}, 400.0
     res = fit_spectrum(_measured("tauc_lorentz", params, d), _default_stack("tauc_lorentz"),
                        FitOptions(fit_scale=True, band_gap="indirect"))
@@ -333,8 +332,9 @@ def test_thickness_spread_is_fitted():
     x = np.linspace(-4, 4, 41)
     w = np.exp(-x * x / 2)
     w /= w.sum()
-    T = sum(wi * _tmm_RT("cauchy", tuple(sorted(params.items())), float(round(d * (1 + spread * xi), 6)),
-                        "vis")[1] for xi, wi in zip(x, w))
+    cauchy = tuple(sorted(params.items()))
+    T = sum(wi * _tmm_RT("cauchy", cauchy, float(round(d * (1 + spread * xi), 6)), "vis")[1]
+            for xi, wi in zip(x, w))
     y = T + NOISE * np.random.default_rng(9).standard_normal(T.size)
     res = fit_spectrum(Spectrum(WL_VIS, y), _default_stack("cauchy"), FitOptions(fit_spread=True))
     assert abs(res.thickness()[0] - d) < 0.01 * d

@@ -8,6 +8,7 @@ Appl. Phys. Lett. 69, 371 (1996)); its parameters are invented.
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy, Oscillators, TaucLorentz
 from fitting.errors import FitError, ParameterError
@@ -15,7 +16,6 @@ from fitting.inversion import invert_point_by_point
 from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 WL = np.arange(300.0, 1001.0, 3.0)
 FILM = Oscillators(2.2, [TaucLorentz(100.0, 4.8, 2.0, 3.3)])

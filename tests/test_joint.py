@@ -12,6 +12,7 @@ import functools
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy
 from fitting.errors import FitError
@@ -20,13 +21,12 @@ from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
 from fitting.substrates import fused_silica, library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 WL = np.linspace(350.0, 1100.0, 300)
 NOISE = 0.002
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _tmm_RT(A, B, k0, Eu, d_nm):
     Nf = Cauchy(A, B, urbach=True, k0=k0, Eu=Eu).N(WL)
     Ns = fused_silica().N(WL)

@@ -17,6 +17,7 @@ import shutil
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.cli import main as cli_main
 from fitting.dispersion import Cauchy, Tabulated
@@ -31,7 +32,6 @@ from fitting.spectrum import Spectrum, sha256_of_file
 from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
 
-tmm = pytest.importorskip("tmm")
 from validation.materials import material, substrate  # noqa: E402
 
 WL = np.linspace(350.0, 1000.0, 131)

@@ -1,4 +1,5 @@
-"""Tests for fitting/labels.py: the names a technician reads for parameters.
+"""Tests for fitting/labels.py: the names a technician reads for parameters, and values
+with their uncertainty (σ to two significant digits where asked: GUM, JCGM 100:2008, 7.2.6).
 
 No physics here: the reference is the project's own naming of parameters
 (``film_o1_E0`` = layer ``film``, oscillator term 1, parameter ``E0``) and the
@@ -15,7 +16,7 @@ import numpy as np
 import pytest
 
 from fitting.fit import FitOptions
-from fitting.labels import NUISANCE_LABELS, param_label, pretty_name
+from fitting.labels import NUISANCE_LABELS, format_pm, param_label, pretty_name
 from fitting.objective import Objective, build_part
 from fitting.presets import MODEL_CHOICES, make_model
 from fitting.spectrum import Spectrum
@@ -85,3 +86,19 @@ def test_every_nuisance_parameter_of_a_fit_has_a_label():
     for k in nuisance:
         assert param_label(k, ["film"]) == NUISANCE_LABELS[k] != k
         assert "_" not in NUISANCE_LABELS[k]
+
+
+def test_format_pm_value_sigma_and_unit():
+    assert format_pm(231.04, 0.0612, "nm", sigma_fmt=".2g") == "231.0 ± 0.061 nm"
+    assert format_pm(231.04, 0.0612) == "231.0 ± 0.1"
+    assert format_pm(3.2104, 0.0123, "eV", fmt=".3f") == "3.210 ± 0.012 eV"
+    assert format_pm(1.5, 0.25, fmt=".6g", sigma_fmt=".3g", sep=" +/- ") == "1.5 +/- 0.25"
+
+
+def test_format_pm_never_prints_nan():
+    assert format_pm(float("nan"), 1.0, "nm") == "–"
+    assert format_pm(None, None) == "–"
+    assert format_pm(500.0, float("nan"), "nm") == "500.0 nm"
+    assert format_pm(500.0, None, "nm", no_sigma="(σ not estimated)") == \
+        "500.0 nm (σ not estimated)"
+    assert format_pm(500.0, 2.0, "nm", no_sigma="(σ not estimated)") == "500.0 ± 2.0 nm"

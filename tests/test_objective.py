@@ -21,11 +21,12 @@ import threading
 import lmfit
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Cauchy
 from fitting.errors import FitError
 from fitting.fit import FitOptions
-from fitting.objective import DEFAULT_SIGMA, Objective, build_part, robust_sigma
+from fitting.objective import DEFAULT_SIGMA, Objective, build_part
 from fitting.spectrum import Spectrum
 from fitting.stack import Layer, Stack
 from fitting.substrates import library_substrate
@@ -40,7 +41,6 @@ def _stack(d=D_NM, **cauchy):
 
 
 def _tmm_T(wl, d=D_NM):
-    tmm = pytest.importorskip("tmm")
     N_film = Cauchy(**CAUCHY).N(wl)
     N_sub = library_substrate("fused_silica").N(wl)
     return np.array([tmm.inc_tmm("s", [1.0, nf, ns, 1.0], [np.inf, d, 1e6, np.inf],
@@ -131,14 +131,6 @@ def test_given_sigma_is_used_and_points_without_one_are_dropped():
     assert np.all(part.sigma == 0.003)
     few = build_part(0, Spectrum(wl[:8], _tmm_T(wl[:8])), _stack(), FitOptions())
     assert np.all(few.sigma == DEFAULT_SIGMA)        # too few points for an estimate
-
-
-def test_robust_sigma_is_the_scaled_mad():
-    rng = np.random.default_rng(5)
-    r = 0.004 * rng.standard_normal(20000)
-    r[::100] = 1.0                                    # 1 % outliers do not move it
-    assert robust_sigma(r) == pytest.approx(0.004, rel=0.03)
-    assert robust_sigma(np.array([0.1, np.nan])) == DEFAULT_SIGMA
 
 
 # -- what is free -----------------------------------------------------------------------------

@@ -7,10 +7,10 @@ independent transfer-matrix reference: `coh_tmm` for a semi-infinite substrate,
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.optics import coherent_rt, cos_theta, stack_RT
 
-tmm = pytest.importorskip("tmm")
 
 
 def _random_case(seed):
@@ -69,11 +69,11 @@ def test_random_stacks_match_tmm(seed):
     wl, films, d, sub, angle = _random_case(seed)
     one = np.ones(wl.size, complex)
     # Semi-infinite (coh_tmm), also strongly absorbing, and 1 mm incoherent (inc_tmm).
-    for sub_d, sub in ((None, sub), (None, _strong_substrate(seed, wl)), (1.0e6, sub)):
+    for sub_d, N_sub in ((None, sub), (None, _strong_substrate(seed, wl)), (1.0e6, sub)):
         for pol in "spu":
-            R, T = stack_RT(wl, one, films, d, sub, sub_d, one, angle_rad=np.radians(angle),
+            R, T = stack_RT(wl, one, films, d, N_sub, sub_d, one, angle_rad=np.radians(angle),
                             polarization=pol)
-            Rr, Tr = _tmm_reference(pol, wl, films, d, sub, angle, sub_d)
+            Rr, Tr = _tmm_reference(pol, wl, films, d, N_sub, angle, sub_d)
             np.testing.assert_allclose(R, Rr, rtol=0, atol=1e-9, err_msg=f"R {pol} {sub_d}")
             np.testing.assert_allclose(T, Tr, rtol=0, atol=1e-9, err_msg=f"T {pol} {sub_d}")
 

@@ -13,6 +13,7 @@ from fitting.project import (Project, Reference, StoredResult, fit_result_from_d
 from fitting.recipe import Recipe
 from fitting.presets import default_stack
 from test_export import make_result
+from test_recipe import make_recipe
 
 
 def _same(a, b):
@@ -137,3 +138,45 @@ def test_text_fields_of_a_newer_result_pass_through(monkeypatch):
     r = fit_result_from_dict(d)
     assert r.verdict == "check" and r.verdict_reasons == ("few fringes",)
     assert r.diagnostics is None          # a structured record is not handed on as a dict
+
+
+def test_project_round_trip_and_change_detection(tmp_path):
+    spectra = tmp_path / "spectra"
+    spectra.mkdir()
+    a, b = spectra / "a.csv", spectra / "b.csv"
+    a.write_text("wavelength_nm,T\n500,0.9\n")
+    b.write_text("wavelength_nm,T\n500,0.8\n")
+    proj = Project(make_recipe(), name="week 12")
+    proj.add_spectrum(a)
+    proj.add_spectrum(b)
+    proj.add_spectrum(a)                                    # same path: replaced, not doubled
+    proj.results.append({"file": str(a), "status": "ok", "film_thickness": 498.7})
+    path = save_project(proj, tmp_path / "p.pellucid.json")
+    raw = json.loads(path.read_text())
+    assert raw["format"] == "pellucid-project"
+    assert sorted(s["path"] for s in raw["spectra"]) == ["spectra/a.csv", "spectra/b.csv"]
+    back = load_project(path)
+    assert back.recipe.to_dict() == proj.recipe.to_dict()
+    assert {r.path for r in back.spectra} == {a.resolve(), b.resolve()}
+    assert back.results == proj.results and back.check_spectra() == []
+    b.write_text("wavelength_nm,T\n500,0.7\n")
+    a.unlink()
+    problems = back.check_spectra()
+    assert len(problems) == 2
+    assert any("not found" in p for p in problems) and any("changed" in p for p in problems)
+
+
+def test_project_errors_name_the_field(tmp_path):
+    d = Project(make_recipe()).to_dict()
+    d["recipe"]["stack"]["layers"][0]["material"]["kind"] = "plasma"
+    f = tmp_path / "p.json"
+    f.write_text(json.dumps(d))
+    with pytest.raises(RecipeError) as ei:
+        load_project(f)
+    assert ei.value.field == "recipe.stack.layers[0].material.kind"
+    d = Project(make_recipe()).to_dict()
+    d["spectra"] = [{"path": "x.csv", "sha256": "zz"}]
+    f.write_text(json.dumps(d))
+    with pytest.raises(RecipeError, match="hex") as ei:
+        load_project(f)
+    assert ei.value.field == "spectra[0].sha256"

@@ -191,7 +191,7 @@ def test_failed_render_keeps_old_report(batch, pdf, tmp_path, monkeypatch):
 def test_rows_from_the_batch_runner(tmp_path):
     # The rows the batch runner really writes (fitting.batch.summary_row): n at 633 nm as
     # "film_n@633", warnings as one "; "-joined text, spec verdicts as "pass"/"fail"/"n/a".
-    batch_mod = pytest.importorskip("fitting.batch")
+    from fitting import batch as batch_mod
     from fitting.recipe import Recipe
     from fitting.stack import Stack
 
@@ -277,3 +277,13 @@ def test_verdicts_are_counted_shown_and_rank_the_fits_to_look_at(batch, tmp_path
     # coupon_01 (poor) before coupon_03 (check), although its χ² is the lowest.
     assert first.index("coupon_01") < first.index("coupon_03")
     assert "no absorption below 400 nm" in first
+
+
+def test_spec_column_judges_rows_by_the_batch_summary_rule():
+    # Rows without a "spec_pass" are judged with fitting.limits, as the batch summary is:
+    # any limit failed -> FAIL; a limited quantity missing -> not judged, never "pass".
+    spec = {"film_thickness": {"min": 475, "max": 525}, "redchi": {"max": 5}}
+    assert report._spec_state({"film_thickness": 525.0, "redchi": 1.0}, spec, "") == "pass"
+    assert report._spec_state({"film_thickness": 500.0}, spec, "") is None
+    assert report._spec_state({"film_thickness": 530.0}, spec, "") == "fail"
+    assert report._spec_state({"film_thickness": 500.0, "spec_pass": "fail"}, spec, "") == "fail"

@@ -8,6 +8,7 @@ import math
 
 import numpy as np
 import pytest
+import tmm
 
 from fitting.dispersion import Bruggeman, Cauchy, Constant, Drude, Lorentz, Oscillators, \
     Tabulated, TaucLorentz
@@ -15,7 +16,6 @@ from fitting.errors import ParameterError, RecipeError, WavelengthRangeError
 from fitting.stack import Layer, Stack
 from fitting.substrates import Substrate, library_substrate
 
-tmm = pytest.importorskip("tmm")
 
 
 def test_bare_lossless_substrate_transmission():

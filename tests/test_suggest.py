@@ -15,20 +15,19 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-pytest.importorskip("tmm")
 
-from fitting import suggest  # noqa: E402
-from fitting.dispersion import Cauchy  # noqa: E402
-from fitting.errors import FitError  # noqa: E402
-from fitting.presets import default_stack, make_model, tie_roughness  # noqa: E402
-from fitting.spectrum import Spectrum  # noqa: E402
-from fitting.stack import Layer, Stack  # noqa: E402
-from fitting.substrates import library_substrate  # noqa: E402
-from fitting.suggest import (FAMILIES, Candidate, add_model_choice,  # noqa: E402
+from fitting import suggest
+from fitting.dispersion import Cauchy
+from fitting.errors import FitError
+from fitting.presets import default_stack, make_model, tie_roughness
+from fitting.spectrum import Spectrum
+from fitting.stack import Layer, Stack
+from fitting.substrates import library_substrate
+from fitting.suggest import (FAMILIES, Candidate, add_model_choice,
                              candidate_stack, classify, evidence_words, falloff_start,
                              lossless_floor, suggest_model)
-from validation.materials import Material, material, substrate  # noqa: E402
-from validation.synth import Instrument, grid, measure, transmittance  # noqa: E402
+from validation.materials import Material, material, substrate
+from validation.synth import Instrument, grid, measure, transmittance
 
 ORDINARY = Instrument(scale=1.005, tilt=0.002, noise=0.002)
 

@@ -37,10 +37,9 @@ from fitting.stack import Stack
 from fitting.uncertainty import (SUBSTRATE_INDEX_U, covariance, jacobian, residual_vector,
                                  with_model_choice)
 
-pytest.importorskip("tmm")
 
-from validation.materials import Material, material, substrate  # noqa: E402
-from validation.synth import Instrument, averaged_transmittance, measure  # noqa: E402
+from validation.materials import Material, material, substrate
+from validation.synth import Instrument, averaged_transmittance, measure
 
 WL = np.linspace(400.0, 1000.0, 200)
 D_NM = 600.0

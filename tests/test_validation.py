@@ -13,12 +13,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-pytest.importorskip("tmm")
 
-from validation import cases as vcases  # noqa: E402
-from validation.materials import DATA_DIR, MATERIALS, SUBSTRATES, Material, read_table  # noqa: E402
-from validation.run import _judge, format_table, run, summarise  # noqa: E402
-from validation.synth import (Instrument, averaged_transmittance, gauss_hermite_nodes,  # noqa: E402
+from validation import cases as vcases
+from validation.materials import DATA_DIR, MATERIALS, SUBSTRATES, Material, read_table
+from validation.run import _judge, format_table, run, summarise
+from validation.synth import (Instrument, averaged_transmittance, gauss_hermite_nodes,
                               grid, measure, transmittance)
 
 ROOT = Path(__file__).resolve().parents[1]

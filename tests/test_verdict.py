@@ -34,10 +34,9 @@ from fitting import verdict
 from fitting.result import Alternative, ParamResult, Uncertainty
 from fitting.verdict import diagnose, judge, reasons, runs_test_z
 
-pytest.importorskip("tmm")
 
-from validation.materials import material, substrate  # noqa: E402
-from validation.synth import Instrument, measure  # noqa: E402
+from validation.materials import material, substrate
+from validation.synth import Instrument, measure
 
 ORDINARY = Instrument(scale=1.005, tilt=-0.002, noise=0.002)
 

@@ -28,7 +28,7 @@ from __future__ import annotations
 import csv
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 from scipy.interpolate import PchipInterpolator

@@ -31,7 +31,6 @@ recovered, 1 otherwise, 2 for a usage error.
 from __future__ import annotations
 
 import argparse
-import json
 import multiprocessing
 import platform
 import sys
@@ -40,7 +39,7 @@ import traceback
 
 import numpy as np
 
-from .cases import CASES, Case, select
+from .cases import Case, select
 from .materials import material, substrate
 from .synth import grid, measure
 
@@ -269,9 +268,10 @@ def main(argv=None) -> int:
     print()
     print(format_summary(s, a.markdown))
     if a.json:
-        from fitting.atomic import atomic_write_text
-        atomic_write_text(a.json, json.dumps({"meta": _meta(), "summary": s, "cases": rows},
-                                             indent=1, default=float))
+        from fitting.atomic import atomic_write_json
+        from fitting.jsonsafe import json_safe
+        atomic_write_json(a.json, json_safe({"meta": _meta(), "summary": s, "cases": rows}),
+                          indent=1)
     return 0 if not s["silent"] and not s["ordinary_missed"] else 1
 
 

@@ -1,0 +1,110 @@
+"""Plain, strict JSON from results: the one cleaner every writer of a JSON file uses.
+
+JSON (RFC 8259, section 6) has no NaN or infinity, and :mod:`json` writes them as the
+non-standard tokens ``NaN`` and ``Infinity`` that other tools refuse to read. A fit has
+them where a quantity was not estimated (a σ of a fixed parameter, a χ² of a fit that
+could not start), so every export, marker, summary, project and benchmark file passes
+its data through :func:`json_safe` first and is then written with ``allow_nan=False``:
+a value the cleaner missed fails loudly instead of making an unreadable file.
+
+Functions
+---------
+json_safe(obj)         nested data -> plain JSON data (NaN/inf -> None, numpy -> Python)
+finite_or_none(x)      one number -> a finite float, or None
+is_plain_json(v)       True for values that are JSON types already (no cleaning needed)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+
+import numpy as np
+
+__all__ = ["json_safe", "finite_or_none", "is_plain_json"]
+
+
+def finite_or_none(x) -> float | None:
+    """``x`` as a finite float; None if it is None, not a number, NaN or infinite."""
+    if x is None:
+        return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def json_safe(obj):
+    """Nested data as plain JSON data, the same shape.
+
+    NaN and infinity become None; numpy scalars and arrays become Python numbers and
+    lists; tuples become lists; mapping keys become text. Anything else that is not a
+    JSON type is written as its number if it has one, else as its text (``Path``).
+
+    Long runs of numbers (curves, n and κ, about a thousand points per spectrum) are
+    cleaned in one vectorised step: the exports of a batch call this for every spectrum.
+    """
+    # The common types first, by exact type: Mapping is an abstract class and slow to test.
+    t = type(obj)
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t is str or t is int or t is bool or obj is None:
+        return obj
+    if t is dict:
+        return {str(k): json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        if len(obj) > 8 and (isinstance(obj, np.ndarray)
+                             or all(type(x) is float for x in obj)):
+            clean = _float_run(obj)
+            if clean is not None:
+                return clean
+        if isinstance(obj, np.ndarray):
+            return json_safe(obj.tolist())
+        return [json_safe(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    if isinstance(obj, str):        # a str subclass (an enum of texts): json writes its text
+        return obj
+    if isinstance(obj, Mapping):
+        return {str(k): json_safe(v) for k, v in obj.items()}
+    try:
+        return json_safe(float(obj))
+    except (TypeError, ValueError):
+        return str(obj)
+
+
+def _float_run(obj) -> list | None:
+    """A flat run of real numbers cleaned at once, or None if ``obj`` is not one.
+
+    ``obj`` is an array or a list of Python floats only: a list that mixes in ints,
+    bools or texts goes element by element, so each keeps its type ("2" stays text).
+    """
+    if isinstance(obj, np.ndarray):
+        if obj.dtype.kind in "iub":
+            return obj.tolist()         # always finite: Python ints and bools as they are
+        if obj.dtype.kind != "f":
+            return None
+    try:
+        a = np.asarray(obj, dtype=float)
+    except (TypeError, ValueError):
+        return None
+    if a.ndim != 1:
+        return None
+    ok = np.isfinite(a)
+    if ok.all():
+        return a.tolist()
+    return [x if f else None for x, f in zip(a.tolist(), ok.tolist(), strict=True)]
+
+
+def is_plain_json(v) -> bool:
+    """True if ``v`` is of a JSON type already (text, number, bool, list, dict, None).
+
+    For optional extras a result carries: plain values go into its JSON, typed objects
+    (which have their own fields in the file) are left out.
+    """
+    return isinstance(v, (str, int, float, bool, list, dict, type(None)))
