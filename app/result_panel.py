@@ -16,6 +16,7 @@ from html import escape
 
 import numpy as np
 from matplotlib.figure import Figure
+from fitting.labels import format_pm
 from PySide6.QtCore import Qt, QTimer, Signal
 from PySide6.QtGui import QFontDatabase, QImage, QPixmap
 from PySide6.QtWidgets import (QHeaderView, QLabel, QPlainTextEdit, QSizePolicy, QTableWidget,
@@ -27,11 +28,8 @@ __all__ = ["ResultPanel"]
 
 
 def _pm(value, sigma, unit="", digits=2):
-    if value is None or not math.isfinite(value):
-        return "–"
-    if sigma is not None and math.isfinite(sigma):
-        return f"{value:.{digits}f} ± {sigma:.{digits}f} {unit}".rstrip()
-    return f"{value:.{digits}f} {unit} (σ not estimated)".rstrip()
+    # One value ± σ rule for the whole project (fitting.labels.format_pm).
+    return format_pm(value, sigma, unit, fmt=f".{digits}f", no_sigma="(σ not estimated)")
 
 
 #: verdict -> (symbol, colour, words); symbol and words carry the meaning, the

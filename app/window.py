@@ -19,6 +19,7 @@ from PySide6.QtWidgets import (QApplication, QFileDialog, QGroupBox, QLabel, QMa
 
 from fitting.errors import PellucidError
 from fitting.fit import fit_spectrum
+from fitting.labels import format_pm
 from fitting.suggest import Suggestion, suggest_model
 
 from .dialogs import ask_save_discard_cancel, ask_yes_no, show_error, show_info
@@ -517,8 +518,7 @@ class MainWindow(QMainWindow):
         else:
             try:
                 d, sd = result.thickness()
-                sd_txt = f" ± {sd:.1f}" if sd is not None else ""
-                self.status(f"Fit done: thickness {d:.1f}{sd_txt} nm, reduced χ² "
+                self.status(f"Fit done: thickness {format_pm(d, sd, 'nm')}, reduced χ² "
                             f"{result.redchi:.3g}")
             except KeyError:
                 self.status(f"Fit done: reduced χ² {result.redchi:.3g}")
