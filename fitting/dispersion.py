@@ -526,7 +526,29 @@ class TaucLorentz(Term):
             raise ParameterError("C", v["C"], f"Tauc-Lorentz needs C < 2·E0 = {2 * v['E0']:g} eV")
 
     def chi(self, E, v):
-        return tauc_lorentz_chi(E, v["A"], v["E0"], v["C"], v["Eg"])
+        # χ is A times a shape set by (E0, C, Eg) alone. Fits vary A, ε∞, thickness
+        # and the 100 % line far more often than the edge (the fringe stages hold
+        # the edge; a Jacobian moves one parameter at a time), so the last few
+        # shapes are kept: the closed form is the costliest step of a model call.
+        key = (float(v["E0"]), float(v["C"]), float(v["Eg"]))
+        E = np.asarray(E, dtype=float)
+        cache = self.__dict__.setdefault("_shapes", [])
+        for entry in cache:
+            if entry[0] == key and entry[1].shape == E.shape and np.array_equal(entry[1], E):
+                return v["A"] * entry[2]
+        shape = tauc_lorentz_chi(E, 1.0, *key)
+        cache.insert(0, (key, E.copy(), shape))
+        del cache[self.SHAPE_CACHE:]
+        return v["A"] * shape
+
+    #: How many edge shapes :meth:`chi` keeps (one Jacobian moves E0, C, Eg in turn).
+    SHAPE_CACHE = 4
+
+    def __getstate__(self):
+        # The shape cache is a speed-up of this process only: not pickled to workers.
+        state = dict(self.__dict__)
+        state.pop("_shapes", None)
+        return state
 
     def edge_starts(self, edge_eV, top_eV):
         if edge_eV is None:     # clear everywhere: the gap just above the range

@@ -94,6 +94,26 @@ def test_tauc_lorentz_eps2_is_the_published_formula():
     assert np.allclose(tauc_lorentz_chi(E, A, E0, C, Eg).imag, ref, rtol=1e-13, atol=0)
 
 
+def test_tauc_lorentz_kept_shapes_never_go_stale():
+    # TaucLorentz.chi keeps the last edge shapes (χ = A · shape(E0, C, Eg)): every call,
+    # whichever parameter or energy grid changed, must equal the closed form of
+    # Jellison & Modine (1996) computed afresh.
+    t = TaucLorentz()
+    E1, E2 = np.linspace(1.0, 6.0, 300), np.linspace(1.0, 6.0, 301)
+    rng = np.random.default_rng(3)
+    v = t.values()
+    for _ in range(60):
+        k = rng.choice(["A", "E0", "C", "Eg", "grid", "same"])
+        if k in ("A", "E0", "C", "Eg"):
+            v = {**v, k: v[k] * (1 + 0.01 * rng.standard_normal())}
+        E = E2 if k == "grid" else E1
+        ref = tauc_lorentz_chi(E, v["A"], v["E0"], v["C"], v["Eg"])
+        assert np.allclose(t.chi(E, v), ref, rtol=1e-13, atol=1e-15)
+    E1[10] += 1e-3                               # the same array, edited in place
+    ref = tauc_lorentz_chi(E1, v["A"], v["E0"], v["C"], v["Eg"])
+    assert np.allclose(t.chi(E1, v), ref, rtol=1e-13, atol=1e-15)
+
+
 def test_tauc_lorentz_eps1_is_continuous_through_the_gap():
     # ε1 is analytic across E = Eg (the log singularities cancel; Jellison & Modine 1996).
     A, E0, C, Eg = TL_SETS[1]
