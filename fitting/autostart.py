@@ -416,10 +416,14 @@ class ScanResult:
 
 
 def scan_range(seed: Seed, bounds: tuple[float, float], wl_min: float, wl_max: float,
-               user: tuple[float, float] | None = None) -> tuple[float, float]:
+               user: tuple[float, float] | None = None, *,
+               faint: bool = False) -> tuple[float, float]:
     """Thickness range of the scan: user choice, else from the seed and the layer bounds.
 
-    With fringes: 5 nm to twice the seed's thickness. Without (fewer than three
+    With fringes: 5 nm to twice the seed's thickness. ``faint`` fringes (a film
+    close to the substrate's index) stand barely above the noise: missed
+    extrema make the seed too thin by any factor, so the scan goes to three
+    times the seed and at least 2 µm. Without (fewer than three
     extrema): k extrema in [λ1, λ2] mean 4nd(1/λ1 - 1/λ2) < k + 2, so with n no
     lower than 1.4 the film is thinner than (k + 2)/(5.6 (1/λ1 - 1/λ2)); at
     least 1 µm is scanned (a film matched in index to the substrate shows no
@@ -430,6 +434,8 @@ def scan_range(seed: Seed, bounds: tuple[float, float], wl_min: float, wl_max: f
         lo, hi = float(user[0]), float(user[1])
     elif seed.has_fringes and seed.thickness_nm:
         lo, hi = 5.0, 2.0 * seed.thickness_nm + 50.0
+        if faint:
+            hi = max(3.0 * seed.thickness_nm + 50.0, 2000.0)
     else:
         span = 1.0 / wl_min - 1.0 / wl_max
         lo, hi = 5.0, max((seed.n_extrema + 2) / (5.6 * span), 1000.0)

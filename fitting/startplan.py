@@ -410,7 +410,8 @@ def plan_starts(obj: Objective, start: dict, info: dict) -> StartPlan:
         info["low_contrast"] = True
     pth = obj.params[tname]
     lo, hi = autostart.scan_range(seed, (pth.min, pth.max), float(part.wl.min()),
-                                  float(part.wl.max()), obj.options.thickness_range_nm)
+                                  float(part.wl.max()), obj.options.thickness_range_nm,
+                                  faint=lv.low_contrast)
     n_hi = 1.15 * max(float(n_film.max()), lv.n_ref) * 1.06
     step = float(part.wl.min()) / (16 * n_hi)
     K = int(min(autostart._MAX_SCAN_POINTS, max(8, math.ceil((hi - lo) / step) + 1)))

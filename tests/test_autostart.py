@@ -141,3 +141,21 @@ def test_edge_candidates_put_the_tauc_lorentz_gap_below_the_measured_edge():
         k = m.N_unchecked(np.array([700.0, 1050.0]), c).imag
         ad = 4 * math.pi * k / np.array([700.0, 1050.0]) * 1000.0
         assert ad[0] > 1.0 and ad[1] < 0.3, c
+
+
+def test_scan_range_reaches_past_a_seed_made_thin_by_faint_fringes():
+    # A film within 0.02 of the substrate's index (SiO2 on fused silica) swings T by
+    # about 0.1 %, near the noise: the seed saw 5 of about 12 extrema and said 338 nm
+    # for a 1000 nm film. Fringe count 4nd(1/λ1 - 1/λ2) (common practice): missed
+    # extrema make a seed too thin, never too thick, so a faint seed's scan must
+    # reach well past 2x.
+    seed = autostart.Seed(True, 338.0, 1.476, 750.0, n_extrema=5)
+    bounds = (1.0, 50_000.0)
+    lo, hi = autostart.scan_range(seed, bounds, 312.0, 1100.0)
+    assert hi == pytest.approx(2 * 338.0 + 50.0)          # clear fringes: 2x the seed
+    lo_f, hi_f = autostart.scan_range(seed, bounds, 312.0, 1100.0, faint=True)
+    assert lo_f == lo and hi_f >= 3 * 338.0 and hi_f >= 2000.0
+    # The layer's own bounds and a range the user chose still rule.
+    assert autostart.scan_range(seed, (1.0, 1500.0), 312.0, 1100.0, faint=True)[1] == 1500.0
+    assert autostart.scan_range(seed, bounds, 312.0, 1100.0, (100.0, 400.0),
+                                faint=True) == (100.0, 400.0)

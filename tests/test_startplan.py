@@ -105,3 +105,20 @@ def test_plan_of_an_ordinary_film_holds_the_right_order_among_its_starts():
     ds = [v["film_thickness"] for _, v in plan.starts]
     assert 1 <= len(ds) <= 4
     assert min(abs(d - 600.0) for d in ds) < 0.05 * 600.0
+
+
+def test_faint_fringes_scan_past_a_seed_made_thin_by_missed_extrema():
+    # SiO2 on fused silica (Malitson 1965 for both; Δn ≈ 0.015): T swings by about
+    # 0.1 %, at the noise. The fringe seed sees only part of the extrema and says a
+    # third of the thickness; the scan must still reach the true 1000 nm basin.
+    wl = grid(250.0, 1100.0, 2.0)
+    T, _ = measure(material("SiO2"), 1000.0, FS, wl, Instrument(noise=0.002), 5)
+    stack = default_stack("cauchy", "fused_silica")
+    opts = FitOptions()
+    obj = Objective([build_part(0, Spectrum(wl, T), stack, opts)], opts)
+    info: dict = {}
+    plan_starts(obj, obj.params.valuesdict(), info)
+    lo, hi = info["scan"]["thickness_range_nm"]
+    assert info.get("low_contrast") and hi >= 1100.0
+    if info["seed"]["has_fringes"]:
+        assert hi >= 3 * info["seed"]["thickness_nm"]

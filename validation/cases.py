@@ -187,7 +187,7 @@ CASES: tuple[Case, ...] = (
     Case("SiO2-BK7-1500-noise", "SiO2", 1500, _BK7, (350.0, 1100.0, 1.0), "noise", _C, False,
          False, "low-index film on higher-index glass, many shallow fringes"),
     Case("SiO2-FS-1000-noise", "SiO2", 1000, _FS, _UV, "noise", _C, False, False,
-         "nearly index-matched (Δn 0.015): fringes at the noise level, data cannot decide"),
+         "nearly index-matched (Δn 0.015): fringes at the noise level, seed too thin"),
     Case("SiO2-sapphire-1000-combined", "SiO2", 1000, _SAP, _VIS, "combined", _C, True, False,
          "low-index film on sapphire: clear contrast"),
     # --- Si3N4 (Luke 2015)
