@@ -16,7 +16,7 @@ from html import escape
 
 import numpy as np
 from matplotlib.figure import Figure
-from fitting.labels import format_pm
+from fitting.labels import format_pm, two_digits
 from PySide6.QtCore import Qt, QTimer, Signal
 from PySide6.QtGui import QFontDatabase, QImage, QPixmap
 from PySide6.QtWidgets import (QHeaderView, QLabel, QPlainTextEdit, QSizePolicy, QTableWidget,
@@ -477,7 +477,7 @@ class ResultPanel(QTabWidget):
             u = (getattr(r, "uncertainty", None) or {}).get(names[0]) if names else None
             if u is not None:
                 # The expanded uncertainty (GUM, k = 2) is what a certificate states.
-                text += f"   (U = {u.expanded:.2g} nm, k = 2)"
+                text += f"   (U = {two_digits(u.expanded)} nm, k = 2)"
             self.thickness_label.setText(text)
         except KeyError:
             self.thickness_label.setText("No film layer")

@@ -7,9 +7,11 @@ message a technician sees uses :func:`param_label` (``film, term 1: E₀``). Eve
 
 from __future__ import annotations
 
+import math
+
 from .jsonsafe import finite_or_none
 
-__all__ = ["pretty_name", "param_label", "format_pm", "NUISANCE_LABELS"]
+__all__ = ["pretty_name", "param_label", "format_pm", "two_digits", "NUISANCE_LABELS"]
 
 _SYMBOL = {"k": "κ", "k0": "κ₀", "eps_inf": "ε∞", "gamma": "Γ", "Eu": "E_U", "E0": "E₀",
            "Eg": "E_g", "Ep": "E_p", "E_edge": "E_edge", "thickness": "thickness d"}
@@ -78,3 +80,21 @@ def format_pm(value, sigma=None, unit: str = "", *, fmt: str = ".1f",
         f"{format(v, fmt)}{sep}{format(s, sigma_fmt or fmt)}"
     text = f"{text} {unit}".rstrip()
     return f"{text} {no_sigma}" if s is None and no_sigma else text
+
+
+def two_digits(x) -> str:
+    """An uncertainty to two significant digits, trailing zero kept: ``1.0``, ``0.50``, ``120``.
+
+    GUM (JCGM 100:2008, 7.2.6): an uncertainty is stated with at most two
+    significant digits; ``format(1.0, ".2g")`` would drop the second one ("1").
+    Not finite: "–".
+    """
+    v = finite_or_none(x)
+    if v is None:
+        return "–"
+    if v == 0:
+        return "0"
+    for _ in range(2):           # rounding may add a digit (0.0996 -> 0.10)
+        decimals = 1 - math.floor(math.log10(abs(v)))
+        v = round(v, decimals)
+    return f"{v:.{max(decimals, 0)}f}"

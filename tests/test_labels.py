@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from fitting.fit import FitOptions
-from fitting.labels import NUISANCE_LABELS, format_pm, param_label, pretty_name
+from fitting.labels import NUISANCE_LABELS, format_pm, param_label, pretty_name, two_digits
 from fitting.objective import Objective, build_part
 from fitting.presets import MODEL_CHOICES, make_model
 from fitting.spectrum import Spectrum
@@ -102,3 +102,12 @@ def test_format_pm_never_prints_nan():
     assert format_pm(500.0, None, "nm", no_sigma="(σ not estimated)") == \
         "500.0 nm (σ not estimated)"
     assert format_pm(500.0, 2.0, "nm", no_sigma="(σ not estimated)") == "500.0 ± 2.0 nm"
+
+
+@pytest.mark.parametrize("x,text", [(1.0, "1.0"), (0.5, "0.50"), (12.3, "12"), (123.0, "120"),
+                                    (0.0996, "0.10"), (0.0994, "0.099"), (0.0012345, "0.0012"),
+                                    (float("nan"), "–"), (None, "–")])
+def test_two_digits_keeps_the_second_significant_digit(x, text):
+    # GUM (JCGM 100:2008, 7.2.6): an uncertainty to at most two significant digits;
+    # "1.0 nm" states two, "1 nm" (what ".2g" writes) only one.
+    assert two_digits(x) == text
