@@ -99,11 +99,11 @@ class ParamTableModel(QAbstractTableModel):
     def columnCount(self, parent=QModelIndex()):
         return 0 if parent.isValid() else len(COLUMNS)
 
-    def headerData(self, section, orientation, role=Qt.DisplayRole):
-        if orientation == Qt.Horizontal:
-            if role == Qt.DisplayRole:
+    def headerData(self, section, orientation, role=Qt.ItemDataRole.DisplayRole):
+        if orientation == Qt.Orientation.Horizontal:
+            if role == Qt.ItemDataRole.DisplayRole:
                 return COLUMNS[section]
-            if role == Qt.ToolTipRole:
+            if role == Qt.ItemDataRole.ToolTipRole:
                 return _COL_TIPS[section]
         return None
 
@@ -112,12 +112,13 @@ class ParamTableModel(QAbstractTableModel):
         return 0 <= self.layer_index < len(layers) and layers[self.layer_index].known
 
     def flags(self, index):
-        f = Qt.ItemIsEnabled | Qt.ItemIsSelectable
+        f = Qt.ItemFlag.ItemIsEnabled | Qt.ItemFlag.ItemIsSelectable
         if index.column() in _FIELD:
-            f |= Qt.ItemIsEditable
+            f |= Qt.ItemFlag.ItemIsEditable
         if index.column() == 5:
             # A known layer's parameters are held: the tick is shown off, not editable.
-            f = Qt.ItemIsSelectable if self.layer_known() else f | Qt.ItemIsUserCheckable
+            f = (Qt.ItemFlag.ItemIsSelectable if self.layer_known()
+                 else f | Qt.ItemFlag.ItemIsUserCheckable)
         return f
 
     def _sigma(self, name: str):
@@ -130,13 +131,16 @@ class ParamTableModel(QAbstractTableModel):
             return None
         return r.params[name].stderr
 
-    def data(self, index, role=Qt.DisplayRole):
+    # Qt's full enum names (Qt.ItemDataRole.DisplayRole): PySide6 resolves the short
+    # forms (Qt.DisplayRole) through a slow fallback, ~7 µs each, and a view calls
+    # data() about a thousand times per repaint.
+    def data(self, index, role=Qt.ItemDataRole.DisplayRole):
         if not index.isValid():
             return None
         name, local = self._rows[index.row()]
         p = self.session.param(name)
         col = index.column()
-        if role in (Qt.DisplayRole, Qt.EditRole):
+        if role in (Qt.ItemDataRole.DisplayRole, Qt.ItemDataRole.EditRole):
             if col == 0:
                 return pretty_name(local)
             if col == 1:
@@ -153,11 +157,12 @@ class ParamTableModel(QAbstractTableModel):
                     return ""
                 # In brackets (and grey) when the fit no longer matches the setup.
                 return f"({s:.3g})" if self.session.result_stale else f"{s:.3g}"
-        if role == Qt.ForegroundRole and col == 6 and self.session.result_stale:
+        if role == Qt.ItemDataRole.ForegroundRole and col == 6 and self.session.result_stale:
             return QBrush(QColor(128, 128, 128))
-        if role == Qt.CheckStateRole and col == 5:
-            return Qt.Checked if p.vary and not self.layer_known() else Qt.Unchecked
-        if role == Qt.ToolTipRole:
+        if role == Qt.ItemDataRole.CheckStateRole and col == 5:
+            on = p.vary and not self.layer_known()
+            return Qt.CheckState.Checked if on else Qt.CheckState.Unchecked
+        if role == Qt.ItemDataRole.ToolTipRole:
             bad = self._bad.get((index.row(), col))
             if bad:
                 return bad
@@ -170,26 +175,26 @@ class ParamTableModel(QAbstractTableModel):
             if p.expr:
                 tip += f"\nTied to: {p.expr}"
             return tip
-        if role == Qt.BackgroundRole and (index.row(), col) in self._bad:
+        if role == Qt.ItemDataRole.BackgroundRole and (index.row(), col) in self._bad:
             return QBrush(QColor(220, 60, 60, 90))
-        if role == Qt.TextAlignmentRole and col in (1, 3, 4, 6):
-            return Qt.AlignRight | Qt.AlignVCenter
+        if role == Qt.ItemDataRole.TextAlignmentRole and col in (1, 3, 4, 6):
+            return Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter
         return None
 
-    def setData(self, index, value, role=Qt.EditRole):
+    def setData(self, index, value, role=Qt.ItemDataRole.EditRole):
         if not index.isValid():
             return False
         name, _local = self._rows[index.row()]
         col = index.column()
         try:
-            if col == 5 and role == Qt.CheckStateRole:
+            if col == 5 and role == Qt.ItemDataRole.CheckStateRole:
                 if self.layer_known():
                     raise PellucidError(f"{name} is held: the layer is known; untick "
                                         "'Known' to fit its parameters")
-                checked = value is True or value == Qt.Checked or value == 2 or (
+                checked = value is True or value == Qt.CheckState.Checked or value == 2 or (
                     getattr(value, "value", None) == 2)
                 self.session.set_param(name, vary=bool(checked))
-            elif col in _FIELD and role == Qt.EditRole:
+            elif col in _FIELD and role == Qt.ItemDataRole.EditRole:
                 text = str(value).strip().replace(",", ".") if isinstance(value, str) else value
                 if col == 1 and text == "":
                     raise PellucidError(f"{name}: a value is required")
