@@ -278,7 +278,8 @@ def test_generator_never_uses_the_project_engine():
 def test_counting_of_silent_failures_and_quiet_misses():
     base = {"ordinary": True, "d_true": 500.0, "n633_true": 2.0, "verdict_source": "engine",
             "case": "x", "model": "cauchy", "generate_s": 0.0}
-    rows = [_judge({**base, "case": "ok", "d_fit": 503.0, "n633_fit": 2.005, "verdict": "good"}),
+    rows = [_judge({**base, "case": "ok", "d_fit": 503.0, "n633_fit": 2.005, "verdict": "good",
+                    "d_U": 4.0}),
             _judge({**base, "case": "quiet", "d_fit": 510.0, "n633_fit": 2.0, "verdict": "good"}),
             _judge({**base, "case": "silent", "d_fit": 400.0, "n633_fit": 2.2,
                     "verdict": "good"}),
@@ -289,6 +290,11 @@ def test_counting_of_silent_failures_and_quiet_misses():
     assert s["ordinary_recovered"] == 1 and s["ordinary"] == 4
     assert s["silent"] == ["silent"] and s["gross"] == ["silent", "honest"]
     assert s["quiet"] == ["quiet", "silent"] and s["refused"] == ["refused"]
+    # U = 4 nm covers an error of 3 nm; a row without U is not counted either way
+    assert rows[0]["covered"] is True and rows[1]["covered"] is None
+    assert s["ordinary_covered"] == 1 and s["ordinary_uncovered"] == []
+    assert _judge({**base, "d_fit": 503.0, "n633_fit": 2.0, "verdict": "good",
+                   "d_U": 2.0})["covered"] is False
     md = format_table(rows, markdown=True).splitlines()
     assert md[0].startswith("| case |") and len(md) == 2 + len(rows)
     assert "SILENT" in md[4]

@@ -113,6 +113,8 @@ def evaluate(case: Case) -> dict:
     d_fit = res.thickness()[0]
     n_fit = res.optical["film"].at(REF_NM)[0] if n_true is not None else None
     verdict, source = _verdict(res)
+    u = (getattr(res, "uncertainty", None) or {}).get("film_thickness")
+    row["d_U"] = float(u.expanded) if u is not None and np.isfinite(u.expanded) else None
     row.update(d_fit=d_fit, n633_fit=n_fit, verdict=verdict, verdict_source=source,
                verdict_reasons=list(getattr(res, "verdict_reasons", ()) or ()),
                success=bool(res.success), message=res.message, redchi=float(res.redchi),
@@ -134,6 +136,10 @@ def _judge(row: dict) -> dict:
     recovered = fitted and abs(dd) <= RECOVER_D_PCT and (dn is None or abs(dn) <= RECOVER_N)
     gross = fitted and (abs(dd) > GROSS_D_PCT or (dn is not None and abs(dn) > GROSS_N))
     good = row["verdict"] == "good"
+    # Does the expanded uncertainty (GUM, k = 2) reach the true thickness?
+    U = row.get("d_U")
+    row["covered"] = None if not fitted or U is None else bool(
+        abs(d_fit - row["d_true"]) <= U)
     row.update(dd_pct=dd, dn=dn, recovered=bool(recovered), gross=bool(gross),
                silent=bool(gross and good), quiet=bool(fitted and not recovered and good))
     return row
@@ -149,6 +155,8 @@ def summarise(rows: list[dict]) -> dict:
         "ordinary_recovered": sum(r["recovered"] for r in ordinary),
         "ordinary_missed": [r["case"] for r in ordinary if not r["recovered"]],
         "recovered_all": sum(r["recovered"] for r in rows),
+        "ordinary_covered": sum(bool(r.get("covered")) for r in ordinary),
+        "ordinary_uncovered": [r["case"] for r in ordinary if r.get("covered") is False],
         "gross": names("gross"),
         "silent": names("silent"),
         "quiet": names("quiet"),
@@ -198,6 +206,10 @@ def format_summary(s: dict, markdown: bool = False) -> str:
         f"{b}ordinary films recovered (thickness within {RECOVER_D_PCT:g} %, n(633) within "
         f"{RECOVER_N:g}): {s['ordinary_recovered']}/{s['ordinary']}"
         + (f" (missed: {', '.join(s['ordinary_missed'])})" if s["ordinary_missed"] else ""),
+        f"{b}ordinary films whose thickness error is within the expanded uncertainty "
+        f"(GUM, k = 2; about 95 % expected): {s['ordinary_covered']}/{s['ordinary']}"
+        + (f" (outside: {', '.join(s['ordinary_uncovered'])})" if s["ordinary_uncovered"]
+           else ""),
         f"{b}grossly wrong (|Δd| > {GROSS_D_PCT:g} % or |Δn(633)| > {GROSS_N:g}): "
         f"{len(s['gross'])}/{s['cases']}{lst(s['gross'])}",
         f"{b}silent failures (grossly wrong, verdict 'good'): {len(s['silent'])}"
