@@ -12,19 +12,23 @@ import os
 from pathlib import Path
 
 from PySide6.QtCore import Qt, Signal
+from PySide6.QtGui import QBrush, QColor
 from PySide6.QtWidgets import (QCheckBox, QDialog, QFileDialog, QFormLayout, QHBoxLayout,
                                QHeaderView, QLabel, QLineEdit, QProgressBar, QPushButton,
                                QSpinBox, QTableWidget, QTableWidgetItem, QVBoxLayout)
 
 from .dialogs import show_error
+from .result_panel import VERDICT_STYLE
 from .worker import Job
 
 __all__ = ["BatchDialog", "SUMMARY_COLUMNS"]
 
 #: Columns of the summary shown in the app (all columns are in summary.csv).
-SUMMARY_COLUMNS = ("file", "status", "thickness", "thickness_sigma", "redchi", "band_gap",
-                   "reason")
-_STATUS_WORDS = {"ok": "ok", "failed": "did not converge", "error": "error",
+SUMMARY_COLUMNS = ("file", "status", "verdict", "thickness", "thickness_sigma", "redchi",
+                   "band_gap", "reason")
+#: Status words: "fitted" rather than "ok", since a fitted spectrum's verdict (its own
+#: column) may still say 'check' or 'poor'.
+_STATUS_WORDS = {"ok": "fitted", "failed": "did not converge", "error": "error",
                  "stopped": "stopped"}
 
 
@@ -73,8 +77,9 @@ class BatchDialog(QDialog):
         self.state = QLabel("Choose the folders and press Start batch.")
         self.state.setWordWrap(True)
         self.table = QTableWidget(0, len(SUMMARY_COLUMNS))
-        self.table.setHorizontalHeaderLabels(["File", "Status", "Thickness (nm)", "± σ (nm)",
-                                              "Reduced χ²", "Band gap (eV)", "Reason"])
+        self.table.setHorizontalHeaderLabels(["File", "Status", "Verdict", "Thickness (nm)",
+                                              "± σ (nm)", "Reduced χ²", "Band gap (eV)",
+                                              "Reason"])
         self.table.verticalHeader().setVisible(False)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
         self.table.horizontalHeader().setStretchLastSection(True)
@@ -184,7 +189,9 @@ class BatchDialog(QDialog):
                 "thickness": row.get(thick_key) if thick_key else None,
                 "thickness_sigma": row.get(f"{thick_key}_sigma") if thick_key else None,
                 "redchi": row.get("redchi"), "band_gap": row.get("band_gap"),
-                "reason": row.get("reason") or ""}
+                "verdict": row.get("verdict") or "",
+                # A fitted spectrum's reason is why its verdict is not 'good'.
+                "reason": row.get("reason") or (row.get("verdict_reasons") or "")}
         i = self.table.rowCount()
         self.table.insertRow(i)
         for j, key in enumerate(SUMMARY_COLUMNS):
@@ -193,9 +200,19 @@ class BatchDialog(QDialog):
                 txt = f"{v:.4g}" if key in ("redchi",) else f"{v:.2f}"
             else:
                 txt = "" if v is None else str(v)
-            it = QTableWidgetItem(txt)
+            if key == "verdict" and v:
+                # Symbol and words carry the meaning; the colour only helps.
+                sym, colour, words = VERDICT_STYLE.get(v, ("•", "", v))
+                it = QTableWidgetItem(f"{sym} {v}")
+                it.setToolTip(words)
+                if colour:
+                    it.setForeground(QBrush(QColor(colour)))
+            else:
+                it = QTableWidgetItem(txt)
+            if key == "reason" and txt:
+                it.setToolTip(txt.replace("; ", "\n"))
             if isinstance(v, float):
-                it.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
+                it.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
             self.table.setItem(i, j, it)
 
     def _on_done(self, summary):
@@ -205,6 +222,9 @@ class BatchDialog(QDialog):
             return
         counts = ", ".join(f"{v} {_STATUS_WORDS.get(k, k)}" for k, v in summary.counts.items()
                            if v)
+        verdicts = ", ".join(f"{v} {k}" for k, v in (summary.verdicts or {}).items() if v)
+        if verdicts:
+            counts += f" (verdicts: {verdicts})"
         stopped = " (stopped early)" if summary.stopped else ""
         self.state.setText(f"Batch finished{stopped} in {summary.elapsed_s:.1f} s: "
                            f"{counts or 'nothing to do'}. Summary table: {summary.summary_csv}")

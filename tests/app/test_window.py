@@ -318,12 +318,25 @@ def test_batch_from_the_app(window, qtbot, tmp_path):
     qtbot.waitUntil(lambda: not dlg.is_running(), timeout=10000)
     assert dlg.table.rowCount() == 3
     statuses = sorted(dlg.table.item(i, 1).text() for i in range(3))
-    assert statuses == ["error", "ok", "ok"]
-    thick = sorted(float(dlg.table.item(i, 2).text()) for i in range(3)
-                   if dlg.table.item(i, 1).text() == "ok")
+    assert statuses == ["error", "fitted", "fitted"]
+    thick = sorted(float(dlg.table.item(i, 3).text()) for i in range(3)
+                   if dlg.table.item(i, 1).text() == "fitted")
     assert thick == pytest.approx([600.0, 640.0], abs=3.0)
     assert "Batch finished" in dlg.state.text()
     assert (tmp_path / "out" / "summary.csv").is_file()
+    # Every fitted spectrum shows its verdict (an 'ok' fit may still need checking), as
+    # summary.csv has it; the unreadable file has none but a reason.
+    import csv
+    with open(tmp_path / "out" / "summary.csv", newline="", encoding="utf-8") as f:
+        csv_verdicts = {Path(r["file"]).name: r["verdict"] for r in csv.DictReader(f)}
+    for i in range(3):
+        name, status = dlg.table.item(i, 0).text(), dlg.table.item(i, 1).text()
+        shown = dlg.table.item(i, 2).text()
+        if status == "fitted":
+            assert shown.split()[-1] == csv_verdicts[name] != ""
+            assert csv_verdicts[name] in dlg.state.text()
+        else:
+            assert shown == "" and dlg.table.item(i, 7).text() != ""
     dlg.close()
 
 
@@ -492,7 +505,7 @@ def test_batch_can_be_cancelled_and_resumed(window, qtbot, tmp_path):
         assert dlg.start()
     qtbot.waitUntil(lambda: not dlg.is_running(), timeout=10000)
     assert dlg.table.rowCount() == 4 and not dlg.summary.stopped
-    assert sorted(dlg.table.item(i, 1).text() for i in range(4)) == ["ok"] * 4
+    assert sorted(dlg.table.item(i, 1).text() for i in range(4)) == ["fitted"] * 4
     dlg.close()
 
 
