@@ -59,6 +59,7 @@ from .objective import Objective, _Stop, build_part, stage_span
 from .result import FitProgress, FitResult
 from .stack import POLARIZATIONS, Stack
 from .startplan import plan_starts
+from .verdict import SPREAD_LIMIT
 
 __all__ = ["FitOptions", "fit_spectrum", "fit_joint", "iter_fit", "iter_fit_joint",
            "FitResult", "FitProgress", "METHODS"]
@@ -393,7 +394,9 @@ def _auto_spread(obj: Objective, polished: list) -> None:
     from the thickness) a refit with the spread free is tried, and it is kept
     when it lowers χ² by more than 2, the Akaike information criterion's price
     of one more parameter (Akaike 1974): a spread is expected of real coatings,
-    so the weaker criterion, and its uncertainty then enters the covariance.
+    so the weaker criterion, and its uncertainty then enters the covariance. A
+    spread above :data:`fitting.verdict.SPREAD_LIMIT` must lower χ² by ln N, the
+    Bayesian information criterion's price (Schwarz 1978).
     """
     if "thickness_spread" not in obj.params or scanned_film(obj) is None or not polished:
         return
@@ -407,7 +410,15 @@ def _auto_spread(obj: Objective, polished: list) -> None:
     trial = _polish(obj, {**best.values, "thickness_spread": s0},
                     best.label + " with non-uniformity", free=("thickness_spread",),
                     max_nfev=60 * (len(obj.var_names) + 2))
-    if trial.chisqr < best.chisqr - 2.0:
+    gain = best.chisqr - trial.chisqr
+    # A spread beyond what coatings show over a spectrometer's spot (SPREAD_LIMIT) is
+    # more often a stand-in for a wrong index contrast than real: it must then be
+    # demanded by the data, by the Bayesian information criterion's price ln N
+    # (Schwarz 1978) instead of Akaike's 2.
+    n_points = sum(int(p.y.size) for p in obj.parts)
+    needed = math.log(max(n_points, 3)) if trial.values["thickness_spread"] > SPREAD_LIMIT \
+        else 2.0
+    if gain > needed:
         obj.release("thickness_spread")
         trial.lm = _refit_free(obj, trial)
         polished.append(trial)
