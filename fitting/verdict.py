@@ -52,6 +52,10 @@ __all__ = ["diagnose", "judge", "runs_test_z", "Reason", "PHOTOMETRIC_ACCURACY",
 PHOTOMETRIC_ACCURACY = 0.003
 #: Misfit (RMS) at which the model plainly does not describe the data.
 GROSS_MISFIT = 0.02
+#: A misfit this large (over 3x an instrument's photometric accuracy) that is also
+#: systematic (runs test z < SYSTEMATIC_RUNS_Z) is no instrument error either: the
+#: film model cannot describe the film (common practice threshold).
+GROSS_SYSTEMATIC_MISFIT = 0.01
 #: Largest expanded uncertainty (k = 2) of a thickness, relative, for a "good" verdict.
 MAX_RELATIVE_U = 0.05
 #: |correlation| of a thickness with another parameter that means "not separable".
@@ -215,7 +219,8 @@ def reasons(result) -> list[Reason]:
                                    f"determine."))
     d = result.diagnostics
     if d is not None and math.isfinite(d.redchi) and _shaped(d):
-        if d.rms_residual > GROSS_MISFIT:
+        if d.rms_residual > GROSS_MISFIT or (d.rms_residual > GROSS_SYSTEMATIC_MISFIT
+                                             and d.runs_z < SYSTEMATIC_RUNS_Z):
             out.append(Reason("poor", f"The model misses the data by {100 * d.rms_residual:.1f} % "
                                       f"RMS ({d.rms_residual / d.noise_sigma:.0f} times the "
                                       f"noise): {_misfit_advice(result)}."))

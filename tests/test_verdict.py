@@ -234,6 +234,8 @@ def test_not_converged_is_check_and_stopped_is_poor(good):
 @pytest.mark.parametrize("rms, runs_z, redchi, expected", [
     (0.030, -12.0, 200.0, "poor"),     # misses by more than 2 % RMS, with a shape
     (0.006, -12.0, 9.0, "check"),      # above an instrument's 0.3 % accuracy
+    (0.012, -12.0, 40.0, "poor"),      # over 1 % and far from chance: the model fails
+    (0.012, -6.0, 40.0, "check"),      # over 1 %, shaped, but not far from chance
     (0.0025, -6.0, 2.5, "good"),       # shaped, but within the photometric accuracy
     (0.0025, -12.0, 2.5, "check"),     # ... unless far from chance (a faint-fringe basin)
     (0.030, -1.0, 200.0, "good"),      # large but shapeless: the noise was misjudged
@@ -322,4 +324,4 @@ def test_most_serious_reason_first(good):
     assert [x.level for x in out] == sorted((x.level for x in out),
                                             key=["poor", "check"].index)
     assert out[0].level == "poor" and len(out) >= 2
-    assert verdict.PHOTOMETRIC_ACCURACY < verdict.GROSS_MISFIT
+    assert verdict.PHOTOMETRIC_ACCURACY < verdict.GROSS_SYSTEMATIC_MISFIT < verdict.GROSS_MISFIT
