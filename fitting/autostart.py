@@ -355,6 +355,14 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     lam_n, n_n = (np.asarray(a, float) for a in (seed.n_points or ((), ())))
     if n_n.size == 0 and seed.n_ref:
         lam_n, n_n = np.array([seed.wl_ref]), np.array([seed.n_ref])
+    if edge.clear_nm is not None and lam_n.size > 1:
+        # The envelope's n is good where the film is clear; on the edge, where it
+        # absorbs, the extrema shift with the falling T and n comes out low (Swanepoel
+        # 1983 assumes weak absorption), bending the oscillator the wrong way.
+        keep = lam_n >= edge.clear_nm[0]
+        if not keep.any():
+            keep = lam_n == lam_n.max()
+        lam_n, n_n = lam_n[keep], n_n[keep]
     lo = np.array([material.params[k].min for k in names])
     hi = np.array([material.params[k].max for k in names])
 

@@ -287,7 +287,13 @@ def reasons(result) -> list[Reason]:
                                    f"known index, or measure further into the UV or a thicker "
                                    f"film."))
     s = result.params.get("scale")
-    if s is not None and s.vary and abs(s.value - 1) > SCALE_LIMIT:
+    if s is not None and s.vary and abs(s.value - 1) > 2 * SCALE_LIMIT:
+        out.append(Reason("poor", f"The 100 % line scale came out at {s.value:.3f}: no "
+                                  f"instrument's baseline is {100 * abs(s.value - 1):.0f} % "
+                                  f"off, so the fit used it to hide a model or substrate "
+                                  f"error. Check the baseline/reference measurement, the "
+                                  f"substrate and the film model; do not use these values."))
+    elif s is not None and s.vary and abs(s.value - 1) > SCALE_LIMIT:
         out.append(Reason("check", f"The 100 % line scale came out at {s.value:.3f}, far outside "
                                    f"the ±1 % an instrument's baseline allows: check the "
                                    f"baseline/reference measurement, the substrate and the "

@@ -5,6 +5,7 @@ published n, κ (Ta2O5: Gao 2012; a-Si: Pierce & Spicer 1972) on fused silica (M
 1965); the fringe relations are Swanepoel's (J. Phys. E 16, 1214, 1983).
 """
 
+import dataclasses
 import math
 
 import numpy as np
@@ -159,3 +160,33 @@ def test_scan_range_reaches_past_a_seed_made_thin_by_faint_fringes():
     assert autostart.scan_range(seed, (1.0, 1500.0), 312.0, 1100.0, faint=True)[1] == 1500.0
     assert autostart.scan_range(seed, bounds, 312.0, 1100.0, (100.0, 400.0),
                                 faint=True) == (100.0, 400.0)
+
+
+def test_edge_start_takes_the_envelope_index_only_where_the_film_is_clear():
+    # a-Si (Pierce & Spicer 1972) 500 nm on fused silica, made with tmm: on its edge
+    # (650-950 nm) the falling T shifts the fringe extrema and the envelope's n comes
+    # out 0.4 low, with the wrong dispersion (Swanepoel 1983 assumes weak absorption).
+    # The edge fit must use the n points of the clear part only: the same starts
+    # with or without the points on the edge.
+    from fitting.fit import FitOptions
+    from fitting.objective import build_part
+    from fitting.presets import default_stack
+    from fitting.spectrum import Spectrum
+    from fitting.startplan import seed_and_edge
+
+    wl = grid(400.0, 1100.0, 2.0)
+    T, _ = measure(material("a-Si"), 500.0, substrate("fused_silica"), wl,
+                   Instrument(noise=0.002), 5)
+    stack = default_stack("tauc_lorentz", "fused_silica")
+    part = build_part(0, Spectrum(wl, T), stack, FitOptions())
+    seed, edge = seed_and_edge(part, part.stack.substrate.N(part.wl).real)
+    lam, n = (np.asarray(a, float) for a in seed.n_points)
+    clear = lam >= edge.clear_nm[0]
+    assert clear.any() and not clear.all()        # the case has points on both sides
+    mat = stack.layers[0].material
+    free = [k for k, p in mat.params.items() if p.vary]
+    args = (mat, mat.values(), edge)
+    both = autostart.edge_candidates(*args, seed, free, 400.0, 1100.0)
+    only_clear = autostart.edge_candidates(
+        *args, dataclasses.replace(seed, n_points=(lam[clear], n[clear])), free, 400.0, 1100.0)
+    assert both == only_clear

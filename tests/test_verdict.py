@@ -300,10 +300,13 @@ def test_large_uncertainty_is_check(good):
     assert v == "check" and "more than 5 % of the value" in why[-1]
 
 
-def test_scale_far_from_one_is_check(good):
+def test_scale_far_from_one_is_check_and_very_far_poor(good):
+    # Prior of the scale: 1 ± 1 % (an instrument's 100 % line, common practice).
     assert judge(_with_param(good, "scale", value=1.02))[0] == "good"
-    v, why = judge(_with_param(good, "scale", value=1.05))
-    assert v == "check" and "scale came out at 1.050" in why[0]
+    v, why = judge(_with_param(good, "scale", value=1.04))
+    assert v == "check" and "scale came out at 1.040" in why[0]
+    v, why = judge(_with_param(good, "scale", value=0.92))      # 8 %: beyond any baseline
+    assert v == "poor" and "scale came out at 0.920" in why[0] and "8 % off" in why[0]
 
 
 def test_implausible_indices_are_check(good):
