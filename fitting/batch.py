@@ -97,6 +97,7 @@ from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,
 from .errors import PellucidError, RecipeError
 from .jsonsafe import finite_or_none, json_safe
 from .limits import overall_state
+from .pool import BATCH_PRELOAD, start_workers_early
 from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, load_recipe, recipe_from_dict,
                      recipe_hash, recipe_identity)
 from .spectrum import sha256_of_file
@@ -115,7 +116,7 @@ VERDICTS = ("good", "check", "poor")
 #: How long to try reaching a Dask scheduler before giving up.
 DASK_CONNECT_TIMEOUT_S = 20
 #: Imported once by the fork server, so each worker starts with the fit engine loaded.
-_PRELOAD = ["fitting.batch", "fitting.fit", "fitting.reader", "fitting.export"]
+_PRELOAD = list(BATCH_PRELOAD)
 
 
 class BatchInputError(PellucidError, ValueError):
@@ -834,6 +835,8 @@ def iter_batch(paths, recipe: Recipe | None, out_dir, *, jobs: int | None = None
         raise BatchInputError(f"{out_dir}: output path exists and is not a folder")
     if jobs is not None and (isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1):
         raise BatchInputError(f"jobs = {jobs!r}: must be a whole number of at least 1")
+    if scheduler is None:
+        start_workers_early(jobs)
     plan = _plan(paths, recipe, figures)
     # Results already in the output folder's own areas are never inputs.
     plan_keep = [(p, k) for p, k in zip(plan.paths, plan.recipe_of)

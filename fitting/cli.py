@@ -383,6 +383,10 @@ def _batch_inputs(args, inputs, recipe_path):
 
 
 def _batch(args, out, err, *, inputs=None, recipe_path=None, outdir=None) -> int:
+    if not getattr(args, "scheduler", None):
+        # Before the imports below: the workers' modules load on another core meanwhile.
+        from .pool import start_workers_early
+        start_workers_early(args.jobs)
     from .batch import iter_batch
     items, recipe = _batch_inputs(args, inputs, recipe_path)
     outdir = Path(outdir or args.out)

@@ -150,9 +150,11 @@ def test_batch_counts_option_and_batch_only_report(capsys):
                       "runs": [{"spectra": 10, "wall_s": 5.0, "spectra_per_s": 2.0,
                                 "seconds_per_spectrum": 0.5, "peak_tree_rss_bytes": 2 ** 28,
                                 "peak_main_rss_bytes": 2 ** 27}],
-                      "reference_s_per_spectrum_one_process": 0.4, "efficiency": 0.4},
+                      "reference_s_per_spectrum_one_process": 0.4, "efficiency": 0.4,
+                      "reference_inputs": 7},
             "targets": {"batch_at_least_10_spectra_per_s": {"value": 2.0, "met": False}},
             "agreement_tol": 1e-9, "all_agree": True, "total_s": 1.0}
     text = bench.format_report(fake)
     assert "Forward model" not in text
     assert "256 / 128" in text and "efficiency 40%" in text and "NOT met" in text
+    assert "mean over the 7 distinct input spectra" in text

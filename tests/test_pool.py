@@ -5,9 +5,12 @@ end in test_cli.py (test_workers_end_when_the_batch_process_is_killed).
 """
 
 import os
+import subprocess
+import sys
 import time
 from concurrent.futures import wait
 
+import pytest
 
 from fitting.pool import WorkerPool
 
@@ -62,3 +65,32 @@ def _running(pid: int) -> bool:
             return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
     except OSError:
         return True
+
+
+_EARLY = """
+import sys, time
+from multiprocessing import forkserver
+from fitting.pool import BATCH_PRELOAD, start_workers_early
+server = forkserver._forkserver
+assert not start_workers_early(1)                  # one job: no worker processes at all
+assert server._forkserver_pid is None
+assert start_workers_early(2)
+pid = server._forkserver_pid
+assert start_workers_early(2) and server._forkserver_pid == pid      # started once
+# It returned without importing the fit engine here: the server does that.
+assert "fitting.fit" not in sys.modules and "scipy" not in sys.modules
+deadline = time.monotonic() + 60
+while "forkserver" not in (cmdline := open(f"/proc/{pid}/cmdline", "rb").read().decode()):
+    assert time.monotonic() < deadline, "the fork server did not start"
+    time.sleep(0.02)                   # between its fork and its exec
+assert all(m in cmdline for m in BATCH_PRELOAD), repr(cmdline)
+print("ok")
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="reads /proc")
+def test_start_workers_early_starts_the_preloading_server_and_returns():
+    # A fresh interpreter: the fork server is one per process and tests share ours.
+    out = subprocess.run([sys.executable, "-c", _EARLY], capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr[-2000:]
