@@ -63,6 +63,9 @@ THICKNESS_CORRELATION = 0.98
 #: A scale further than this from 1 (2.5σ of its ±1 % prior) is a baseline or model
 #: problem, not an instrument tolerance.
 SCALE_LIMIT = 0.025
+#: A scale this far from 1 (7.5σ of its prior) is beyond any instrument's baseline:
+#: the fit is hiding a model or substrate error in it (common practice threshold).
+SCALE_POOR = 3 * SCALE_LIMIT
 #: Runs-test z below which a misfit is systematic however small (chance: |z| < 4).
 SYSTEMATIC_RUNS_Z = -8.0
 #: A fitted thickness non-uniformity above this (rms, relative) is more than coatings
@@ -287,7 +290,7 @@ def reasons(result) -> list[Reason]:
                                    f"known index, or measure further into the UV or a thicker "
                                    f"film."))
     s = result.params.get("scale")
-    if s is not None and s.vary and abs(s.value - 1) > 2 * SCALE_LIMIT:
+    if s is not None and s.vary and abs(s.value - 1) > SCALE_POOR:
         out.append(Reason("poor", f"The 100 % line scale came out at {s.value:.3f}: no "
                                   f"instrument's baseline is {100 * abs(s.value - 1):.0f} % "
                                   f"off, so the fit used it to hide a model or substrate "
