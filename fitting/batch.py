@@ -115,8 +115,6 @@ STATUSES = ("ok", "failed", "error")
 VERDICTS = ("good", "check", "poor")
 #: How long to try reaching a Dask scheduler before giving up.
 DASK_CONNECT_TIMEOUT_S = 20
-#: Imported once by the fork server, so each worker starts with the fit engine loaded.
-_PRELOAD = list(BATCH_PRELOAD)
 
 
 class BatchInputError(PellucidError, ValueError):
@@ -1163,7 +1161,7 @@ def _run_pool(tasks, context, jobs: int, stop, active, *, figures=False):
 
     def new_pool():
         return WorkerPool(jobs, initializer=_worker_setup, initargs=(context, figures),
-                          preload=_PRELOAD)
+                          preload=BATCH_PRELOAD)
 
     retry: list = []                 # tasks to run again after a worker crash
     crashes: dict[int, int] = {}

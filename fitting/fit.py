@@ -415,8 +415,7 @@ def _auto_spread(obj: Objective, polished: list) -> None:
     # more often a stand-in for a wrong index contrast than real: it must then be
     # demanded by the data, by the Bayesian information criterion's price ln N
     # (Schwarz 1978) instead of Akaike's 2.
-    n_points = sum(int(p.y.size) for p in obj.parts)
-    needed = math.log(max(n_points, 3)) if trial.values["thickness_spread"] > SPREAD_LIMIT \
+    needed = math.log(max(obj.ndata, 3)) if trial.values["thickness_spread"] > SPREAD_LIMIT \
         else 2.0
     if gain > needed:
         obj.release("thickness_spread")
