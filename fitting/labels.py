@@ -68,7 +68,8 @@ def format_pm(value, sigma=None, unit: str = "", *, fmt: str = ".1f",
     fmt, sigma_fmt : str
         Format specs of the value and of σ (``sigma_fmt`` defaults to ``fmt``): ``".1f"``
         for a thickness in nm; ``".2g"`` gives σ to two significant digits (GUM,
-        JCGM 100:2008, 7.2.6: "at most two significant digits").
+        JCGM 100:2008, 7.2.6: "at most two significant digits"). ``sigma_fmt`` may
+        also be a function of σ returning text, e.g. :func:`two_digits`.
     sep : str
         ``" ± "``; ``" +/- "`` for ASCII text reports.
     """
@@ -76,8 +77,11 @@ def format_pm(value, sigma=None, unit: str = "", *, fmt: str = ".1f",
     if v is None:
         return missing
     s = finite_or_none(sigma)
-    text = format(v, fmt) if s is None else \
-        f"{format(v, fmt)}{sep}{format(s, sigma_fmt or fmt)}"
+    if s is None:
+        text = format(v, fmt)
+    else:
+        s_text = sigma_fmt(s) if callable(sigma_fmt) else format(s, sigma_fmt or fmt)
+        text = f"{format(v, fmt)}{sep}{s_text}"
     text = f"{text} {unit}".rstrip()
     return f"{text} {no_sigma}" if s is None and no_sigma else text
 

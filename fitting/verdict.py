@@ -41,7 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .autostart import PLAUSIBLE_N_MIN
-from .labels import param_label, two_digits
+from .labels import format_pm, param_label, two_digits
 from .result import Diagnostics
 
 __all__ = ["diagnose", "judge", "runs_test_z", "Reason", "PHOTOMETRIC_ACCURACY",
@@ -204,7 +204,7 @@ def _extrema_in_range(result) -> int | None:
 
 
 def _fmt_u(u) -> str:
-    return f"{u.value:.4g} ± {two_digits(u.expanded)} {u.unit}".rstrip()
+    return format_pm(u.value, u.expanded, u.unit, fmt=".4g", sigma_fmt=two_digits)
 
 
 def reasons(result) -> list[Reason]:

@@ -93,6 +93,8 @@ def test_format_pm_value_sigma_and_unit():
     assert format_pm(231.04, 0.0612) == "231.0 ± 0.1"
     assert format_pm(3.2104, 0.0123, "eV", fmt=".3f") == "3.210 ± 0.012 eV"
     assert format_pm(1.5, 0.25, fmt=".6g", sigma_fmt=".3g", sep=" +/- ") == "1.5 +/- 0.25"
+    # an expanded uncertainty keeps its second digit (GUM 7.2.6)
+    assert format_pm(231.04, 1.0, "nm", fmt=".4g", sigma_fmt=two_digits) == "231 ± 1.0 nm"
 
 
 def test_format_pm_never_prints_nan():
