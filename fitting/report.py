@@ -299,7 +299,7 @@ def _footer(fig, text, page, pages):
 
 _COLS = [  # header, x position (fraction of the table width), alignment
     ("#", 0.035, "right"), ("file", 0.05, "left"), ("sha256", 0.335, "left"),
-    ("status", 0.44, "left"), ("verdict", 0.49, "left"),
+    ("status", 0.44, "left"), ("verdict", 0.505, "left"),
     ("thickness (nm)", 0.69, "right"), ("n(633)", 0.77, "right"),
     ("χ²_red", 0.86, "right"), ("spec", 0.93, "right"), ("warn.", 0.995, "right"),
 ]
