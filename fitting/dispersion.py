@@ -146,6 +146,19 @@ class Dispersion(_HasParams):
         """:meth:`N` without input checks, for the fit engine's inner loop."""
         return self._N(wl, v)
 
+    def dN(self, wl: np.ndarray, v: Mapping[str, float], names, N0=None) -> np.ndarray:
+        """dN/dθ on ``wl`` for each parameter θ in ``names``: shape (len(names), W).
+
+        Forward differences of relative step √ε (scipy's ``approx_derivative``
+        "2-point"), taken inwards at a parameter's upper bound and the other way
+        when the model refuses the shifted value. ``N0`` is N at ``v`` if known.
+        Models with parameters that enter linearly override this with exact terms.
+        """
+        if N0 is None:
+            N0 = self.N_unchecked(wl, v)
+        return np.array([_forward_dN(lambda vv: self.N_unchecked(wl, vv), v, k,
+                                     self.params[k].max, N0) for k in names])
+
     def epsilon(self, wavelength_nm, values=None) -> np.ndarray:
         """Complex dielectric function ε = N²."""
         return self.N(wavelength_nm, values) ** 2
@@ -219,6 +232,32 @@ class Dispersion(_HasParams):
     def __repr__(self) -> str:
         vals = ", ".join(f"{k}={p.value:g}" for k, p in self.params.items())
         return f"{type(self).__name__}({vals})"
+
+
+#: Relative step of forward differences: √ε, as scipy's ``approx_derivative`` "2-point".
+EPS_STEP = math.sqrt(np.finfo(float).eps)
+
+
+def _forward_dN(model, v: Mapping[str, float], name: str, upper: float, f0) -> np.ndarray:
+    """(f(v + h e_name) - f0)/h for a function ``model`` of the parameter values.
+
+    The step h = √ε·max(|x|, 1) is taken inwards at the upper bound, and the other
+    way when the model refuses the shifted value (a Tauc-Lorentz C at 2·E0).
+    """
+    x = v[name]
+    h = EPS_STEP * max(abs(x), 1.0)
+    if x + h > upper:
+        h = -h
+    for step in (h, -h):
+        try:
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                f1 = model({**v, name: x + step})
+        except ParameterError:
+            continue
+        if np.all(np.isfinite(f1)):
+            return (f1 - f0) / step
+    raise ParameterError(name, x, "the model cannot be evaluated on either side of this "
+                                  "value to take its derivative")
 
 
 def _sqrt_eps(eps: np.ndarray) -> np.ndarray:
@@ -422,6 +461,11 @@ class Term(_HasParams):
         """Starting values of this term from the measured edge (see Dispersion.edge_starts)."""
         return []
 
+    def dchi(self, E: np.ndarray, v: Mapping[str, float], names, chi0) -> np.ndarray:
+        """dχ/dθ for each parameter in ``names`` (forward differences; see Dispersion.dN)."""
+        return np.array([_forward_dN(lambda vv: self.chi(E, vv), v, k, self.params[k].max,
+                                     chi0) for k in names])
+
     @staticmethod
     def check(v: Mapping[str, float]) -> None:
         """Raise :class:`ParameterError` for parameter sets outside the term's domain."""
@@ -544,6 +588,37 @@ class TaucLorentz(Term):
     #: How many edge shapes :meth:`chi` keeps (one Jacobian moves E0, C, Eg in turn).
     SHAPE_CACHE = 4
 
+    def dchi(self, E, v, names, chi0):
+        """dχ/dθ: exact for the amplitude A (χ is A times a shape), forward differences
+        for E0, C and Eg, all shifted shapes computed in one vectorised call."""
+        out = np.empty((len(names), np.size(E)), dtype=complex)
+        shape_names = [k for k in names if k != "A"]
+        if "A" in names:
+            out[names.index("A")] = self.chi(E, {**v, "A": 1.0})
+        if not shape_names:
+            return out
+        keys = ("E0", "C", "Eg")
+        base = np.array([float(v[k]) for k in keys])
+        steps = []
+        for k in shape_names:
+            i = keys.index(k)
+            h = EPS_STEP * max(abs(base[i]), 1.0)
+            if base[i] + h > self.params[k].max:
+                h = -h
+            trial = base.copy()
+            trial[i] += h
+            if not trial[1] < 2 * trial[0]:      # C must stay below 2·E0
+                h = -h
+            steps.append((i, h))
+        P = np.repeat(base[None, :], len(steps), axis=0)
+        for row, (i, h) in enumerate(steps):
+            P[row, i] += h
+        shifted = v["A"] * tauc_lorentz_chi_many(np.asarray(E, float), P[:, 0], P[:, 1],
+                                                 P[:, 2])
+        for row, (k, (_, h)) in enumerate(zip(shape_names, steps)):
+            out[names.index(k)] = (shifted[row] - chi0) / h
+        return out
+
     def __getstate__(self):
         # The shape cache is a speed-up of this process only: not pickled to workers.
         state = dict(self.__dict__)
@@ -582,6 +657,38 @@ def tauc_lorentz_chi(E, A, E0, C, Eg):
         dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
     eps1 = t1 + t2 + t3 + t4 + t5
     eps2 = np.where(E > Eg, A * E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
+                    0.0)
+    return eps1 + 1j * eps2
+
+
+def tauc_lorentz_chi_many(E, E0, C, Eg):
+    """:func:`tauc_lorentz_chi` with A = 1 for several (E0, C, Eg) at once: shape (K, W).
+
+    The same closed form with the parameters as column vectors, so the shifted
+    shapes of a Jacobian cost one pass over the grid instead of one each.
+    """
+    E0, C, Eg = (np.asarray(x, float)[:, None] for x in (E0, C, Eg))
+    if not np.all(C < 2 * E0):
+        raise ParameterError("C", float(np.max(C)), "Tauc-Lorentz needs C < 2·E0")
+    E = np.asarray(E, dtype=float)[None, :]
+    E2 = E * E
+    a = np.sqrt(4 * E0 * E0 - C * C)
+    g2 = E0 * E0 - C * C / 2
+    z4 = (E2 - g2) ** 2 + a * a * C * C / 4
+    a_ln = (Eg * Eg - E0 * E0) * E2 + Eg * Eg * C * C - E0 * E0 * (E0 * E0 + 3 * Eg * Eg)
+    a_atan = (E2 - E0 * E0) * (E0 * E0 + Eg * Eg) + Eg * Eg * C * C
+    dE = np.maximum(np.abs(E - Eg), 1e-12)
+    t1 = C * a_ln / (2 * np.pi * z4 * a * E0) * np.log(
+        (E0 * E0 + Eg * Eg + a * Eg) / (E0 * E0 + Eg * Eg - a * Eg))
+    t2 = -a_atan / (np.pi * z4 * E0) * (
+        np.pi - np.arctan((2 * Eg + a) / C) + np.arctan((a - 2 * Eg) / C))
+    t3 = 2 * E0 * Eg * (E2 - g2) / (np.pi * z4 * a) * (
+        np.pi + 2 * np.arctan(2 * (g2 - Eg * Eg) / (a * C)))
+    t4 = -E0 * C * (E2 + Eg * Eg) / (np.pi * z4 * E) * np.log(dE / (E + Eg))
+    t5 = 2 * E0 * C * Eg / (np.pi * z4) * np.log(
+        dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
+    eps1 = t1 + t2 + t3 + t4 + t5
+    eps2 = np.where(E > Eg, E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
                     0.0)
     return eps1 + 1j * eps2
 
@@ -640,6 +747,34 @@ class Oscillators(Dispersion):
                 t.check({k: v[pre + k] for k in t.params})
             except ParameterError as e:
                 raise ParameterError(pre + e.name, e.value, e.reason) from None
+
+    def dN(self, wl, v, names, N0=None):
+        """dN/dθ = (dε/dθ)/(2N): dε/dε∞ = 1, each term's dχ/dθ from the term itself
+        (see :meth:`Dispersion.dN`). Falls back to differences of N where N is
+        near 0 (dN/dε is singular there)."""
+        if N0 is None:
+            N0 = self.N_unchecked(wl, v)
+        if np.min(np.abs(N0)) < 1e-3:
+            return super().dN(wl, v, names, N0)
+        E = HC_EV_NM / wl
+        deps = np.zeros((len(names), wl.size), dtype=complex)
+        row = {k: i for i, k in enumerate(names)}
+        if "eps_inf" in row:
+            deps[row["eps_inf"]] = 1.0
+        for i, t in enumerate(self.terms, start=1):
+            pre = f"o{i}_"
+            mine = [k for k in t.params if pre + k in row]
+            if mine:
+                tv = {k: v[pre + k] for k in t.params}
+                d = t.dchi(E, tv, mine, t.chi(E, tv))
+                for k, dk in zip(mine, d):
+                    deps[row[pre + k]] = dk
+        eps0 = N0 * N0
+        # Where the model gives Im ε <= 0 (below a gap), N is held at κ = 0 (see
+        # _sqrt_eps): an ε2 that cannot go negative has no downward slope there.
+        clear = ~(eps0.imag > 0)
+        deps = np.where(clear[None, :] & (deps.imag < 0), deps.real + 0j, deps)
+        return deps / (2 * N0)
 
     def components(self, wavelength_nm, values=None) -> list[np.ndarray]:
         """Each term's χ(λ), for plotting the parts of a fitted model."""

@@ -47,7 +47,7 @@ from __future__ import annotations
 import math
 import threading
 import time
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, fields, replace
 from collections.abc import Iterator, Mapping
 
 import numpy as np
@@ -555,10 +555,16 @@ def _fringe_stages(obj: Objective, starts, plan, info: dict, fallback: list):
     Each stage runs for every surviving start; one whose χ² is more than 3 times
     the best after a stage is dropped (common practice: a wrong order never
     recovers). A right basin converges in a few Jacobians, so each run is capped
-    at 10 (P + 1) evaluations. Returns the surviving (label, values), best first.
+    at 10 (P + 1) evaluations; every start after the first gets 3 (P + 1) first
+    and the rest only if it is then within 5 times the best χ² so far. On a
+    dense grid the stages use every k-th point (see :func:`_thinned`). Returns
+    the surviving (label, values), best first.
     """
     pool = [(math.inf, label, values) for label, values in starts]
     n_st = len(plan.stages)
+    # Bringing a start into its basin does not need every point of a dense grid.
+    plan = replace(plan, stages=[_thinned(obj, masks, [v for *_, v in pool])
+                                 for masks in plan.stages])
     cap = 10 * (len(obj.var_names) + 1)
     first = 3 * (len(obj.var_names) + 1)
     for j, masks in enumerate(plan.stages):
@@ -567,10 +573,10 @@ def _fringe_stages(obj: Objective, starts, plan, info: dict, fallback: list):
             obj.enter("fringe", j * len(pool) + i, n_st * len(pool), cap,
                       f"fringe fit of {label}")
             kw = dict(fixed=plan.fixed, masks=masks, x_scale="jac")
-            if len(done) >= 2:
-                # Starts after the two best of the scan get a few steps first; one
-                # still far worse than the best so far is not worth the rest (a
-                # wrong order; a thin-film basin can look good before it moves).
+            if done:
+                # Later starts get a few steps first; one still far worse than the
+                # best so far is not worth the rest (a wrong order). The 5x margin
+                # leaves room for a basin that looks poor before it moves.
                 res = obj.minimize("least_squares", values, max_nfev=first, **kw)
                 if float(res.chisqr) <= 5.0 * min(c for c, *_ in done):
                     res = obj.minimize("least_squares", res.params.valuesdict(),
@@ -587,6 +593,48 @@ def _fringe_stages(obj: Objective, starts, plan, info: dict, fallback: list):
         info.setdefault("stage_a", []).append(
             [{"label": label, "chisqr": c} for c, label, _ in done])
     return [(label, v) for _, label, v in pool]
+
+
+#: Fewest points per fringe period a thinned fringe stage keeps (common practice:
+#: a period sampled by ~10 points or more is fitted as well as by all of them).
+MIN_POINTS_PER_FRINGE = 12
+#: Thinning never keeps fewer than one point in this many.
+MAX_THINNING = 4
+
+
+def _thinned(obj: Objective, masks, starts):
+    """The stage's point masks keeping every k-th point where the fringes allow it.
+
+    The fringe stages only have to bring each start into its basin; a fringe
+    period of Δλ = λ²/(2nd) at the shortest wavelength used, sampled by
+    :data:`MIN_POINTS_PER_FRINGE` points or more, is followed as well by every
+    k-th point as by all of them, at 1/k of the cost. The final fit uses all.
+    """
+    found = scanned_film(obj)
+    if found is None or not starts:
+        return masks
+    tname = found[0]
+    part = obj.parts[0]
+    m0 = np.ones(part.wl.size, bool) if masks is None or masks[0] is None else masks[0]
+    wl = part.wl[m0]
+    if wl.size < 4:
+        return masks
+    w_lo = float(wl.min())
+    nd = max(max(_film_n(obj, v, w_lo), 1.0) * v[tname] for v in starts)
+    if not (nd > 0 and math.isfinite(nd)):
+        return masks
+    step = float(np.median(np.diff(wl)))
+    per_fringe = w_lo * w_lo / (2 * nd) / step
+    k = int(min(MAX_THINNING, per_fringe // MIN_POINTS_PER_FRINGE))
+    if k < 2:
+        return masks
+    out = []
+    for p, m in zip(obj.parts, masks if masks is not None else [None] * len(obj.parts)):
+        m = np.ones(p.wl.size, bool) if m is None else m.copy()
+        idx = np.flatnonzero(m)
+        m[idx[np.arange(idx.size) % k != 0]] = False
+        out.append(m)
+    return out
 
 
 def _distinct(pool, film):

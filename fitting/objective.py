@@ -35,11 +35,12 @@ import math
 import re
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from collections.abc import Callable
 
 import lmfit
 import numpy as np
+from scipy.optimize import least_squares
 
 from .errors import FitError, PellucidError
 from .reference import estimate_noise
@@ -114,6 +115,19 @@ class Part:
             u = self.u if sm.wavelength_nm.size == self.u.size else self.u_at(sm.wavelength_nm)
             scale = scale + local["tilt"] * u
         return scale * m + local.get("offset", 0.0)
+
+
+    def restricted(self, keep: np.ndarray) -> Part:
+        """This part on a subset of its used points (``keep`` runs over them), with a
+        model bound to just those wavelengths: a fit stage on part of a spectrum then
+        costs what its points cost, not what the whole spectrum does."""
+        idx = np.flatnonzero(keep)
+        used = np.zeros_like(self.used)
+        used[np.flatnonzero(self.used)[idx]] = True
+        model = StackModel(self.stack, self.wl[idx], angle_deg=math.degrees(self.model.angle_rad),
+                           polarization=self.polarization)
+        return replace(self, used=used, wl=self.wl[idx], y=self.y[idx], sigma=self.sigma[idx],
+                       u=self.u[idx], model=model, names=list(self.names))
 
 
 def build_part(index: int, spectrum, stack: Stack, options) -> Part:
@@ -222,6 +236,10 @@ class RunResult:
     covar: None = None
 
 
+class _RunEnded(Exception):
+    """Raised inside one minimiser run when its cap, the budget or a stop ends it."""
+
+
 class _Stop(Exception):
     """Raised inside the engine when the budget, the time limit or the user ends a fit."""
 
@@ -255,7 +273,7 @@ class Objective:
         self.stage, self._frac = "start", (0.0, 0.05)
         self._stage_nfev0, self._stage_expect = 0, 1
         self._last_report = 0.0
-        self._masks = None          # per-part point selections of a staged fit
+        self._staged = False        # a run on part of the points (its χ² is not the fit's)
         self._stage_limit = math.inf  # evaluation cap of the current minimiser run
         self._run_best = (math.inf, None)  # best point of the current minimiser run
         self.priors: list[tuple[str, float, float]] = []   # (name, mean, 1σ)
@@ -376,9 +394,6 @@ class Objective:
     def residual(self, params) -> np.ndarray:
         """Concatenated weighted residuals (the function lmfit minimises)."""
         out = [self.part_residual(p, self.local_values(p, params)) for p in self.parts]
-        masks = self._masks
-        if masks is not None:
-            out = [r[m] for r, m in zip(out, masks)]
         if self.priors:
             out.append(self.prior_residual(params))
         r = out[0] if len(out) == 1 else np.concatenate(out)
@@ -387,9 +402,118 @@ class Objective:
         if chi2 < self._run_best[0]:
             self._run_best = (chi2, params.valuesdict() if isinstance(params, lmfit.Parameters)
                               else dict(params))
-            if masks is None and chi2 < self.best_chisqr:
+            if not self._staged and chi2 < self.best_chisqr:
                 self.best_chisqr, self.best_values = chi2, self._run_best[1]
         return r
+
+    def jacobian(self, params, names) -> np.ndarray:
+        """d residual / d parameter for the varied ``names``, shape (residuals, names).
+
+        Residual r = (y - (s + t·u)·M - o)/σ: the scale, tilt and offset columns
+        are exact (-M/σ, -u·M/σ, -1/σ), the stack's thickness and material
+        columns come from :meth:`StackModel.RT_jacobian` (the chain rule through
+        each film's N(λ)), and anything else (angle, thickness spread) from a
+        forward difference of the part's residual. Each call counts as
+        ``len(names)`` evaluations, what a forward-difference Jacobian costs, so
+        the evaluation caps of the fit stages keep their meaning in iterations.
+        """
+        names = list(names)
+        col = {k: j for j, k in enumerate(names)}
+        blocks = []
+        for part in self.parts:
+            local = self.local_values(part, params)
+            blocks.append(self._part_jacobian(part, local, [
+                (col[g], loc) for g, loc in part.names if g in col]))
+        if self.priors:
+            prior = np.zeros((len(self.priors), len(names)))
+            for i, (k, _, sd) in enumerate(self.priors):
+                if k in col:
+                    prior[i, col[k]] = 1.0 / sd
+            blocks.append(prior)
+        self.nfev += len(names)
+        return blocks[0] if len(blocks) == 1 else np.concatenate(blocks)
+
+    def _part_jacobian(self, part: Part, local: dict, cols) -> np.ndarray:
+        J = np.zeros((part.y.size, max((j for j, _ in cols), default=-1) + 1))
+        sm = part.model
+        stack_cols = [(j, loc) for j, loc in cols if loc in sm.parameter_names]
+        other = [(j, loc) for j, loc in cols if loc not in sm.parameter_names]
+        try:
+            with np.errstate(all="ignore"):
+                # The model as part.evaluate binds it (angle, spread), with derivatives.
+                part.evaluate(local)
+                R, T, dR, dT = part.model.RT_jacobian(local, [loc for _, loc in stack_cols])
+        except PellucidError:
+            return J               # a refused point: the flat residual has no slope
+        M, dM = (T, dT) if part.quantity == "T" else (R, dR)
+        scale = local.get("scale", 1.0) + (local["tilt"] * part.u if "tilt" in local else 0.0)
+        with np.errstate(all="ignore"):
+            for row, (j, _) in enumerate(stack_cols):
+                J[:, j] = -scale * dM[row] / part.sigma
+            r0 = None
+            for j, loc in other:
+                if loc == "scale":
+                    J[:, j] = -M / part.sigma
+                elif loc == "tilt":
+                    J[:, j] = -part.u * M / part.sigma
+                elif loc == "offset":
+                    J[:, j] = -1.0 / part.sigma
+                else:
+                    if r0 is None:
+                        r0 = self.part_residual(part, local)
+                    J[:, j] = self._difference(part, local, loc, r0)
+        J[~np.isfinite(J)] = 0.0
+        return J
+
+    def _difference(self, part: Part, local: dict, loc: str, r0) -> np.ndarray:
+        """Forward difference of a part's residual by one local parameter (inwards at
+        the upper bound)."""
+        g = next(g for g, name in part.names if name == loc)
+        x, hi = local[loc], self.params[g].max
+        h = math.sqrt(np.finfo(float).eps) * max(abs(x), 1.0)
+        if x + h > hi:
+            h = -h
+        r1 = self.part_residual(part, {**local, loc: x + h})
+        self.part_residual(part, local)     # rebind the model to the point itself
+        return (r1 - r0) / h
+
+    def _least_squares(self, params: lmfit.Parameters, **kws) -> RunResult:
+        """scipy's trust-region reflective least squares from ``params`` (varied ones
+        free within their bounds), with lmfit's default tolerances."""
+        names = [k for k, p in params.items() if p.vary]
+        base = params.valuesdict()
+        x0 = np.array([base[k] for k in names], dtype=float)
+        lo = np.array([params[k].min for k in names], dtype=float)
+        hi = np.array([params[k].max for k in names], dtype=float)
+
+        def at(x):
+            v = dict(base)
+            v.update(zip(names, (float(t) for t in x)))
+            return v
+
+        def fun(x):
+            r = self.residual(at(x))
+            if self.iter_cb(None, self.nfev, r):
+                raise _RunEnded
+            return r
+
+        def jac(x):
+            if self.nfev + len(names) > self.max_nfev:
+                # A Jacobian counts as len(names) evaluations: one that would pass
+                # the budget is not started.
+                self.stop_reason = self.stop_reason or self._budget_message()
+                raise _RunEnded
+            return self.jacobian(at(x), names)
+
+        opts = dict(method="trf", ftol=1e-8, xtol=1e-8, gtol=1e-8, x_scale=1.0,
+                    max_nfev=10 ** 9)
+        opts.update(kws)
+        sol = least_squares(fun, x0, jac=jac, bounds=(lo, hi), **opts)
+        for k, x in zip(names, sol.x):
+            params[k].value = float(x)
+        return RunResult(params=params, aborted=False, success=bool(sol.success),
+                         message=str(sol.message), chisqr=float(sol.fun @ sol.fun),
+                         nfev=self.nfev, var_names=names)
 
     def prior_residual(self, values) -> np.ndarray:
         """(x - mean)/σ of each parameter with a Gaussian prior (an empty array if none)."""
@@ -412,9 +536,12 @@ class Objective:
             self.stop_reason = (f"time limit of {self.options.time_limit_s:g} s reached; "
                                 f"raise the time limit or give a better start")
         elif self.nfev >= self.max_nfev:
-            self.stop_reason = (f"evaluation budget of {self.max_nfev} model evaluations "
-                                f"used up; raise max_nfev or give a better start")
+            self.stop_reason = self._budget_message()
         return bool(self.stop_reason)
+
+    def _budget_message(self) -> str:
+        return (f"evaluation budget of {self.max_nfev} model evaluations used up; raise "
+                f"max_nfev or give a better start")
 
     def iter_cb(self, params, it, resid, *args, **kws) -> bool:
         """lmfit iteration callback: report progress, return True to abort."""
@@ -495,19 +622,33 @@ class Objective:
             params[k].vary = True
         for k, (lo, hi) in (bounds or {}).items():
             params[k].set(min=max(lo, params[k].min), max=min(hi, params[k].max))
-        mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
-                               max_nfev=self.remaining_nfev() + 10 ** 7, scale_covar=True)
-        self._masks = None if masks is None else list(masks)
+        # least_squares runs scipy directly, with the Jacobian of :meth:`jacobian`:
+        # lmfit's wrapper adds a parameter copy per run and a call per evaluation
+        # that a fit of a few hundred evaluations notices. Ties need lmfit.
+        direct = method == "least_squares" and not any(p.expr for p in params.values())
+        parts = self.parts
+        if masks is not None:
+            # A stage on part of the points: each part bound to just those wavelengths.
+            self.parts = [p if m is None or np.all(m) else p.restricted(m)
+                          for p, m in zip(parts, masks)]
+            self._staged = True
         self._stage_limit = math.inf if max_nfev is None else self.nfev + max_nfev
         self._run_best = (math.inf, None)
         try:
             with np.errstate(all="ignore"):
-                res = mini.minimize(method=method, **kws)
-        except lmfit.minimizer.AbortFitException:
+                if direct:
+                    res = self._least_squares(params, **kws)
+                else:
+                    mini = lmfit.Minimizer(self.residual, params, iter_cb=self.iter_cb,
+                                           max_nfev=self.remaining_nfev() + 10 ** 7,
+                                           scale_covar=True)
+                    res = mini.minimize(method=method, **kws)
+        except (lmfit.minimizer.AbortFitException, _RunEnded):
             # Some of lmfit's scalar minimisers let the abort through.
             res = None
         finally:
-            self._masks = None
+            self.parts = parts
+            self._staged = False
             self._stage_limit = math.inf
         if res is not None and not res.aborted:
             return res

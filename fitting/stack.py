@@ -41,7 +41,8 @@ from collections.abc import Mapping
 import numpy as np
 from scipy.special import roots_jacobi
 
-from .dispersion import Constant, Dispersion, check_wavelengths, model_from_dict
+from .dispersion import (EPS_STEP, Constant, Dispersion, check_wavelengths,
+                         model_from_dict)
 from .errors import ParameterError, RecipeError
 from .optics import films_RT, outer_media
 from .params import PARAM_FIELDS, Param, check_finite, refuse_unknown_fields
@@ -441,6 +442,10 @@ class StackModel:
         self._names = [(layer, f"{layer.name}_", f"{layer.name}_thickness",
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
+        #: Names :meth:`RT_jacobian` differentiates by: thicknesses and material parameters.
+        self.parameter_names = frozenset(
+            n for _, pre, tname, pnames in self._names
+            for n in (tname, *(pre + k for k in pnames)))
 
     def with_substrate(self, *, dn: float = 0.0, thickness_nm: float | None = None
                        ) -> StackModel:
@@ -467,6 +472,73 @@ class StackModel:
 
     def RT(self, values: Mapping[str, float] | None = None):
         """(R, T) on the bound grid for the given global parameter values."""
+        Ns, ds = self._indices(values)
+        R, T = self._node_RT(Ns, ds)
+        return self._on_grid(R), self._on_grid(T)
+
+    def RT_jacobian(self, values: Mapping[str, float] | None, wrt):
+        """(R, T, dR, dT): R and T with their derivatives by the stack parameters ``wrt``.
+
+        ``wrt`` lists global names of layer thicknesses and material parameters
+        (``film_thickness``, ``film_o1_E0``); dR and dT have shape
+        (len(wrt), W). The derivatives follow the chain rule through each
+        film's index: T depends on a material parameter θ only through N(λ),
+        so dT/dθ = ∂T/∂n · Re dN/dθ + ∂T/∂κ · Im dN/dθ, wavelength by
+        wavelength. ∂T/∂n and ∂T/∂κ come from one model call each with the
+        whole N(λ) shifted (every wavelength is independent of the others), and
+        dN/dθ from the dispersion model alone, so a film with P material
+        parameters costs 3 model calls (n, κ, thickness) and P dispersion calls
+        instead of the P + 1 model calls of forward differences by parameter.
+        Steps are forward differences of relative size √ε (as scipy's
+        ``approx_derivative``), taken inwards at a bound; the slit average
+        (``bandwidth_nm``) is applied after the chain rule, node by node.
+        """
+        values = dict(values or {})
+        Ns, ds = self._indices(values)
+        R0, T0 = self._node_RT(Ns, ds)
+        dR = np.zeros((len(wrt), R0.size))
+        dT = np.zeros((len(wrt), T0.size))
+        index = {}
+        for i, (_layer, pre, tname, pnames) in enumerate(self._names):
+            index[tname] = (i, None)
+            for k in pnames:
+                index[pre + k] = (i, k)
+        by_layer: dict[int, list] = {}
+        for j, name in enumerate(wrt):
+            if name not in index:
+                raise KeyError(f"{name!r} is not a parameter of this stack")
+            by_layer.setdefault(index[name][0], []).append((j, index[name][1]))
+        for i, items in by_layer.items():
+            layer, pre, tname, pnames = self._names[i]
+            N = Ns[i]
+            if any(k is not None for _, k in items):
+                h = EPS_STEP * np.maximum(np.abs(N), 1.0)
+                Rn, Tn = self._node_RT(Ns[:i] + [N + h] + Ns[i + 1:], ds)
+                Rk, Tk = self._node_RT(Ns[:i] + [N + 1j * h] + Ns[i + 1:], ds)
+                gRn, gTn = (Rn - R0) / h, (Tn - T0) / h
+                gRk, gTk = (Rk - R0) / h, (Tk - T0) / h
+                local = {k: values.get(pre + k, layer.material.params[k].value)
+                         for k in pnames}
+            mat_names = [k for _, k in items if k is not None]
+            dNs = dict(zip(mat_names, layer.material.dN(self._wl, local, mat_names, N)
+                           if mat_names else ()))
+            for j, k in items:
+                if k is None:
+                    d = ds[i]
+                    step = EPS_STEP * max(abs(d), 1.0)
+                    if d + step > layer.thickness.max:
+                        step = -step
+                    Rd, Td = self._node_RT(Ns, ds[:i] + [d + step] + ds[i + 1:])
+                    dR[j], dT[j] = (Rd - R0) / step, (Td - T0) / step
+                    continue
+                dN = dNs[k]
+                dR[j] = gRn * dN.real + gRk * dN.imag
+                dT[j] = gTn * dN.real + gTk * dN.imag
+        return (self._on_grid(R0), self._on_grid(T0),
+                self._on_grid(dR), self._on_grid(dT))
+
+    def _indices(self, values):
+        """(Ns, ds): each film's N on the node grid and its thickness, cached per layer."""
         Ns, ds = [], []
         for i, (d, local) in enumerate(self.layer_values(values)):
             if not d >= 0:  # also catches NaN
@@ -492,6 +564,10 @@ class StackModel:
                 self._cache[i] = (key, N)
             Ns.append(N)
             ds.append(d)
+        return Ns, ds
+
+    def _node_RT(self, Ns, ds):
+        """R, T on the node grid (before the slit average), thickness spread included."""
         spread = self.stack.thickness_spread
         if spread > 0:
             # σ: spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength.
@@ -507,15 +583,16 @@ class StackModel:
             # (< 5e-4 of the weight for spread <= 0.3) is lumped at d = 0. The
             # interface terms do not depend on thickness: films_RT computes them
             # once for all nodes.
-            R, T = films_RT(self._outer, Ns, ds,
+            return films_RT(self._outer, Ns, ds,
                             thickness_scales=np.maximum(1 + spread * xs, 0.0), weights=ws)
-        else:
-            R, T = self._rt(Ns, ds)
-        if self._wl is not self.wavelength_nm:
-            shape = (_SLIT_W.size, self.wavelength_nm.size)
-            R = _SLIT_W @ R.reshape(shape)
-            T = _SLIT_W @ T.reshape(shape)
-        return R, T
+        return self._rt(Ns, ds)
+
+    def _on_grid(self, a):
+        """The slit average of node values (last axis) onto the bound grid."""
+        if self._wl is self.wavelength_nm:
+            return a
+        m = self.wavelength_nm.size
+        return _SLIT_W @ a.reshape(a.shape[:-1] + (_SLIT_W.size, m))
 
     def _rt(self, Ns, ds):
         return films_RT(self._outer, Ns, ds)
