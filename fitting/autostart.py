@@ -47,8 +47,10 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.optimize import brentq
 from scipy.signal import find_peaks
 
+from .errors import PellucidError
 from .optics import films_RT, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
@@ -235,6 +237,15 @@ def set_n_level(material, local: dict, name: str, target_n: float, wl_ref: float
         # Target outside what the bounds allow: take the closer end.
         return lo if abs(flo if np.isfinite(flo) else np.inf) < abs(
             fhi if np.isfinite(fhi) else np.inf) else hi
+    # Brent's method needs ~10 model calls where bisection to the same 1e-11 needs 40
+    # (Brent, Algorithms for Minimization without Derivatives, 1973, ch. 4); the
+    # bisection stays for a model that fails inside the bracket.
+    try:
+        x = brentq(f, lo, hi, xtol=1e-12)
+    except (ValueError, RuntimeError):
+        x = math.nan
+    if math.isfinite(x) and np.isfinite(f(x)):
+        return float(x)
     for _ in range(40):
         mid = 0.5 * (lo + hi)
         fm = f(mid)
@@ -337,7 +348,7 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     """
     from scipy.optimize import least_squares
 
-    from .edge import alpha_targets, target_residuals
+    from .edge import alpha_targets, target_arrays, target_residuals_and_slopes
     from .units import HC_EV_NM, alpha_per_cm
     if edge is None or not seed.thickness_nm:
         return [dict(local)]
@@ -367,24 +378,8 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     hi = np.array([material.params[k].max for k in names])
 
     lam_all = np.r_[lam_t, lam_n]          # one model call for both sets of points
-
-    def resid(x, base):
-        v = {**base, **dict(zip(names, x))}
-        n_pri = len(priors(base))
-        try:
-            with np.errstate(all="ignore"):
-                N_all = material.N_unchecked(lam_all, v)
-        except Exception:  # impossible combination while searching
-            return np.full(lam_t.size + n_n.size + n_pri, 10.0)
-        N_t, N_n = N_all[:lam_t.size], N_all[lam_t.size:]
-        a = alpha_per_cm(np.maximum(N_t.imag, 0.0), lam_t)
-        # n from the fringes is good to about 0.03, α from the envelope to a factor
-        # of about 2.7 (one unit of log α); weak priors (log-normal) keep an
-        # oscillator typical where the data say little: amplitude near 100 eV, C
-        # and E0 near the shape's.
-        pri = [math.log(max(v[k], 1e-9) / ref) / w for k, ref, w in priors(base)]
-        r = np.r_[target_residuals(a, targets), (N_n.real - n_n) / 0.03, pri]
-        return np.where(np.isfinite(r), r, 10.0)
+    t_arrays = target_arrays(targets)
+    n_t = lam_t.size
 
     def priors(base):
         out = []
@@ -396,6 +391,50 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
                 out.append((k, base[k], 0.7 if tail == "C" else 0.3))
         return out
 
+    def model(x, base):
+        v = {**base, **dict(zip(names, (float(t) for t in x)))}
+        try:
+            with np.errstate(all="ignore"):
+                return v, material.N_unchecked(lam_all, v)
+        except Exception:  # impossible combination while searching
+            return v, None
+
+    def resid(x, base, pri):
+        v, N_all = model(x, base)
+        if N_all is None:
+            return np.full(lam_all.size + len(pri), 10.0)
+        a = alpha_per_cm(np.maximum(N_all[:n_t].imag, 0.0), lam_t)
+        # n from the fringes is good to about 0.03, α from the envelope to a factor
+        # of about 2.7 (one unit of log α); weak priors (log-normal) keep an
+        # oscillator typical where the data say little: amplitude near 100 eV, C
+        # and E0 near the shape's.
+        r = np.concatenate([target_residuals_and_slopes(a, t_arrays)[0],
+                            (N_all[n_t:].real - n_n) / 0.03,
+                            [math.log(max(v[k], 1e-9) / ref) / w for k, ref, w in pri]])
+        return np.where(np.isfinite(r), r, 10.0)
+
+    def jac(x, base, pri):
+        # Exact through the chain rule: d log α = dκ/κ, dn, and the priors' 1/(x w).
+        v, N_all = model(x, base)
+        J = np.zeros((lam_all.size + len(pri), len(names)))
+        if N_all is None:
+            return J
+        try:
+            dN = material.dN(lam_all, v, names, N_all)
+        except PellucidError:
+            return J
+        kap = N_all[:n_t].imag
+        _, slope = target_residuals_and_slopes(alpha_per_cm(np.maximum(kap, 0.0), lam_t),
+                                               t_arrays)
+        with np.errstate(all="ignore"):
+            J[:n_t] = (slope * np.where(kap > 0, 1.0 / kap, 0.0))[:, None] * dN[:, :n_t].imag.T
+        J[n_t:lam_all.size] = dN[:, n_t:].real.T / 0.03
+        col = {k: j for j, k in enumerate(names)}
+        for i, (k, _, w) in enumerate(pri):
+            J[lam_all.size + i, col[k]] = 1.0 / (max(v[k], 1e-9) * w) if v[k] > 1e-9 else 0.0
+        J[~np.isfinite(J)] = 0.0
+        return J
+
     found = []
     for st in starts:
         base = {**local, **st}
@@ -405,8 +444,8 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
         x0 = np.clip([base[k] for k in names], lo, hi)
         try:
             # A start needs the right neighbourhood, not the last digit.
-            sol = least_squares(resid, x0, bounds=(lo, hi), args=(base,), x_scale="jac",
-                                max_nfev=50, ftol=1e-3, xtol=1e-3)
+            sol = least_squares(resid, x0, jac=jac, bounds=(lo, hi), args=(base, priors(base)),
+                                x_scale="jac", max_nfev=50, ftol=1e-3, xtol=1e-3)
         except ValueError:
             continue
         found.append((float(sol.cost), {**base, **dict(zip(names, (float(v) for v in sol.x)))}))

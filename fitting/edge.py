@@ -191,8 +191,29 @@ def alpha_targets(edge: EdgeData, thickness_nm: float, wl_min: float, wl_max: fl
 
 def target_residuals(alpha_model: np.ndarray, targets) -> np.ndarray:
     """Log-ratio residuals of model α against :func:`alpha_targets` (one-sided for < >)."""
-    a = np.array([t[1] for t in targets], dtype=float)
-    kind = np.array([t[2] for t in targets])
-    q = np.log(np.maximum(np.asarray(alpha_model, float), 1e-3) / a)
-    return np.where(kind == "=", q, np.where(kind == "<", np.maximum(q, 0.0),
-                                              np.minimum(q, 0.0)))
+    return target_residuals_and_slopes(alpha_model, targets)[0]
+
+
+def target_residuals_and_slopes(alpha_model: np.ndarray, targets):
+    """(r, s): :func:`target_residuals` and dr/dα·α, the slope by a relative change of α
+    (1 where the residual follows log α, 0 where it is clipped or one-sided at rest).
+
+    ``targets`` may also be the pair (α targets, kinds) of arrays, to skip rebuilding them.
+    """
+    if isinstance(targets, tuple) and len(targets) == 2 and isinstance(targets[0], np.ndarray):
+        a, kind = targets
+    else:
+        a, kind = target_arrays(targets)
+    alpha = np.asarray(alpha_model, float)
+    q = np.log(np.maximum(alpha, 1e-3) / a)
+    active = (alpha > 1e-3) & ((kind == "=") | ((kind == "<") & (q > 0))
+                               | ((kind == ">") & (q < 0)))
+    r = np.where(kind == "=", q, np.where(kind == "<", np.maximum(q, 0.0),
+                                          np.minimum(q, 0.0)))
+    return r, active.astype(float)
+
+
+def target_arrays(targets):
+    """(α targets, kinds) of :func:`alpha_targets` as arrays."""
+    return (np.array([t[1] for t in targets], dtype=float),
+            np.array([t[2] for t in targets]))

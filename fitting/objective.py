@@ -97,8 +97,8 @@ class Part:
             return np.zeros(wl.shape)
         return (wl - 0.5 * (self.wl[0] + self.wl[-1])) / span
 
-    def evaluate(self, local: dict, model: StackModel | None = None) -> np.ndarray:
-        """Modelled quantity (scale and offset applied) for local parameter values."""
+    def bind(self, local: dict, model: StackModel | None = None) -> StackModel:
+        """The model for these local values: the angle bound in, the spread set."""
         sm = self.model if model is None else model
         if "angle_deg" in local and abs(sm.angle_rad - math.radians(local["angle_deg"])) > 1e-15:
             # The geometry is bound into the model: a new angle needs a new binding.
@@ -108,6 +108,11 @@ class Part:
                 self.model = sm
         if "thickness_spread" in local:
             self.stack.thickness_spread = local["thickness_spread"]
+        return sm
+
+    def evaluate(self, local: dict, model: StackModel | None = None) -> np.ndarray:
+        """Modelled quantity (scale and offset applied) for local parameter values."""
+        sm = self.bind(local, model)
         R, T = sm.RT(local)
         m = T if self.quantity == "T" else R
         scale = local.get("scale", 1.0)
@@ -423,7 +428,7 @@ class Objective:
         for part in self.parts:
             local = self.local_values(part, params)
             blocks.append(self._part_jacobian(part, local, [
-                (col[g], loc) for g, loc in part.names if g in col]))
+                (col[g], loc) for g, loc in part.names if g in col], len(names)))
         if self.priors:
             prior = np.zeros((len(self.priors), len(names)))
             for i, (k, _, sd) in enumerate(self.priors):
@@ -433,16 +438,15 @@ class Objective:
         self.nfev += len(names)
         return blocks[0] if len(blocks) == 1 else np.concatenate(blocks)
 
-    def _part_jacobian(self, part: Part, local: dict, cols) -> np.ndarray:
-        J = np.zeros((part.y.size, max((j for j, _ in cols), default=-1) + 1))
-        sm = part.model
-        stack_cols = [(j, loc) for j, loc in cols if loc in sm.parameter_names]
-        other = [(j, loc) for j, loc in cols if loc not in sm.parameter_names]
+    def _part_jacobian(self, part: Part, local: dict, cols, width: int) -> np.ndarray:
+        J = np.zeros((part.y.size, width))
+        names = part.model.parameter_names
+        stack_cols = [(j, loc) for j, loc in cols if loc in names]
+        other = [(j, loc) for j, loc in cols if loc not in names]
         try:
             with np.errstate(all="ignore"):
-                # The model as part.evaluate binds it (angle, spread), with derivatives.
-                part.evaluate(local)
-                R, T, dR, dT = part.model.RT_jacobian(local, [loc for _, loc in stack_cols])
+                sm = part.bind(local)
+                R, T, dR, dT = sm.RT_jacobian(local, [loc for _, loc in stack_cols])
         except PellucidError:
             return J               # a refused point: the flat residual has no slope
         M, dM = (T, dT) if part.quantity == "T" else (R, dR)

@@ -183,3 +183,27 @@ def test_thinning_keeps_dense_fringes_only_sparsely_and_leaves_thick_films_alone
     # a thick film (period ~2.5 nm at 420 nm, 5 points): no thinning
     thick = {**dense.params.valuesdict(), "film_thickness": 18000.0}
     assert _thinned(dense, [m], [thick])[0].sum() == m.sum()
+
+
+def test_joint_fit_jacobian_has_a_column_for_every_name():
+    # Two spectra of one film: thickness shared, each its own scale and tilt. Each
+    # part's rows are zero in the other part's columns.
+    wl = np.linspace(420.0, 1000.0, 70)
+    opts = FitOptions()
+    stack = Stack([Layer("film", Cauchy(A=2.0, B=0.01, C=0.0), 470.0)],
+                  library_substrate("n_bk7"))
+    parts = [build_part(i, Spectrum(wl, stack.RT(wl)[1] * (1 + 0.01 * i)), stack, opts)
+             for i in range(2)]
+    obj = Objective(parts, opts, shared={"film_thickness", "film_A", "film_B", "film_C"})
+    values = obj.params.valuesdict()
+    names = list(obj.var_names)
+    J = obj.jacobian(values, names)
+    r0 = obj.residual(values)
+    assert J.shape == (r0.size, len(names))
+    n = wl.size
+    assert not J[:n, names.index("p2_scale")].any() and J[n:2 * n, names.index("p2_scale")].any()
+    for j, k in enumerate(names):
+        h = 1e-6 * max(abs(values[k]), 1.0)
+        ref = (obj.residual({**values, k: values[k] + h})
+               - obj.residual({**values, k: values[k] - h})) / (2 * h)
+        assert np.max(np.abs(J[:, j] - ref)) < 2e-4 * max(np.max(np.abs(ref)), 1e-3), k
