@@ -69,9 +69,16 @@ def jacobian(obj, values: dict, names) -> tuple[np.ndarray, np.ndarray]:
     """(r0, J): residual vector at ``values`` and its derivatives (central differences).
 
     At a bound the difference is one-sided, inwards. Tied parameters follow
-    their ties (lmfit's constraint update) through ``obj.tied_values``.
+    their ties (lmfit's constraint update) through ``obj.tied_values``. Without
+    ties the fit's own Jacobian (:meth:`Objective.jacobian`, the chain rule
+    through each film's N(λ)) is used: as accurate, for a fraction of the calls.
     """
     r0 = residual_vector(obj, values)
+    if not any(p.expr for p in obj.params.values()):
+        nfev = obj.nfev
+        J = obj.jacobian(values, names)
+        obj.nfev = nfev             # statistics after the fit are not fit evaluations
+        return r0, J
     J = np.empty((r0.size, len(names)))
     for j, k in enumerate(names):
         p = obj.params[k]
