@@ -222,6 +222,47 @@ def stage_span(key: str, i: int = 0, n: int = 1) -> tuple[str, float, float]:
     return name, lo + i * width, lo + (i + 1) * width
 
 
+class _Value:
+    """One parameter of a run: its value, whether the run varies it, its bounds."""
+
+    __slots__ = ("value", "vary", "min", "max", "expr")
+
+    def __init__(self, value: float, vary: bool, lo: float, hi: float):
+        self.value, self.vary, self.min, self.max, self.expr = value, vary, lo, hi, None
+
+
+class _RunValues(dict):
+    """Parameters of one direct run, read like lmfit.Parameters (``p[k].value``,
+    ``valuesdict()``) without lmfit's deep copies (its symbol table)."""
+
+    @classmethod
+    def start(cls, params: lmfit.Parameters, values, fixed, free, bounds) -> _RunValues:
+        out = cls()
+        for k, p in params.items():
+            vary = (p.vary or k in free) and k not in fixed
+            lo, hi = p.min, p.max
+            if bounds and k in bounds:
+                lo, hi = max(bounds[k][0], lo), min(bounds[k][1], hi)
+            x = p.value
+            if values and k in values and p.vary:
+                # Only parameters the fit varies take a start value (held ones keep
+                # theirs), clipped into their own bounds as lmfit does.
+                x = float(min(max(values[k], p.min), p.max))
+            if vary:
+                x = float(min(max(x, lo), hi))    # and into the run's own bounds
+            out[k] = _Value(x, vary, lo, hi)
+        return out
+
+    def valuesdict(self) -> dict:
+        return {k: p.value for k, p in self.items()}
+
+    def copy(self) -> _RunValues:
+        out = _RunValues()
+        for k, p in self.items():
+            out[k] = _Value(p.value, p.vary, p.min, p.max)
+        return out
+
+
 @dataclass
 class RunResult:
     """A minimiser run that was cut short: the best point it saw, in lmfit's terms.
@@ -481,7 +522,7 @@ class Objective:
         self.part_residual(part, local)     # rebind the model to the point itself
         return (r1 - r0) / h
 
-    def _least_squares(self, params: lmfit.Parameters, **kws) -> RunResult:
+    def _least_squares(self, params: _RunValues, **kws) -> RunResult:
         """scipy's trust-region reflective least squares from ``params`` (varied ones
         free within their bounds), with lmfit's default tolerances."""
         names = [k for k, p in params.items() if p.vary]
@@ -613,23 +654,26 @@ class Objective:
         ``max_nfev`` caps this run alone (it then ends with ``aborted=True``
         but the fit goes on).
         """
-        params = self.params.copy()
-        if values:
-            for k, v in values.items():
-                if k in params and params[k].vary and not params[k].expr:
-                    p = params[k]
-                    params[k].value = float(min(max(v, p.min), p.max))
-            params.update_constraints()
-        for k in fixed:
-            params[k].vary = False
-        for k in free:
-            params[k].vary = True
-        for k, (lo, hi) in (bounds or {}).items():
-            params[k].set(min=max(lo, params[k].min), max=min(hi, params[k].max))
         # least_squares runs scipy directly, with the Jacobian of :meth:`jacobian`:
-        # lmfit's wrapper adds a parameter copy per run and a call per evaluation
-        # that a fit of a few hundred evaluations notices. Ties need lmfit.
-        direct = method == "least_squares" and not any(p.expr for p in params.values())
+        # lmfit's wrapper copies the parameters (twice) per run and adds a call per
+        # evaluation, which a fit of a few hundred evaluations notices. Ties need lmfit.
+        direct = method == "least_squares" and not any(p.expr for p in self.params.values())
+        if direct:
+            params = _RunValues.start(self.params, values, fixed, free, bounds)
+        else:
+            params = self.params.copy()
+            if values:
+                for k, v in values.items():
+                    if k in params and params[k].vary and not params[k].expr:
+                        p = params[k]
+                        params[k].value = float(min(max(v, p.min), p.max))
+                params.update_constraints()
+            for k in fixed:
+                params[k].vary = False
+            for k in free:
+                params[k].vary = True
+            for k, (lo, hi) in (bounds or {}).items():
+                params[k].set(min=max(lo, params[k].min), max=min(hi, params[k].max))
         parts = self.parts
         if masks is not None:
             # A stage on part of the points: each part bound to just those wavelengths.
@@ -664,7 +708,8 @@ class Objective:
             for k, v in best.items():
                 if k in out and not out[k].expr:
                     out[k].value = v
-            out.update_constraints()
+            if not direct:
+                out.update_constraints()
         return RunResult(params=out, aborted=True, success=False, message="stopped early",
                          chisqr=chi2, nfev=self.nfev,
                          var_names=[k for k, p in out.items() if p.vary and not p.expr])

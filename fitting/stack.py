@@ -442,6 +442,7 @@ class StackModel:
         self._names = [(layer, f"{layer.name}_", f"{layer.name}_thickness",
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
+        self._last = None           # (Ns, ds, spread, R, T) of the last RT call, node grid
         #: Names :meth:`RT_jacobian` differentiates by: thicknesses and material parameters.
         self.parameter_names = frozenset(
             n for _, pre, tname, pnames in self._names
@@ -458,6 +459,7 @@ class StackModel:
         out._outer = outer_media(self._wl, self._N_amb, out._N_sub, d, self._N_exit,
                                  angle_rad=self.angle_rad, polarization=self.polarization)
         out._cache = list(self._cache)
+        out._last = None
         return out
 
     def layer_values(self, values: Mapping[str, float] | None = None):
@@ -474,6 +476,10 @@ class StackModel:
         """(R, T) on the bound grid for the given global parameter values."""
         Ns, ds = self._indices(values)
         R, T = self._node_RT(Ns, ds)
+        # A fit asks for the Jacobian where it has just evaluated: keep the node values
+        # (read-only, so no caller can change them in place).
+        R.flags.writeable = T.flags.writeable = False
+        self._last = (Ns, ds, self.stack.thickness_spread, R, T)
         return self._on_grid(R), self._on_grid(T)
 
     def RT_jacobian(self, values: Mapping[str, float] | None, wrt):
@@ -495,7 +501,12 @@ class StackModel:
         """
         values = dict(values or {})
         Ns, ds = self._indices(values)
-        R0, T0 = self._node_RT(Ns, ds)
+        last = self._last
+        if last is not None and last[1] == ds and last[2] == self.stack.thickness_spread \
+                and all(a is b for a, b in zip(last[0], Ns)):
+            R0, T0 = last[3], last[4]           # N arrays are cached: same object, same N
+        else:
+            R0, T0 = self._node_RT(Ns, ds)
         dR = np.zeros((len(wrt), R0.size))
         dT = np.zeros((len(wrt), T0.size))
         index = {}
