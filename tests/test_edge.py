@@ -29,7 +29,8 @@ import numpy as np
 import pytest
 
 from fitting.edge import (CLEAR, OPAQUE_AD, EdgeData, absorption_edge, alpha_targets,
-                          opaque_floor, target_residuals)
+                          opaque_floor, target_residuals,
+                          target_residuals_and_slopes)
 from fitting.reference import estimate_noise
 
 
@@ -228,3 +229,17 @@ def test_alpha_targets_and_their_residuals():
         math.log(1e-3))                                 # α = 0 is floored, not -inf
     assert edge.to_dict() == {"clear_nm": [500.0, 900.0], "opaque_below_nm": 350.0,
                               "opaque_above_nm": None, "edge_points": 2, "absorbs": True}
+
+
+def test_target_slopes_are_the_derivative_by_log_alpha():
+    # The edge fit's exact Jacobian uses dr/d(log α): 1 where the residual follows
+    # log α, 0 where it is one-sided at rest or floored; checked by differences.
+    tg = [(400.0, 100.0, "="), (600.0, 100.0, "<"), (600.0, 100.0, "<"),
+          (300.0, 100.0, ">"), (300.0, 100.0, ">"), (400.0, 1.0, "=")]
+    alpha = np.array([100 * math.e, 10.0, 1000.0, 10.0, 1000.0, 1e-4])
+    r, slope = target_residuals_and_slopes(alpha, tg)
+    np.testing.assert_array_equal(r, target_residuals(alpha, tg))
+    h = 1e-6
+    ref = (target_residuals(alpha * math.exp(h), tg) - target_residuals(alpha, tg)) / h
+    np.testing.assert_allclose(slope, ref, atol=1e-5)
+    assert slope.tolist() == [1.0, 0.0, 1.0, 1.0, 0.0, 0.0]
