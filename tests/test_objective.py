@@ -169,6 +169,11 @@ def test_hold_and_release():
     # a held parameter keeps its start value, whatever a run is started from
     res = obj.minimize("leastsq", {**obj.params.valuesdict(), "film_C": 0.0123})
     assert res.params["film_C"].value == CAUCHY["C"]
+    # the same through the direct least_squares path (no lmfit Parameters copies)
+    res = obj.minimize("least_squares", {**obj.params.valuesdict(), "film_C": 0.0123})
+    assert res.params["film_C"].value == CAUCHY["C"] and not res.params["film_C"].vary
+    assert res.params.valuesdict()["film_C"] == CAUCHY["C"]
+    assert "film_C" not in res.var_names and res.success
     spread = _objective(Spectrum(wl, _tmm_T(wl)), FitOptions(fit_spread=True))
     assert spread.params["thickness_spread"].vary and spread.params["thickness_spread"].max == 0.3
 
@@ -194,6 +199,10 @@ def test_bounds_override_holds_for_one_run_only():
     res = obj.minimize("least_squares", start, bounds={"film_thickness": (430.0, 440.0)})
     d = res.params["film_thickness"].value
     assert 430.0 <= d <= 440.0                      # the truth, 450 nm, is outside
+    # a start outside the run's bounds is moved into them, not refused
+    outside = obj.minimize("least_squares", {**start, "film_thickness": 400.0},
+                           bounds={"film_thickness": (430.0, 440.0)})
+    assert 430.0 <= outside.params["film_thickness"].value <= 440.0
     assert (obj.params["film_thickness"].min, obj.params["film_thickness"].max) == (lo0, hi0)
     # without the override the same start runs on to the truth
     free = obj.minimize("least_squares", start)
