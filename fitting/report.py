@@ -17,6 +17,12 @@ Pages, in order (A4 portrait):
    reduced χ². ``worst`` of each at most, two per page, each redrawn from its
    exported curves with its reason, verdict reasons or warnings.
 
+The text pages (overview, table, failures) are set in the PDF's standard fonts
+(Helvetica and Courier: every PDF reader has them, so nothing is embedded), each
+table row one line of Courier; a page whose text those fonts cannot encode (a Greek
+or Cyrillic file name, say) is set in DejaVu like the plot pages. Together with
+fixed page layouts this keeps the report of thousands of spectra to a second or two.
+
 Summary rows
 ------------
 ``rows`` are the batch summary rows, plain dicts in batch order. Every key is
@@ -25,9 +31,10 @@ optional; missing or unreadable values are shown as "–".
 ==========================  =============================================================
 ``file``                    input spectrum (path or name)
 ``sha256``                  SHA-256 of the input file (the table shows its first 10 digits)
-``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit;
-                            anything else (``"failed"``, ``"error"``, ``"skipped"``) is a
-                            failure
+``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit,
+                            which the table shows as "fitted"; anything else
+                            (``"failed"``, ``"error"``, ``"skipped"``) is a failure, shown
+                            as stored
 ``verdict``                 the fit engine's own judgement of a finished fit: ``"good"``,
                             ``"check"`` or ``"poor"`` (empty: none given)
 ``verdict_reasons``         why, in plain words (``"; "``-separated text or a list)
