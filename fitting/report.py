@@ -382,10 +382,10 @@ def _footer(fig, text, page, pages):
 
 #: The summary table's fields: header, width in characters, alignment, the gap after.
 #: A row is one line of a monospaced font, so the fields line up by character count.
-_FIELDS = (("#", 4, "right", 2), ("file", 34, "left", 2), ("sha256", 10, "left", 2),
+_FIELDS = (("#", 5, "right", 2), ("file", 34, "left", 2), ("sha256", 10, "left", 2),
            ("status", 7, "left", 2), ("verdict", 7, "left", 2),
-           ("thickness (nm)", 15, "right", 3), ("n(633)", 7, "right", 3),
-           (r"$\chi^2_\mathrm{red}$", 7, "right", 3), ("spec", 4, "right", 3),
+           ("thickness (nm)", 17, "right", 3), ("n(633)", 7, "right", 3),
+           (r"$\chi^2_\mathrm{red}$", 8, "right", 3), ("spec", 4, "right", 3),
            ("warn.", 5, "right", 0))
 _OFFSETS = tuple(itertools.accumulate((w + gap for _n, w, _a, gap in _FIELDS), initial=0))
 TABLE_FONTSIZE = 7.0
@@ -523,7 +523,23 @@ def _draw_table(fig, top, rows, start, key, spec, info):
         fig.add_artist(_RowText(fig, reasons, size=6.5, style="italic"))
 
 
-def _overview(fig, rows, key, spec, info):
+_LINE = 0.018                # overview lines, figure fraction
+_PROVENANCE_LINES = 7
+TABLE_BOTTOM = 0.035         # the lowest row's bottom edge: clear of the footer
+
+
+def _overview_bottom(n_summary: int) -> float:
+    """Where the overview block ends (figure fraction) with ``n_summary`` summary lines."""
+    return 0.925 - _PROVENANCE_LINES * _LINE - 0.012 - n_summary * _LINE - 0.01
+
+
+def _rows_first_page(n_summary: int) -> int:
+    """Table rows that fit under the overview (fewer when there are many limits)."""
+    room = int((_overview_bottom(n_summary) - TABLE_BOTTOM) / ROW_HEIGHT) - 1
+    return max(0, min(ROWS_FIRST_PAGE, room))
+
+
+def _overview(fig, summary, info):
     fig.text(0.06, 0.955, "Pellucid batch report", fontsize=17, weight="bold")
     lines = [("software", info["software"]), ("recipe", info["recipe_name"] or "–"),
              ("recipe hash", info["recipe_hash"] or "–"), ("created", info["created"]),
@@ -531,9 +547,16 @@ def _overview(fig, rows, key, spec, info):
              ("results folder", _short(info["results_dir"], 80)),
              ("input hashes", "first 10 hex digits of each file's SHA-256 below; "
                               "full values in the batch summary and each result")]
-    for j, (k, v) in enumerate(lines):
-        fig.text(0.06, 0.925 - j * 0.018, k, fontsize=8.5, color="#555555")
-        fig.text(0.22, 0.925 - j * 0.018, v, fontsize=8.5)
+    ys = [0.925 - j * _LINE for j in range(_PROVENANCE_LINES)]
+    ys += [ys[-1] - 0.012 - (j + 1) * _LINE for j in range(len(summary))]
+    for y, (k, v) in zip(ys, lines + summary):
+        fig.text(0.06, y, k, fontsize=8.5, color="#555555")
+        fig.text(0.22, y, v, fontsize=8.5)
+    return _overview_bottom(len(summary))
+
+
+def _overview_summary(rows, key, spec) -> list[tuple[str, str]]:
+    """The overview's counts, verdicts, spec result, thickness statistics and limits."""
     ok = [r for r in rows if row_ok(r)]
     d = np.array([_num(r.get(key)) for r in ok])
     d = d[np.isfinite(d)]
@@ -560,11 +583,7 @@ def _overview(fig, rows, key, spec, info):
         lo, hi = spec_bounds(spec, q)
         summary.append((f"limit {q}", f"{'–' if lo is None else f'{lo:g}'} to "
                                       f"{'–' if hi is None else f'{hi:g}'}"))
-    y0 = 0.925 - len(lines) * 0.018 - 0.012
-    for j, (k, v) in enumerate(summary):
-        fig.text(0.06, y0 - j * 0.018, k, fontsize=8.5, color="#555555")
-        fig.text(0.22, y0 - j * 0.018, v, fontsize=8.5)
-    return y0 - len(summary) * 0.018 - 0.01
+    return summary
 
 
 def _failed_page(fig, items, info):
@@ -676,12 +695,15 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     # Plan the pages first so each can say "page i of N".
     pages: list[tuple[str, Callable[[Figure], None]]] = []   # ("text" or "plots", draw)
 
-    def overview(fig, chunk=rows[:ROWS_FIRST_PAGE]):
-        top = _overview(fig, rows, key, spec, info)
+    summary = _overview_summary(rows, key, spec)
+    first = _rows_first_page(len(summary))
+
+    def overview(fig, chunk=rows[:first]):
+        top = _overview(fig, summary, info)
         if chunk:
             _draw_table(fig, top, chunk, 0, key, spec, info)
     pages.append(("text", overview))
-    for start in range(ROWS_FIRST_PAGE, len(rows), ROWS_PER_PAGE):
+    for start in range(first, len(rows), ROWS_PER_PAGE):
         chunk = rows[start:start + ROWS_PER_PAGE]
 
         def table(fig, chunk=chunk, start=start):

@@ -428,3 +428,18 @@ def test_a_table_page_is_a_few_artists_however_many_rows():
                            {"input_folder": "/lab/run7"})
         counts.append(len(fig.get_children()))
     assert counts[0] == counts[1] <= 8, counts
+
+
+@needs_pdftotext
+def test_many_limits_push_rows_to_the_next_page_not_onto_the_footer(tmp_path):
+    spec = {"film_thickness": {"min": 475, "max": 525}, "redchi": {"max": 3},
+            "n_633": {"min": 1.4}, "film_thickness_sigma": {"max": 1}, "warnings": {"max": 2}}
+    rows = big_batch(120)
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec=spec, worst=0)
+    words = words_on_page(pdf, 1)
+    (footer_top,) = [w[2] for w in words if w[0] == "page"]
+    names = [w for w in words if w[0].startswith("run7_")]
+    assert 20 < len(names) < report.ROWS_FIRST_PAGE       # fewer rows than with one limit
+    assert max(w[4] for w in names) < footer_top - 2      # the last row clears the footer
+    text = "".join(page_text(pdf, p) for p in (1, 2, 3))
+    assert [text.count(f"run7_{i:04d}.csv") for i in range(120)] == [1] * 120
