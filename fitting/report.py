@@ -76,6 +76,7 @@ from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.font_manager import FontProperties
 from matplotlib.lines import Line2D
+from matplotlib.text import Text
 
 from . import __version__
 from .atomic import atomic_write_bytes
@@ -341,7 +342,8 @@ def _core_fonts(fig) -> bool:
     line of text is one PDF operation. With an embedded font matplotlib lays out and
     embeds glyph by glyph, which for a table of thousands of rows took tens of seconds.
     Their encoding (Windows-1252) has no Greek or Asian letters, so a page that needs
-    one stays in DejaVu like the plot pages (mathematical text is DejaVu anyway).
+    one stays in DejaVu like the plot pages (mathematical text, and the χ of the table
+    header, are DejaVu anyway).
     """
     # Not fig.findobj: it would make every axis's ticks just to look at them.
     texts = list(fig.texts)
@@ -385,7 +387,7 @@ def _footer(fig, text, page, pages):
 _FIELDS = (("#", 5, "right", 2), ("file", 34, "left", 2), ("sha256", 10, "left", 2),
            ("status", 7, "left", 2), ("verdict", 7, "left", 2),
            ("thickness (nm)", 17, "right", 3), ("n(633)", 7, "right", 3),
-           (r"$\chi^2_\mathrm{red}$", 8, "right", 3), ("spec", 4, "right", 3),
+           ("χ²_red", 8, "right", 3), ("spec", 4, "right", 3),
            ("warn.", 5, "right", 0))
 _OFFSETS = tuple(itertools.accumulate((w + gap for _n, w, _a, gap in _FIELDS), initial=0))
 TABLE_FONTSIZE = 7.0
@@ -470,6 +472,15 @@ class _RowText(Artist):
         self.stale = False
 
 
+class _EmbeddedText(Text):
+    """Text in the embedded DejaVu font, even on a page of core fonts: for the few
+    characters those lack (the χ of the table header)."""
+
+    def draw(self, renderer):
+        with mpl.rc_context({"pdf.use14corefonts": False}):
+            super().draw(renderer)
+
+
 def _draw_table(fig, top, rows, start, key, spec, info):
     """Rows of the summary table, from ``top`` (figure fraction) down.
 
@@ -488,15 +499,15 @@ def _draw_table(fig, top, rows, start, key, spec, info):
 
     # Baselines 0.35 em below the row centres: capitals and digits sit in the middle.
     drop = 0.35 * TABLE_FONTSIZE / 72 / A4_INCHES[1]
-    # The header in the rows' font, bold; χ² has no glyph there and is mathtext.
-    names = [("" if name.startswith("$") else name) for name, *_ in _FIELDS]
+    # The header in the rows' font, bold, but for χ², which the core fonts lack.
+    names = [("" if name == "χ²_red" else name) for name, *_ in _FIELDS]
     header = _table_line(names, [_INK] * len(names))[0]
     fig.add_artist(_RowText(fig, [(left, y_of(-1) - drop, 0, header, _INK)],
                             family="monospace", weight="bold"))
-    for (name, width, _align, _gap), off in zip(_FIELDS, _OFFSETS):
-        if name.startswith("$"):
-            fig.text(x_of(off + width), y_of(-1), name, ha="right", va="center", fontsize=7.5,
-                     weight="bold")
+    chi = names.index("")
+    fig.add_artist(_EmbeddedText(x_of(_OFFSETS[chi] + _FIELDS[chi][1]), y_of(-1), "χ²_red",
+                                 ha="right", va="center", fontsize=7, weight="bold",
+                                 transform=fig.transFigure))
     fig.add_artist(Line2D([left, left + TABLE_WIDTH], [top - ROW_HEIGHT] * 2,
                           transform=fig.transFigure, color="#444444", lw=0.6))
     shading = [[(left, y_of(j) - h), (left + TABLE_WIDTH, y_of(j) - h),
@@ -901,7 +912,6 @@ def _fit_param_table(fig, top, params, title):
 
 
 def _hline(fig, y):
-    from matplotlib.lines import Line2D
     return Line2D([0.06, 0.94], [y, y], transform=fig.transFigure, color="#999999", lw=0.6)
 
 
