@@ -91,7 +91,7 @@ __all__ = ["write_batch_report", "A4_INCHES", "VERDICTS"]
 #: Verdicts of the fit engine, best first; the report colours and ranks by them.
 VERDICTS = ("good", "check", "poor")
 A4_INCHES = (8.27, 11.69)
-ROWS_FIRST_PAGE = 36      # table rows under the overview block
+ROWS_FIRST_PAGE = 36      # table rows under the overview block (fewer with many limits)
 ROWS_PER_PAGE = 52        # table rows on continuation pages
 FAILED_PER_PAGE = 16      # each with up to three lines of reason
 MAX_OVERLAY = 60          # n/κ curves drawn at most (evenly subsampled)
@@ -341,9 +341,9 @@ def _core_fonts(fig) -> bool:
     fonts Helvetica and Courier, which every PDF reader has: nothing is embedded and a
     line of text is one PDF operation. With an embedded font matplotlib lays out and
     embeds glyph by glyph, which for a table of thousands of rows took tens of seconds.
-    Their encoding (Windows-1252) has no Greek or Asian letters, so a page that needs
-    one stays in DejaVu like the plot pages (mathematical text, and the χ of the table
-    header, are DejaVu anyway).
+    Their encoding (Windows-1252) has no Greek, Cyrillic or Asian letters, so a page
+    that needs one stays in DejaVu like the plot pages (mathematical text, and the χ of
+    the table header, are DejaVu anyway).
     """
     # Not fig.findobj: it would make every axis's ticks just to look at them.
     texts = list(fig.texts)
@@ -504,7 +504,7 @@ def _draw_table(fig, top, rows, start, key, spec, info):
     header = _table_line(names, [_INK] * len(names))[0]
     fig.add_artist(_RowText(fig, [(left, y_of(-1) - drop, 0, header, _INK)],
                             family="monospace", weight="bold"))
-    chi = names.index("")
+    chi = [name for name, *_ in _FIELDS].index("χ²_red")
     fig.add_artist(_EmbeddedText(x_of(_OFFSETS[chi] + _FIELDS[chi][1]), y_of(-1), "χ²_red",
                                  ha="right", va="center", fontsize=7, weight="bold",
                                  transform=fig.transFigure))
