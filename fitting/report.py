@@ -17,6 +17,12 @@ Pages, in order (A4 portrait):
    reduced χ². ``worst`` of each at most, two per page, each redrawn from its
    exported curves with its reason, verdict reasons or warnings.
 
+The text pages (overview, table, failures) are set in the PDF's standard fonts
+(Helvetica and Courier: every PDF reader has them, so nothing is embedded), each
+table row one line of Courier; a page whose text those fonts cannot encode (a Greek
+or Cyrillic file name, say) is set in DejaVu like the plot pages. Together with
+fixed page layouts this keeps the report of thousands of spectra to a second or two.
+
 Summary rows
 ------------
 ``rows`` are the batch summary rows, plain dicts in batch order. Every key is
@@ -25,9 +31,10 @@ optional; missing or unreadable values are shown as "–".
 ==========================  =============================================================
 ``file``                    input spectrum (path or name)
 ``sha256``                  SHA-256 of the input file (the table shows its first 10 digits)
-``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit;
-                            anything else (``"failed"``, ``"error"``, ``"skipped"``) is a
-                            failure
+``status``                  ``"ok"`` (or ``"warning"``, ``"converged"``) for a finished fit,
+                            which the table shows as "fitted"; anything else
+                            (``"failed"``, ``"error"``, ``"skipped"``) is a failure, shown
+                            as stored
 ``verdict``                 the fit engine's own judgement of a finished fit: ``"good"``,
                             ``"check"`` or ``"poor"`` (empty: none given)
 ``verdict_reasons``         why, in plain words (``"; "``-separated text or a list)
@@ -49,6 +56,7 @@ The per-spectrum files are those of :func:`fitting.export.export_result`
 
 from __future__ import annotations
 
+import contextlib
 import io
 import itertools
 import json
@@ -59,9 +67,16 @@ from datetime import UTC, datetime
 from pathlib import Path
 from collections.abc import Callable, Mapping, Sequence
 
+import matplotlib as mpl
 import numpy as np
+from matplotlib.artist import Artist
 from matplotlib.backends.backend_pdf import PdfPages
+from matplotlib.cbook import is_math_text
+from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
+from matplotlib.font_manager import FontProperties
+from matplotlib.lines import Line2D
+from matplotlib.text import Text
 
 from . import __version__
 from .atomic import atomic_write_bytes
@@ -76,7 +91,7 @@ __all__ = ["write_batch_report", "A4_INCHES", "VERDICTS"]
 #: Verdicts of the fit engine, best first; the report colours and ranks by them.
 VERDICTS = ("good", "check", "poor")
 A4_INCHES = (8.27, 11.69)
-ROWS_FIRST_PAGE = 36      # table rows under the overview block
+ROWS_FIRST_PAGE = 36      # table rows under the overview block (fewer with many limits)
 ROWS_PER_PAGE = 52        # table rows on continuation pages
 FAILED_PER_PAGE = 16      # each with up to three lines of reason
 MAX_OVERLAY = 60          # n/κ curves drawn at most (evenly subsampled)
@@ -292,19 +307,101 @@ def _panels(fig, title, ratios):
     return subs
 
 
+def _plot_panels(fig, title, ratios):
+    """A page heading and sub-figures below it, heights in ``ratios`` (a strip is
+    kept free at the bottom for the footer)."""
+    head, *subs, _foot = fig.subfigures(len(ratios) + 2, 1, height_ratios=(
+        0.065 * sum(ratios), *(0.905 * r for r in ratios), 0.03 * sum(ratios)))
+    head.text(0.06, 0.5, title, fontsize=14, weight="bold", va="center")
+    return subs
+
+
+@contextlib.contextmanager
+def _margins(sub, *, top=0.45, bottom=0.55, left=0.9, right=0.25, hspace=0.1):
+    """Lay out the axes that a plot function makes in ``sub`` with fixed margins (inches):
+    room for tick and axis labels at the left and below, a title or legend above.
+
+    Constrained layout found these places by measuring every label again on every
+    page. The plot functions clear the sub-figure first, which resets its subplot
+    parameters from the rcParams, so the margins go in as rcParams during the call.
+    """
+    width, height = sub.bbox.width / sub.dpi, sub.bbox.height / sub.dpi
+    with mpl.rc_context({"figure.subplot.left": left / width,
+                         "figure.subplot.right": 1 - right / width,
+                         "figure.subplot.bottom": bottom / height,
+                         "figure.subplot.top": 1 - top / height,
+                         "figure.subplot.hspace": hspace}):
+        yield sub
+
+
+def _core_fonts(fig) -> bool:
+    """Make a text page ready for the PDF's standard fonts; False if it cannot be.
+
+    Text pages (overview, summary table, failures) are written in the standard PDF
+    fonts Helvetica and Courier, which every PDF reader has: nothing is embedded and a
+    line of text is one PDF operation. With an embedded font matplotlib lays out and
+    embeds glyph by glyph, which for a table of thousands of rows took tens of seconds.
+    Their encoding (Windows-1252) has no Greek, Cyrillic or Asian letters, so a page
+    that needs one stays in DejaVu like the plot pages (mathematical text, and the χ of
+    the table header, are DejaVu anyway).
+    """
+    # Not fig.findobj: it would make every axis's ticks just to look at them.
+    texts = list(fig.texts)
+    rows = [a for a in fig.artists if isinstance(a, _RowText)]
+    for ax in fig.axes:
+        texts += ax.texts
+    # (Mathematical text keeps its weight: mathtext finds no "medium" DejaVu.)
+    props = [t.get_fontproperties() for t in texts if not is_math_text(t.get_text())]
+    for artist in texts + rows:
+        for text in artist.texts if isinstance(artist, _RowText) else [artist.get_text()]:
+            try:
+                text.encode("cp1252")
+            except UnicodeEncodeError:
+                if not is_math_text(text):
+                    return False
+        if isinstance(artist, _RowText):
+            props.append(artist.prop)
+    for prop in props:     # their regular weight is "medium": "normal" finds it, warning
+        if prop.get_weight() in ("normal", 400):
+            prop.set_weight("medium")
+    return True
+
+
+def _save_pages(pdf, pages, footer):
+    """Draw and save ``pages``, a list of (kind, draw), kind "text" or "plots"."""
+    for n, (kind, draw) in enumerate(pages, start=1):
+        fig = Figure(figsize=A4_INCHES)
+        draw(fig)
+        _footer(fig, footer, n, len(pages))
+        with mpl.rc_context({"pdf.use14corefonts": kind == "text" and _core_fonts(fig)}):
+            pdf.savefig(fig)
+
+
 def _footer(fig, text, page, pages):
     fig.text(0.04, 0.015, text, fontsize=6.5, color="#888888", ha="left")
     fig.text(0.96, 0.015, f"page {page} of {pages}", fontsize=7, color="#666666", ha="right")
 
 
-_COLS = [  # header, x position (fraction of the table width), alignment
-    ("#", 0.035, "right"), ("file", 0.05, "left"), ("sha256", 0.335, "left"),
-    ("status", 0.44, "left"), ("verdict", 0.505, "left"),
-    ("thickness (nm)", 0.69, "right"), ("n(633)", 0.77, "right"),
-    ("χ²_red", 0.86, "right"), ("spec", 0.93, "right"), ("warn.", 0.995, "right"),
-]
-_VERDICT_COLOURS = {"good": "#222222", "check": PALETTE["spec"], "poor": PALETTE["fail"]}
+#: The summary table's fields: header, width in characters, alignment, the gap after.
+#: A row is one line of a monospaced font, so the fields line up by character count.
+_FIELDS = (("#", 5, "right", 2), ("file", 34, "left", 2), ("sha256", 10, "left", 2),
+           ("status", 7, "left", 2), ("verdict", 7, "left", 2),
+           ("thickness (nm)", 17, "right", 3), ("n(633)", 7, "right", 3),
+           ("χ²_red", 8, "right", 3), ("spec", 4, "right", 3),
+           ("warn.", 5, "right", 0))
+_OFFSETS = tuple(itertools.accumulate((w + gap for _n, w, _a, gap in _FIELDS), initial=0))
+TABLE_FONTSIZE = 7.0
+TABLE_WIDTH = 0.9           # figure fraction, from x = 0.05
+_CHAR = 0.6 * TABLE_FONTSIZE / (TABLE_WIDTH * A4_INCHES[0] * 72)   # one character, table units
+_VERDICT_COLOURS = {"check": PALETTE["spec"], "poor": PALETTE["fail"]}
+_INK = "#222222"
 ROW_HEIGHT = 0.0165   # figure fraction (about 0.19 in on A4)
+
+
+def _status_text(row) -> str:
+    """The status as the table shows it: "fitted" for every finished fit (as the app
+    says; how good the fit is, is the verdict's column), the stored word otherwise."""
+    return "fitted" if row_ok(row) else str(row.get("status") or "failed")
 
 
 def _table_cells(i, row, key, spec, info):
@@ -312,50 +409,148 @@ def _table_cells(i, row, key, spec, info):
     d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
     thick = _pm(d, s)
     state = _spec_state(row, spec, key)
-    status = str(row.get("status", "ok"))
     sha = str(row.get("sha256") or row.get("input_sha256") or "")[:10] or "–"
-    cells = [str(i + 1), _short(_display_name(row, info), 34), sha, _short(status, 12)]
+    cells = [str(i + 1), _display_name(row, info), sha, _status_text(row)]
     if ok:
         cells += [_verdict(row) or "–", thick, _fmt(_n633(row, _layer_of(key)), "{:.4f}"),
                   _fmt(row.get("redchi"), "{:.3g}"),
                   {"pass": "pass", "fail": "FAIL"}.get(state, "–"), str(_warn_count(row))]
     else:   # a failure has no numbers; its reason goes where they would be
-        cells += [None] * 6
+        cells += [""] * 6
+    cells = [_short(c, w) for c, (_n, w, _a, _g) in zip(cells, _FIELDS)]
     return cells, ok, state
 
 
+def _table_line(cells, colours):
+    """The row as one line, cells in ``_INK`` only, and the other cells as
+    (character offset, text, colour) to draw over the blanks left for them."""
+    line, over = [], []
+    for text, colour, (_n, width, align, gap), off in zip(cells, colours, _FIELDS, _OFFSETS):
+        field = text.rjust(width) if align == "right" else text.ljust(width)
+        if colour != _INK and text.strip():
+            over.append((off + len(field) - len(field.lstrip()), text, colour))
+            field = " " * width
+        line.append(field + " " * gap)
+    return "".join(line).rstrip(), over
+
+
+class _RowText(Artist):
+    """Strings drawn by one artist: items (x, y, characters, text, colour), each at
+    figure position (x, y) moved right by that many characters of the font, with
+    (x, y) the left end of its baseline.
+
+    A Text artist per table cell costs a layout and a draw call of its own; in a batch
+    of thousands of spectra those cells were most of the report's time.
+    """
+
+    def __init__(self, fig, items, *, size=TABLE_FONTSIZE, family=None, style="normal",
+                 weight="normal"):
+        super().__init__()
+        self.set_zorder(3)          # above the row shading, as Text is
+        self.set_transform(fig.transFigure)
+        self.items = list(items)
+        self.prop = FontProperties(family=family, size=size, style=style, weight=weight)
+
+    @property
+    def texts(self):
+        return [it[3] for it in self.items]
+
+    def draw(self, renderer):
+        if not self.get_visible() or not self.items:
+            return
+        gc = renderer.new_gc()
+        xy = self.get_transform().transform([(it[0], it[1]) for it in self.items])
+        if renderer.flipy():
+            xy[:, 1] = renderer.get_canvas_width_height()[1] - xy[:, 1]
+        char = 0.0
+        if any(it[2] for it in self.items):
+            char = renderer.get_text_width_height_descent("0" * 20, self.prop, False)[0] / 20
+        for (x, y), (_x, _y, chars, text, colour) in zip(xy, self.items):
+            gc.set_foreground(colour)
+            renderer.draw_text(gc, x + chars * char, y, text, self.prop, 0.0, ismath=False)
+        gc.restore()
+        self.stale = False
+
+
+class _EmbeddedText(Text):
+    """Text in the embedded DejaVu font, even on a page of core fonts: for the few
+    characters those lack (the χ of the table header)."""
+
+    def draw(self, renderer):
+        with mpl.rc_context({"pdf.use14corefonts": False}):
+            super().draw(renderer)
+
+
 def _draw_table(fig, top, rows, start, key, spec, info):
-    """Rows of the summary table as aligned text, from ``top`` (figure fraction) down."""
-    height = (len(rows) + 1) * ROW_HEIGHT
-    ax = fig.add_axes((0.05, top - height, 0.9, height))
-    ax.set_axis_off()
-    ax.set_xlim(0, 1)
-    ax.set_ylim(len(rows) + 1, 0)      # one unit per row, first row on top
-    for name, x, ha in _COLS:
-        ax.text(x, 0.5, name, ha=ha, va="center", fontsize=7.5, weight="bold")
-    ax.axhline(1.0, color="#444444", lw=0.6)
+    """Rows of the summary table, from ``top`` (figure fraction) down.
+
+    Each row is one line of monospaced text, so a page of the table is a few dozen
+    strings, not a Text per cell; colour marks what needs a look: a failure's status
+    and reason, a verdict check or poor, a spec FAIL. Drawn straight on the page (an
+    Axes per page costs more than its rows).
+    """
+    left = 0.05
+
+    def x_of(chars):
+        return left + chars * _CHAR * TABLE_WIDTH
+
+    def y_of(j):       # row j's centre; the header is row -1
+        return top - (j + 1.5) * ROW_HEIGHT
+
+    # Baselines 0.35 em below the row centres: capitals and digits sit in the middle.
+    drop = 0.35 * TABLE_FONTSIZE / 72 / A4_INCHES[1]
+    # The header in the rows' font, bold, but for χ², which the core fonts lack.
+    names = [("" if name == "χ²_red" else name) for name, *_ in _FIELDS]
+    header = _table_line(names, [_INK] * len(names))[0]
+    fig.add_artist(_RowText(fig, [(left, y_of(-1) - drop, 0, header, _INK)],
+                            family="monospace", weight="bold"))
+    chi = [name for name, *_ in _FIELDS].index("χ²_red")
+    fig.add_artist(_EmbeddedText(x_of(_OFFSETS[chi] + _FIELDS[chi][1]), y_of(-1), "χ²_red",
+                                 ha="right", va="center", fontsize=7, weight="bold",
+                                 transform=fig.transFigure))
+    fig.add_artist(Line2D([left, left + TABLE_WIDTH], [top - ROW_HEIGHT] * 2,
+                          transform=fig.transFigure, color="#444444", lw=0.6))
+    shading = [[(left, y_of(j) - h), (left + TABLE_WIDTH, y_of(j) - h),
+                (left + TABLE_WIDTH, y_of(j) + h), (left, y_of(j) + h)]
+               for j in range(1, len(rows), 2) for h in [ROW_HEIGHT / 2]]
+    fig.add_artist(PolyCollection(shading, facecolors="#f2f2f2", linewidths=0,
+                                  transform=fig.transFigure))
+    items, reasons = [], []
     for j, row in enumerate(rows):
-        y = j + 1.5
-        if j % 2:
-            ax.axhspan(y - 0.5, y + 0.5, color="#f2f2f2", lw=0)
         cells, ok, state = _table_cells(start + j, row, key, spec, info)
-        for (name, x, ha), text in zip(_COLS, cells):
-            if text is None:
-                continue
-            color = "#222222"
-            if (name == "status" and not ok) or (name == "spec" and state == "fail"):
-                color = PALETTE["fail"]
-            if name == "verdict":
-                color = _VERDICT_COLOURS.get(text, "#222222")
-            ax.text(x, y, text, ha=ha, va="center", fontsize=7, color=color,
-                    family=_MONO if name in ("sha256", "thickness (nm)", "n(633)", "χ²_red")
-                    else None)
+        y = y_of(j) - drop
+        colours = [_INK] * len(cells)
         if not ok:
-            ax.text(0.56, y, _clip(_reason(row), 68), ha="left", va="center", fontsize=6.5,
-                    color=PALETTE["fail"], style="italic")
+            colours[3] = PALETTE["fail"]
+            reasons.append((x_of(_OFFSETS[4]), y, 0, _clip(_reason(row), 70), PALETTE["fail"]))
+        colours[4] = _VERDICT_COLOURS.get(cells[4], _INK)
+        if state == "fail":
+            colours[8] = PALETTE["fail"]
+        line, over = _table_line(cells, colours)
+        items.append((left, y, 0, line, _INK))
+        items += [(left, y, chars, text, colour) for chars, text, colour in over]
+    fig.add_artist(_RowText(fig, items, family="monospace"))
+    if reasons:
+        fig.add_artist(_RowText(fig, reasons, size=6.5, style="italic"))
 
 
-def _overview(fig, rows, key, spec, info):
+_LINE = 0.018                # overview lines, figure fraction
+_PROVENANCE_LINES = 7
+TABLE_BOTTOM = 0.035         # the lowest row's bottom edge: clear of the footer
+
+
+def _overview_bottom(n_summary: int) -> float:
+    """Where the overview block ends (figure fraction) with ``n_summary`` summary lines."""
+    return 0.925 - _PROVENANCE_LINES * _LINE - 0.012 - n_summary * _LINE - 0.01
+
+
+def _rows_first_page(n_summary: int) -> int:
+    """Table rows that fit under the overview (fewer when there are many limits)."""
+    room = int((_overview_bottom(n_summary) - TABLE_BOTTOM) / ROW_HEIGHT) - 1
+    return max(0, min(ROWS_FIRST_PAGE, room))
+
+
+def _overview(fig, summary, info):
     fig.text(0.06, 0.955, "Pellucid batch report", fontsize=17, weight="bold")
     lines = [("software", info["software"]), ("recipe", info["recipe_name"] or "–"),
              ("recipe hash", info["recipe_hash"] or "–"), ("created", info["created"]),
@@ -363,17 +558,28 @@ def _overview(fig, rows, key, spec, info):
              ("results folder", _short(info["results_dir"], 80)),
              ("input hashes", "first 10 hex digits of each file's SHA-256 below; "
                               "full values in the batch summary and each result")]
-    for j, (k, v) in enumerate(lines):
-        fig.text(0.06, 0.925 - j * 0.018, k, fontsize=8.5, color="#555555")
-        fig.text(0.22, 0.925 - j * 0.018, v, fontsize=8.5)
+    ys = [0.925 - j * _LINE for j in range(_PROVENANCE_LINES)]
+    ys += [ys[-1] - 0.012 - (j + 1) * _LINE for j in range(len(summary))]
+    for y, (k, v) in zip(ys, lines + summary):
+        fig.text(0.06, y, k, fontsize=8.5, color="#555555")
+        fig.text(0.22, y, v, fontsize=8.5)
+    return _overview_bottom(len(summary))
+
+
+def _overview_summary(rows, key, spec) -> list[tuple[str, str]]:
+    """The overview's counts, verdicts, spec result, thickness statistics and limits."""
     ok = [r for r in rows if row_ok(r)]
     d = np.array([_num(r.get(key)) for r in ok])
     d = d[np.isfinite(d)]
     states = [_spec_state(r, spec, key) for r in rows]
     n_pass = states.count("pass")
     verdicts = [_verdict(r) for r in ok]
-    summary = [("spectra", f"{len(rows)}"), ("fitted", f"{len(ok)}"),
-               ("failed", f"{len(rows) - len(ok)}"),
+    n_failed = len(rows) - len(ok)
+    summary = [("spectra", f"{len(rows)}"),
+               ("fitted", f"{len(ok)}" + ("   (status “fitted” in the table; its verdict says "
+                                          "how good the fit is)" if ok else "")),
+               ("failed", f"{n_failed}" + ("   (in red in the table, with the reason)"
+                                           if n_failed else "")),
                ("verdicts", ", ".join(f"{verdicts.count(v)} {v}" for v in VERDICTS)
                 + (f", {verdicts.count('')} without" if verdicts.count("") else "")
                 if any(verdicts) else "none given by the fit engine"),
@@ -388,30 +594,22 @@ def _overview(fig, rows, key, spec, info):
         lo, hi = spec_bounds(spec, q)
         summary.append((f"limit {q}", f"{'–' if lo is None else f'{lo:g}'} to "
                                       f"{'–' if hi is None else f'{hi:g}'}"))
-    y0 = 0.925 - len(lines) * 0.018 - 0.012
-    for j, (k, v) in enumerate(summary):
-        fig.text(0.06, y0 - j * 0.018, k, fontsize=8.5, color="#555555")
-        fig.text(0.22, y0 - j * 0.018, v, fontsize=8.5)
-    return y0 - len(summary) * 0.018 - 0.01
+    return summary
 
 
 def _failed_page(fig, items, info):
     fig.text(0.06, 0.955, "Failed spectra", fontsize=14, weight="bold")
-    ax = fig.add_axes((0.06, 0.06, 0.88, 0.87))
-    ax.set_axis_off()
-    h = 1.0 / (FAILED_PER_PAGE + 0.5)
+    h = 0.87 / (FAILED_PER_PAGE + 0.5)      # straight on the page: no Axes to pay for
     for j, (i, row) in enumerate(items):
-        y = 1 - (j + 0.2) * h
-        ax.text(0.0, y, f"{i + 1}", fontsize=7.5, ha="left", va="center", color="#555555")
-        ax.text(0.06, y, _short(_display_name(row, info), 60), fontsize=7.5, va="center")
+        y = 0.93 - (j + 0.2) * h
+        fig.text(0.06, y, f"{i + 1}", fontsize=7.5, ha="left", va="center", color="#555555")
+        fig.text(0.113, y, _short(_display_name(row, info), 60), fontsize=7.5, va="center")
         # The whole reason, wrapped: its end usually says what to do.
         lines = textwrap.wrap(f"{row.get('status', 'failed')}: {_reason(row)}", 115)
         if len(lines) > 3:
             lines = lines[:2] + [_clip(" ".join(lines[2:]), 115)]
-        ax.text(0.06, y - 0.2 * h, "\n".join(lines), fontsize=6.8, va="top",
-                color=PALETTE["fail"], linespacing=1.25)
-    ax.set_xlim(0, 1)
-    ax.set_ylim(0, 1)
+        fig.text(0.113, y - 0.2 * h, "\n".join(lines), fontsize=6.8, va="top",
+                 color=PALETTE["fail"], linespacing=1.25)
 
 
 def _has_curves(folder: Path) -> bool:
@@ -427,7 +625,7 @@ def _two_lines(text: str) -> str:
 
 
 def _worst_page(fig, items, results_dir, key, info, heading):
-    subs = _panels(fig, heading, (5,) * len(items) + ((5,) if len(items) == 1 else ()))
+    subs = _plot_panels(fig, heading, (5,) * len(items) + ((5,) if len(items) == 1 else ()))
     for sub, (i, row) in zip(subs, items):
         d, s = _num(row.get(key)), _num(row.get(f"{key}_sigma"))
         title = (f"#{i + 1}  {_short(_display_name(row, info), 50)}   d = {_pm(d, s)} nm   "
@@ -455,7 +653,8 @@ def _worst_page(fig, items, results_dir, key, info, heading):
                                f"{_short(_result_dir(row, results_dir), 70)}",
                      ha="center", va="center", fontsize=8, color="#666666")
             continue
-        fit_figure(curves, fig=sub, title=title)
+        with _margins(sub, top=0.1 + 0.19 * (title.count("\n") + 1), hspace=0.08):
+            fit_figure(curves, fig=sub, title=title)
 
 
 # -- public entry point ---------------------------------------------------------------
@@ -505,27 +704,32 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
     layer = _layer_of(key)
 
     # Plan the pages first so each can say "page i of N".
-    pages: list[tuple[bool, Callable[[Figure], None]]] = []   # (constrained, draw)
+    pages: list[tuple[str, Callable[[Figure], None]]] = []   # ("text" or "plots", draw)
 
-    def overview(fig, chunk=rows[:ROWS_FIRST_PAGE]):
-        top = _overview(fig, rows, key, spec, info)
+    summary = _overview_summary(rows, key, spec)
+    first = _rows_first_page(len(summary))
+
+    def overview(fig, chunk=rows[:first]):
+        top = _overview(fig, summary, info)
         if chunk:
             _draw_table(fig, top, chunk, 0, key, spec, info)
-    pages.append((False, overview))
-    for start in range(ROWS_FIRST_PAGE, len(rows), ROWS_PER_PAGE):
+    pages.append(("text", overview))
+    for start in range(first, len(rows), ROWS_PER_PAGE):
         chunk = rows[start:start + ROWS_PER_PAGE]
 
         def table(fig, chunk=chunk, start=start):
             fig.text(0.06, 0.955, f"Summary table, spectra {start + 1}–{start + len(chunk)}",
                      fontsize=12, weight="bold")
             _draw_table(fig, 0.935, chunk, start, key, spec, info)
-        pages.append((False, table))
+        pages.append(("text", table))
 
     def thickness(fig):
-        top, bottom = _panels(fig, "Thickness", (1, 1))
-        thickness_trend_figure(rows, spec, key=key, fig=top)
-        thickness_histogram_figure(rows, spec, key=key, fig=bottom)
-    pages.append((True, thickness))
+        top, bottom = _plot_panels(fig, "Thickness", (1, 1))
+        with _margins(top):
+            thickness_trend_figure(rows, spec, key=key, fig=top)
+        with _margins(bottom):
+            thickness_histogram_figure(rows, spec, key=key, fig=bottom)
+    pages.append(("plots", thickness))
 
     ok_idx = [i for i, r in enumerate(rows) if row_ok(r)]
     overlay_idx = ok_idx
@@ -544,21 +748,22 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
                 missing += 1
             else:
                 curves.append({**c, "order": i + 1})
-        top, bottom = _panels(fig, "Optical constants", (5, 1))
+        top, bottom = _plot_panels(fig, "Optical constants", (5, 1))
         title = f"n and κ of {len(ok_idx)} successful spectra"
         if len(curves) < len(ok_idx):
             title += f" ({len(curves)} shown"
             title += ", evenly spaced in batch order)" if len(overlay_idx) < len(ok_idx) else ")"
-        nk_overlay_figure(curves, max_curves=MAX_OVERLAY, fig=top, title=title)
+        with _margins(top, top=0.5):
+            nk_overlay_figure(curves, max_curves=MAX_OVERLAY, fig=top, title=title)
         if missing:
             bottom.text(0.06, 0.7, f"{missing} of the selected spectra had no readable n/κ "
                                    f"export in {_short(results_dir, 60)}.", fontsize=8,
                         color="#666666")
-    pages.append((True, overlay))
+    pages.append(("plots", overlay))
 
     failed = [(i, r) for i, r in enumerate(rows) if not row_ok(r)]
     for start in range(0, len(failed), FAILED_PER_PAGE):
-        pages.append((False, lambda fig, items=failed[start:start + FAILED_PER_PAGE]:
+        pages.append(("text", lambda fig, items=failed[start:start + FAILED_PER_PAGE]:
                       _failed_page(fig, items, info)))
 
     # Fits that ran but did not converge still have curves worth seeing; they come
@@ -579,7 +784,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
                            (ranked, worst_heading)):
         for start in range(0, len(group), 2):
             items = [(i, rows[i]) for i in group[start:start + 2]]
-            pages.append((True, lambda fig, items=items, heading=heading:
+            pages.append(("plots", lambda fig, items=items, heading=heading:
                           _worst_page(fig, items, results_dir, key, info, heading)))
 
     meta = {"Title": f"Pellucid batch report{': ' + rname if rname else ''}",
@@ -587,11 +792,7 @@ def write_batch_report(rows: Sequence[Mapping], results_dir, pdf_path, *, recipe
             "Subject": f"recipe_hash={rhash}; created={created}; spectra={len(rows)}"}
     buf = io.BytesIO()
     with PdfPages(buf, metadata=meta) as pdf:
-        for n, (constrained, draw) in enumerate(pages, start=1):
-            fig = _page(constrained)
-            draw(fig)
-            _footer(fig, footer, n, len(pages))
-            pdf.savefig(fig)
+        _save_pages(pdf, pages, footer)
     return atomic_write_bytes(pdf_path, buf.getvalue())
 
 
@@ -711,7 +912,6 @@ def _fit_param_table(fig, top, params, title):
 
 
 def _hline(fig, y):
-    from matplotlib.lines import Line2D
     return Line2D([0.06, 0.94], [y, y], transform=fig.transFigure, color="#999999", lw=0.6)
 
 

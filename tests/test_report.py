@@ -5,7 +5,9 @@ Pages are rendered with poppler's ``pdftoppm`` and read back with ``pdftotext``
 file a reader gets, not matplotlib's idea of it.
 """
 
+import html
 import math
+import re
 import shutil
 import subprocess
 
@@ -287,3 +289,157 @@ def test_spec_column_judges_rows_by_the_batch_summary_rule():
     assert report._spec_state({"film_thickness": 500.0}, spec, "") is None
     assert report._spec_state({"film_thickness": 530.0}, spec, "") == "fail"
     assert report._spec_state({"film_thickness": 500.0, "spec_pass": "fail"}, spec, "") == "fail"
+
+
+# -- the summary table: every row, marked where it needs a look ------------------------
+def words_on_page(pdf, page):
+    """(text, xMin, yMin, xMax, yMax) of every word pdftotext finds on ``page``, in points
+    from the top left."""
+    out = subprocess.run([PDFTOTEXT, "-f", str(page), "-l", str(page), "-bbox", str(pdf), "-"],
+                         check=True, capture_output=True, text=True, timeout=60).stdout
+    pat = re.compile(r'<word xMin="([\d.]+)" yMin="([\d.]+)" xMax="([\d.]+)" yMax="([\d.]+)">'
+                     r'([^<]*)</word>')
+    return [(html.unescape(m[5]), *map(float, m.groups()[:4])) for m in pat.finditer(out)]
+
+
+def row_words(words, name):
+    """The words on the table row whose file is ``name`` (same baseline, within 2 pt)."""
+    (y,) = [w[2] for w in words if w[0] == name]
+    return [w for w in words if abs(w[2] - y) < 2]
+
+
+def ink_colour(img, box):
+    """Mean colour of the inked pixels inside ``box`` (x0, y0, x1, y1 in pixels)."""
+    x0, y0, x1, y1 = (int(round(v)) for v in box)
+    rgb = img[y0:y1 + 1, x0:x1 + 1, :3].reshape(-1, 3)
+    inked = rgb[rgb.min(axis=1) < 0.6]
+    assert len(inked) > 5, "no ink where pdftotext puts the word"
+    return inked.mean(axis=0)
+
+
+def is_red(c):       # PALETTE["fail"], #D55E00
+    return c[0] - c[2] > 0.4 and c[0] > 0.5
+
+
+def is_orange(c):    # PALETTE["spec"], #E69F00
+    return c[0] - c[2] > 0.4 and c[1] > 0.4
+
+
+def is_ink(c):       # the dark grey of ordinary text
+    return c.max() - c.min() < 0.15
+
+
+def big_batch(n, every_failed=20):
+    rows = []
+    for i in range(n):
+        name = f"run7_{i:04d}.csv"
+        if i % every_failed == 7:
+            rows.append({"file": f"/lab/run7/{name}", "status": "error",
+                         "reason": f"{name}: no data point lies in the fit range"})
+            continue
+        rows.append({"file": f"/lab/run7/{name}", "status": "ok", "sha256": "ab" * 32,
+                     "film_thickness": 470.0 + (i % 60), "film_thickness_sigma": 0.5,
+                     "n_633": 1.46, "redchi": 1.0 + (i % 9) / 3, "warnings": i % 3,
+                     "verdict": ("good", "good", "check", "poor")[i % 4]})
+    return rows
+
+
+@needs_pdftotext
+@needs_poppler
+def test_three_hundred_rows_all_listed_on_the_planned_pages(tmp_path):
+    rows = big_batch(300)
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec=SPEC, worst=2)
+    table_pages = 1 + math.ceil((300 - report.ROWS_FIRST_PAGE) / report.ROWS_PER_PAGE)
+    failed = sum(not r.get("verdict") for r in rows)
+    assert (table_pages, failed) == (7, 15)
+    # + thickness, optical, one page of failures, one page of the two worst fits
+    assert len(render(pdf, tmp_path, dpi=10)) == table_pages + 1 + 1 + 1 + 1
+    out = subprocess.run([PDFTOTEXT, "-f", "1", "-l", str(table_pages), "-layout", str(pdf),
+                          "-"], check=True, capture_output=True, text=True, timeout=60).stdout
+    for i in range(300):
+        assert out.count(f"run7_{i:04d}.csv") == 1, i
+    assert "Summary table, spectra 297–300" in out
+    assert "run7_0000" not in page_text(pdf, table_pages + 1)     # the table ended before
+
+
+@needs_pdftotext
+@needs_poppler
+def test_rows_that_need_a_look_are_marked_in_colour(tmp_path):
+    rows = [{"file": "good.csv", "status": "ok", "verdict": "good", "film_thickness": 500.0},
+            {"file": "poor.csv", "status": "ok", "verdict": "poor", "film_thickness": 500.0},
+            {"file": "check.csv", "status": "ok", "verdict": "check", "film_thickness": 500.0},
+            {"file": "thick.csv", "status": "ok", "verdict": "good", "film_thickness": 560.0},
+            {"file": "broken.csv", "status": "failed", "reason": "the fit did not converge"}]
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec=SPEC, worst=0)
+    words = words_on_page(pdf, 1)
+    subprocess.run([PDFTOPPM, "-r", "72", "-f", "1", "-l", "1", "-png", str(pdf),
+                    str(tmp_path / "p")], check=True, capture_output=True, timeout=60)
+    img = imread(next(tmp_path.glob("p-*.png")))      # 72 dpi: one pixel per point
+
+    def colour(name, word):
+        (w,) = [w for w in row_words(words, name) if w[0] == word]
+        return ink_colour(img, w[1:])
+
+    assert is_ink(colour("good.csv", "good")) and is_ink(colour("good.csv", "fitted"))
+    assert is_red(colour("poor.csv", "poor")) and is_ink(colour("poor.csv", "fitted"))
+    assert is_orange(colour("check.csv", "check"))
+    assert is_red(colour("thick.csv", "FAIL")) and is_ink(colour("thick.csv", "good"))
+    assert is_red(colour("broken.csv", "failed"))
+    assert is_red(colour("broken.csv", "converge"))       # the reason, in the row
+    assert not is_red(colour("broken.csv", "broken.csv"))
+
+
+@needs_pdftotext
+def test_a_finished_fit_reads_fitted_and_the_stored_status_is_untouched(batch, pdf):
+    rows, _root = batch
+    table = [ln for ln in page_text(pdf, 1).splitlines() if "coupon_" in ln]
+    assert len(table) == 5
+    for ln in table:
+        assert ("coupon_x" in ln) == (" failed " in f" {ln} "), ln
+        assert ("coupon_x" not in ln) == (" fitted " in f" {ln} "), ln
+        assert " ok " not in f" {ln} ", ln
+    assert [r["status"] for r in rows] == ["ok", "ok", "failed", "ok", "ok"]
+    overview = " ".join(page_text(pdf, 1).split())
+    assert "fitted 4 (status “fitted” in the table" in overview
+
+
+@needs_pdftotext
+def test_names_outside_the_core_fonts_come_out_as_written(tmp_path):
+    # The text pages use the PDF core fonts (Windows-1252); a page with a Greek or
+    # Cyrillic file name is set in DejaVu instead, so the name is not turned into "?".
+    rows = [{"file": "/lab/Probe_αβ_μ.csv", "status": "ok", "film_thickness": 500.0},
+            {"file": "/lab/Образец-3.csv", "status": "error", "reason": "сбой: no data"},
+            {"file": "/lab/plain.csv", "status": "ok", "film_thickness": 501.0}]
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec=SPEC, worst=0)
+    text = page_text(pdf, 1)
+    assert "Probe_αβ_μ.csv" in text and "Образец-3.csv" in text and "plain.csv" in text
+    assert "?" not in text
+    assert "сбой: no data" in page_text(pdf, 4)                     # the failures page
+
+
+def test_a_table_page_is_a_few_artists_however_many_rows():
+    # What made big reports slow was one Text per cell; the table must stay a handful
+    # of artists per page (a line per row inside them), whatever the number of rows.
+    from matplotlib.figure import Figure
+    counts = []
+    for n in (10, report.ROWS_PER_PAGE):           # each with a failure (row 8)
+        fig = Figure(figsize=report.A4_INCHES)
+        report._draw_table(fig, 0.93, big_batch(n), 0, "film_thickness", SPEC,
+                           {"input_folder": "/lab/run7"})
+        counts.append(len(fig.get_children()))
+    assert counts[0] == counts[1] <= 8, counts
+
+
+@needs_pdftotext
+def test_many_limits_push_rows_to_the_next_page_not_onto_the_footer(tmp_path):
+    spec = {"film_thickness": {"min": 475, "max": 525}, "redchi": {"max": 3},
+            "n_633": {"min": 1.4}, "film_thickness_sigma": {"max": 1}, "warnings": {"max": 2}}
+    rows = big_batch(120)
+    pdf = report.write_batch_report(rows, tmp_path, tmp_path / "r.pdf", spec=spec, worst=0)
+    words = words_on_page(pdf, 1)
+    (footer_top,) = [w[2] for w in words if w[0] == "page"]
+    names = [w for w in words if w[0].startswith("run7_")]
+    assert 20 < len(names) < report.ROWS_FIRST_PAGE       # fewer rows than with one limit
+    assert max(w[4] for w in names) < footer_top - 2      # the last row clears the footer
+    text = "".join(page_text(pdf, p) for p in (1, 2, 3))
+    assert [text.count(f"run7_{i:04d}.csv") for i in range(120)] == [1] * 120
