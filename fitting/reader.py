@@ -713,6 +713,29 @@ class _Numbers:
         self.plain = re.compile(rf"[+-]?(?:\d+(?:{d}\d*)?|{d}\d+)(?:[eE][+-]?\d+)?\Z", re.ASCII)
         self.grouped = re.compile(rf"[+-]?[1-9]\d{{0,2}}(?:{t}\d{{3}})+(?:{d}\d*)?\Z", re.ASCII)
         self.seen_thousands = False
+        self._rows: dict = {}
+
+    def plain_row(self, stripped: str, delimiter: str) -> int:
+        """Number of fields if the stripped line is two or more plain numbers joined by
+        ``delimiter`` (spaces or tabs around it), else 0: the common data row, judged
+        with one regular expression instead of field by field."""
+        row = self._rows.get(delimiter)
+        if row is None:
+            num = rf"[+-]?(?:\d+(?:{re.escape(self.decimal)}\d*)?|{re.escape(self.decimal)}\d+)" \
+                  r"(?:[eE][+-]?\d+)?"
+            if delimiter == self.decimal:
+                row = False                  # quoted decimal commas: field by field
+            elif delimiter == " ":
+                row = re.compile(rf"{num}(?:[ \t]+{num})+", re.ASCII)
+            else:
+                sep = re.escape(delimiter)
+                row = re.compile(rf"{num}(?:[ \t]*{sep}[ \t]*{num})+(?:[ \t]*{sep})*", re.ASCII)
+            self._rows[delimiter] = row
+        if not row or not row.fullmatch(stripped):
+            return 0
+        if delimiter == " ":
+            return len(stripped.split())
+        return stripped.rstrip(" \t" + delimiter).count(delimiter) + 1
 
     def parse(self, token: str) -> float | None:
         """float; NaN for a missing-value marker; None for text."""
@@ -777,6 +800,16 @@ def _is_word(token: str) -> bool:
 
 def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
     """(kind, number of fields) of one line under a candidate dialect."""
+    s = line.strip()
+    if len(s) <= _MAX_LINE:
+        n = numbers.plain_row(s, delimiter)
+        if n:
+            return (_WIDE if n > _MAX_COLUMNS else _DATA), n
+    return _row_kind_exact(line, delimiter, numbers)
+
+
+def _row_kind_exact(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
+    """:func:`_row_kind` field by field (every kind of line)."""
     s = line.strip()
     if not s:
         return _BLANK, 0

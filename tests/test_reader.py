@@ -1003,3 +1003,14 @@ def test_common_file_has_each_line_judged_about_once_and_a_refusal_searches_in_f
                        r"their numbers hold characters"):
         parse_spectrum("x\n" + "\n".join(f"{400 + i}\t8·{i}" for i in range(20)))
     assert len(full) == 2
+
+
+@settings(max_examples=300, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(_heads(), st.sampled_from(["\t", ";", ",", " "]), st.sampled_from([".", ","]))
+def test_plain_rows_by_one_expression_are_judged_as_field_by_field(lines, delim, dec):
+    import fitting.reader as reader
+    numbers = reader._Numbers(dec)
+    for line in lines + [" 450.5 ;\t87.2;; ", "1e5,2E-3", "+.5\t-7.", "450\u00a087"]:
+        assert reader._row_kind(line, delim, numbers) == \
+            reader._row_kind_exact(line, delim, reader._Numbers(dec)), repr(line)
