@@ -29,7 +29,6 @@ uncertainty that could not be estimated.
 from __future__ import annotations
 
 import io
-import json
 import math
 import re
 import secrets
@@ -41,7 +40,7 @@ import numpy as np
 
 from . import __version__
 from .atomic import atomic_write_bytes, atomic_write_text, sync_dir
-from .jsonsafe import json_safe
+from .jsonsafe import json_safe, json_text
 from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
@@ -144,8 +143,6 @@ def provenance_footer(provenance: Mapping | None) -> str:
 # characters and a random part, so no text of a result can look like it.
 _MARK = f"\ue000{secrets.token_hex(8)}:"
 _MARKS = re.compile(f'"{_MARK}(\\d+)\ue001"')
-#: One encoder for every value of the JSON export (json.dumps would build one per call).
-_COMPACT = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
 
 
 class _NumberText:
@@ -218,25 +215,11 @@ def _col(a, size):
 
 
 def _json_text(doc: Mapping, numbers: _NumberText | None = None) -> str:
-    """Strict JSON of ``doc`` (cleaned here by :func:`json_safe`) laid out for reading:
-    one line per top-level key and per key one level down, each value compact.
-
-    Encoded by the C encoder (an indented dump takes the slow pure-Python path), with
-    the long runs of numbers written from ``numbers``' texts, which the CSV files of
-    the same fit share.
-    """
+    """Strict JSON of ``doc`` (cleaned here by :func:`json_safe`) laid out for reading
+    (:func:`fitting.jsonsafe.json_text`), with the long runs of numbers written from
+    ``numbers``' texts, which the CSV files of the same fit share."""
     numbers = numbers or _NumberText()
-    doc = json_safe(doc, runs=numbers.json_run)
-
-    compact = _COMPACT.encode
-    parts = []
-    for k, v in doc.items():
-        if isinstance(v, dict) and v:
-            inner = ",\n".join(f"    {compact(str(k2))}: {compact(v2)}" for k2, v2 in v.items())
-            parts.append(f"  {compact(str(k))}: {{\n{inner}\n  }}")
-        else:
-            parts.append(f"  {compact(str(k))}: {compact(v)}")
-    return numbers.fill("{\n" + ",\n".join(parts) + "\n}\n")
+    return numbers.fill(json_text(json_safe(doc, runs=numbers.json_run)))
 
 
 def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None = None,
