@@ -77,6 +77,8 @@ from __future__ import annotations
 import csv
 import dataclasses
 import glob
+import hashlib
+import json
 import os
 import re
 import time
@@ -90,12 +92,12 @@ from pathlib import Path
 from collections.abc import Iterable, Iterator, Mapping
 
 from . import __version__
-from .atomic import atomic_write_json
+from .atomic import atomic_write_json, atomic_write_text
 from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,  # noqa: F401
                           assign_folders, check_out_dir, export_stem, is_disk_full,
                           read_marker_record, safe_stem, write_stamp, write_summary_files)
 from .errors import PellucidError, RecipeError
-from .jsonsafe import finite_or_none, json_safe
+from .jsonsafe import finite_or_none, json_safe, json_text
 from .limits import overall_state
 from .pool import BATCH_PRELOAD, start_workers_early
 from .recipe import (STANDARD_WAVELENGTHS_NM, Recipe, load_recipe, recipe_from_dict,
@@ -383,11 +385,27 @@ def result_model(result) -> str | None:
         return None
     pick = next((x for x in layers if (x.get("thickness") or {}).get("vary")), layers[0])
     try:
+        # The choice depends on the model's kind and shape (its terms), not on the
+        # fitted values: worked out once per shape, not once per spectrum.
+        shape = json.dumps({k: v for k, v in pick["material"].items() if k != "params"},
+                           sort_keys=True, default=str)
+    except (AttributeError, TypeError, ValueError):
+        shape = None
+    if shape in _MODEL_OF_SHAPE:
+        return _MODEL_OF_SHAPE[shape]
+    try:
         from .dispersion import model_from_dict
         from .presets import model_choice_of
-        return model_choice_of(model_from_dict(pick["material"]))
-    except (PellucidError, KeyError, TypeError, ValueError):
+        choice = model_choice_of(model_from_dict(pick["material"]))
+    except (PellucidError, KeyError, TypeError, ValueError, AttributeError):
         return None
+    if shape is not None and len(_MODEL_OF_SHAPE) < 256:
+        _MODEL_OF_SHAPE[shape] = choice
+    return choice
+
+
+#: Model choice per material shape (kind, terms, options), filled by :func:`result_model`.
+_MODEL_OF_SHAPE: dict = {}
 
 
 def summary_row(result, recipe: Recipe, *, index: int, path, sha256: str, rhash: str,
@@ -490,9 +508,15 @@ class Prepared:
                           families=want if isinstance(want, (tuple, list)) else None)
         return s.result, s
 
-    def spectrum(self, path):
-        """Read a spectrum file and apply the reference correction of the recipe."""
-        sp = self.read_spectrum(path, options=self.options)
+    def spectrum(self, path, content: bytes | None = None):
+        """Read a spectrum file (or its ``content``, already read from ``path``) and apply
+        the reference correction of the recipe."""
+        if content is None:
+            sp = self.read_spectrum(path, options=self.options)
+        else:
+            from .reader import parse_spectrum
+            sp = parse_spectrum(content, options=self.options, source=str(path),
+                                name=Path(path).stem)
         if self.baseline is not None:
             from .reference import reference_correct
             sp = reference_correct(sp, self.baseline, self.dark)
@@ -603,16 +627,18 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
         prep = _prepared(context, task["recipe"])
     except PellucidError as e:
         return row(None, "error", str(e), "")
+    # Read once: the bytes whose hash is checked are the bytes fitted (a file changed
+    # after the check cannot slip in), and the file is not read a second time.
     try:
-        now = sha256_of_file(path)
+        content = path.read_bytes()
     except OSError as e:
         return row(None, "error", f"cannot read the file: {e.strerror or e}", "")
-    if now != sha:
+    if hashlib.sha256(content).hexdigest() != sha:
         return row(None, "error", "the file changed while the batch was running; rerun the "
                                   "batch with --resume to fit the new content", "")
     result, files, tb = None, [], ""
     try:
-        spectrum = prep.spectrum(path)
+        spectrum = prep.spectrum(path, content)
         result, suggestion = prep.fit(spectrum, stop=stop)
         stopped = result.aborted or (suggestion is not None and suggestion.stopped)
         if stopped and stop is not None and stop.is_set():
@@ -650,7 +676,8 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
     try:
         folder.mkdir(parents=True, exist_ok=True)
         _remove_old_exports(folder, keep=set(files))
-        atomic_write_json(folder / MARKER_NAME, record)    # last: marks the spectrum done
+        # Last: marks the spectrum done. Laid out by the C encoder, one line per key.
+        atomic_write_text(folder / MARKER_NAME, json_text(record))
         r["_marker"] = True
     except OSError as e:
         halt = _write_error(e, folder / MARKER_NAME) if is_disk_full(e) else ""

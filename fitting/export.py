@@ -29,9 +29,9 @@ uncertainty that could not be estimated.
 from __future__ import annotations
 
 import io
-import json
 import math
 import re
+import secrets
 from datetime import UTC, datetime
 from pathlib import Path
 from collections.abc import Mapping, Sequence
@@ -40,7 +40,7 @@ import numpy as np
 
 from . import __version__
 from .atomic import atomic_write_bytes, atomic_write_text, sync_dir
-from .jsonsafe import json_safe
+from .jsonsafe import json_safe, json_text
 from .spectrum import sha256_of_file
 
 __all__ = ["make_provenance", "export_result", "save_figure", "provenance_footer",
@@ -139,13 +139,67 @@ def provenance_footer(provenance: Mapping | None) -> str:
 
 
 # -- writers --------------------------------------------------------------------------
-def _csv_text(columns: Sequence[str], data: np.ndarray, header: list[str]) -> str:
+# Stands in for a run of numbers inside the JSON until the encoder is done: private-use
+# characters and a random part, so no text of a result can look like it.
+_MARK = f"\ue000{secrets.token_hex(8)}:"
+_MARKS = re.compile(f'"{_MARK}(\\d+)\ue001"')
+
+
+class _NumberText:
+    """The text of each run of numbers an export writes, made once per run.
+
+    The same arrays go into several files of one fit (the wavelengths into all of
+    them, n and κ into the n, κ table and the JSON), and turning a double into its
+    shortest text (``repr``) is most of an export's time. Runs are keyed by their
+    bytes, so equal arrays share one text and -0.0 stays apart from 0.0.
+    """
+
+    def __init__(self):
+        self._texts: dict = {}
+        self._runs: list = []
+
+    def texts(self, values, missing: str) -> list:
+        """repr of each value (the shortest text that reads back to the same double),
+        ``missing`` where the value is not finite."""
+        a = np.ascontiguousarray(values, dtype=float)
+        key = a.tobytes()
+        known = self._texts.get(key)
+        if known is None:
+            ok = np.isfinite(a)
+            known = self._texts[key] = (list(map(repr, a.tolist())),
+                                        None if ok.all() else ok.tolist(), {})
+        texts, ok, filled = known
+        if ok is None:
+            return texts
+        if missing not in filled:
+            filled[missing] = [t if f else missing for t, f in zip(texts, ok, strict=True)]
+        return filled[missing]
+
+    def csv_column(self, values) -> list:
+        """Cells of a CSV column; ``nan`` for a value that is not finite."""
+        return self.texts(values, "nan")
+
+    def json_run(self, values) -> str:
+        """A stand-in for ``json_safe(..., runs=)``; :meth:`fill` puts the run's text
+        (``null`` for a value that is not finite) in its place."""
+        self._runs.append("[" + ", ".join(self.texts(values, "null")) + "]")
+        return f"{_MARK}{len(self._runs) - 1}\ue001"
+
+    def fill(self, text: str) -> str:
+        """``text`` with each stand-in (as the JSON encoder wrote it) replaced by its run."""
+        runs, self._runs = self._runs, []
+        return _MARKS.sub(lambda m: runs[int(m.group(1))], text)
+
+
+def _csv_text(columns: Sequence[str], data: np.ndarray, header: list[str],
+              numbers: _NumberText | None = None) -> str:
+    """CSV text: the header lines, the column names, one row per line; every value
+    as its ``repr`` (the shortest text that reads back to the same double), ``nan``
+    where it is not finite."""
     data = np.asarray(data, dtype=float)
-    # Non-finite values are written as nan; repr gives the shortest text that reads back
-    # to the same double, and on Python floats (tolist) it is fast.
-    data = np.where(np.isfinite(data), data, np.nan)
-    lines = [*header, ",".join(columns)]
-    lines += [",".join(map(repr, row)) for row in data.tolist()]
+    numbers = numbers or _NumberText()
+    cells = [numbers.csv_column(data[:, j]) for j in range(data.shape[1])]
+    lines = [*header, ",".join(columns), *map(",".join, zip(*cells))]
     return "\n".join(lines) + "\n"
 
 
@@ -160,21 +214,12 @@ def _col(a, size):
     return np.full(size, np.nan) if a is None else np.asarray(a, dtype=float)
 
 
-def _json_text(doc: Mapping) -> str:
-    """Strict JSON laid out for reading: one line per top-level key and per key one level
-    down, each value compact. Encoded by the C encoder (an indented dump takes the slow
-    pure-Python path: most of an export's time for a 1,000-point spectrum)."""
-    def compact(v):
-        return json.dumps(v, ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
-
-    parts = []
-    for k, v in doc.items():
-        if isinstance(v, dict) and v:
-            inner = ",\n".join(f"    {compact(str(k2))}: {compact(v2)}" for k2, v2 in v.items())
-            parts.append(f"  {compact(str(k))}: {{\n{inner}\n  }}")
-        else:
-            parts.append(f"  {compact(str(k))}: {compact(v)}")
-    return "{\n" + ",\n".join(parts) + "\n}\n"
+def _json_text(doc: Mapping, numbers: _NumberText | None = None) -> str:
+    """Strict JSON of ``doc`` (cleaned here by :func:`json_safe`) laid out for reading
+    (:func:`fitting.jsonsafe.json_text`), with the long runs of numbers written from
+    ``numbers``' texts, which the CSV files of the same fit share."""
+    numbers = numbers or _NumberText()
+    return numbers.fill(json_text(json_safe(doc, runs=numbers.json_run)))
 
 
 def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None = None,
@@ -225,7 +270,7 @@ def save_figure(fig, path, *, provenance: Mapping | None = None, fmt: str | None
     return atomic_write_bytes(path, buf.getvalue(), sync_dir=sync_dir)
 
 
-def _write_curves(result, path, prov, name):
+def _write_curves(result, path, prov, name, numbers: _NumberText | None = None):
     wl = np.asarray(result.wavelength_nm, dtype=float)
     data = np.column_stack([wl, _col(result.measured, wl.size), _col(result.fitted, wl.size),
                             _col(result.residuals, wl.size), _col(result.sigma, wl.size),
@@ -235,7 +280,7 @@ def _write_curves(result, path, prov, name):
                                            f"(measured - fitted) and sigma of {result.quantity} "
                                            "as fractions (1.0 = 100 %); used = 1 if the point "
                                            "took part in the fit"})
-    atomic_write_text(path, _csv_text(curve_columns(result.quantity), data, header),
+    atomic_write_text(path, _csv_text(curve_columns(result.quantity), data, header, numbers),
                       sync_dir=False)
 
 
@@ -279,6 +324,7 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
     out.mkdir(parents=True, exist_ok=True)
     prov = dict(provenance)
     name = (result.spectrum or {}).get("name") or stem
+    numbers = _NumberText()            # each array's text made once for all the files
     written: list[Path] = []
     if "pdf" in parts:
         from .report import write_fit_report   # matplotlib only when a PDF is asked for
@@ -293,16 +339,17 @@ def export_result(result, out_dir, *, stem: str, provenance: Mapping,
                                                "4*pi*k/wavelength in 1/cm; *_sigma = 1-sigma "
                                                "from the fit covariance (nan = not estimated)"})
         written.append(atomic_write_text(out / f"{stem}_nk_{layer}.csv",
-                                         _csv_text(NK_COLUMNS, data, header), sync_dir=False))
+                                         _csv_text(NK_COLUMNS, data, header, numbers),
+                                         sync_dir=False))
 
     if "curves" in parts:
-        _write_curves(result, out / f"{stem}_curves.csv", prov, name)
+        _write_curves(result, out / f"{stem}_curves.csv", prov, name, numbers)
         written.append(out / f"{stem}_curves.csv")
     if "json" in parts:
         doc = result.to_dict(curves=True)
         doc["provenance"] = prov
         written.append(atomic_write_text(out / f"{stem}_result.json",
-                                         _json_text(json_safe(doc)), sync_dir=False))
+                                         _json_text(doc, numbers), sync_dir=False))
     if "report" in parts:
         text = "\n".join(["Pellucid fit report", f"spectrum: {name}",
                           *(line[2:] for line in _prov_lines(prov)), "", result.report(), ""])

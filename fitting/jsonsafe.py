@@ -10,18 +10,21 @@ a value the cleaner missed fails loudly instead of making an unreadable file.
 Functions
 ---------
 json_safe(obj)         nested data -> plain JSON data (NaN/inf -> None, numpy -> Python)
+                       (``runs=``: long runs of numbers handed to a writer instead)
+json_text(doc)         plain JSON data -> strict JSON text, one line per key (two levels)
 finite_or_none(x)      one number -> a finite float, or None
 is_plain_json(v)       True for values that are JSON types already (no cleaning needed)
 """
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Mapping
 
 import numpy as np
 
-__all__ = ["json_safe", "finite_or_none", "is_plain_json"]
+__all__ = ["json_safe", "json_text", "finite_or_none", "is_plain_json"]
 
 
 def finite_or_none(x) -> float | None:
@@ -35,7 +38,12 @@ def finite_or_none(x) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def json_safe(obj):
+#: Item types of a list that is plain JSON as it stands (exact types: not subclasses).
+_PLAIN = frozenset({str, int, bool, type(None)})
+_FLOAT = {float}
+
+
+def json_safe(obj, *, runs=None):
     """Nested data as plain JSON data, the same shape.
 
     NaN and infinity become None; numpy scalars and arrays become Python numbers and
@@ -44,7 +52,13 @@ def json_safe(obj):
 
     Long runs of numbers (curves, n and κ, about a thousand points per spectrum) are
     cleaned in one vectorised step: the exports of a batch call this for every spectrum.
+    With ``runs`` (a function of a 1-D float array), each such run is replaced by what
+    ``runs`` returns for it, unchanged: a writer that formats the numbers itself.
     """
+    return _clean(obj, runs)
+
+
+def _clean(obj, runs):
     # The common types first, by exact type: Mapping is an abstract class and slow to test.
     t = type(obj)
     if t is float:
@@ -52,16 +66,26 @@ def json_safe(obj):
     if t is str or t is int or t is bool or obj is None:
         return obj
     if t is dict:
-        return {str(k): json_safe(v) for k, v in obj.items()}
+        return {str(k): _clean(v, runs) for k, v in obj.items()}
+    if t is list or t is tuple:
+        # The item types tested at C speed (a generator costs ~10x): texts, ints, bools
+        # and None are plain JSON as they are, floats may be a run.
+        types = set(map(type, obj))
+        if types <= _PLAIN:
+            return list(obj)
+        if len(obj) > 8 and types == _FLOAT:
+            clean = _float_run(obj, runs)
+            if clean is not None:
+                return clean
+        return [_clean(v, runs) for v in obj]
     if isinstance(obj, (list, tuple, np.ndarray)):
-        if len(obj) > 8 and (isinstance(obj, np.ndarray)
-                             or all(type(x) is float for x in obj)):
-            clean = _float_run(obj)
+        if len(obj) > 8 and (isinstance(obj, np.ndarray) or set(map(type, obj)) == _FLOAT):
+            clean = _float_run(obj, runs)
             if clean is not None:
                 return clean
         if isinstance(obj, np.ndarray):
-            return json_safe(obj.tolist())
-        return [json_safe(v) for v in obj]
+            return _clean(obj.tolist(), runs)
+        return [_clean(v, runs) for v in obj]
     if isinstance(obj, (bool, np.bool_)):
         return bool(obj)
     if isinstance(obj, (int, np.integer)):
@@ -71,14 +95,36 @@ def json_safe(obj):
     if isinstance(obj, str):        # a str subclass (an enum of texts): json writes its text
         return obj
     if isinstance(obj, Mapping):
-        return {str(k): json_safe(v) for k, v in obj.items()}
+        return {str(k): _clean(v, runs) for k, v in obj.items()}
     try:
-        return json_safe(float(obj))
+        return _clean(float(obj), runs)
     except (TypeError, ValueError):
         return str(obj)
 
 
-def _float_run(obj) -> list | None:
+#: One encoder for every value (json.dumps would build one per call).
+_COMPACT = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
+
+
+def json_text(doc: Mapping) -> str:
+    """Strict JSON of plain data ``doc`` (see :func:`json_safe`) laid out for reading: one
+    line per top-level key and per key one level down, each value compact.
+
+    Encoded by the C encoder: an indented :func:`json.dumps` takes the pure-Python
+    path, several times slower on a result. NaN or infinity raise ValueError.
+    """
+    compact = _COMPACT.encode
+    parts = []
+    for k, v in doc.items():
+        if isinstance(v, dict) and v:
+            inner = ",\n".join(f"    {compact(str(k2))}: {compact(v2)}" for k2, v2 in v.items())
+            parts.append(f"  {compact(str(k))}: {{\n{inner}\n  }}")
+        else:
+            parts.append(f"  {compact(str(k))}: {compact(v)}")
+    return "{\n" + ",\n".join(parts) + "\n}\n"
+
+
+def _float_run(obj, runs=None):
     """A flat run of real numbers cleaned at once, or None if ``obj`` is not one.
 
     ``obj`` is an array or a list of Python floats only: a list that mixes in ints,
@@ -95,6 +141,8 @@ def _float_run(obj) -> list | None:
         return None
     if a.ndim != 1:
         return None
+    if runs is not None:
+        return runs(a)
     ok = np.isfinite(a)
     if ok.all():
         return a.tolist()

@@ -713,6 +713,29 @@ class _Numbers:
         self.plain = re.compile(rf"[+-]?(?:\d+(?:{d}\d*)?|{d}\d+)(?:[eE][+-]?\d+)?\Z", re.ASCII)
         self.grouped = re.compile(rf"[+-]?[1-9]\d{{0,2}}(?:{t}\d{{3}})+(?:{d}\d*)?\Z", re.ASCII)
         self.seen_thousands = False
+        self._rows: dict = {}
+
+    def plain_row(self, stripped: str, delimiter: str) -> int:
+        """Number of fields if the stripped line is two or more plain numbers joined by
+        ``delimiter`` (spaces or tabs around it), else 0: the common data row, judged
+        with one regular expression instead of field by field."""
+        row = self._rows.get(delimiter)
+        if row is None:
+            num = rf"[+-]?(?:\d+(?:{re.escape(self.decimal)}\d*)?|{re.escape(self.decimal)}\d+)" \
+                  r"(?:[eE][+-]?\d+)?"
+            if delimiter == self.decimal:
+                row = False                  # quoted decimal commas: field by field
+            elif delimiter == " ":
+                row = re.compile(rf"{num}(?:[ \t]+{num})+", re.ASCII)
+            else:
+                sep = re.escape(delimiter)
+                row = re.compile(rf"{num}(?:[ \t]*{sep}[ \t]*{num})+(?:[ \t]*{sep})*", re.ASCII)
+            self._rows[delimiter] = row
+        if not row or not row.fullmatch(stripped):
+            return 0
+        if delimiter == " ":
+            return len(stripped.split())
+        return stripped.rstrip(" \t" + delimiter).count(delimiter) + 1
 
     def parse(self, token: str) -> float | None:
         """float; NaN for a missing-value marker; None for text."""
@@ -777,6 +800,16 @@ def _is_word(token: str) -> bool:
 
 def _row_kind(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
     """(kind, number of fields) of one line under a candidate dialect."""
+    s = line.strip()
+    if len(s) <= _MAX_LINE:
+        n = numbers.plain_row(s, delimiter)
+        if n:
+            return (_WIDE if n > _MAX_COLUMNS else _DATA), n
+    return _row_kind_exact(line, delimiter, numbers)
+
+
+def _row_kind_exact(line: str, delimiter: str, numbers: _Numbers) -> tuple[int, int]:
+    """:func:`_row_kind` field by field (every kind of line)."""
     s = line.strip()
     if not s:
         return _BLANK, 0
@@ -868,12 +901,115 @@ def _head_lines(text: str, n: int, max_chars: int = _MAX_HEAD_CHARS) -> tuple[li
 
 
 def _choose_dialect(lines, options, path, evidence: dict | None = None):
-    """Score each (delimiter, decimal) by how many lines parse as numeric rows.
+    """The (delimiter, decimal mark, row kinds, number syntax) of the head ``lines``, or None.
+
+    The same choice as :func:`_choose_dialect_full`, found by
+    :func:`_choose_dialect_bounded` with far fewer lines parsed; the full search runs
+    only when no candidate finds a numeric row, to collect the ``evidence`` the
+    refusal quotes (see there), reusing the rows the bounded search judged already.
+    """
+    seen: dict = {}
+    choice = _choose_dialect_bounded(lines, options, seen)
+    if choice is None:
+        choice = _choose_dialect_full(lines, options, evidence, seen)
+    return choice
+
+
+def _candidates(options, quoted: bool) -> list:
+    """(delimiter priority, decimal index, delimiter, decimal) in the order the full
+    search scores them."""
+    delims = DELIMITERS if options.delimiter == "auto" else (options.delimiter,)
+    decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
+    # Decimal comma and comma separator only together with quoted fields
+    # ("500,5","81,25"), as spreadsheets write them.
+    return [(pri, j, delim, dec) for pri, delim in enumerate(delims)
+            for j, dec in enumerate(decs) if dec != delim or (delim == "," and quoted)]
+
+
+#: Last lines of the head each candidate reads first: the one reading most of them as rows
+#: (on a tie, the full search's first) is scored first.
+_PROBE_LINES = 4
+
+
+def _choose_dialect_bounded(lines, options, seen: dict | None = None):
+    """:func:`_choose_dialect_full`'s choice, found by branch and bound.
+
+    The full search keeps the candidate with the largest key (numeric rows, decimal
+    mark agreeing with the commas, delimiter priority), the first one on a tie, i.e.
+    the largest (n_rows, agrees, -priority, -decimal index). A line can be a numeric
+    row under a candidate only if it holds a digit and, stripped, the delimiter
+    (for spaces: whitespace between two fields); :func:`_row_kind` decides nothing
+    else without those. So a candidate's count of such lines bounds its key from
+    above, and a candidate is dropped as soon as that bound, lowered by each line it
+    fails to read as a row, falls below the best key found so far. The likely
+    candidate (ranked on a probe of a few lines) is scored first, so the others
+    usually drop after a line or two and only the winner parses every line. The order
+    decides only how soon the others drop, never which candidate wins.
+
+    Returns None if no candidate finds a numeric row (the caller then runs the full
+    search for the evidence of its refusal). ``seen``, if given, receives the row
+    kinds judged, per (delimiter, decimal mark), for that search to reuse.
+    """
+    stripped = [line.strip() for line in lines]
+    rowlike = [i for i, s in enumerate(stripped)
+               if s and len(s) <= _MAX_LINE and _HAS_DIGIT.search(s) and not _is_comment(s)]
+    quoted = any('"' in line for line in lines)
+    found: dict = {}
+    cands = []
+    for pri, j, delim, dec in _candidates(options, quoted):
+        if delim not in found:
+            found[delim] = ([i for i in rowlike if len(stripped[i].split(None, 1)) > 1]
+                            if delim == " " else [i for i in rowlike if delim in stripped[i]])
+        maybe = found[delim]
+        if not maybe:
+            continue
+        numbers = _Numbers(dec)
+        probe = {i: _row_kind(lines[i], delim, numbers) for i in maybe[-_PROBE_LINES:]}
+        if seen is not None:
+            seen[delim, dec] = probe
+        hits = sum(1 for k, _ in probe.values() if k in _NUMERIC_ROWS or k == _WIDE)
+        cands.append((-hits, pri, j, delim, dec, numbers, maybe, probe))
+    cands.sort(key=lambda c: c[:3])
+    best, best_key = None, None
+    for _, pri, j, delim, dec, numbers, maybe, kinds in cands:
+        n_data, left = 0, len(maybe)
+        if best_key is not None and (left, True, -pri, -j) < best_key:
+            continue
+        for i in maybe:
+            left -= 1
+            kind = kinds.get(i)
+            if kind is None:
+                kind = kinds[i] = _row_kind(lines[i], delim, numbers)
+            if kind[0] in _NUMERIC_ROWS or kind[0] == _WIDE:
+                n_data += 1
+            elif best_key is not None and (n_data + left, True, -pri, -j) < best_key:
+                break
+        else:
+            if n_data == 0:
+                continue
+            commas = any(_comma_in_number(lines[i], delim)
+                         for i in maybe if kinds[i][0] in _NUMERIC_ROWS)
+            key = (n_data, (dec == ",") == commas, -pri, -j)
+            if best_key is None or key > best_key:
+                best, best_key = (delim, dec, kinds, numbers), key
+    if best is None:
+        return None
+    delim, dec, kinds, numbers = best
+    return delim, dec, [kinds.get(i) or _row_kind(line, delim, numbers)
+                        for i, line in enumerate(lines)], numbers
+
+
+def _choose_dialect_full(lines, options, evidence: dict | None = None,
+                         seen: dict | None = None):
+    """Score each (delimiter, decimal) by how many lines parse as numeric rows: the
+    reference search, every candidate over every line.
 
     ``evidence``, if given, receives what a refusal needs without another pass over
     the lines: "broken", the damaged rows of the candidate with most of them, and
     "single", per decimal mark, the lines holding one number (whitespace candidates).
+    ``seen``: row kinds judged before, per (delimiter, decimal mark) and line index.
     """
+    seen = seen or {}
     delims = DELIMITERS if options.delimiter == "auto" else (options.delimiter,)
     decs = DECIMALS if options.decimal == "auto" else (options.decimal,)
     quoted = any('"' in line for line in lines)
@@ -885,7 +1021,9 @@ def _choose_dialect(lines, options, path, evidence: dict | None = None):
             if dec == delim and not (delim == "," and quoted):
                 continue
             numbers = _Numbers(dec)
-            kinds = [_row_kind(line, delim, numbers) for line in lines]
+            known = seen.get((delim, dec), {})
+            kinds = [known.get(i) or _row_kind(line, delim, numbers)
+                     for i, line in enumerate(lines)]
             if evidence is not None:
                 broken = [i for i, (k, _) in enumerate(kinds) if k == _BROKEN]
                 if broken and len(broken) > len(evidence.get("broken", ((),))[0]):

@@ -627,3 +627,60 @@ def test_a_recipe_asking_for_a_model_suggestion_keeps_the_chosen_model(tmp_path)
     ranking = result["extra"]["model_suggestion"]
     assert ranking["chosen"] == row["model"] and ranking["reason"] == row["model_reason"]
     assert {c["model"] for c in ranking["candidates"]} == set(FAMILIES["transparent"])
+
+
+def test_a_spectrum_is_read_once_and_its_marker_laid_out_one_line_per_key(tmp_path,
+                                                                          monkeypatch):
+    # The bytes whose SHA-256 is checked are the bytes fitted: one read of the file.
+    import builtins
+    import hashlib
+    import io
+    from fitting.batch import process_spectrum, recipe_identity
+    from fitting.jsonsafe import json_text
+    write_spectra(tmp_path / "in", [520.0], seed=3)
+    path = tmp_path / "in" / "s000.txt"
+    recipe = make_recipe(exports=("json",))
+    sha = hashlib.sha256(path.read_bytes()).hexdigest()
+    context = {"out_dir": str(tmp_path / "out"), "run_id": "r1",
+               "recipes": {"0": {"recipe": recipe.resolved().to_dict(),
+                                 "hash": recipe_hash(recipe), "identity": recipe_identity(recipe),
+                                 "reference_sha256": {}}}}
+    opened = []
+    real_open = io.open
+
+    def counting_open(file, *a, **k):
+        if str(file) == str(path):
+            opened.append(file)
+        return real_open(file, *a, **k)
+    monkeypatch.setattr(builtins, "open", counting_open)
+    monkeypatch.setattr(io, "open", counting_open)
+    row = process_spectrum({"index": 0, "path": str(path), "sha256": sha,
+                            "folder": "spectra/s000", "recipe": "0"}, context)
+    monkeypatch.undo()
+    assert row["status"] == "ok" and len(opened) == 1
+    text = (tmp_path / "out" / "spectra" / "s000" / MARKER_NAME).read_text(encoding="utf-8")
+    rec = json.loads(text)
+    assert rec["input"]["sha256"] == rec["result"]["spectrum"]["sha256"] == sha
+    assert text == json_text(rec) and text.count("\n") > 20     # readable, not one line
+
+
+def test_the_model_column_is_the_model_of_each_shape(monkeypatch):
+    # result_model remembers the choice per model shape; it must give what
+    # presets.model_choice_of says for every menu model, whatever the fitted values.
+    from types import SimpleNamespace
+    from fitting.batch import result_model
+    from fitting.presets import MODEL_CHOICES, make_model, model_choice_of
+    import fitting.batch as B
+    monkeypatch.setattr(B, "_MODEL_OF_SHAPE", {})
+    models = [make_model(key) for key in MODEL_CHOICES if key not in ("tabulated", "roughness")]
+    kinds = {model_choice_of(m) for m in models}
+    assert len(kinds) == 8
+    for scale in (1.0, 1.1, 1.0):                          # the second and third: remembered
+        for m in models:
+            d = m.to_dict()
+            for p in d["params"].values():
+                p["value"] = p["value"] * scale if p["value"] else p["value"]
+            res = SimpleNamespace(extra={}, stack={"layers": [
+                {"name": "film", "thickness": {"vary": True}, "material": d}]})
+            assert result_model(res) == model_choice_of(m), m.kind
+    assert set(B._MODEL_OF_SHAPE.values()) == kinds

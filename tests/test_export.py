@@ -346,3 +346,62 @@ def test_read_table_csv_names_the_line_of_a_damaged_export(tmp_path):
     p.write_text("wavelength_nm,n\n400.0,2.0\n401.0,#REF!\n", encoding="utf-8")
     with pytest.raises(ValueError, match=r"line 3: a value is not a number"):
         export.read_table_csv(p)
+
+
+def _plain_csv_rows(data):
+    """The CSV rows as written before the shared number texts (the contract): repr of each
+    value, nan where it is not finite."""
+    return [",".join(repr(v) if math.isfinite(v) else "nan" for v in row)
+            for row in np.asarray(data, dtype=float).tolist()]
+
+
+def _plain_json_text(doc):
+    """The JSON text as written before the shared number texts (the contract)."""
+    def compact(v):
+        return json.dumps(v, ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
+
+    parts = []
+    for k, v in export.json_safe(doc).items():
+        if isinstance(v, dict) and v:
+            inner = ",\n".join(f"    {compact(str(k2))}: {compact(v2)}" for k2, v2 in v.items())
+            parts.append(f"  {compact(str(k))}: {{\n{inner}\n  }}")
+        else:
+            parts.append(f"  {compact(str(k))}: {compact(v)}")
+    return "{\n" + ",\n".join(parts) + "\n}\n"
+
+
+def test_tables_and_json_hold_the_same_text_as_plain_formatting(tmp_path):
+    # Each array's text is made once and shared by the files; the files must read
+    # exactly as when every value was formatted on its own, with NaN, ±inf, -0.0,
+    # an array repeated in several places and a name that looks like the JSON's
+    # internal stand-ins.
+    res = make_result(name="s\ue0000123456789abcdef:0\ue001", npts=60)
+    oc = res.optical["film"]
+    measured = res.measured.copy()
+    measured[[3, 4, 5]] = [np.nan, np.inf, -0.0]
+    n_sigma = oc.n_sigma.copy()
+    n_sigma[7] = -np.inf
+    residuals = res.residuals.copy()
+    residuals[5] = -0.0
+    sigma = residuals.copy()                           # the same numbers, but +0.0 for -0.0
+    sigma[5] = 0.0
+    oc = OpticalConstants("film", oc.wavelength_nm, oc.n, oc.k, oc.alpha_cm, n_sigma,
+                          oc.k_sigma, oc.alpha_sigma)
+    res = FitResult(**{**res.__dict__, "measured": measured, "residuals": residuals,
+                       "sigma": sigma,
+                       "optical": {"film": oc}, "redchi": float("nan")})
+    prov = {"software": "pellucid", "input_file": "s.csv"}
+    export.export_result(res, tmp_path, stem="s", provenance=prov, plots=(),
+                         parts=("nk", "curves", "json"))
+    doc = res.to_dict(curves=True)
+    doc["provenance"] = prov
+    assert (tmp_path / "s_result.json").read_text(encoding="utf-8") == _plain_json_text(doc)
+    nk = np.column_stack([oc.wavelength_nm, oc.n, oc.n_sigma, oc.k, oc.k_sigma, oc.alpha_cm,
+                          oc.alpha_sigma])
+    curves = np.column_stack([res.wavelength_nm, res.measured, res.fitted, res.residuals,
+                              res.sigma, res.used])
+    for name, data in (("s_nk_film.csv", nk), ("s_curves.csv", curves)):
+        lines = (tmp_path / name).read_text(encoding="utf-8").splitlines()
+        first = next(i for i, ln in enumerate(lines) if not ln.startswith("#")) + 1
+        assert lines[first:] == _plain_csv_rows(data), name
+    assert "-0.0" in (tmp_path / "s_curves.csv").read_text().splitlines()[first + 5]

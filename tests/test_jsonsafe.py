@@ -107,3 +107,22 @@ def test_finite_or_none():
 def test_is_plain_json():
     assert all(is_plain_json(v) for v in ("x", 1, 1.5, True, [1], {"a": 1}, None))
     assert not any(is_plain_json(v) for v in (np.arange(3), Path("x"), (1, 2), object()))
+
+
+def test_runs_of_numbers_go_to_the_writer_unchanged():
+    seen = []
+
+    def runs(a):
+        seen.append(a.copy())
+        return f"run{len(seen)}"
+
+    floats = [0.5 * i for i in range(12)]
+    data = {"x": floats, "y": np.arange(10.0), "ints": list(range(12)), "short": [1.0, 2.0],
+            "mixed": [*floats, 1], "nested": [{"z": tuple(floats)}], "bool": np.ones(9, bool)}
+    clean = json_safe(data, runs=runs)
+    assert clean == {"x": "run1", "y": "run2", "ints": list(range(12)), "short": [1.0, 2.0],
+                     "mixed": [*floats, 1], "nested": [{"z": "run3"}], "bool": [True] * 9}
+    np.testing.assert_array_equal(seen[0], floats)
+    np.testing.assert_array_equal(seen[1], np.arange(10.0))
+    assert all(a.dtype == float and a.ndim == 1 for a in seen)
+    assert json_safe(data) == json_safe(data, runs=None)     # without a writer: lists

@@ -895,3 +895,122 @@ def test_text_lines_in_a_long_table_take_the_fast_path_with_the_same_answer():
     np.testing.assert_array_equal(fast.table, slow.table)
     s = parse_spectrum(text)
     assert len(s) == 2999 and s.metadata["reader"]["skipped_lines"] == [1502]
+
+
+# ------------------------------------------------- dialect search: bounded == full
+
+def _shipped_tables(tmp_path):
+    """(name, text) of every table shipped with the project: demo spectra and references,
+    the validation data, and one file of each round-trip dialect."""
+    import fitting.reader as reader
+    root = os.path.join(os.path.dirname(__file__), os.pardir)
+    out = []
+    for folder in ("demo_data", os.path.join("validation", "data")):
+        for base, _, files in sorted(os.walk(os.path.join(root, folder))):
+            for f in sorted(files):
+                if f.endswith((".csv", ".txt", ".dat")):
+                    with open(os.path.join(base, f), "rb") as fh:
+                        out.append((f, reader._decode(fh.read(), "auto", f)[0]))
+    spec = smooth_spectrum(metadata={"header": {"Sample": "F-12", "Scan": "1100-300 nm, 1"}})
+    for i, d in enumerate(ROUND_TRIP):
+        path = write_spectrum(tmp_path / f"d{i}.txt", spec, dialect=d)
+        out.append((path.name, reader._decode(path.read_bytes(), "auto", path)[0]))
+    return out
+
+
+def _same_choice(lines, options):
+    import fitting.reader as reader
+    fast = reader._choose_dialect_bounded(lines, options)
+    full = reader._choose_dialect_full(lines, options)
+    assert (fast is None) == (full is None)
+    if full is not None:
+        assert fast[:3] == full[:3]          # delimiter, decimal mark and every row's kind
+        assert fast[3].decimal == full[3].decimal
+    return full
+
+
+SEARCH_OPTIONS = [ReaderOptions(), ReaderOptions(decimal=","), ReaderOptions(decimal="."),
+                  ReaderOptions(delimiter=";"), ReaderOptions(delimiter=" ")]
+
+
+def test_bounded_dialect_search_agrees_with_the_full_search_on_every_shipped_table(tmp_path):
+    # The bounded search is exact by construction (an upper bound on each candidate's
+    # key); here on the files users meet first, in every option setting.
+    import fitting.reader as reader
+    tables = _shipped_tables(tmp_path)
+    assert len(tables) >= 30
+    for name, text in tables:
+        for n in (reader._SNIFF_LINES, 12):
+            lines, _ = reader._head_lines(text, n)
+            for options in SEARCH_OPTIONS:
+                _same_choice(lines, options)
+        assert _same_choice(reader._head_lines(text, reader._SNIFF_LINES)[0],
+                            ReaderOptions()) is not None, name
+
+
+_cells = st.one_of(
+    st.floats(-1e4, 1e5, allow_nan=False).map(lambda v: f"{v:.6g}"),
+    st.floats(0, 1e4, allow_nan=False).map(lambda v: f"{v:.3f}".replace(".", ",")),
+    st.integers(-50, 100_000).map(str),
+    st.sampled_from(["1,234.5", "1.234,5", '"500,5"', '"81.2"', "nan", "--", "", "1e999",
+                     "PMT", "InGaAs", "T (%)", "nm", "5O", "1.2.3", "#", "x", "-", ".5"]))
+_separators = st.sampled_from(["\t", ";", ",", " ", "  ", ", ", "; ", " ;", "\t\t"])
+
+
+@st.composite
+def _heads(draw):
+    """The head of a table in any dialect, with headers, comments and damaged lines."""
+    sep = draw(_separators)
+    width = draw(st.integers(1, 4))
+    lines = [sep.join(draw(st.lists(_cells, min_size=width, max_size=width)))
+             for _ in range(draw(st.integers(0, 25)))]
+    if draw(st.integers(0, 9)) == 0:            # rows wider than the reader takes
+        lines += [draw(_separators).join(["1.5"] * 300)] * draw(st.integers(1, 30))
+    for at, text in draw(st.lists(st.tuples(
+            st.integers(0, len(lines)),
+            st.one_of(st.sampled_from(["", "# 1,2", "Scan: 1100-300 nm, 1 nm", "Slit;2",
+                                       "Wavelength (nm)\tT (%)", "% 450 87", "[Data]"]),
+                      st.builds(lambda s, cs: s.join(cs), _separators,
+                                st.lists(_cells, min_size=1, max_size=5)))), max_size=6)):
+        lines.insert(at, text)
+    return lines
+
+
+@settings(max_examples=300, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(_heads(), st.sampled_from(SEARCH_OPTIONS))
+def test_bounded_dialect_search_agrees_with_the_full_search_on_any_head(lines, options):
+    _same_choice(lines, options)
+
+
+def test_common_file_has_each_line_judged_about_once_and_a_refusal_searches_in_full(
+        monkeypatch):
+    import fitting.reader as reader
+    lines = ["Sample: F-12", "Scan: 1100-300 nm, 1 nm steps", "Wavelength (nm)\tT (%)"]
+    lines += [f"{300 + i}\t{50 + i % 9}.25" for i in range(600)]
+    rows = _count_calls(monkeypatch, reader, "_row_kind")
+    full = _count_calls(monkeypatch, reader, "_choose_dialect_full")
+    s = parse_spectrum("\n".join(lines) + "\n")
+    assert len(s) == 600 and s.metadata["reader"]["delimiter"] == "\t"
+    # 400 head lines: the winner judges each once; the six other candidates a few each
+    # (the full search judged all 400 under all seven).
+    assert not full and len(rows) < 1.1 * reader._SNIFF_LINES
+    # No candidate finds rows: the full search runs and gives its specific reasons.
+    with pytest.raises(SpectrumFormatError, match="only one column of numbers"):
+        parse_spectrum("Wavelength\n" + "\n".join(f"{400 + i}.5" for i in range(20)))
+    assert len(full) == 1
+    with pytest.raises(SpectrumFormatError, match=r"line 2: rows of numbers were found, but "
+                       r"their numbers hold characters"):
+        parse_spectrum("x\n" + "\n".join(f"{400 + i}\t8·{i}" for i in range(20)))
+    assert len(full) == 2
+
+
+@settings(max_examples=300, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(_heads(), st.sampled_from(["\t", ";", ",", " "]), st.sampled_from([".", ","]))
+def test_plain_rows_by_one_expression_are_judged_as_field_by_field(lines, delim, dec):
+    import fitting.reader as reader
+    numbers = reader._Numbers(dec)
+    for line in lines + [" 450.5 ;\t87.2;; ", "1e5,2E-3", "+.5\t-7.", "450\u00a087"]:
+        assert reader._row_kind(line, delim, numbers) == \
+            reader._row_kind_exact(line, delim, reader._Numbers(dec)), repr(line)
