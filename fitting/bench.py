@@ -757,8 +757,9 @@ def format_report(res: dict) -> str:
         lines.append(f"  skipped: {f['skipped']}")
     else:
         lines.append(f"  {f['points']} points, noise {f['noise'] * 100:.1f} %, {f['seeds']} seeds: "
-                     f"median {f['median_wall_s']:.3f} s, {f['median_nfev']:.0f} evaluations, "
-                     f"{f['median_s_per_evaluation'] * 1e6:.0f} µs per evaluation, "
+                     f"median {f['median_wall_s']:.3f} s, {f['median_nfev']:.0f} evaluations "
+                     f"(a Jacobian counted as one per parameter), "
+                     f"{f['median_s_per_evaluation'] * 1e6:.0f} µs each, "
                      f"{f['successes']}/{f['seeds']} converged")
         lines.append(f"  = {f['fit_in_model_evaluations']:.0f} evaluations' worth of one model "
                      f"evaluation ({f['model_evaluation_s'] * 1e6:.0f} µs); "
