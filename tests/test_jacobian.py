@@ -207,3 +207,31 @@ def test_joint_fit_jacobian_has_a_column_for_every_name():
         ref = (obj.residual({**values, k: values[k] + h})
                - obj.residual({**values, k: values[k] - h})) / (2 * h)
         assert np.max(np.abs(J[:, j] - ref)) < 2e-4 * max(np.max(np.abs(ref)), 1e-3), k
+
+
+def test_a_jacobian_costs_three_model_calls_per_film(monkeypatch):
+    # The point of the chain rule: n, κ and thickness shifts, one model call each,
+    # whatever the number of material parameters; the point itself comes from the
+    # evaluation just made there (a fit always evaluates before it differentiates).
+    import fitting.stack as stack_module
+    calls = []
+    real = stack_module.films_RT
+
+    def counting(*a, **k):
+        calls.append(1)
+        return real(*a, **k)
+
+    monkeypatch.setattr(stack_module, "films_RT", counting)
+    wl = np.linspace(400.0, 900.0, 50)
+    stack = Stack([Layer("film", _tl_film(), 700.0)], library_substrate("fused_silica"))
+    sm = stack.evaluator(wl)
+    values = {k: p.value for k, p in stack.parameters().items()}
+    names = ["film_thickness", "film_eps_inf", "film_o1_A", "film_o1_E0", "film_o1_C",
+             "film_o1_Eg"]
+    sm.RT(values)
+    calls.clear()
+    sm.RT_jacobian(values, names)
+    assert len(calls) == 3
+    calls.clear()
+    sm.RT_jacobian({**values, "film_o1_A": 151.0}, names)   # a new point: one more call
+    assert len(calls) == 4
