@@ -243,11 +243,26 @@ def _out_of_range_terms(E, diff, inner):
                          1.0 / (Ep[:, None] ** 2 - E[None] ** 2)), axis=-1)
 
     def residuals(B):
-        # All the small least-squares problems in one batched QR: the residual
-        # norm is |y|² - |Qᵀy|² (the same fits as one lstsq each, far fewer calls).
-        Q, _ = np.linalg.qr(B[:, inner])
-        qy = np.einsum("kmi,m->ki", Q, y)
-        return float(y @ y) - np.sum(qy * qy, axis=1)
+        # All the small least-squares problems at once by their normal equations,
+        # columns scaled to unit norm first (the pole columns differ by orders of
+        # magnitude): residual norm |y|² - bᵀx with G x = b, G = BᵀB, b = Bᵀy. Three
+        # columns keep G well enough conditioned for choosing the poles on a grid;
+        # the chosen fit itself is solved by lstsq (see fitted).
+        Bi = B[:, inner]
+        Bt = Bi.transpose(0, 2, 1)
+        G = Bt @ Bi
+        b = Bt @ y
+        scale = np.sqrt(np.diagonal(G, axis1=1, axis2=2))
+        scale = np.where(scale > 0, scale, 1.0)
+        G = G / (scale[:, :, None] * scale[:, None, :])
+        b = b / scale
+        try:
+            x = np.linalg.solve(G, b[..., None])[..., 0]
+        except np.linalg.LinAlgError:          # a singular pair: the QR path decides
+            Q, _ = np.linalg.qr(Bi)
+            qy = np.einsum("kmi,m->ki", Q, y)
+            return float(y @ y) - np.sum(qy * qy, axis=1)
+        return float(y @ y) - np.sum(b * x, axis=1)
 
     def fitted(Eir, Ep):
         basis = bases(Eir, Ep)[0]
