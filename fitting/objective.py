@@ -320,6 +320,7 @@ class Objective:
         self._stage_nfev0, self._stage_expect = 0, 1
         self._last_report = 0.0
         self._staged = False        # a run on part of the points (its χ² is not the fit's)
+        self._restricted = None     # (masks, parts) of the last staged run
         self._stage_limit = math.inf  # evaluation cap of the current minimiser run
         self._run_best = (math.inf, None)  # best point of the current minimiser run
         self.priors: list[tuple[str, float, float]] = []   # (name, mean, 1σ)
@@ -676,9 +677,16 @@ class Objective:
                 params[k].set(min=max(lo, params[k].min), max=min(hi, params[k].max))
         parts = self.parts
         if masks is not None:
-            # A stage on part of the points: each part bound to just those wavelengths.
-            self.parts = [p if m is None or np.all(m) else p.restricted(m)
-                          for p, m in zip(parts, masks)]
+            # A stage on part of the points: each part bound to just those wavelengths
+            # (bound once per stage: every start of a stage passes the same masks).
+            masks = list(masks)
+            cached = self._restricted
+            if cached is None or len(cached[0]) != len(masks) \
+                    or not all(a is b for a, b in zip(cached[0], masks)):
+                cached = (masks, [p if m is None or np.all(m) else p.restricted(m)
+                                  for p, m in zip(parts, masks)])
+                self._restricted = cached
+            self.parts = cached[1]
             self._staged = True
         self._stage_limit = math.inf if max_nfev is None else self.nfev + max_nfev
         self._run_best = (math.inf, None)
