@@ -238,16 +238,21 @@ class Dispersion(_HasParams):
 EPS_STEP = math.sqrt(np.finfo(float).eps)
 
 
+def forward_step(x: float, upper: float) -> float:
+    """Step of a forward difference at ``x``: √ε·max(|x|, 1), negative where it would
+    pass the upper bound (scipy's ``approx_derivative`` "2-point" rule)."""
+    h = EPS_STEP * max(abs(x), 1.0)
+    return -h if x + h > upper else h
+
+
 def _forward_dN(model, v: Mapping[str, float], name: str, upper: float, f0) -> np.ndarray:
     """(f(v + h e_name) - f0)/h for a function ``model`` of the parameter values.
 
-    The step h = √ε·max(|x|, 1) is taken inwards at the upper bound, and the other
+    The step (:func:`forward_step`) is taken inwards at the upper bound, and the other
     way when the model refuses the shifted value (a Tauc-Lorentz C at 2·E0).
     """
     x = v[name]
-    h = EPS_STEP * max(abs(x), 1.0)
-    if x + h > upper:
-        h = -h
+    h = forward_step(x, upper)
     for step in (h, -h):
         try:
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -590,33 +595,21 @@ class TaucLorentz(Term):
 
     def dchi(self, E, v, names, chi0):
         """dχ/dθ: exact for the amplitude A (χ is A times a shape), forward differences
-        for E0, C and Eg, all shifted shapes computed in one vectorised call."""
+        of the closed form for E0, C and Eg (steps kept inside C < 2·E0), bypassing
+        the shape cache so the shifted shapes do not push out the fitted one."""
         out = np.empty((len(names), np.size(E)), dtype=complex)
-        shape_names = [k for k in names if k != "A"]
-        if "A" in names:
-            out[names.index("A")] = self.chi(E, {**v, "A": 1.0})
-        if not shape_names:
-            return out
-        keys = ("E0", "C", "Eg")
-        base = np.array([float(v[k]) for k in keys])
-        steps = []
-        for k in shape_names:
-            i = keys.index(k)
-            h = EPS_STEP * max(abs(base[i]), 1.0)
-            if base[i] + h > self.params[k].max:
-                h = -h
-            trial = base.copy()
-            trial[i] += h
-            if not trial[1] < 2 * trial[0]:      # C must stay below 2·E0
-                h = -h
-            steps.append((i, h))
-        P = np.repeat(base[None, :], len(steps), axis=0)
-        for row, (i, h) in enumerate(steps):
-            P[row, i] += h
-        shifted = v["A"] * tauc_lorentz_chi_many(np.asarray(E, float), P[:, 0], P[:, 1],
-                                                 P[:, 2])
-        for row, (k, (_, h)) in enumerate(zip(shape_names, steps)):
-            out[names.index(k)] = (shifted[row] - chi0) / h
+        for row, k in enumerate(names):
+            if k == "A":
+                out[row] = self.chi(E, {**v, "A": 1.0})
+                continue
+            shifted = {q: float(v[q]) for q in ("E0", "C", "Eg")}
+            h = forward_step(shifted[k], self.params[k].max)
+            trial = {**shifted, k: shifted[k] + h}
+            if not trial["C"] < 2 * trial["E0"]:
+                h = -h                       # C must stay below 2·E0
+            shifted[k] += h
+            out[row] = (tauc_lorentz_chi(E, v["A"], shifted["E0"], shifted["C"],
+                                         shifted["Eg"]) - chi0) / h
         return out
 
     def __getstate__(self):
@@ -657,38 +650,6 @@ def tauc_lorentz_chi(E, A, E0, C, Eg):
         dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
     eps1 = t1 + t2 + t3 + t4 + t5
     eps2 = np.where(E > Eg, A * E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
-                    0.0)
-    return eps1 + 1j * eps2
-
-
-def tauc_lorentz_chi_many(E, E0, C, Eg):
-    """:func:`tauc_lorentz_chi` with A = 1 for several (E0, C, Eg) at once: shape (K, W).
-
-    The same closed form with the parameters as column vectors, so the shifted
-    shapes of a Jacobian cost one pass over the grid instead of one each.
-    """
-    E0, C, Eg = (np.asarray(x, float)[:, None] for x in (E0, C, Eg))
-    if not np.all(C < 2 * E0):
-        raise ParameterError("C", float(np.max(C)), "Tauc-Lorentz needs C < 2·E0")
-    E = np.asarray(E, dtype=float)[None, :]
-    E2 = E * E
-    a = np.sqrt(4 * E0 * E0 - C * C)
-    g2 = E0 * E0 - C * C / 2
-    z4 = (E2 - g2) ** 2 + a * a * C * C / 4
-    a_ln = (Eg * Eg - E0 * E0) * E2 + Eg * Eg * C * C - E0 * E0 * (E0 * E0 + 3 * Eg * Eg)
-    a_atan = (E2 - E0 * E0) * (E0 * E0 + Eg * Eg) + Eg * Eg * C * C
-    dE = np.maximum(np.abs(E - Eg), 1e-12)
-    t1 = C * a_ln / (2 * np.pi * z4 * a * E0) * np.log(
-        (E0 * E0 + Eg * Eg + a * Eg) / (E0 * E0 + Eg * Eg - a * Eg))
-    t2 = -a_atan / (np.pi * z4 * E0) * (
-        np.pi - np.arctan((2 * Eg + a) / C) + np.arctan((a - 2 * Eg) / C))
-    t3 = 2 * E0 * Eg * (E2 - g2) / (np.pi * z4 * a) * (
-        np.pi + 2 * np.arctan(2 * (g2 - Eg * Eg) / (a * C)))
-    t4 = -E0 * C * (E2 + Eg * Eg) / (np.pi * z4 * E) * np.log(dE / (E + Eg))
-    t5 = 2 * E0 * C * Eg / (np.pi * z4) * np.log(
-        dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
-    eps1 = t1 + t2 + t3 + t4 + t5
-    eps2 = np.where(E > Eg, E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
                     0.0)
     return eps1 + 1j * eps2
 

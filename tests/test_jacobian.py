@@ -14,8 +14,7 @@ import numpy as np
 import pytest
 import tmm
 
-from fitting.dispersion import (Cauchy, Drude, Lorentz, Oscillators, TaucLorentz,
-                                tauc_lorentz_chi, tauc_lorentz_chi_many)
+from fitting.dispersion import Cauchy, Drude, Lorentz, Oscillators, TaucLorentz
 from fitting.fit import FitOptions, _thinned
 from fitting.objective import Objective, build_part
 from fitting.spectrum import Spectrum
@@ -100,15 +99,6 @@ def test_dispersion_dN_matches_central_differences(model):
         h = 1e-6 * max(abs(v[k]), 1.0)
         ref = (model.N(wl, {k: v[k] + h}) - model.N(wl, {k: v[k] - h})) / (2 * h)
         assert np.max(np.abs(got[j] - ref)) < 1e-5 * max(np.max(np.abs(ref)), 1e-9), k
-
-
-def test_vectorised_tauc_lorentz_equals_the_scalar_closed_form():
-    E = np.linspace(0.5, 6.0, 300)
-    P = np.array([[4.2, 1.2, 3.2], [3.6, 2.4, 1.2], [5.0, 0.35, 3.3]])
-    many = tauc_lorentz_chi_many(E, P[:, 0], P[:, 1], P[:, 2])
-    for row, (E0, C, Eg) in zip(many, P):
-        np.testing.assert_allclose(row, tauc_lorentz_chi(E, 1.0, E0, C, Eg), rtol=1e-12,
-                                   atol=1e-14)
 
 
 # -- the residual's Jacobian -----------------------------------------------------------------
