@@ -42,6 +42,7 @@ import lmfit
 import numpy as np
 from scipy.optimize import least_squares
 
+from .dispersion import forward_step
 from .errors import FitError, PellucidError
 from .reference import estimate_noise
 from .result import FitProgress
@@ -120,7 +121,6 @@ class Part:
             u = self.u if sm.wavelength_nm.size == self.u.size else self.u_at(sm.wavelength_nm)
             scale = scale + local["tilt"] * u
         return scale * m + local.get("offset", 0.0)
-
 
     def restricted(self, keep: np.ndarray) -> Part:
         """This part on a subset of its used points (``keep`` runs over them), with a
@@ -407,9 +407,14 @@ class Objective:
                                f"numbers and arithmetic") from None
         return params
 
+    @property
+    def tied(self) -> list:
+        """Names of the parameters set by a tie expression."""
+        return [k for k, p in self.params.items() if p.expr]
+
     def tied_values(self, values: dict) -> dict:
         """``values`` with every tied parameter recomputed from its tie expression."""
-        tied = [k for k, p in self.params.items() if p.expr]
+        tied = self.tied
         if not tied:
             return values
         params = self.params.copy()
@@ -453,7 +458,7 @@ class Objective:
                 self.best_chisqr, self.best_values = chi2, self._run_best[1]
         return r
 
-    def jacobian(self, params, names) -> np.ndarray:
+    def jacobian(self, params, names, *, count: bool = True) -> np.ndarray:
         """d residual / d parameter for the varied ``names``, shape (residuals, names).
 
         Residual r = (y - (s + t·u)·M - o)/σ: the scale, tilt and offset columns
@@ -462,7 +467,8 @@ class Objective:
         each film's N(λ)), and anything else (angle, thickness spread) from a
         forward difference of the part's residual. Each call counts as
         ``len(names)`` evaluations, what a forward-difference Jacobian costs, so
-        the evaluation caps of the fit stages keep their meaning in iterations.
+        the evaluation caps of the fit stages keep their meaning in iterations
+        (``count=False``: statistics after the fit, not counted).
         """
         names = list(names)
         col = {k: j for j, k in enumerate(names)}
@@ -477,7 +483,8 @@ class Objective:
                 if k in col:
                     prior[i, col[k]] = 1.0 / sd
             blocks.append(prior)
-        self.nfev += len(names)
+        if count:
+            self.nfev += len(names)
         return blocks[0] if len(blocks) == 1 else np.concatenate(blocks)
 
     def _part_jacobian(self, part: Part, local: dict, cols, width: int) -> np.ndarray:
@@ -515,10 +522,8 @@ class Objective:
         """Forward difference of a part's residual by one local parameter (inwards at
         the upper bound)."""
         g = next(g for g, name in part.names if name == loc)
-        x, hi = local[loc], self.params[g].max
-        h = math.sqrt(np.finfo(float).eps) * max(abs(x), 1.0)
-        if x + h > hi:
-            h = -h
+        x = local[loc]
+        h = forward_step(x, self.params[g].max)
         r1 = self.part_residual(part, {**local, loc: x + h})
         self.part_residual(part, local)     # rebind the model to the point itself
         return (r1 - r0) / h
@@ -645,7 +650,8 @@ class Objective:
 
     def minimize(self, method: str, values: dict | None = None, *, fixed=(), free=(),
                  masks=None, max_nfev: int | None = None, bounds=None, **kws):
-        """Run one lmfit minimiser from ``values`` (default: the current parameters).
+        """Run one minimiser from ``values`` (default: the current parameters): scipy's
+        least squares directly for ``"least_squares"`` without ties, lmfit otherwise.
 
         ``fixed`` names varied parameters held at their value for this run, ``free``
         held ones varied in it; ``bounds`` narrows some parameters' bounds for it;
@@ -658,7 +664,7 @@ class Objective:
         # least_squares runs scipy directly, with the Jacobian of :meth:`jacobian`:
         # lmfit's wrapper copies the parameters (twice) per run and adds a call per
         # evaluation, which a fit of a few hundred evaluations notices. Ties need lmfit.
-        direct = method == "least_squares" and not any(p.expr for p in self.params.values())
+        direct = method == "least_squares" and not self.tied
         if direct:
             params = _RunValues.start(self.params, values, fixed, free, bounds)
         else:

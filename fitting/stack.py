@@ -41,7 +41,7 @@ from collections.abc import Mapping
 import numpy as np
 from scipy.special import roots_jacobi
 
-from .dispersion import (EPS_STEP, Constant, Dispersion, check_wavelengths,
+from .dispersion import (EPS_STEP, Constant, Dispersion, check_wavelengths, forward_step,
                          model_from_dict)
 from .errors import ParameterError, RecipeError
 from .optics import films_RT, outer_media
@@ -443,10 +443,11 @@ class StackModel:
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
         self._last = None           # (Ns, ds, spread, R, T) of the last RT call, node grid
+        # Global name -> (layer index, material parameter or None for the thickness).
+        self._where = {n: (i, k) for i, (_, pre, tname, pnames) in enumerate(self._names)
+                       for n, k in ((tname, None), *((pre + k, k) for k in pnames))}
         #: Names :meth:`RT_jacobian` differentiates by: thicknesses and material parameters.
-        self.parameter_names = frozenset(
-            n for _, pre, tname, pnames in self._names
-            for n in (tname, *(pre + k for k in pnames)))
+        self.parameter_names = frozenset(self._where)
 
     def with_substrate(self, *, dn: float = 0.0, thickness_nm: float | None = None
                        ) -> StackModel:
@@ -509,42 +510,33 @@ class StackModel:
             R0, T0 = self._node_RT(Ns, ds)
         dR = np.zeros((len(wrt), R0.size))
         dT = np.zeros((len(wrt), T0.size))
-        index = {}
-        for i, (_layer, pre, tname, pnames) in enumerate(self._names):
-            index[tname] = (i, None)
-            for k in pnames:
-                index[pre + k] = (i, k)
         by_layer: dict[int, list] = {}
         for j, name in enumerate(wrt):
-            if name not in index:
+            if name not in self._where:
                 raise KeyError(f"{name!r} is not a parameter of this stack")
-            by_layer.setdefault(index[name][0], []).append((j, index[name][1]))
+            i, k = self._where[name]
+            by_layer.setdefault(i, []).append((j, k))
         for i, items in by_layer.items():
-            layer, pre, tname, pnames = self._names[i]
+            layer, pre, _, pnames = self._names[i]
             N = Ns[i]
-            if any(k is not None for _, k in items):
+            mat = [(j, k) for j, k in items if k is not None]
+            if mat:
                 h = EPS_STEP * np.maximum(np.abs(N), 1.0)
                 Rn, Tn = self._node_RT(Ns[:i] + [N + h] + Ns[i + 1:], ds)
                 Rk, Tk = self._node_RT(Ns[:i] + [N + 1j * h] + Ns[i + 1:], ds)
-                gRn, gTn = (Rn - R0) / h, (Tn - T0) / h
-                gRk, gTk = (Rk - R0) / h, (Tk - T0) / h
+                gRn, gTn = (Rn - R0) / h, (Tn - T0) / h       # ∂/∂n
+                gRk, gTk = (Rk - R0) / h, (Tk - T0) / h       # ∂/∂κ
                 local = {k: values.get(pre + k, layer.material.params[k].value)
                          for k in pnames}
-            mat_names = [k for _, k in items if k is not None]
-            dNs = dict(zip(mat_names, layer.material.dN(self._wl, local, mat_names, N)
-                           if mat_names else ()))
+                dN = layer.material.dN(self._wl, local, [k for _, k in mat], N)
+                for (j, _), d in zip(mat, dN):
+                    dR[j] = gRn * d.real + gRk * d.imag
+                    dT[j] = gTn * d.real + gTk * d.imag
             for j, k in items:
                 if k is None:
-                    d = ds[i]
-                    step = EPS_STEP * max(abs(d), 1.0)
-                    if d + step > layer.thickness.max:
-                        step = -step
-                    Rd, Td = self._node_RT(Ns, ds[:i] + [d + step] + ds[i + 1:])
+                    step = forward_step(ds[i], layer.thickness.max)
+                    Rd, Td = self._node_RT(Ns, ds[:i] + [ds[i] + step] + ds[i + 1:])
                     dR[j], dT[j] = (Rd - R0) / step, (Td - T0) / step
-                    continue
-                dN = dNs[k]
-                dR[j] = gRn * dN.real + gRk * dN.imag
-                dT[j] = gTn * dN.real + gTk * dN.imag
         return (self._on_grid(R0), self._on_grid(T0),
                 self._on_grid(dR), self._on_grid(dT))
 

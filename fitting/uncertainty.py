@@ -74,11 +74,8 @@ def jacobian(obj, values: dict, names) -> tuple[np.ndarray, np.ndarray]:
     through each film's N(λ)) is used: as accurate, for a fraction of the calls.
     """
     r0 = residual_vector(obj, values)
-    if not any(p.expr for p in obj.params.values()):
-        nfev = obj.nfev
-        J = obj.jacobian(values, names)
-        obj.nfev = nfev             # statistics after the fit are not fit evaluations
-        return r0, J
+    if not obj.tied:
+        return r0, obj.jacobian(values, names, count=False)
     J = np.empty((r0.size, len(names)))
     for j, k in enumerate(names):
         p = obj.params[k]
