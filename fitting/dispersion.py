@@ -626,32 +626,47 @@ class TaucLorentz(Term):
 
 
 def tauc_lorentz_chi(E, A, E0, C, Eg):
-    """Closed-form Tauc-Lorentz χ = (ε1 - ε∞) + iε2 (Jellison & Modine 1996, with erratum)."""
+    """Closed-form Tauc-Lorentz χ = (ε1 - ε∞) + iε2 (Jellison & Modine 1996, with erratum).
+
+    The five terms of ε1 are gathered by what depends on E: three are a
+    polynomial in E² over ζ⁴ with scalar coefficients, the two log terms share
+    the factor A·E0·C/(π ζ⁴), so a call costs about 35 array operations
+    instead of 55 (the model's costliest step). The published term-by-term form
+    is transcribed in the tests, which check this one against it.
+    """
     if not C < 2 * E0:
         raise ParameterError("C", C, f"Tauc-Lorentz needs C < 2·E0 = {2 * E0:g} eV")
     E = np.asarray(E, dtype=float)
+    E02, Eg2, C2 = E0 * E0, Eg * Eg, C * C
+    a = math.sqrt(4 * E02 - C2)                              # α
+    g2 = E02 - C2 / 2                                        # γ²
+    # t1 + t2 + t3 = (P E² + Q)/ζ⁴: their E-dependence is a_ln, a_atan and E² - γ²,
+    # each linear in E².
+    s1 = A * C / (2 * math.pi * a * E0) * math.log(
+        (E02 + Eg2 + a * Eg) / (E02 + Eg2 - a * Eg))
+    s2 = -A / (math.pi * E0) * (math.pi - math.atan((2 * Eg + a) / C)
+                                + math.atan((a - 2 * Eg) / C))
+    s3 = 2 * A * E0 * Eg / (math.pi * a) * (math.pi + 2 * math.atan(2 * (g2 - Eg2) / (a * C)))
+    P = s1 * (Eg2 - E02) + s2 * (E02 + Eg2) + s3
+    Q = s1 * (Eg2 * C2 - E02 * (E02 + 3 * Eg2)) + s2 * (Eg2 * C2 - E02 * (E02 + Eg2)) - s3 * g2
+    w = A * E0 * C / math.pi
+    log_s = 0.5 * math.log((E02 - Eg2) ** 2 + Eg2 * C2)
     E2 = E * E
-    a = math.sqrt(4 * E0 * E0 - C * C)                      # α
-    g2 = E0 * E0 - C * C / 2                                # γ²
-    z4 = (E2 - g2) ** 2 + a * a * C * C / 4                 # ζ⁴
-    a_ln = (Eg * Eg - E0 * E0) * E2 + Eg * Eg * C * C - E0 * E0 * (E0 * E0 + 3 * Eg * Eg)
-    a_atan = (E2 - E0 * E0) * (E0 * E0 + Eg * Eg) + Eg * Eg * C * C
+    u = E2 - g2
+    z4 = u * u + a * a * C2 / 4                              # ζ⁴
+    dE = E - Eg
     # |E - Eg| -> tiny at E = Eg: the log terms' coefficients cancel there, the
     # limit is finite.
-    dE = np.maximum(np.abs(E - Eg), 1e-12)
-    t1 = A * C * a_ln / (2 * np.pi * z4 * a * E0) * math.log(
-        (E0 * E0 + Eg * Eg + a * Eg) / (E0 * E0 + Eg * Eg - a * Eg))
-    t2 = -A * a_atan / (np.pi * z4 * E0) * (
-        np.pi - math.atan((2 * Eg + a) / C) + math.atan((a - 2 * Eg) / C))
-    t3 = 2 * A * E0 * Eg * (E2 - g2) / (np.pi * z4 * a) * (
-        np.pi + 2 * math.atan(2 * (g2 - Eg * Eg) / (a * C)))
-    t4 = -A * E0 * C * (E2 + Eg * Eg) / (np.pi * z4 * E) * np.log(dE / (E + Eg))
-    t5 = 2 * A * E0 * C * Eg / (np.pi * z4) * np.log(
-        dE * (E + Eg) / np.sqrt((E0 * E0 - Eg * Eg) ** 2 + Eg * Eg * C * C))
-    eps1 = t1 + t2 + t3 + t4 + t5
-    eps2 = np.where(E > Eg, A * E0 * C * (E - Eg) ** 2 / ((E2 - E0 * E0) ** 2 + C * C * E2) / E,
-                    0.0)
-    return eps1 + 1j * eps2
+    l_d = np.log(np.maximum(np.abs(dE), 1e-12))
+    l_p = np.log(E + Eg)
+    # t4 + t5 = w/ζ⁴ · [2 Eg (ln|E - Eg| + ln(E + Eg) - ln S)
+    #                  - (E² + Eg²)/E · ln(|E - Eg|/(E + Eg))]
+    logs = 2 * Eg * (l_d + l_p - log_s) - (E2 + Eg2) / E * (l_d - l_p)
+    out = np.empty(E.shape, dtype=complex)
+    out.real = (P * E2 + Q + w * logs) / z4
+    lorentz = (E2 - E02) ** 2 + C2 * E2
+    out.imag = np.where(dE > 0, (math.pi * w) * (dE * dE) / (lorentz * E), 0.0)
+    return out
 
 
 TERM_KINDS: dict[str, type[Term]] = {c.kind: c for c in (Lorentz, Drude, TaucLorentz)}

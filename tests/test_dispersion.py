@@ -94,6 +94,41 @@ def test_tauc_lorentz_eps2_is_the_published_formula():
     assert np.allclose(tauc_lorentz_chi(E, A, E0, C, Eg).imag, ref, rtol=1e-13, atol=0)
 
 
+def _tauc_lorentz_eps1_published(E, A, E0, C, Eg):
+    """ε1 - ε∞ term by term as printed (Jellison & Modine, Appl. Phys. Lett. 69, 371
+    (1996), eq. 3, with the erratum 69, 2137), transcribed independently of the code."""
+    E2 = E * E
+    a = np.sqrt(4 * E0 ** 2 - C ** 2)
+    g2 = E0 ** 2 - C ** 2 / 2
+    z4 = (E2 - g2) ** 2 + a ** 2 * C ** 2 / 4
+    a_ln = (Eg ** 2 - E0 ** 2) * E2 + Eg ** 2 * C ** 2 - E0 ** 2 * (E0 ** 2 + 3 * Eg ** 2)
+    a_atan = (E2 - E0 ** 2) * (E0 ** 2 + Eg ** 2) + Eg ** 2 * C ** 2
+    return (A * C * a_ln / (2 * np.pi * z4 * a * E0)
+            * np.log((E0 ** 2 + Eg ** 2 + a * Eg) / (E0 ** 2 + Eg ** 2 - a * Eg))
+            - A * a_atan / (np.pi * z4 * E0)
+            * (np.pi - np.arctan((2 * Eg + a) / C) + np.arctan((a - 2 * Eg) / C))
+            + 2 * A * E0 * Eg * (E2 - g2) / (np.pi * z4 * a)
+            * (np.pi + 2 * np.arctan(2 * (g2 - Eg ** 2) / (a * C)))
+            - A * E0 * C * (E2 + Eg ** 2) / (np.pi * z4 * E) * np.log(np.abs(E - Eg) / (E + Eg))
+            + 2 * A * E0 * C * Eg / (np.pi * z4)
+            * np.log(np.abs(E - Eg) * (E + Eg)
+                     / np.sqrt((E0 ** 2 - Eg ** 2) ** 2 + Eg ** 2 * C ** 2)))
+
+
+def test_tauc_lorentz_eps1_matches_the_published_terms():
+    # The code gathers the five published terms by their E-dependence (fewer array
+    # operations); the sum must be the published one to rounding, for films' usual
+    # parameters (gap below the peak, C < 2 E0) drawn at random.
+    rng = np.random.default_rng(11)
+    E = np.linspace(0.5, 8.0, 401)
+    for _ in range(300):
+        E0 = rng.uniform(1.0, 12.0)
+        C, Eg, A = rng.uniform(0.05, 1.9 * E0), rng.uniform(0.2, 0.98 * E0), rng.uniform(1, 500)
+        ref = _tauc_lorentz_eps1_published(E, A, E0, C, Eg)
+        got = tauc_lorentz_chi(E, A, E0, C, Eg).real
+        assert np.max(np.abs(got - ref)) <= 1e-10 * np.max(np.abs(ref)), (A, E0, C, Eg)
+
+
 def test_tauc_lorentz_kept_shapes_never_go_stale():
     # TaucLorentz.chi keeps the last edge shapes (χ = A · shape(E0, C, Eg)): every call,
     # whichever parameter or energy grid changed, must equal the closed form of
