@@ -346,9 +346,8 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
     chooses between them on the spectrum itself. Models without an absorption
     edge (Cauchy without a tail, Sellmeier) give ``[local]``.
     """
-    from scipy.optimize import least_squares
-
     from .edge import alpha_targets, target_arrays, target_residuals_and_slopes
+    from .trust_region import trf
     from .units import HC_EV_NM, alpha_per_cm
     if edge is None or not seed.thickness_nm:
         return [dict(local)]
@@ -446,8 +445,8 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
             # A start needs the right neighbourhood, not the last digit: with the exact
             # Jacobian 15 steps reach it (every validation and demo result is
             # the same as with 50).
-            sol = least_squares(resid, x0, jac=jac, bounds=(lo, hi), args=(base, priors(base)),
-                                x_scale="jac", max_nfev=15, ftol=1e-3, xtol=1e-3)
+            sol = trf(resid, jac, x0, lo, hi, args=(base, priors(base)), x_scale="jac",
+                      max_nfev=15, ftol=1e-3, xtol=1e-3)
         except ValueError:
             continue
         found.append((float(sol.cost), {**base, **dict(zip(names, (float(v) for v in sol.x)))}))

@@ -40,13 +40,13 @@ from collections.abc import Callable
 
 import lmfit
 import numpy as np
-from scipy.optimize import least_squares
 
 from .dispersion import forward_step
 from .errors import FitError, PellucidError
 from .reference import estimate_noise
 from .result import FitProgress
 from .stack import Stack, StackModel
+from .trust_region import trf
 
 __all__ = ["Part", "Objective", "build_part", "DEFAULT_SIGMA", "STAGES",
            "stage_span", "RunResult"]
@@ -529,8 +529,9 @@ class Objective:
         return (r1 - r0) / h
 
     def _least_squares(self, params: _RunValues, **kws) -> RunResult:
-        """scipy's trust-region reflective least squares from ``params`` (varied ones
-        free within their bounds), with lmfit's default tolerances."""
+        """Trust-region reflective least squares (scipy's method, see
+        :mod:`fitting.trust_region`) from ``params`` (varied ones free within their
+        bounds), with lmfit's default tolerances."""
         names = [k for k, p in params.items() if p.vary]
         base = params.valuesdict()
         x0 = np.array([base[k] for k in names], dtype=float)
@@ -556,10 +557,11 @@ class Objective:
                 raise _RunEnded
             return self.jacobian(at(x), names)
 
-        opts = dict(method="trf", ftol=1e-8, xtol=1e-8, gtol=1e-8, x_scale=1.0,
-                    max_nfev=10 ** 9)
+        opts = dict(ftol=1e-8, xtol=1e-8, gtol=1e-8, x_scale=1.0, max_nfev=10 ** 9)
         opts.update(kws)
-        sol = least_squares(fun, x0, jac=jac, bounds=(lo, hi), **opts)
+        # scipy's trust-region reflective steps, each on the n×n QR factor (see
+        # fitting.trust_region): the same iterates at less cost per step.
+        sol = trf(fun, jac, x0, lo, hi, **opts)
         for k, x in zip(names, sol.x):
             params[k].value = float(x)
         return RunResult(params=params, aborted=False, success=bool(sol.success),
@@ -650,8 +652,9 @@ class Objective:
 
     def minimize(self, method: str, values: dict | None = None, *, fixed=(), free=(),
                  masks=None, max_nfev: int | None = None, bounds=None, **kws):
-        """Run one minimiser from ``values`` (default: the current parameters): scipy's
-        least squares directly for ``"least_squares"`` without ties, lmfit otherwise.
+        """Run one minimiser from ``values`` (default: the current parameters): the
+        trust-region reflective least squares of :mod:`fitting.trust_region` directly
+        for ``"least_squares"`` without ties, lmfit otherwise.
 
         ``fixed`` names varied parameters held at their value for this run, ``free``
         held ones varied in it; ``bounds`` narrows some parameters' bounds for it;
@@ -661,7 +664,7 @@ class Objective:
         ``max_nfev`` caps this run alone (it then ends with ``aborted=True``
         but the fit goes on).
         """
-        # least_squares runs scipy directly, with the Jacobian of :meth:`jacobian`:
+        # least_squares runs the solver directly, with the Jacobian of :meth:`jacobian`:
         # lmfit's wrapper copies the parameters (twice) per run and adds a call per
         # evaluation, which a fit of a few hundred evaluations notices. Ties need lmfit.
         direct = method == "least_squares" and not self.tied
