@@ -51,7 +51,7 @@ from scipy.optimize import brentq
 from scipy.signal import find_peaks
 
 from .errors import PellucidError
-from .optics import films_RT, outer_media
+from .optics import films_RT_thicknesses, outer_media
 
 __all__ = ["Seed", "fringe_seed", "envelope_seed", "n_level_param", "set_n_level",
            "apply_seed", "scan_thickness", "fringe_region", "ScanResult", "pick_basins",
@@ -599,28 +599,22 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
         scale0, offset0 = start.get("scale", 1.0), start.get("offset", 0.0)
         tilt0, u = start.get("tilt", 0.0), part.u[idx]
         mat = st.layers[layer_index].material
-        # Vectorised over thickness: the grid is tiled k times, so one films_RT call
-        # evaluates k thicknesses at once (outer media bound once per chunk size).
+        # Vectorised over thickness: interfaces once on the W wavelengths, phases and
+        # the Airy recursion on chunks of k thicknesses × W.
         k = max(1, min(chunk, d_grid.size, 200000 // max(W, 1)))
-        outer = {}
+        outer = outer_media(wl, N_amb, N_sub, st.substrate.thickness_nm, N_exit,
+                            angle_rad=angle, polarization=part.polarization)
         for li, lv in enumerate(levels):
             Ns[layer_index] = mat.N_unchecked(wl, lv)
             for a in range(0, d_grid.size, k):
                 if check is not None:
                     check()
-                dk = d_grid[a:a + k]
-                kk = dk.size
-                if kk not in outer:
-                    outer[kk] = outer_media(np.tile(wl, kk), np.tile(N_amb, kk),
-                                            np.tile(N_sub, kk), st.substrate.thickness_nm,
-                                            np.tile(N_exit, kk), angle_rad=angle,
-                                            polarization=part.polarization)
-                Nt = [np.tile(N, kk) for N in Ns]
-                dd = [np.full(kk * W, x) for x in ds]
-                dd[layer_index] = np.repeat(dk, W)
+                dd = list(ds)
+                dd[layer_index] = d_grid[a:a + k]
                 with np.errstate(all="ignore"):
-                    R, T = films_RT(outer[kk], Nt, dd)
-                m = (T if part.quantity == "T" else R).reshape(kk, W)
+                    R, T = films_RT_thicknesses(outer, Ns, dd)
+                m = T if part.quantity == "T" else R
+                kk = m.shape[0]
                 chi[li, a:a + kk] += _profiled_chi2(m, y, w, u, nuisance or Nuisance(),
                                                     scale0, tilt0, offset0)
     chi[~np.isfinite(chi)] = np.inf

@@ -36,12 +36,12 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 __all__ = ["cos_theta", "interface_rt", "coherent_rt", "power_t_factor",
-           "stack_RT", "OuterMedia", "outer_media", "films_RT"]
+           "stack_RT", "OuterMedia", "outer_media", "films_RT", "films_RT_thicknesses"]
 
 # exp(-2·Im δ) below e^-70 is zero at double precision for our purposes; capping
 # keeps exp() of opaque layers from underflowing into 0/0.
@@ -278,6 +278,26 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, w
             Ri, Ti = _airy(outer, r_if, t2, kq * (d * x) if L else None)
             R, T = R + w * Ri, T + w * Ti
     return R, T
+
+
+def films_RT_thicknesses(outer: OuterMedia, N_films, thickness_nm):
+    """R and T of one film stack at many thickness sets at once, shape (K, W) each.
+
+    ``thickness_nm`` has one row per film, each a scalar or K values (the
+    thickness scan varies one film's). Interfaces and admittances do not depend
+    on thickness, so they are computed once on the W wavelengths and only the
+    phases and the Airy recursion run on the K×W grid: element by element the
+    same arithmetic as :func:`films_RT` on each thickness set.
+    """
+    L = len(N_films)
+    if not L:
+        raise ValueError("films_RT_thicknesses needs at least one film")
+    q, r_if, t2 = _interfaces(outer, N_films)
+    d = np.broadcast_arrays(*[np.atleast_1d(np.asarray(x, dtype=float)) for x in thickness_nm])
+    arg = (outer.ik2 * q)[:, None, :] * np.array(d)[:, :, None]          # (L, K, W)
+    grid = replace(outer, t_scale=outer.t_scale[:, None],
+                   back=None if outer.back is None else tuple(b[:, None] for b in outer.back))
+    return _airy(grid, r_if[:, :, None], t2[:, None], arg)
 
 
 def _interfaces(outer: OuterMedia, N_films):

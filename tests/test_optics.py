@@ -250,3 +250,28 @@ def test_weakly_absorbing_film_matches_swanepoel(n, s, d):
     # The absorption term itself is resolved: the κ = 1e-3 spectrum differs from κ = 0
     # by far more than the tolerance.
     assert np.max(np.abs(_swanepoel_T(n, s, d, 1e-3, wl) - _swanepoel_T(n, s, d, 0, wl))) > 0.01
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_thickness_grid_matches_tmm_and_films_RT(seed):
+    # The thickness scan's kernel: one film's thickness over a grid, the others fixed.
+    # Each row must be tmm's R, T for that thickness (Byrnes 2016), and bit for bit what
+    # films_RT gives for the same stack (the scan ranks thicknesses by it).
+    from fitting.optics import films_RT, films_RT_thicknesses, outer_media
+    wl, films, d, sub, angle = _random_case(seed)
+    one = np.ones(wl.size, complex)
+    scanned = len(films) - 1
+    grid = np.linspace(20.0, 900.0, 5)
+    for pol in "su":
+        outer = outer_media(wl, one, sub, 1.0e6, one, angle_rad=np.radians(angle),
+                            polarization=pol)
+        R, T = films_RT_thicknesses(outer, films, [*d[:scanned], grid])
+        assert R.shape == T.shape == (grid.size, wl.size)
+        for i, x in enumerate(grid):
+            dd = [*d[:scanned], float(x)]
+            r, t = films_RT(outer, films, dd)
+            assert np.array_equal(R[i], r) and np.array_equal(T[i], t)
+            if i % 2 == 0:
+                Rr, Tr = _tmm_reference(pol, wl, films, dd, sub, angle, 1.0e6)
+                np.testing.assert_allclose(T[i], Tr, rtol=0, atol=1e-9)
+                np.testing.assert_allclose(R[i], Rr, rtol=0, atol=1e-9)
