@@ -594,23 +594,9 @@ class TaucLorentz(Term):
     SHAPE_CACHE = 4
 
     def dchi(self, E, v, names, chi0):
-        """dχ/dθ: exact for the amplitude A (χ is A times a shape), forward differences
-        of the closed form for E0, C and Eg (steps kept inside C < 2·E0), bypassing
-        the shape cache so the shifted shapes do not push out the fitted one."""
-        out = np.empty((len(names), np.size(E)), dtype=complex)
-        for row, k in enumerate(names):
-            if k == "A":
-                out[row] = self.chi(E, {**v, "A": 1.0})
-                continue
-            shifted = {q: float(v[q]) for q in ("E0", "C", "Eg")}
-            h = forward_step(shifted[k], self.params[k].max)
-            trial = {**shifted, k: shifted[k] + h}
-            if not trial["C"] < 2 * trial["E0"]:
-                h = -h                       # C must stay below 2·E0
-            shifted[k] += h
-            out[row] = (tauc_lorentz_chi(E, v["A"], shifted["E0"], shifted["C"],
-                                         shifted["Eg"]) - chi0) / h
-        return out
+        """dχ/dθ in closed form (see :func:`tauc_lorentz_slopes`)."""
+        return tauc_lorentz_slopes(E, float(v["A"]), float(v["E0"]), float(v["C"]),
+                                   float(v["Eg"]), list(names))
 
     def __getstate__(self):
         # The shape cache is a speed-up of this process only: not pickled to workers.
@@ -634,26 +620,133 @@ def tauc_lorentz_chi(E, A, E0, C, Eg):
     instead of 55 (the model's costliest step). The published term-by-term form
     is transcribed in the tests, which check this one against it.
     """
+    _check_tl(E0, C)
+    return A * _tl_arrays(np.asarray(E, dtype=float), E0, C, Eg)[0]
+
+
+def tauc_lorentz_slopes(E, A, E0, C, Eg, names) -> np.ndarray:
+    """dχ/dθ of :func:`tauc_lorentz_chi` for θ in ``names`` (of A, E0, C, Eg), analytic.
+
+    χ = A·[(P E² + Q + w·L(E))/ζ⁴ + i ε2/A] with scalar P, Q, w, ln S, γ² and
+    ζ⁴ = (E² - γ²)² + α²C²/4: every E-dependent factor is differentiated in
+    closed form (L depends on Eg through ln|E - Eg|, ln(E + Eg) and E² + Eg²;
+    ζ⁴ on E0 and C through γ² and α²C²/4; ε2 on all three), and so are the
+    scalars P and Q, term by term. One call costs less than the closed form
+    twice; forward differences of χ cost it three times and are good to ~1e-8
+    only.
+    """
+    _check_tl(E0, C)
+    E = np.asarray(E, dtype=float)
+    shape, parts = _tl_arrays(E, E0, C, Eg, keep=True)
+    E2, u, z4, l_d, l_p, logs, lorentz, dE, above = parts
+    P, Q, w, log_s, g2, h = _tl_scalars(E0, C, Eg)
+    E02, Eg2, C2 = E0 * E0, Eg * Eg, C * C
+    D = (E02 - Eg2) ** 2 + Eg2 * C2              # S², ln S = ½ ln D
+    out = np.empty((len(names), E.size), dtype=complex)
+    for row, k in enumerate(names):
+        if k == "A":
+            out[row] = shape
+            continue
+        dP, dQ = _tl_dPQ(E0, C, Eg, k)
+        if k == "Eg":
+            dlog_s = 0.5 * (-4 * Eg * (E02 - Eg2) + 2 * Eg * C2) / D
+            # d/dEg of 2Eg(l_d + l_p - ln S) - (E² + Eg²)/E (l_d - l_p); the 1/(E - Eg)
+            # of d l_d cancels against the (E - Eg)² of its coefficient: a constant 2.
+            dlogs = 2 * (l_d + l_p - log_s) - 2 * Eg * dlog_s - (2 * Eg / E) * (l_d - l_p) + 2
+            re = (dP * E2 + dQ + w * dlogs) / z4
+            im = np.where(above, -2 * (E0 * C) * dE / (lorentz * E), 0.0)
+        else:
+            if k == "E0":
+                dw, dg2, dh = w / E0, 2 * E0, 2 * E0 * C2
+                dlog_s = 0.5 * 4 * E0 * (E02 - Eg2) / D
+                dlor = -4 * E0 * (E2 - E02)
+            elif k == "C":
+                dw, dg2, dh = w / C, -C, 2 * E02 * C - C2 * C
+                dlog_s = 0.5 * 2 * Eg2 * C / D
+                dlor = 2 * C * E2
+            else:
+                raise KeyError(f"{k!r} is not a Tauc-Lorentz parameter (A, E0, C, Eg)")
+            num = dP * E2 + (dQ - 2 * Eg * w * dlog_s) + dw * logs
+            re = (num - shape.real * (-2 * dg2 * u + dh)) / z4
+            im = shape.imag * (dw / w - dlor / lorentz)
+        out[row].real = re
+        out[row].imag = im
+    if A != 1.0:
+        out[[row for row, k in enumerate(names) if k != "A"]] *= A
+    return out
+
+
+def _check_tl(E0, C):
     if not C < 2 * E0:
         raise ParameterError("C", C, f"Tauc-Lorentz needs C < 2·E0 = {2 * E0:g} eV")
-    E = np.asarray(E, dtype=float)
+
+
+def _tl_scalars(E0, C, Eg):
+    """(P, Q, w, ln S, γ², α²C²/4) of the Tauc-Lorentz shape (χ per unit A)."""
     E02, Eg2, C2 = E0 * E0, Eg * Eg, C * C
     a = math.sqrt(4 * E02 - C2)                              # α
     g2 = E02 - C2 / 2                                        # γ²
     # t1 + t2 + t3 = (P E² + Q)/ζ⁴: their E-dependence is a_ln, a_atan and E² - γ²,
     # each linear in E².
-    s1 = A * C / (2 * math.pi * a * E0) * math.log(
-        (E02 + Eg2 + a * Eg) / (E02 + Eg2 - a * Eg))
-    s2 = -A / (math.pi * E0) * (math.pi - math.atan((2 * Eg + a) / C)
+    s1 = C / (2 * math.pi * a * E0) * math.log((E02 + Eg2 + a * Eg) / (E02 + Eg2 - a * Eg))
+    s2 = -1 / (math.pi * E0) * (math.pi - math.atan((2 * Eg + a) / C)
                                 + math.atan((a - 2 * Eg) / C))
-    s3 = 2 * A * E0 * Eg / (math.pi * a) * (math.pi + 2 * math.atan(2 * (g2 - Eg2) / (a * C)))
+    s3 = 2 * E0 * Eg / (math.pi * a) * (math.pi + 2 * math.atan(2 * (g2 - Eg2) / (a * C)))
     P = s1 * (Eg2 - E02) + s2 * (E02 + Eg2) + s3
     Q = s1 * (Eg2 * C2 - E02 * (E02 + 3 * Eg2)) + s2 * (Eg2 * C2 - E02 * (E02 + Eg2)) - s3 * g2
-    w = A * E0 * C / math.pi
     log_s = 0.5 * math.log((E02 - Eg2) ** 2 + Eg2 * C2)
+    return P, Q, E0 * C / math.pi, log_s, g2, a * a * C2 / 4
+
+
+def _tl_dPQ(E0, C, Eg, name):
+    """dP/dθ and dQ/dθ of :func:`_tl_scalars` (forward-mode chain rule, term by term)."""
+    dE0, dC, dEg = (float(name == k) for k in ("E0", "C", "Eg"))
+    E02, Eg2, C2 = E0 * E0, Eg * Eg, C * C
+    a = math.sqrt(4 * E02 - C2)
+    da = (4 * E0 * dE0 - C * dC) / a
+    g2, dg2 = E02 - C2 / 2, 2 * E0 * dE0 - C * dC
+    # s1 = C L1/(2π a E0), L1 = ln(N1/D1)
+    N1, D1 = E02 + Eg2 + a * Eg, E02 + Eg2 - a * Eg
+    dN1 = 2 * E0 * dE0 + 2 * Eg * dEg + Eg * da + a * dEg
+    dD1 = 2 * E0 * dE0 + 2 * Eg * dEg - Eg * da - a * dEg
+    L1 = math.log(N1 / D1)
+    k1 = C / (2 * math.pi * a * E0)
+    dk1 = k1 * (dC / C - da / a - dE0 / E0)
+    s1, ds1 = k1 * L1, dk1 * L1 + k1 * (dN1 / N1 - dD1 / D1)
+    # s2 = -T2/(π E0), T2 = π - atan(z1) + atan(z2)
+    z1, z2 = (2 * Eg + a) / C, (a - 2 * Eg) / C
+    dz1 = (2 * dEg + da) / C - z1 * dC / C
+    dz2 = (da - 2 * dEg) / C - z2 * dC / C
+    T2 = math.pi - math.atan(z1) + math.atan(z2)
+    dT2 = -dz1 / (1 + z1 * z1) + dz2 / (1 + z2 * z2)
+    s2 = -T2 / (math.pi * E0)
+    ds2 = -dT2 / (math.pi * E0) + T2 * dE0 / (math.pi * E02)
+    # s3 = 2 E0 Eg T3/(π a), T3 = π + 2 atan(z3)
+    z3 = 2 * (g2 - Eg2) / (a * C)
+    dz3 = 2 * (dg2 - 2 * Eg * dEg) / (a * C) - z3 * (da / a + dC / C)
+    T3 = math.pi + 2 * math.atan(z3)
+    dT3 = 2 * dz3 / (1 + z3 * z3)
+    s3 = 2 * E0 * Eg * T3 / (math.pi * a)
+    ds3 = 2 / (math.pi * a) * (dE0 * Eg * T3 + E0 * dEg * T3 + E0 * Eg * dT3) - s3 * da / a
+    p1, dp1 = Eg2 - E02, 2 * Eg * dEg - 2 * E0 * dE0
+    p2, dp2 = E02 + Eg2, 2 * E0 * dE0 + 2 * Eg * dEg
+    q1 = Eg2 * C2 - E02 * (E02 + 3 * Eg2)
+    dq1 = (2 * Eg * C2 * dEg + 2 * Eg2 * C * dC - (4 * E02 * E0 + 6 * E0 * Eg2) * dE0
+           - 6 * E02 * Eg * dEg)
+    q2 = Eg2 * C2 - E02 * (E02 + Eg2)
+    dq2 = (2 * Eg * C2 * dEg + 2 * Eg2 * C * dC - (4 * E02 * E0 + 2 * E0 * Eg2) * dE0
+           - 2 * E02 * Eg * dEg)
+    dP = ds1 * p1 + s1 * dp1 + ds2 * p2 + s2 * dp2 + ds3
+    dQ = ds1 * q1 + s1 * dq1 + ds2 * q2 + s2 * dq2 - ds3 * g2 - s3 * dg2
+    return dP, dQ
+
+
+def _tl_arrays(E, E0, C, Eg, keep=False):
+    """χ per unit A on E, and (with ``keep``) the arrays the slopes reuse."""
+    P, Q, w, log_s, g2, h = _tl_scalars(E0, C, Eg)
     E2 = E * E
     u = E2 - g2
-    z4 = u * u + a * a * C2 / 4                              # ζ⁴
+    z4 = u * u + h                                            # ζ⁴
     dE = E - Eg
     # |E - Eg| -> tiny at E = Eg: the log terms' coefficients cancel there, the
     # limit is finite.
@@ -661,12 +754,15 @@ def tauc_lorentz_chi(E, A, E0, C, Eg):
     l_p = np.log(E + Eg)
     # t4 + t5 = w/ζ⁴ · [2 Eg (ln|E - Eg| + ln(E + Eg) - ln S)
     #                  - (E² + Eg²)/E · ln(|E - Eg|/(E + Eg))]
-    logs = 2 * Eg * (l_d + l_p - log_s) - (E2 + Eg2) / E * (l_d - l_p)
+    logs = 2 * Eg * (l_d + l_p - log_s) - (E2 + Eg * Eg) / E * (l_d - l_p)
     out = np.empty(E.shape, dtype=complex)
     out.real = (P * E2 + Q + w * logs) / z4
-    lorentz = (E2 - E02) ** 2 + C2 * E2
-    out.imag = np.where(dE > 0, (math.pi * w) * (dE * dE) / (lorentz * E), 0.0)
-    return out
+    lorentz = (E2 - E0 * E0) ** 2 + C * C * E2
+    above = dE > 0
+    out.imag = np.where(above, (E0 * C) * (dE * dE) / (lorentz * E), 0.0)
+    if not keep:
+        return out, None
+    return out, (E2, u, z4, l_d, l_p, logs, lorentz, dE, above)
 
 
 TERM_KINDS: dict[str, type[Term]] = {c.kind: c for c in (Lorentz, Drude, TaucLorentz)}

@@ -129,6 +129,34 @@ def test_tauc_lorentz_eps1_matches_the_published_terms():
         assert np.max(np.abs(got - ref)) <= 1e-10 * np.max(np.abs(ref)), (A, E0, C, Eg)
 
 
+def test_tauc_lorentz_slopes_match_differences():
+    # The closed-form dχ/dθ of tauc_lorentz_slopes against 4th-order central differences
+    # of the closed form itself (truncation ~h⁴; at the better of two steps the
+    # difference is good to ~1e-8 of max|dχ/dθ|, away from the kink at E = Eg).
+    from fitting.dispersion import tauc_lorentz_slopes
+    rng = np.random.default_rng(5)
+    E = np.linspace(0.6, 6.0, 300)
+    names = ["A", "E0", "C", "Eg"]
+    for _ in range(60):
+        E0 = rng.uniform(1.0, 10.0)
+        v = {"A": rng.uniform(1, 300), "E0": E0, "C": rng.uniform(0.05, 1.9 * E0),
+             "Eg": rng.uniform(0.2, 0.98 * E0)}
+        got = tauc_lorentz_slopes(E, v["A"], v["E0"], v["C"], v["Eg"], names)
+        away = np.abs(E - v["Eg"]) > 1e-3
+        for row, k in enumerate(names):
+            errs = []
+            for rel in (1e-4, 1e-5):
+                h = rel * v[k]
+                if k == "C" and v["C"] + 2 * h >= 2 * v["E0"]:
+                    continue
+
+                def f(dx, k=k, v=v):
+                    return tauc_lorentz_chi(E, **{**v, k: v[k] + dx})
+                ref = (-f(2 * h) + 8 * f(h) - 8 * f(-h) + f(-2 * h)) / (12 * h)
+                errs.append(np.max(np.abs(got[row] - ref)[away]) / np.max(np.abs(ref)[away]))
+            assert min(errs) < 1e-6, (k, v, errs)
+
+
 def test_tauc_lorentz_kept_shapes_never_go_stale():
     # TaucLorentz.chi keeps the last edge shapes (χ = A · shape(E0, C, Eg)): every call,
     # whichever parameter or energy grid changed, must equal the closed form of
