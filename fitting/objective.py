@@ -495,7 +495,8 @@ class Objective:
         try:
             with np.errstate(all="ignore"):
                 sm = part.bind(local)
-                R, T, dR, dT = sm.RT_jacobian(local, [loc for _, loc in stack_cols])
+                R, T, dR, dT = sm.RT_jacobian(local, [loc for _, loc in stack_cols],
+                                              only=part.quantity)
         except PellucidError:
             return J               # a refused point: the flat residual has no slope
         M, dM = (T, dT) if part.quantity == "T" else (R, dR)

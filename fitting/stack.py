@@ -483,7 +483,7 @@ class StackModel:
         self._last = (Ns, ds, self.stack.thickness_spread, R, T)
         return self._on_grid(R), self._on_grid(T)
 
-    def RT_jacobian(self, values: Mapping[str, float] | None, wrt):
+    def RT_jacobian(self, values: Mapping[str, float] | None, wrt, *, only: str | None = None):
         """(R, T, dR, dT): R and T with their derivatives by the stack parameters ``wrt``.
 
         ``wrt`` lists global names of layer thicknesses and material parameters
@@ -499,6 +499,8 @@ class StackModel:
         Steps are forward differences of relative size √ε (as scipy's
         ``approx_derivative``), taken inwards at a bound; the slit average
         (``bandwidth_nm``) is applied after the chain rule, node by node.
+        ``only="T"`` (or ``"R"``) skips the other quantity's derivatives, which
+        are then None: a fit to T alone never reads dR.
         """
         values = dict(values or {})
         Ns, ds = self._indices(values)
@@ -508,8 +510,9 @@ class StackModel:
             R0, T0 = last[3], last[4]           # N arrays are cached: same object, same N
         else:
             R0, T0 = self._node_RT(Ns, ds)
-        dR = np.zeros((len(wrt), R0.size))
-        dT = np.zeros((len(wrt), T0.size))
+        want_R, want_T = only != "T", only != "R"
+        dR = np.zeros((len(wrt), R0.size)) if want_R else None
+        dT = np.zeros((len(wrt), T0.size)) if want_T else None
         by_layer: dict[int, list] = {}
         for j, name in enumerate(wrt):
             if name not in self._where:
@@ -524,21 +527,25 @@ class StackModel:
                 h = EPS_STEP * np.maximum(np.abs(N), 1.0)
                 Rn, Tn = self._node_RT(Ns[:i] + [N + h] + Ns[i + 1:], ds)
                 Rk, Tk = self._node_RT(Ns[:i] + [N + 1j * h] + Ns[i + 1:], ds)
-                gRn, gTn = (Rn - R0) / h, (Tn - T0) / h       # ∂/∂n
-                gRk, gTk = (Rk - R0) / h, (Tk - T0) / h       # ∂/∂κ
                 local = {k: values.get(pre + k, layer.material.params[k].value)
                          for k in pnames}
                 dN = layer.material.dN(self._wl, local, [k for _, k in mat], N)
-                for (j, _), d in zip(mat, dN):
-                    dR[j] = gRn * d.real + gRk * d.imag
-                    dT[j] = gTn * d.real + gTk * d.imag
+                for out, M0, Mn, Mk in ((dR, R0, Rn, Rk), (dT, T0, Tn, Tk)):
+                    if out is not None:
+                        gn, gk = (Mn - M0) / h, (Mk - M0) / h     # ∂/∂n, ∂/∂κ
+                        for (j, _), d in zip(mat, dN):
+                            out[j] = gn * d.real + gk * d.imag
             for j, k in items:
                 if k is None:
                     step = forward_step(ds[i], layer.thickness.max)
                     Rd, Td = self._node_RT(Ns, ds[:i] + [ds[i] + step] + ds[i + 1:])
-                    dR[j], dT[j] = (Rd - R0) / step, (Td - T0) / step
+                    if want_R:
+                        dR[j] = (Rd - R0) / step
+                    if want_T:
+                        dT[j] = (Td - T0) / step
         return (self._on_grid(R0), self._on_grid(T0),
-                self._on_grid(dR), self._on_grid(dT))
+                None if dR is None else self._on_grid(dR),
+                None if dT is None else self._on_grid(dT))
 
     def _indices(self, values):
         """(Ns, ds): each film's N on the node grid and its thickness, cached per layer."""

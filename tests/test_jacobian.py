@@ -82,6 +82,11 @@ def test_stack_derivatives_with_slit_and_spread(bandwidth, spread):
         Rm, Tm = sm.RT({**values, k: values[k] - h})
         for got, ref in ((dT[j], (Tp - Tm) / (2 * h)), (dR[j], (Rp - Rm) / (2 * h))):
             assert np.max(np.abs(got - ref)) < 1e-4 * max(np.max(np.abs(ref)), 1e-6), k
+    # A fit to one quantity asks for its derivatives alone: the same numbers, no others.
+    for only, full, other in (("T", dT, 2), ("R", dR, 3)):
+        out = sm.RT_jacobian(values, names, only=only)
+        assert out[other] is None
+        assert np.array_equal(out[5 - other], full)
 
 
 @pytest.mark.parametrize("model", [
