@@ -443,6 +443,7 @@ class StackModel:
                         tuple(layer.material.params)) for layer in stack.layers]
         self._cache: list[tuple | None] = [None] * len(stack.layers)
         self._last = None           # (Ns, ds, spread, R, T) of the last RT call, node grid
+        self._tiled: dict = {}      # outer media on the node grid repeated V times, by V
         # Global name -> (layer index, material parameter or None for the thickness).
         self._where = {n: (i, k) for i, (_, pre, tname, pnames) in enumerate(self._names)
                        for n, k in ((tname, None), *((pre + k, k) for k in pnames))}
@@ -461,6 +462,7 @@ class StackModel:
                                  angle_rad=self.angle_rad, polarization=self.polarization)
         out._cache = list(self._cache)
         out._last = None
+        out._tiled = {}
         return out
 
     def layer_values(self, values: Mapping[str, float] | None = None):
@@ -519,30 +521,42 @@ class StackModel:
                 raise KeyError(f"{name!r} is not a parameter of this stack")
             i, k = self._where[name]
             by_layer.setdefault(i, []).append((j, k))
+        # Every shifted stack first (N + h, N + ih per film with material parameters,
+        # d + step per thickness), then all of them in one model call.
+        shifted, plan = [], []
         for i, items in by_layer.items():
-            layer, pre, _, pnames = self._names[i]
             N = Ns[i]
-            mat = [(j, k) for j, k in items if k is not None]
-            if mat:
+            if any(k is not None for _, k in items):
                 h = EPS_STEP * np.maximum(np.abs(N), 1.0)
-                Rn, Tn = self._node_RT(Ns[:i] + [N + h] + Ns[i + 1:], ds)
-                Rk, Tk = self._node_RT(Ns[:i] + [N + 1j * h] + Ns[i + 1:], ds)
-                local = {k: values.get(pre + k, layer.material.params[k].value)
-                         for k in pnames}
-                dN = layer.material.dN(self._wl, local, [k for _, k in mat], N)
-                for out, M0, Mn, Mk in ((dR, R0, Rn, Rk), (dT, T0, Tn, Tk)):
-                    if out is not None:
-                        gn, gk = (Mn - M0) / h, (Mk - M0) / h     # ∂/∂n, ∂/∂κ
-                        for (j, _), d in zip(mat, dN):
-                            out[j] = gn * d.real + gk * d.imag
-            for j, k in items:
-                if k is None:
-                    step = forward_step(ds[i], layer.thickness.max)
-                    Rd, Td = self._node_RT(Ns, ds[:i] + [ds[i] + step] + ds[i + 1:])
-                    if want_R:
-                        dR[j] = (Rd - R0) / step
-                    if want_T:
-                        dT[j] = (Td - T0) / step
+                shifted += [(Ns[:i] + [N + h] + Ns[i + 1:], ds),
+                            (Ns[:i] + [N + 1j * h] + Ns[i + 1:], ds)]
+                plan.append(("N", i, h))
+            if any(k is None for _, k in items):
+                step = forward_step(ds[i], self._names[i][0].thickness.max)
+                shifted.append((Ns, ds[:i] + [ds[i] + step] + ds[i + 1:]))
+                plan.append(("d", i, step))
+        Rs, Ts = self._shifted_RT(shifted, Ns, ds) if shifted else ((), ())
+        at = 0
+        for what, i, h in plan:
+            items = by_layer[i]
+            if what == "d":
+                j = next(j for j, k in items if k is None)
+                if want_R:
+                    dR[j] = (Rs[at] - R0) / h
+                if want_T:
+                    dT[j] = (Ts[at] - T0) / h
+                at += 1
+                continue
+            layer, pre, _, pnames = self._names[i]
+            mat = [(j, k) for j, k in items if k is not None]
+            local = {k: values.get(pre + k, layer.material.params[k].value) for k in pnames}
+            dN = layer.material.dN(self._wl, local, [k for _, k in mat], Ns[i])
+            for out, M0, Mn, Mk in ((dR, R0, Rs[at], Rs[at + 1]), (dT, T0, Ts[at], Ts[at + 1])):
+                if out is not None:
+                    gn, gk = (Mn - M0) / h, (Mk - M0) / h     # ∂/∂n, ∂/∂κ
+                    for (j, _), d in zip(mat, dN):
+                        out[j] = gn * d.real + gk * d.imag
+            at += 2
         return (self._on_grid(R0), self._on_grid(T0),
                 None if dR is None else self._on_grid(dR),
                 None if dT is None else self._on_grid(dT))
@@ -578,24 +592,53 @@ class StackModel:
 
     def _node_RT(self, Ns, ds):
         """R, T on the node grid (before the slit average), thickness spread included."""
+        rule = self._spread_rule(Ns, ds)
+        if rule is None:
+            return self._rt(Ns, ds)
+        # The interface terms do not depend on thickness: films_RT computes them once
+        # for all nodes.
+        return films_RT(self._outer, Ns, ds, thickness_scales=rule[0], weights=rule[1])
+
+    def _spread_rule(self, Ns, ds):
+        """(thickness scales, weights) of the thickness-spread average, None without one.
+
+        σ: spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength.
+        Node counts calibrated against an 801-node average for T <= 1e-5 even for
+        n = 3.5 on glass (strong reflections, many harmonics): 7-point Gauss-Hermite
+        up to 0.5 rad, beyond it a uniform rule of 8 + 13σ nodes (checked against a
+        brute force in tests/test_stack.py). A Gaussian this wide reaches below zero
+        thickness: that tail (< 5e-4 of the weight for spread <= 0.3) is lumped at
+        d = 0.
+        """
         spread = self.stack.thickness_spread
-        if spread > 0:
-            # σ: spread (rad) of the round-trip phase 4πnd/λ at the shortest wavelength.
-            # Node counts calibrated against an 801-node average for T <= 1e-5 even
-            # for n = 3.5 on glass (strong reflections, many harmonics): 7-point
-            # Gauss-Hermite up to 0.5 rad, beyond it a uniform rule of 8 + 13σ nodes
-            # (checked against a brute force in tests/test_stack.py).
-            sigma = 4 * np.pi * spread * sum(float(np.max(np.abs(N.real) / self._wl)) * d
-                                             for N, d in zip(Ns, ds))
-            xs, ws = ((_GH_X, _GH_W) if sigma <= 0.5
-                      else _spread_nodes(min(401, int(8 + 13 * sigma) | 1)))
-            # A Gaussian this wide reaches below zero thickness: that tail
-            # (< 5e-4 of the weight for spread <= 0.3) is lumped at d = 0. The
-            # interface terms do not depend on thickness: films_RT computes them
-            # once for all nodes.
-            return films_RT(self._outer, Ns, ds,
-                            thickness_scales=np.maximum(1 + spread * xs, 0.0), weights=ws)
-        return self._rt(Ns, ds)
+        if not spread > 0:
+            return None
+        sigma = 4 * np.pi * spread * sum(float(np.max(np.abs(N.real) / self._wl)) * d
+                                         for N, d in zip(Ns, ds))
+        xs, ws = ((_GH_X, _GH_W) if sigma <= 0.5
+                  else _spread_nodes(min(401, int(8 + 13 * sigma) | 1)))
+        return np.maximum(1 + spread * xs, 0.0), ws
+
+    def _shifted_RT(self, shifted, Ns, ds):
+        """R, T on the node grid of each (Ns, ds) in ``shifted``, shape (V, nodes): one
+        model call on the node grid repeated V times (its outer media bound once per
+        V), element by element what V calls of :meth:`_node_RT` compute. The
+        thickness-spread quadrature is the one of the unshifted (Ns, ds)."""
+        V, W = len(shifted), self._wl.size
+        outer = self._tiled.get(V)
+        if outer is None:
+            outer = self._tiled[V] = outer_media(
+                np.tile(self._wl, V), np.tile(self._N_amb, V), np.tile(self._N_sub, V),
+                self._sub_d, np.tile(self._N_exit, V), angle_rad=self.angle_rad,
+                polarization=self.polarization)
+        N_all = [np.concatenate([v[0][j] for v in shifted]) for j in range(len(Ns))]
+        d_all = [np.repeat([v[1][j] for v in shifted], W) for j in range(len(ds))]
+        rule = self._spread_rule(Ns, ds)
+        if rule is None:
+            R, T = films_RT(outer, N_all, d_all)
+        else:
+            R, T = films_RT(outer, N_all, d_all, thickness_scales=rule[0], weights=rule[1])
+        return R.reshape(V, W), T.reshape(V, W)
 
     def _on_grid(self, a):
         """The slit average of node values (last axis) onto the bound grid."""
