@@ -398,6 +398,8 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
         except Exception:  # impossible combination while searching
             return v, None
 
+    last = {}          # the point resid saw last: jac is asked there next (trf)
+
     def resid(x, base, pri):
         v, N_all = model(x, base)
         if N_all is None:
@@ -407,14 +409,19 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
         # of about 2.7 (one unit of log α); weak priors (log-normal) keep an
         # oscillator typical where the data say little: amplitude near 100 eV, C
         # and E0 near the shape's.
-        r = np.concatenate([target_residuals_and_slopes(a, t_arrays)[0],
-                            (N_all[n_t:].real - n_n) / 0.03,
+        r_t, slope = target_residuals_and_slopes(a, t_arrays)
+        last.update(x=x.tobytes(), base=base, v=v, N=N_all, slope=slope)
+        r = np.concatenate([r_t, (N_all[n_t:].real - n_n) / 0.03,
                             [math.log(max(v[k], 1e-9) / ref) / w for k, ref, w in pri]])
         return np.where(np.isfinite(r), r, 10.0)
 
     def jac(x, base, pri):
         # Exact through the chain rule: d log α = dκ/κ, dn, and the priors' 1/(x w).
-        v, N_all = model(x, base)
+        if last.get("x") == x.tobytes() and last["base"] is base:
+            v, N_all, slope = last["v"], last["N"], last["slope"]
+        else:
+            v, N_all = model(x, base)
+            slope = None
         J = np.zeros((lam_all.size + len(pri), len(names)))
         if N_all is None:
             return J
@@ -423,8 +430,9 @@ def edge_candidates(material, local: dict, edge, seed: Seed, free, wl_min: float
         except PellucidError:
             return J
         kap = N_all[:n_t].imag
-        _, slope = target_residuals_and_slopes(alpha_per_cm(np.maximum(kap, 0.0), lam_t),
-                                               t_arrays)
+        if slope is None:
+            _, slope = target_residuals_and_slopes(
+                alpha_per_cm(np.maximum(kap, 0.0), lam_t), t_arrays)
         with np.errstate(all="ignore"):
             J[:n_t] = (slope * np.where(kap > 0, 1.0 / kap, 0.0))[:, None] * dN[:, :n_t].imag.T
         J[n_t:lam_all.size] = dN[:, n_t:].real.T / 0.03
