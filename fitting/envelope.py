@@ -150,8 +150,13 @@ def _check_inputs(wavelength_nm, T, substrate_n):
 
 def _fringe_period(nu, Tu):
     """Dominant fringe period (in samples of the uniform 1/λ grid) from the spectrum's FFT."""
-    x = np.arange(nu.size)
-    trend = np.polynomial.Polynomial.fit(x, Tu, 3)(x)
+    # The cubic trend in the sample index mapped to [-1, 1] (as Polynomial.fit does).
+    last = float(nu.size - 1)
+    x = (-last - 0.0) / last + 2.0 / last * np.arange(nu.size)
+    c = _polyfit(x, Tu, 3)
+    trend = c[3] + x * 0
+    for i in range(2, -1, -1):
+        trend = c[i] + trend * x
     y = (Tu - trend) * np.hanning(nu.size)
     power = np.abs(np.fft.rfft(y)) ** 2
     # Fewer than two fringes over the range cannot be told from the trend; more
@@ -212,16 +217,16 @@ def _alternate(ext, smooth):
     return out
 
 
-def _quartic(x, y):
-    """Least-squares quartic through (x, y), coefficients lowest order first.
+def _polyfit(x, y, deg):
+    """Least-squares polynomial through (x, y), coefficients lowest order first.
 
     The procedure of numpy's ``polynomial.polyfit`` (columns scaled to unit norm,
     SVD least squares with rcond = len(x)·eps), without its per-call checks.
     """
-    v = np.empty((5, x.size))
+    v = np.empty((deg + 1, x.size))
     v[0] = x * 0 + 1
     v[1] = x
-    for i in range(2, 5):
+    for i in range(2, deg + 1):
         v[i] = v[i - 1] * x
     scl = np.sqrt(np.square(v).sum(1))
     scl[scl == 0] = 1
@@ -248,7 +253,7 @@ def _refine(nu_raw, T_raw, centres, halves, is_max, fallback_nu, fallback_T):
     for j, (centre, half) in enumerate(zip(centres, halves)):
         sel = np.abs(nu_raw - centre) <= half
         if sel.sum() >= 9:
-            C[j] = _quartic((nu_raw[sel] - centre) / half, inv_T[sel])
+            C[j] = _polyfit((nu_raw[sel] - centre) / half, inv_T[sel], 4)
             fitted[j] = True
     # All quartics on the search grid at once (Horner's rule).
     xs = _REFINE_AT
