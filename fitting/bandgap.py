@@ -52,6 +52,7 @@ R2_MIN = 0.99
 #: edge's slope a_edge (common practice: the steepest straight part).
 _STEEP_FRACTION = 0.85
 _MAX_NODES = 300          # windows start/end on at most this many nodes (O(nodes²) scan)
+_BLOCK = 8192             # windows per block of the scan
 
 
 class NoAbsorptionEdgeError(PellucidError, ValueError):
@@ -152,7 +153,9 @@ def _windows(n: int, min_points: int):
 def _scan_windows(E, y, min_points, r2_min):
     """Longest straight steep window (i, j), inclusive; None if there is none."""
     n = E.size
-    I, k, m = _windows(n, int(min_points))
+    I_all, k_all, m_all = _windows(n, int(min_points))
+    if I_all.size == 0:
+        return None
     # Prefix sums give every window's regression in O(1).
     c = lambda v: np.concatenate(([0.0], np.cumsum(v)))  # noqa: E731
     # Centre and scale for round-off: y spans many decades in a Tauc plot.
@@ -160,17 +163,22 @@ def _scan_windows(E, y, min_points, r2_min):
     ys = max(np.max(np.abs(y)), 1e-300)
     X, Y = (E - x0) / xs, y / ys
     Sx, Sy, Sxx, Sxy, Syy = c(X), c(Y), c(X * X), c(X * Y), c(Y * Y)
-    sx, sy = Sx[k] - Sx[I], Sy[k] - Sy[I]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        sxx = Sxx[k] - Sxx[I] - sx * sx / m
-        sxy = Sxy[k] - Sxy[I] - sx * sy / m
-        syy = Syy[k] - Syy[I] - sy * sy / m
-        a = sxy / sxx
-        ssr = np.maximum(syy - a * sxy, 0.0)
-        r2 = 1.0 - ssr / syy
     # Only the straight rising windows (a small share) go on to the noise and intercept.
-    keep = np.flatnonzero(np.isfinite(r2) & (r2 >= r2_min) & (a > 0) & (sxx > 0))
-    I, k, m, sx, sy, sxx, a, ssr = (v[keep] for v in (I, k, m, sx, sy, sxx, a, ssr))
+    # The windows are taken in blocks that keep the working arrays in a core's cache.
+    kept = []
+    for lo in range(0, I_all.size, _BLOCK):
+        I, k, m = (v[lo:lo + _BLOCK] for v in (I_all, k_all, m_all))
+        sx, sy = Sx[k] - Sx[I], Sy[k] - Sy[I]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sxx = Sxx[k] - Sxx[I] - sx * sx / m
+            sxy = Sxy[k] - Sxy[I] - sx * sy / m
+            syy = Syy[k] - Syy[I] - sy * sy / m
+            a = sxy / sxx
+            ssr = np.maximum(syy - a * sxy, 0.0)
+            r2 = 1.0 - ssr / syy
+        keep = np.flatnonzero(np.isfinite(r2) & (r2 >= r2_min) & (a > 0) & (sxx > 0))
+        kept.append([v[keep] for v in (I, k, m, sx, sy, sxx, a, ssr)])
+    I, k, m, sx, sy, sxx, a, ssr = (np.concatenate(v) for v in zip(*kept))
     Sn = c(_point_noise_sq(Y))
     with np.errstate(divide="ignore", invalid="ignore"):
         # A window's scatter is never taken below the point noise measured around it:
