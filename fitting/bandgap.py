@@ -32,6 +32,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -51,6 +52,7 @@ R2_MIN = 0.99
 #: edge's slope a_edge (common practice: the steepest straight part).
 _STEEP_FRACTION = 0.85
 _MAX_NODES = 300          # windows start/end on at most this many nodes (O(nodes²) scan)
+_BLOCK = 8192             # windows per block of the scan
 
 
 class NoAbsorptionEdgeError(PellucidError, ValueError):
@@ -134,42 +136,60 @@ def _point_noise_sq(y, half: int = 5):
     return num / den
 
 
+@functools.lru_cache(maxsize=4)
+def _windows(n: int, min_points: int):
+    """Every window (start, end + 1, point count) between nodes, at least ``min_points``
+    long; the same for every spectrum on one grid, so a batch builds it once."""
+    nodes = np.unique(np.linspace(0, n - 1, min(n, _MAX_NODES)).round().astype(int))
+    I, J = np.meshgrid(nodes, nodes, indexing="ij")
+    ok = (J - I + 1) >= min_points
+    I, k = I[ok], J[ok] + 1
+    m = (k - I).astype(float)
+    for v in (I, k, m):
+        v.flags.writeable = False
+    return I, k, m
+
+
 def _scan_windows(E, y, min_points, r2_min):
     """Longest straight steep window (i, j), inclusive; None if there is none."""
     n = E.size
-    nodes = np.unique(np.linspace(0, n - 1, min(n, _MAX_NODES)).round().astype(int))
+    I_all, k_all, m_all = _windows(n, int(min_points))
+    if I_all.size == 0:
+        return None
     # Prefix sums give every window's regression in O(1).
     c = lambda v: np.concatenate(([0.0], np.cumsum(v)))  # noqa: E731
     # Centre and scale for round-off: y spans many decades in a Tauc plot.
     x0, xs = E.mean(), max(np.ptp(E), 1e-12)
     ys = max(np.max(np.abs(y)), 1e-300)
     X, Y = (E - x0) / xs, y / ys
-    S1, Sx, Sy, Sxx, Sxy, Syy = (c(np.ones(n)), c(X), c(Y), c(X * X), c(X * Y), c(Y * Y))
+    Sx, Sy, Sxx, Sxy, Syy = c(X), c(Y), c(X * X), c(X * Y), c(Y * Y)
+    # Only the straight rising windows (a small share) go on to the noise and intercept.
+    # The windows are taken in blocks that keep the working arrays in a core's cache.
+    kept = []
+    for lo in range(0, I_all.size, _BLOCK):
+        I, k, m = (v[lo:lo + _BLOCK] for v in (I_all, k_all, m_all))
+        sx, sy = Sx[k] - Sx[I], Sy[k] - Sy[I]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sxx = Sxx[k] - Sxx[I] - sx * sx / m
+            sxy = Sxy[k] - Sxy[I] - sx * sy / m
+            syy = Syy[k] - Syy[I] - sy * sy / m
+            a = sxy / sxx
+            ssr = np.maximum(syy - a * sxy, 0.0)
+            r2 = 1.0 - ssr / syy
+        keep = np.flatnonzero(np.isfinite(r2) & (r2 >= r2_min) & (a > 0) & (sxx > 0))
+        kept.append([v[keep] for v in (I, k, m, sx, sy, sxx, a, ssr)])
+    I, k, m, sx, sy, sxx, a, ssr = (np.concatenate(v) for v in zip(*kept))
     Sn = c(_point_noise_sq(Y))
-    I, J = np.meshgrid(nodes, nodes, indexing="ij")
-    ok = (J - I + 1) >= min_points
-    I, J = I[ok], J[ok]
-    k = J + 1
-    m = S1[k] - S1[I]
-    sx, sy = Sx[k] - Sx[I], Sy[k] - Sy[I]
-    sxx = Sxx[k] - Sxx[I] - sx * sx / m
-    sxy = Sxy[k] - Sxy[I] - sx * sy / m
-    syy = Syy[k] - Syy[I] - sy * sy / m
     with np.errstate(divide="ignore", invalid="ignore"):
-        a = sxy / sxx
-        ssr = np.maximum(syy - a * sxy, 0.0)
-        r2 = 1.0 - ssr / syy
         # A window's scatter is never taken below the point noise measured around it:
         # a few points can line up by chance, and their slope is no surer for that.
         s2 = np.maximum(ssr / np.maximum(m - 2, 1), (Sn[k] - Sn[I]) / m)
         sig_a = np.sqrt(s2 / sxx)
         b = (sy - a * sx) / m
         Eg = -b / a                                     # in scaled X
-    x_lo = X[I]
     # A window qualifies if it is straight, rising, and its intercept lies below its
     # first point (the line runs down into the gap, not back up into the tail).
-    valid = (np.isfinite(r2) & (r2 >= r2_min) & (a > 0) & np.isfinite(Eg)
-             & (Eg <= x_lo + 1e-12) & (sxx > 0))
+    valid = np.isfinite(Eg) & (Eg <= X[I] + 1e-12)
     if not np.any(valid):
         return None
     # "Steep" is measured against the edge's largest slope that is certain: the best
@@ -185,7 +205,7 @@ def _scan_windows(E, y, min_points, r2_min):
     # The longest straight steep window; of equally long ones, the steeper.
     idx = np.flatnonzero(steep)
     best = idx[np.lexsort((-a[idx], -m[idx]))[0]]
-    return int(I[best]), int(J[best])
+    return int(I[best]), int(k[best] - 1)
 
 
 def tauc_gap(wavelength_nm, alpha_cm, *, transition: str = "direct",

@@ -150,8 +150,13 @@ def _check_inputs(wavelength_nm, T, substrate_n):
 
 def _fringe_period(nu, Tu):
     """Dominant fringe period (in samples of the uniform 1/λ grid) from the spectrum's FFT."""
-    x = np.arange(nu.size)
-    trend = np.polynomial.Polynomial.fit(x, Tu, 3)(x)
+    # The cubic trend in the sample index mapped to [-1, 1] (as Polynomial.fit does).
+    last = float(nu.size - 1)
+    x = (-last - 0.0) / last + 2.0 / last * np.arange(nu.size)
+    c = _polyfit(x, Tu, 3)
+    trend = c[3] + x * 0
+    for i in range(2, -1, -1):
+        trend = c[i] + trend * x
     y = (Tu - trend) * np.hanning(nu.size)
     power = np.abs(np.fft.rfft(y)) ** 2
     # Fewer than two fringes over the range cannot be told from the trend; more
@@ -212,37 +217,73 @@ def _alternate(ext, smooth):
     return out
 
 
-def _refine(nu_raw, T_raw, centre, half, kind, fallback):
-    """Extremum position and height from a quartic through the raw points around it.
+def _polyfit(x, y, deg):
+    """Least-squares polynomial through (x, y), coefficients lowest order first.
+
+    The procedure of numpy's ``polynomial.polyfit`` (columns scaled to unit norm,
+    SVD least squares with rcond = len(x)·eps), without its per-call checks.
+    """
+    v = np.empty((deg + 1, x.size))
+    v[0] = x * 0 + 1
+    v[1] = x
+    for i in range(2, deg + 1):
+        v[i] = v[i - 1] * x
+    scl = np.sqrt(np.square(v).sum(1))
+    scl[scl == 0] = 1
+    c = np.linalg.lstsq(v.T / scl, y, x.size * np.finfo(float).eps)[0]
+    return c / scl
+
+
+#: Where :func:`_refine` looks for the quartic's extremum, in half-widths of its window.
+_REFINE_AT = np.linspace(-0.6, 0.6, 241)
+
+
+def _refine(nu_raw, T_raw, centres, halves, is_max, fallback_nu, fallback_T):
+    """Position and height of every extremum from a quartic through the raw points
+    around it; the fallback (smoothed) values where there is none.
 
     A quartic over ±1/4 fringe follows the fringe shape closely (a parabola would
     clip the peak) while averaging the noise of all points in the window.
     """
-    sel = np.abs(nu_raw - centre) <= half
-    if sel.sum() < 9:
-        return fallback
-    x = (nu_raw[sel] - centre) / half
     # 1/T is linear in cos φ (Swanepoel eq. 1 at fixed n, x), so a polynomial follows
     # 1/T more closely than T itself near sharp maxima.
-    c = np.polynomial.polynomial.polyfit(x, 1.0 / np.maximum(T_raw[sel], 1e-6), 4)
-    xs = np.linspace(-0.6, 0.6, 241)
-    v = np.polynomial.polynomial.polyval(xs, c)
-    j = int(np.argmin(v) if kind == "max" else np.argmax(v))
-    if j in (0, xs.size - 1) or v[j] <= 0:   # no interior extremum: keep the smoothed one
-        return fallback
-    return centre + xs[j] * half, float(1.0 / v[j])
+    inv_T = 1.0 / np.maximum(T_raw, 1e-6)
+    C = np.zeros((centres.size, 5))
+    fitted = np.zeros(centres.size, bool)
+    for j, (centre, half) in enumerate(zip(centres, halves)):
+        sel = np.abs(nu_raw - centre) <= half
+        if sel.sum() >= 9:
+            C[j] = _polyfit((nu_raw[sel] - centre) / half, inv_T[sel], 4)
+            fitted[j] = True
+    # All quartics on the search grid at once (Horner's rule).
+    xs = _REFINE_AT
+    v = C[:, 4:] + xs * 0
+    for i in range(3, -1, -1):
+        v = C[:, i:i + 1] + v * xs
+    j = np.where(is_max, np.argmin(v, axis=1), np.argmax(v, axis=1))
+    vj = v[np.arange(centres.size), j]
+    # No interior extremum (or no quartic): keep the smoothed one.
+    with np.errstate(divide="ignore"):
+        ok = fitted & (j != 0) & (j != xs.size - 1) & ~(vj <= 0)
+        return (np.where(ok, centres + xs[j] * halves, fallback_nu),
+                np.where(ok, 1.0 / np.where(ok, vj, 1.0), fallback_T))
 
 
-def _envelope(nu_pts, T_pts, nu_eval):
-    """PCHIP through the extrema in 1/λ; linear continuation past the last ones."""
+def _envelope(nu_pts, T_pts):
+    """The envelope through the extrema as a function of ν: PCHIP in 1/λ, linear
+    continuation past the last ones (built once, evaluated where needed)."""
     if nu_pts.size == 1:
-        return np.full(np.shape(nu_eval), T_pts[0])
-    out = PchipInterpolator(nu_pts, T_pts, extrapolate=False)(nu_eval)
-    for end, a, b in ((nu_eval < nu_pts[0], 0, 1), (nu_eval > nu_pts[-1], -2, -1)):
-        slope = (T_pts[b] - T_pts[a]) / (nu_pts[b] - nu_pts[a])
-        ref = 0 if a == 0 else -1
-        out[end] = T_pts[ref] + slope * (nu_eval[end] - nu_pts[ref])
-    return out
+        return lambda nu_eval: np.full(np.shape(nu_eval), T_pts[0])
+    pchip = PchipInterpolator(nu_pts, T_pts, extrapolate=False)
+
+    def at(nu_eval):
+        out = pchip(nu_eval)
+        for end, a, b in ((nu_eval < nu_pts[0], 0, 1), (nu_eval > nu_pts[-1], -2, -1)):
+            slope = (T_pts[b] - T_pts[a]) / (nu_pts[b] - nu_pts[a])
+            ref = 0 if a == 0 else -1
+            out[end] = T_pts[ref] + slope * (nu_eval[end] - nu_pts[ref])
+        return out
+    return at
 
 
 def _fail(message, n_points):
@@ -337,18 +378,18 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
     near[0], near[-1] = gaps[0], gaps[-1]
     if pos.size > 2:
         near[1:-1] = 0.5 * (gaps[:-1] + gaps[1:])
-    nu_e, T_e = np.empty_like(pos), np.empty_like(pos)
-    for j, (i, kd) in enumerate(ext):
-        nu_e[j], T_e[j] = _refine(nu, Tn, pos[j], 0.5 * near[j], kd,
-                                  (pos[j], float(T_sm[i])))
+    is_max = kinds == "max"
+    nu_e, T_e = _refine(nu, Tn, pos, 0.5 * near, is_max, pos,
+                        T_sm[[i for i, _ in ext]])
     nu_e = np.clip(nu_e, pos - 0.25 * du * period, pos + 0.25 * du * period)
 
-    is_max = kinds == "max"
     if is_max.sum() < 1 or (~is_max).sum() < 1:
         return _fail("found extrema of one kind only; the envelope method needs both "
                      "maxima and minima", wl.size)
-    TM = np.where(is_max, T_e, _envelope(nu_e[is_max], T_e[is_max], nu_e))
-    Tm = np.where(~is_max, T_e, _envelope(nu_e[~is_max], T_e[~is_max], nu_e))
+    upper = _envelope(nu_e[is_max], T_e[is_max])
+    lower = _envelope(nu_e[~is_max], T_e[~is_max])
+    TM = np.where(is_max, T_e, upper(nu_e))
+    Tm = np.where(~is_max, T_e, lower(nu_e))
     s_e = np.interp(nu_e, nu, sn)
     lam = 1.0 / nu_e
     if np.any(TM <= Tm) or np.any(Tm <= 0):
@@ -398,8 +439,8 @@ def swanepoel_envelope(wavelength_nm, T, substrate_n, *, smooth: bool = True) ->
     inside = (nu_grid >= nu_e.min()) & (nu_grid <= nu_e.max())
     env_M = np.full(wl.shape, np.nan)
     env_m = np.full(wl.shape, np.nan)
-    env_M[inside] = _envelope(nu_e[is_max], T_e[is_max], nu_grid[inside])
-    env_m[inside] = _envelope(nu_e[~is_max], T_e[~is_max], nu_grid[inside])
+    env_M[inside] = upper(nu_grid[inside])
+    env_m[inside] = lower(nu_grid[inside])
 
     asc = np.argsort(lam)
     msg = (f"{pos.size} fringe extrema between {lam.min():.0f} and {lam.max():.0f} nm: "

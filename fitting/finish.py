@@ -72,6 +72,7 @@ class Stats:
     residual: np.ndarray         # used points of all parts, weighted order kept
     sigma: np.ndarray
     sigma_source: str
+    model: list = dataclasses.field(default_factory=list)   # each part's curve, used points
 
 
 def scanned_film(obj: Objective):
@@ -148,12 +149,14 @@ def choose(obj: Objective, polished: list, start: dict, method: str) -> Choice:
 # -- 2. statistics -----------------------------------------------------------------------
 def statistics(obj: Objective, values: dict) -> Stats:
     """χ² of ``values`` against each part's σ (given, or the spectrum's own noise)."""
-    parts, res, sig, chisqr = [], [], [], 0.0
+    parts, res, sig, model, chisqr = [], [], [], [], 0.0
     sources = set()
     for part in obj.parts:
         local = obj.local_values(part, values)
         with np.errstate(all="ignore"):
-            r = part.y - part.evaluate(local)
+            m = part.evaluate(local)
+            r = part.y - m
+        model.append(m)
         chisqr += float(np.sum((r / part.sigma) ** 2))
         parts.append((part, local, part.sigma))
         res.append(r)
@@ -165,7 +168,7 @@ def statistics(obj: Objective, values: dict) -> Stats:
     dof = max(obj.ndata + prior.size - len(obj.var_names), 1)
     sigma = np.concatenate(sig)
     src = "; ".join(sorted(sources)) + f", median {100 * float(np.median(sigma)):.3g} %"
-    return Stats(parts, chisqr, dof, chisqr / dof, np.concatenate(res), sigma, src)
+    return Stats(parts, chisqr, dof, chisqr / dof, np.concatenate(res), sigma, src, model)
 
 
 # -- 4. parameters, curves, optical constants -------------------------------------------
@@ -208,25 +211,40 @@ def _params(obj: Objective, values: dict, start: dict, stderr: dict) -> dict:
     return out
 
 
-def _curves(part: Part, local: dict, sigma_used: np.ndarray) -> dict:
-    """Fitted curve on every point of the fit range (NaN where the model is undefined)."""
+def _curves(part: Part, local: dict, sigma_used: np.ndarray, model_used=None) -> dict:
+    """Fitted curve on every point of the fit range (NaN where the model is undefined).
+
+    ``model_used`` is the curve on the used points at the same values, from
+    :func:`statistics`; then only the unused points of the range (masked windows,
+    dropped rows) are computed here.
+    """
     sp = part.spectrum
     wl = sp.wavelength_nm
     fit = np.full(wl.shape, np.nan)
-    sel = part.in_range.copy()
-    try:
-        sm = StackModel(part.stack, wl[sel], angle_deg=part.angle_deg,
-                        polarization=part.polarization)
-    except PellucidError:
-        sel = part.used.copy()
-        sm = part.model
-    with np.errstate(all="ignore"):
-        fit[sel] = part.evaluate(local, sm)
+    covered = part.in_range.copy()            # where the curve is given
+    done = np.zeros_like(covered)
+    # The used points' curve comes from statistics(); only the rest of the range
+    # (masked windows, dropped rows) is computed here. (A model on exactly as many
+    # points as the used ones would take their tilt abscissa: then all of it is.)
+    if model_used is not None and (covered & ~part.used).sum() != part.used.sum():
+        fit[part.used] = model_used
+        done = part.used
+    todo = covered & ~done
+    if todo.any():
+        try:
+            sm = StackModel(part.stack, wl[todo], angle_deg=part.angle_deg,
+                            polarization=part.polarization)
+        except PellucidError:                 # undefined off the used points: NaN there
+            covered = part.used.copy()
+            todo, sm = covered & ~done, part.model
+        if todo.any():
+            with np.errstate(all="ignore"):
+                fit[todo] = part.evaluate(local, sm)
     sigma = np.full(wl.shape, np.nan)
     if part.sigma_given:
         sigma = np.where(np.isfinite(sp.sigma), sp.sigma, np.nan)
     else:
-        sigma[sel] = float(np.median(sigma_used)) if sigma_used.size else DEFAULT_SIGMA
+        sigma[covered] = float(np.median(sigma_used)) if sigma_used.size else DEFAULT_SIGMA
     sigma[part.used] = sigma_used
     return {"wl": wl, "y": sp.values, "fit": fit, "sigma": sigma, "used": part.used.copy()}
 
@@ -447,7 +465,9 @@ def finish(obj: Objective, options, start: dict, polished: list, info: dict) -> 
         part.stack.set_values(local)
         if "thickness_spread" in local:
             part.stack.thickness_spread = float(local["thickness_spread"])
-    curves = [_curves(part, local, sigma) for part, local, sigma in stats.parts]
+    models = stats.model or [None] * len(stats.parts)
+    curves = [_curves(part, local, sigma, m)
+              for (part, local, sigma), m in zip(stats.parts, models)]
     optical, optical_errors = optical_constants(obj, stats, values, C)
     kk = kk_checks(optical)
     alts = alternatives(obj, polished, choice, stats, stderr)

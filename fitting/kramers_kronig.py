@@ -53,22 +53,37 @@ _TAIL_SPAN = 30.0          # continue the tail up to 30 E_max (κ down by 27000)
 _TAIL_NODES = 60
 
 
-def _seg_pv(E_nodes, k, x):
+def _log_dist(E_nodes, x):
+    """ln|E' - x| for every target (rows) and node (columns), ln 0 taken as 0."""
+    L = np.subtract(E_nodes[None, :], x)
+    np.abs(L, out=L)
+    with np.errstate(divide="ignore"):
+        np.log(L, out=L)
+    L[~np.isfinite(L)] = 0.0
+    return L
+
+
+def _seg_pv(E_nodes, k, x, L=None):
     """Σ over segments of PV ∫_a^b f(E')/(E' - x) dE', f linear on each segment.
 
     Targets x run along the first axis. With f(E') = f(x) + s (E' - x) each
     segment gives s (b - a) + f(x) ln|(b - x)/(a - x)|. Where x coincides with a
     node, the ln 0 of the two neighbouring segments carries the same coefficient
     f(x) and cancels in the principal value, so ln 0 is taken as 0. The logs
-    are taken once per node and shared by the two segments meeting there.
+    are taken once per node and shared by the two segments meeting there; ``L``
+    (from :func:`_log_dist`) passes them in when several κ share nodes and targets.
     """
+    if L is None:
+        L = _log_dist(E_nodes, x)
     a, b = E_nodes[:-1], E_nodes[1:]
     s = (k[1:] - k[:-1]) / (b - a)
-    with np.errstate(divide="ignore"):
-        L = np.log(np.abs(E_nodes[None, :] - x))
-    L[~np.isfinite(L)] = 0.0
-    fx = k[None, :-1] + s[None, :] * (x - a[None, :])
-    return np.sum(s * (b - a)) + np.sum(fx * (L[:, 1:] - L[:, :-1]), axis=1)
+    # In place: the matrices are large enough that fresh temporaries cost more
+    # than the arithmetic.
+    fx = x - a[None, :]
+    fx *= s
+    fx += k[:-1]
+    fx *= L[:, 1:] - L[:, :-1]
+    return np.sum(s * (b - a)) + np.sum(fx, axis=1)
 
 
 def kk_integral(E_nodes, kappa_nodes, E_eval) -> np.ndarray:
@@ -233,22 +248,24 @@ def _out_of_range_terms(E, diff, inner):
     on grids (1.05-20 E_max, 0-0.9 E_min) for the smallest residual.
     """
     y = diff[inner]
-    one = np.ones_like(E)
+    E_in = E[inner]
 
-    def bases(Eir, Ep):
-        """Basis columns for every (E_ir, E_p) pair at once: shape (K, N, 3)."""
+    def bases(Eir, Ep, E=E_in):
+        """Basis columns for every (E_ir, E_p) pair at once, on the compared points
+        unless ``E`` is given: shape (K, N, 3)."""
         Eir, Ep = np.broadcast_arrays(np.atleast_1d(Eir), np.atleast_1d(Ep))
-        return np.stack((np.broadcast_to(one, (Eir.size, E.size)),
-                         -1.0 / (E[None] ** 2 - Eir[:, None] ** 2),
-                         1.0 / (Ep[:, None] ** 2 - E[None] ** 2)), axis=-1)
+        B = np.empty((Eir.size, E.size, 3))
+        B[..., 0] = 1.0
+        B[..., 1] = -1.0 / (E[None] ** 2 - Eir[:, None] ** 2)
+        B[..., 2] = 1.0 / (Ep[:, None] ** 2 - E[None] ** 2)
+        return B
 
-    def residuals(B):
+    def residuals(Bi):
         # All the small least-squares problems at once by their normal equations,
         # columns scaled to unit norm first (the pole columns differ by orders of
         # magnitude): residual norm |y|² - bᵀx with G x = b, G = BᵀB, b = Bᵀy. Three
         # columns keep G well enough conditioned for choosing the poles on a grid;
         # the chosen fit itself is solved by lstsq (see fitted).
-        Bi = B[:, inner]
         Bt = Bi.transpose(0, 2, 1)
         G = Bt @ Bi
         b = Bt @ y
@@ -265,16 +282,21 @@ def _out_of_range_terms(E, diff, inner):
         return float(y @ y) - np.sum(b * x, axis=1)
 
     def fitted(Eir, Ep):
-        basis = bases(Eir, Ep)[0]
+        basis = bases(Eir, Ep, E)[0]
         coef, *_ = np.linalg.lstsq(basis[inner], y, rcond=None)
         return basis @ coef
 
     ratios = np.geomspace(1.05, 20.0, 24)
     irs = E[0] * np.array([0.0, 0.3, 0.5, 0.65, 0.75, 0.82, 0.87, 0.9])
-    Eir_g, q_g = np.meshgrid(irs, ratios, indexing="ij")
-    res = residuals(bases(Eir_g.ravel(), q_g.ravel() * E[-1]))
+    # Every (E_ir, E_p) pair of the grids, E_ir major: each pole column is made
+    # once per pole and shared by the pairs that hold it.
+    B = np.empty((irs.size, ratios.size, E_in.size, 3))
+    B[..., 0] = 1.0
+    B[..., 1] = (-1.0 / (E_in[None] ** 2 - irs[:, None] ** 2))[:, None]
+    B[..., 2] = 1.0 / ((ratios * E[-1])[:, None] ** 2 - E_in[None] ** 2)
+    res = residuals(B.reshape(-1, E_in.size, 3))
     k = int(np.argmin(res))
-    Eir, j = Eir_g.ravel()[k], k % ratios.size
+    Eir, j = irs[k // ratios.size], k % ratios.size
     # Refine the UV pole between the grid neighbours of the best one (a fine grid
     # in log E_p, solved at once, instead of a scalar search of single fits).
     lo, hi = np.log(ratios[max(j - 1, 0)]), np.log(ratios[min(j + 1, ratios.size - 1)])
@@ -393,14 +415,24 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     p = np.polyfit(E[sl] - E[i0], ns[sl], 1)
     n0 = float(p[-1])
 
-    I = kk_integral(En, kn, E)
+    # kk_integral three times over (κ, every second node, the other continuation of
+    # κ), its logarithms (the dearest part) taken once.
+    x = (E[:, None], -E[:, None])
+    logs = (_log_dist(En, x[0]), _log_dist(En, x[1]))
+
+    def integral(keep, k):
+        nodes = En if keep is None else En[keep]
+        L = logs if keep is None else (logs[0][:, keep], logs[1][:, keep])
+        return 0.5 * (_seg_pv(nodes, k, x[0], L[0]) + _seg_pv(nodes, k, x[1], L[1]))
+
+    I = integral(None, kn)
     n_raw = n0 + 2 / np.pi * (I - I[i0])
 
     # Discretisation error estimate: same integral from every second node.
     sub = np.zeros(En.size, bool)
     sub[::2] = True
     sub[-1] = True
-    I2 = kk_integral(En[sub], kn[sub], E)
+    I2 = integral(sub, kn[sub])
     disc = np.abs((I - I[i0]) - (I2 - I2[i0])) * (2 / np.pi) / 3.0
 
     # Edges in log E: the unknown κ just outside matters within a fixed *ratio* of
@@ -413,7 +445,8 @@ def kk_consistency(wavelength_nm, n, kappa, *, anchor_nm: float | None = None,
     # the unknown κ outside can move n_kk at each point. Points where that exceeds
     # half the tolerance are not compared.
     *_, En_b, kn_b = _energy_grid(wl, kappa, True, "flat")
-    Ib = kk_integral(En_b, kn_b, E)
+    # The two continuations differ in κ only, on the same energies.
+    Ib = integral(None, kn_b) if np.array_equal(En_b, En) else kk_integral(En_b, kn_b, E)
     delta = 2 / np.pi * ((Ib - Ib[i0]) - (I - I[i0]))
     trunc = np.abs(delta - _out_of_range_terms(E, delta, inner))
     inner &= trunc <= 0.5 * tol

@@ -135,3 +135,63 @@ def test_docstring_examples():
 
     import fitting.bandgap as mod
     assert doctest.testmod(mod).failed == 0
+
+
+def _plain_loop_window(E, y, min_points=5, r2_min=0.99):
+    """The window rule of fitting.bandgap written as a loop over every window, one
+    least-squares line each (an independent check of the prefix-sum scan)."""
+    n = E.size
+    X, Y = (E - E.mean()) / np.ptp(E), y / np.max(np.abs(y))
+    d2 = np.diff(Y, 2) ** 2 / 6.0          # white noise: E[(second difference)²] = 6σ²
+    d2 = np.concatenate(([d2[0]], d2, [d2[-1]]))
+    noise = np.array([d2[max(0, i - 5):i + 6].mean() for i in range(n)])
+    found = []                              # (i, j, points, slope, slope - 2σ)
+    for i in range(n):
+        for j in range(i + min_points - 1, n):
+            x, v = X[i:j + 1], Y[i:j + 1]
+            m = j - i + 1
+            dx, dv = x - x.mean(), v - v.mean()
+            sxx, syy = dx @ dx, dv @ dv
+            a = (dx @ dv) / sxx
+            ssr = max(syy - a * (dx @ dv), 0.0)
+            b = v.mean() - a * x.mean()
+            if not (syy > 0 and 1 - ssr / syy >= r2_min and a > 0 and -b / a <= x[0]):
+                continue
+            s2 = max(ssr / (m - 2), noise[i:j + 1].mean())
+            found.append((i, j, m, a, a - 2 * np.sqrt(s2 / sxx)))
+    pool = [w for w in found if w[2] >= max(min_points, n // 10)] or found
+    a_edge = max(w[4] for w in pool)
+    steep = [w for w in found if w[3] >= 0.85 * a_edge] or found
+    best = min(steep, key=lambda w: (-w[2], -w[3]))   # longest, then steepest
+    return best[0], best[1]
+
+
+def _tauc_lorentz_alpha(wl):
+    # Tauc-Lorentz (Jellison & Modine, Appl. Phys. Lett. 69, 371 (1996)): a curved edge,
+    # so which window is the longest steep straight part matters.
+    from fitting.dispersion import Oscillators, TaucLorentz
+    from fitting.units import alpha_per_cm
+    k = Oscillators(2.0, [TaucLorentz(120.0, 4.5, 1.8, 3.0)]).N(wl).imag
+    return alpha_per_cm(k, wl)
+
+
+def _saturating_alpha(wl):
+    # A direct edge that flattens at high α (invented amplitudes): the straight part
+    # ends inside the data.
+    return 3e5 * np.tanh(direct_alpha(HC_EV_NM / wl) / 3e5)
+
+
+@pytest.mark.parametrize("transition,alpha,level,seed", [
+    ("direct", lambda wl: direct_alpha(HC_EV_NM / wl), 0.01, 1),
+    ("direct", _tauc_lorentz_alpha, 0.0, 0), ("indirect", _tauc_lorentz_alpha, 0.01, 1),
+    ("indirect", _saturating_alpha, 0.0, 0), ("indirect", _saturating_alpha, 0.01, 1)])
+def test_window_scan_matches_a_plain_loop(transition, alpha, level, seed):
+    # The automatic window (prefix sums over all windows at once) is the one a
+    # straightforward loop over the windows picks by the rule of the module docstring.
+    wl = np.linspace(200.0, 800.0, 100)
+    a = noisy(alpha(wl), level, seed)
+    Ec, y = tauc_curve(wl, a, transition=transition)
+    i, j = _plain_loop_window(Ec, y)
+    g = tauc_gap(wl, a, transition=transition)
+    assert g.fit_range_eV == (Ec[i], Ec[j])
+    assert j - i + 1 >= 5

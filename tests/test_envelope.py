@@ -170,3 +170,39 @@ def test_docstring_examples():
 
     import fitting.envelope as mod
     assert doctest.testmod(mod).failed == 0
+
+
+def test_refined_extrema_match_a_plain_quartic_per_extremum():
+    # The extrema are refined all at once; each must be what one quartic through the
+    # raw 1/T points around it, evaluated on the search grid, gives (numpy's polyfit
+    # and polyval, one extremum at a time).
+    from scipy.signal import find_peaks
+
+    from fitting.envelope import _refine
+    wl = np.arange(600.0, 1600.0, 2.0)
+    n, alpha = oxide_film(wl)
+    clean = swanepoel_T(wl, n, 1.46, 1200.0, alpha)[::-1]
+    nu = 1.0 / wl[::-1]
+    Tn = clean + np.random.default_rng(4).normal(0, 2e-3, wl.size)
+    imax, imin = find_peaks(clean)[0], find_peaks(-clean)[0]
+    idx = np.sort(np.concatenate([imax, imin]))
+    is_max = np.isin(idx, imax)
+    centres = nu[idx] + 0.1 * (nu[1] - nu[0])      # a little off the true extremum
+    halves = 0.25 * np.gradient(nu[idx])
+    halves[0] = 0.2 * (nu[1] - nu[0])               # too few points: keeps the fallback
+    fallback_T = np.full(idx.size, 0.5)
+    got_nu, got_T = _refine(nu, Tn, centres, halves, is_max, centres, fallback_T)
+    P = np.polynomial.polynomial
+    xs = np.linspace(-0.6, 0.6, 241)
+    for j in range(idx.size):
+        sel = np.abs(nu - centres[j]) <= halves[j]
+        if sel.sum() < 9:
+            assert (got_nu[j], got_T[j]) == (centres[j], 0.5)
+            continue
+        c = P.polyfit((nu[sel] - centres[j]) / halves[j], 1.0 / Tn[sel], 4)
+        v = P.polyval(xs, c)
+        k = int(np.argmin(v) if is_max[j] else np.argmax(v))
+        assert 0 < k < xs.size - 1
+        assert got_nu[j] == pytest.approx(centres[j] + xs[k] * halves[j], rel=1e-12)
+        assert got_T[j] == pytest.approx(1.0 / v[k], rel=1e-12)
+    assert idx.size >= 8 and got_T[0] == 0.5

@@ -177,6 +177,28 @@ def test_statistics_agree_with_lmfit_bookkeeping(spectrum):
     assert statistics(_obj(given), values).sigma_source.startswith("given with the spectrum")
 
 
+@pytest.mark.parametrize("fit_range, masks, n_masked", [
+    (None, ((600.0, 650.0),), 11),
+    ((400.0, 995.0), ((400.0, 696.0),), 60),   # as many points masked as used (60 + 60)
+    (None, (), 0)])
+def test_fitted_curve_reuses_the_statistics_curve(spectrum, fit_range, masks, n_masked):
+    # The curve on the used points comes from statistics(); computed afresh over the
+    # whole fit range it is the same, and the masked points get the model too (with
+    # the 100 % line's tilt at their own wavelengths).
+    opts = FitOptions(fit_range_nm=fit_range, mask_windows_nm=masks, fit_tilt=True)
+    obj = _obj(spectrum, opts)
+    values = obj.tied_values(_at(obj, film_thickness=D_NM + 3.0, tilt=0.01, scale=1.02))
+    st = statistics(obj, values)
+    (part, local, sigma), = st.parts
+    reused = finish._curves(part, local, sigma, st.model[0])
+    fresh = finish._curves(part, local, sigma)
+    np.testing.assert_array_equal(reused["fit"], fresh["fit"])
+    np.testing.assert_array_equal(reused["sigma"], fresh["sigma"])
+    assert np.all(np.isfinite(reused["fit"][part.in_range]))
+    assert np.all(np.isnan(reused["fit"][~part.in_range]))
+    assert (part.in_range & ~part.used).sum() == n_masked
+
+
 # -- 4. other solutions ------------------------------------------------------------------
 def _stats(chisqr, dof):
     return Stats([], chisqr, dof, chisqr / dof, np.zeros(0), np.zeros(0), "")

@@ -29,6 +29,22 @@ def test_pv_integral_of_constant_kappa_is_analytic():
     assert np.allclose(got, ref, atol=1e-12)
 
 
+def test_shared_logarithms_give_the_same_integral():
+    # The consistency check takes ln|E' - E| once and reuses it for every second node
+    # (its discretisation estimate); that must equal integrating on those nodes afresh,
+    # including the ln 0 = 0 of targets on a node (no outside reference: an identity).
+    from fitting.kramers_kronig import _log_dist, _seg_pv
+    E = np.geomspace(0.5, 8.0, 121)
+    k = LORENTZ.N(1239.84 / E).imag
+    x = E[::3, None]                               # every third target sits on a node
+    sub = np.zeros(E.size, bool)
+    sub[::2] = True
+    sub[-1] = True
+    L = _log_dist(E, x)
+    assert np.array_equal(_seg_pv(E[sub], k[sub], x, L[:, sub]), _seg_pv(E[sub], k[sub], x))
+    assert np.array_equal(_seg_pv(E, k, x, L), _seg_pv(E, k, x))
+
+
 @pytest.mark.parametrize("model", [LORENTZ, TL], ids=["lorentz", "tauc-lorentz"])
 def test_subtractive_kk_reproduces_model_n(model):
     N = model.N(WL)
