@@ -120,21 +120,20 @@ def _influences(obj, values: dict, options):
     locs = [obj.local_values(p, values) for p in parts]
     n_prior = len(obj.priors)
 
+    with np.errstate(all="ignore"):
+        y0s = [p.evaluate(local) for p, local in zip(parts, locs)]   # the fitted curves
+
     def dr_of(models) -> np.ndarray:
-        rs = []
-        for p, local, y_new in zip(parts, locs, models):
-            with np.errstate(all="ignore"):
-                y0 = p.evaluate(local)
-            rs.append(-(y_new - y0) / p.sigma)
+        rs = [-(y_new - y0) / p.sigma for p, y0, y_new in zip(parts, y0s, models)]
         return np.concatenate(rs + [np.zeros(n_prior)])
 
     def nuisance(name, u, note):
         models = []
-        for p, local in zip(parts, locs):
+        for p, local, y0 in zip(parts, locs, y0s):
             with np.errstate(all="ignore"):
                 base = p.evaluate({**local, "scale": 1.0, "offset": 0.0, "tilt": 0.0})
             shape = base if name == "scale" else base * p.u
-            models.append(p.evaluate(local) + u * shape)
+            models.append(y0 + u * shape)
         out.append((f"100 % line {name}", u, note, dr_of(models)))
 
     if "scale" not in obj.var_names:
