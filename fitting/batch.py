@@ -78,9 +78,11 @@ import csv
 import dataclasses
 import glob
 import hashlib
+import importlib
 import json
 import os
 import re
+import threading
 import time
 import traceback
 import uuid
@@ -956,6 +958,11 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
             verdicts[r["verdict"]] += 1
         tally["done"] += 1
         tally["skipped"] += how == _SKIPPED
+        if report and tally["done"] == 1:
+            # The report's modules (matplotlib) load while the other spectra are
+            # fitted, not after them: the parent only waits for results meanwhile.
+            threading.Thread(target=_preload, args=("fitting.report",),
+                             name="report-imports", daemon=True).start()
         return BatchStep(i, total, paths[i], r["status"], r.get("reason") or "", r,
                          tally["done"], how == _SKIPPED)
 
@@ -1112,6 +1119,14 @@ def _report_key(k: str) -> bool:
     return (k in ("index", "file", "sha256", "status", "verdict", "verdict_reasons", "reason",
                   "warnings", "redchi", "spec_pass", "result_dir", "band_gap")
             or k.endswith(("_thickness", "_thickness_sigma", "_n@633")) or k.startswith("spec_"))
+
+
+def _preload(module: str) -> None:
+    """Import ``module`` (in a background thread); a failure shows when it is used."""
+    try:
+        importlib.import_module(module)
+    except Exception:               # noqa: BLE001 - the real import reports it later
+        pass
 
 
 def _write_reports(out_dir, plan, state, folders, in_memory, context):
