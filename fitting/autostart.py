@@ -620,7 +620,7 @@ def scan_thickness(parts, layer_index: int, local_start: list[dict], d_grid: np.
                 dd = list(ds)
                 dd[layer_index] = d_grid[a:a + k]
                 with np.errstate(all="ignore"):
-                    R, T = films_RT_thicknesses(outer, Ns, dd)
+                    R, T = films_RT_thicknesses(outer, Ns, dd, want_R=part.quantity != "T")
                 m = T if part.quantity == "T" else R
                 kk = m.shape[0]
                 chi[li, a:a + kk] += _profiled_chi2(m, y, w, u, nuisance or Nuisance(),

@@ -114,7 +114,7 @@ class Part:
     def evaluate(self, local: dict, model: StackModel | None = None) -> np.ndarray:
         """Modelled quantity (scale and offset applied) for local parameter values."""
         sm = self.bind(local, model)
-        R, T = sm.RT(local)
+        R, T = sm.RT(local, only=self.quantity)
         m = T if self.quantity == "T" else R
         scale = local.get("scale", 1.0)
         if "tilt" in local:

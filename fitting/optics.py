@@ -221,7 +221,8 @@ def outer_media(wavelength_nm, N_ambient, N_sub, sub_d_nm, N_exit, *, angle_rad:
         back=tuple(np.array(x) for x in zip(*back)) if finite else None)
 
 
-def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, weights=None):
+def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, weights=None,
+             want_R: bool = True):
     """R and T of coherent films between the bound outer media (see :func:`stack_RT`).
 
     Parameters
@@ -235,6 +236,8 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, w
         Average R and T over all thicknesses scaled by each factor, with these
         weights (quadrature of a thickness distribution). The interface terms
         do not depend on thickness and are computed once for all nodes.
+    want_R : bool
+        False: T alone (R is returned as None), for fits to transmittance.
 
     Returns
     -------
@@ -271,23 +274,24 @@ def films_RT(outer: OuterMedia, N_films, d_films_nm, *, thickness_scales=None, w
                           for x in d_films_nm])
         kq = outer.ik2 * q                                     # i·2δ per nm of thickness
     if thickness_scales is None:
-        R, T = _airy(outer, r_if, t2, kq * d if L else None)
+        R, T = _airy(outer, r_if, t2, kq * d if L else None, want_R)
     else:
         R = T = 0.0
         for x, w in zip(thickness_scales, weights):
-            Ri, Ti = _airy(outer, r_if, t2, kq * (d * x) if L else None)
-            R, T = R + w * Ri, T + w * Ti
+            Ri, Ti = _airy(outer, r_if, t2, kq * (d * x) if L else None, want_R)
+            T = T + w * Ti
+            R = R + w * Ri if want_R else None
     return R, T
 
 
-def films_RT_thicknesses(outer: OuterMedia, N_films, thickness_nm):
+def films_RT_thicknesses(outer: OuterMedia, N_films, thickness_nm, *, want_R: bool = True):
     """R and T of one film stack at many thickness sets at once, shape (K, W) each.
 
     ``thickness_nm`` has one row per film, each a scalar or K values (the
     thickness scan varies one film's). Interfaces and admittances do not depend
     on thickness, so they are computed once on the W wavelengths and only the
     phases and the Airy recursion run on the K×W grid: element by element the
-    same arithmetic as :func:`films_RT` on each thickness set.
+    same arithmetic as :func:`films_RT` on each thickness set (``want_R`` as there).
     """
     L = len(N_films)
     if not L:
@@ -297,7 +301,7 @@ def films_RT_thicknesses(outer: OuterMedia, N_films, thickness_nm):
     arg = (outer.ik2 * q)[:, None, :] * np.array(d)[:, :, None]          # (L, K, W)
     grid = replace(outer, t_scale=outer.t_scale[:, None],
                    back=None if outer.back is None else tuple(b[:, None] for b in outer.back))
-    return _airy(grid, r_if[:, :, None], t2[:, None], arg)
+    return _airy(grid, r_if[:, :, None], t2[:, None], arg, want_R)
 
 
 def _interfaces(outer: OuterMedia, N_films):
@@ -322,8 +326,9 @@ def _interfaces(outer: OuterMedia, N_films):
     return q, r_if, _abs2(1 + r_if).prod(axis=1)
 
 
-def _airy(outer: OuterMedia, r_if, t2, arg):
-    """R, T from the interface terms and the phases ``arg`` = i·2δ of shape (L, W)."""
+def _airy(outer: OuterMedia, r_if, t2, arg, want_R: bool = True):
+    """R, T from the interface terms and the phases ``arg`` = i·2δ of shape (L, W);
+    R is None when not ``want_R`` (T needs neither R_f nor the sum for R)."""
     L = r_if.shape[1] - 1
     if L:
         # Opaque layers: cap the single-pass loss at e^-70 so nothing underflows to 0/0.
@@ -336,7 +341,7 @@ def _airy(outer: OuterMedia, r_if, t2, arg):
     # Forward pass, substrate side first: r = A/B with Π den = B (see _airy_pass).
     A, B = _airy_pass(r_if, E2, range(L - 1, -1, -1), first=L, shift=0)
     den2 = 1.0 if B is None else _abs2(B)
-    Rf = _abs2(A) / den2
+    Rf = _abs2(A) / den2 if want_R else None
     Tf = outer.t_scale * t2 * loss / den2 if L else outer.t_scale * t2
 
     if outer.back is None:
@@ -352,10 +357,10 @@ def _airy(outer: OuterMedia, r_if, t2, arg):
         Rb_tau2, gRb_tau2, tau_Tb = outer.back
         den = 1 - Rr * Rb_tau2
         T = Tf * tau_Tb / den
-        R = Rf + Tf * Tf * gRb_tau2 / den
+        R = Rf + Tf * Tf * gRb_tau2 / den if want_R else None
     if len(outer.pols) == 2:
-        return (R[0] + R[1]) / 2, (T[0] + T[1]) / 2
-    return R[0], T[0]
+        return (R[0] + R[1]) / 2 if want_R else None, (T[0] + T[1]) / 2
+    return R[0] if want_R else None, T[0]
 
 
 def _airy_pass(r_if, E2, layers, *, first: int, shift: int):

@@ -475,13 +475,16 @@ class StackModel:
             out.append((d, local))
         return out
 
-    def RT(self, values: Mapping[str, float] | None = None):
-        """(R, T) on the bound grid for the given global parameter values."""
+    def RT(self, values: Mapping[str, float] | None = None, *, only: str | None = None):
+        """(R, T) on the bound grid for the given global parameter values; with
+        ``only="T"`` R is not computed (None): what a fit to transmittance needs."""
         Ns, ds = self._indices(values)
-        R, T = self._node_RT(Ns, ds)
+        R, T = self._node_RT(Ns, ds, want_R=only != "T")
         # A fit asks for the Jacobian where it has just evaluated: keep the node values
         # (read-only, so no caller can change them in place).
-        R.flags.writeable = T.flags.writeable = False
+        for a in (R, T):
+            if a is not None:
+                a.flags.writeable = False
         self._last = (Ns, ds, self.stack.thickness_spread, R, T)
         return self._on_grid(R), self._on_grid(T)
 
@@ -502,17 +505,19 @@ class StackModel:
         ``approx_derivative``), taken inwards at a bound; the slit average
         (``bandwidth_nm``) is applied after the chain rule, node by node.
         ``only="T"`` (or ``"R"``) skips the other quantity's derivatives, which
-        are then None: a fit to T alone never reads dR.
+        are then None (and with ``only="T"`` R itself may be None): a fit to T
+        alone never reads R or dR.
         """
         values = dict(values or {})
         Ns, ds = self._indices(values)
+        want_R, want_T = only != "T", only != "R"
         last = self._last
         if last is not None and last[1] == ds and last[2] == self.stack.thickness_spread \
-                and all(a is b for a, b in zip(last[0], Ns)):
+                and all(a is b for a, b in zip(last[0], Ns)) \
+                and (last[3] is not None or not want_R):
             R0, T0 = last[3], last[4]           # N arrays are cached: same object, same N
         else:
-            R0, T0 = self._node_RT(Ns, ds)
-        want_R, want_T = only != "T", only != "R"
+            R0, T0 = self._node_RT(Ns, ds, want_R=want_R)
         dR = np.zeros((len(wrt), R0.size)) if want_R else None
         dT = np.zeros((len(wrt), T0.size)) if want_T else None
         by_layer: dict[int, list] = {}
@@ -535,7 +540,7 @@ class StackModel:
                 step = forward_step(ds[i], self._names[i][0].thickness.max)
                 shifted.append((Ns, ds[:i] + [ds[i] + step] + ds[i + 1:]))
                 plan.append(("d", i, step))
-        Rs, Ts = self._shifted_RT(shifted, Ns, ds) if shifted else ((), ())
+        Rs, Ts = self._shifted_RT(shifted, Ns, ds, want_R) if shifted else ((), ())
         at = 0
         for what, i, h in plan:
             items = by_layer[i]
@@ -551,15 +556,14 @@ class StackModel:
             mat = [(j, k) for j, k in items if k is not None]
             local = {k: values.get(pre + k, layer.material.params[k].value) for k in pnames}
             dN = layer.material.dN(self._wl, local, [k for _, k in mat], Ns[i])
-            for out, M0, Mn, Mk in ((dR, R0, Rs[at], Rs[at + 1]), (dT, T0, Ts[at], Ts[at + 1])):
+            for out, M0, M in ((dR, R0, Rs), (dT, T0, Ts)):
                 if out is not None:
+                    Mn, Mk = M[at], M[at + 1]
                     gn, gk = (Mn - M0) / h, (Mk - M0) / h     # ∂/∂n, ∂/∂κ
                     for (j, _), d in zip(mat, dN):
                         out[j] = gn * d.real + gk * d.imag
             at += 2
-        return (self._on_grid(R0), self._on_grid(T0),
-                None if dR is None else self._on_grid(dR),
-                None if dT is None else self._on_grid(dT))
+        return self._on_grid(R0), self._on_grid(T0), self._on_grid(dR), self._on_grid(dT)
 
     def _indices(self, values):
         """(Ns, ds): each film's N on the node grid and its thickness, cached per layer."""
@@ -590,14 +594,15 @@ class StackModel:
             ds.append(d)
         return Ns, ds
 
-    def _node_RT(self, Ns, ds):
+    def _node_RT(self, Ns, ds, want_R: bool = True):
         """R, T on the node grid (before the slit average), thickness spread included."""
         rule = self._spread_rule(Ns, ds)
         if rule is None:
-            return self._rt(Ns, ds)
+            return self._rt(Ns, ds, want_R)
         # The interface terms do not depend on thickness: films_RT computes them once
         # for all nodes.
-        return films_RT(self._outer, Ns, ds, thickness_scales=rule[0], weights=rule[1])
+        return films_RT(self._outer, Ns, ds, thickness_scales=rule[0], weights=rule[1],
+                        want_R=want_R)
 
     def _spread_rule(self, Ns, ds):
         """(thickness scales, weights) of the thickness-spread average, None without one.
@@ -619,7 +624,7 @@ class StackModel:
                   else _spread_nodes(min(401, int(8 + 13 * sigma) | 1)))
         return np.maximum(1 + spread * xs, 0.0), ws
 
-    def _shifted_RT(self, shifted, Ns, ds):
+    def _shifted_RT(self, shifted, Ns, ds, want_R: bool = True):
         """R, T on the node grid of each (Ns, ds) in ``shifted``, shape (V, nodes): one
         model call on the node grid repeated V times (its outer media bound once per
         V), element by element what V calls of :meth:`_node_RT` compute. The
@@ -635,17 +640,18 @@ class StackModel:
         d_all = [np.repeat([v[1][j] for v in shifted], W) for j in range(len(ds))]
         rule = self._spread_rule(Ns, ds)
         if rule is None:
-            R, T = films_RT(outer, N_all, d_all)
+            R, T = films_RT(outer, N_all, d_all, want_R=want_R)
         else:
-            R, T = films_RT(outer, N_all, d_all, thickness_scales=rule[0], weights=rule[1])
-        return R.reshape(V, W), T.reshape(V, W)
+            R, T = films_RT(outer, N_all, d_all, thickness_scales=rule[0], weights=rule[1],
+                            want_R=want_R)
+        return None if R is None else R.reshape(V, W), T.reshape(V, W)
 
     def _on_grid(self, a):
-        """The slit average of node values (last axis) onto the bound grid."""
-        if self._wl is self.wavelength_nm:
+        """The slit average of node values (last axis) onto the bound grid (None stays None)."""
+        if a is None or self._wl is self.wavelength_nm:
             return a
         m = self.wavelength_nm.size
         return _SLIT_W @ a.reshape(a.shape[:-1] + (_SLIT_W.size, m))
 
-    def _rt(self, Ns, ds):
-        return films_RT(self._outer, Ns, ds)
+    def _rt(self, Ns, ds, want_R: bool = True):
+        return films_RT(self._outer, Ns, ds, want_R=want_R)

@@ -275,3 +275,22 @@ def test_thickness_grid_matches_tmm_and_films_RT(seed):
                 Rr, Tr = _tmm_reference(pol, wl, films, dd, sub, angle, 1.0e6)
                 np.testing.assert_allclose(T[i], Tr, rtol=0, atol=1e-9)
                 np.testing.assert_allclose(R[i], Rr, rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_transmittance_alone_is_the_same_number(seed):
+    # Fits to T skip R (want_R=False): T must be bit for bit the T of the full call,
+    # with and without a thickness-spread average and on a thickness grid.
+    from fitting.optics import films_RT, films_RT_thicknesses, outer_media
+    wl, films, d, sub, angle = _random_case(seed)
+    one = np.ones(wl.size, complex)
+    for pol in "su":
+        outer = outer_media(wl, one, sub, 1.0e6, one, angle_rad=np.radians(angle),
+                            polarization=pol)
+        for kw in ({}, {"thickness_scales": [0.98, 1.0, 1.02], "weights": [0.25, 0.5, 0.25]}):
+            R, T = films_RT(outer, films, d, **kw)
+            R1, T1 = films_RT(outer, films, d, want_R=False, **kw)
+            assert R1 is None and np.array_equal(T1, T)
+        grid = [*d[:-1], np.linspace(50.0, 500.0, 4)]
+        assert np.array_equal(films_RT_thicknesses(outer, films, grid, want_R=False)[1],
+                              films_RT_thicknesses(outer, films, grid)[1])
