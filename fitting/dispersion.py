@@ -579,24 +579,30 @@ class TaucLorentz(Term):
         # and the 100 % line far more often than the edge (the fringe stages hold
         # the edge; a Jacobian moves one parameter at a time), so the last few
         # shapes are kept: the closed form is the costliest step of a model call.
+        return v["A"] * self._shape(E, v)[0]
+
+    def _shape(self, E, v):
+        """(shape, parts) of ``_tl_arrays`` at v's (E0, C, Eg) on E, from the cache."""
         key = (float(v["E0"]), float(v["C"]), float(v["Eg"]))
         E = np.asarray(E, dtype=float)
         cache = self.__dict__.setdefault("_shapes", [])
         for entry in cache:
             if entry[0] == key and entry[1].shape == E.shape and np.array_equal(entry[1], E):
-                return v["A"] * entry[2]
-        shape = tauc_lorentz_chi(E, 1.0, *key)
-        cache.insert(0, (key, E.copy(), shape))
+                return entry[2]
+        _check_tl(*key[:2])
+        arrays = _tl_arrays(E, *key, keep=True)
+        # The parts are kept too: the slopes at the same point reuse them.
+        cache.insert(0, (key, E.copy(), arrays))
         del cache[self.SHAPE_CACHE:]
-        return v["A"] * shape
+        return arrays
 
-    #: How many edge shapes :meth:`chi` keeps (one Jacobian moves E0, C, Eg in turn).
+    #: How many edge shapes :meth:`chi` keeps (the start tries a few edge shapes).
     SHAPE_CACHE = 4
 
     def dchi(self, E, v, names, chi0):
         """dχ/dθ in closed form (see :func:`tauc_lorentz_slopes`)."""
         return tauc_lorentz_slopes(E, float(v["A"]), float(v["E0"]), float(v["C"]),
-                                   float(v["Eg"]), list(names))
+                                   float(v["Eg"]), list(names), arrays=self._shape(E, v))
 
     def __getstate__(self):
         # The shape cache is a speed-up of this process only: not pickled to workers.
@@ -624,7 +630,7 @@ def tauc_lorentz_chi(E, A, E0, C, Eg):
     return A * _tl_arrays(np.asarray(E, dtype=float), E0, C, Eg)[0]
 
 
-def tauc_lorentz_slopes(E, A, E0, C, Eg, names) -> np.ndarray:
+def tauc_lorentz_slopes(E, A, E0, C, Eg, names, *, arrays=None) -> np.ndarray:
     """dχ/dθ of :func:`tauc_lorentz_chi` for θ in ``names`` (of A, E0, C, Eg), analytic.
 
     χ = A·[(P E² + Q + w·L(E))/ζ⁴ + i ε2/A] with scalar P, Q, w, ln S, γ² and
@@ -633,11 +639,12 @@ def tauc_lorentz_slopes(E, A, E0, C, Eg, names) -> np.ndarray:
     ζ⁴ on E0 and C through γ² and α²C²/4; ε2 on all three), and so are the
     scalars P and Q, term by term. One call costs less than the closed form
     twice; forward differences of χ cost it three times and are good to ~1e-8
-    only.
+    only. ``arrays``: the (shape, parts) of ``_tl_arrays(E, E0, C, Eg, keep=True)``
+    when the caller has them.
     """
     _check_tl(E0, C)
     E = np.asarray(E, dtype=float)
-    shape, parts = _tl_arrays(E, E0, C, Eg, keep=True)
+    shape, parts = _tl_arrays(E, E0, C, Eg, keep=True) if arrays is None else arrays
     E2, u, z4, l_d, l_p, logs, lorentz, dE, above = parts
     P, Q, w, log_s, g2, h = _tl_scalars(E0, C, Eg)
     E02, Eg2, C2 = E0 * E0, Eg * Eg, C * C
