@@ -83,6 +83,25 @@ def opaque_floor(y: np.ndarray, sigma: np.ndarray) -> np.ndarray:
     return y < np.maximum(4.0 * sigma, 0.005)
 
 
+def _range_max(y: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """max(y[a_i : b_i + 1]) for every i (a_i <= b_i), by a sparse table of maxima over
+    power-of-two spans: two lookups per window instead of a scan (exact: a maximum of
+    overlapping spans is the maximum of their union)."""
+    table = [y]
+    span = 1
+    while 2 * span <= y.size:
+        prev = table[-1]
+        table.append(np.maximum(prev[:-span], prev[span:]))
+        span *= 2
+    k = np.floor(np.log2(b - a + 1)).astype(int)
+    out = np.empty(a.size, dtype=y.dtype)
+    for level in np.unique(k):
+        sel = k == level
+        t = table[level]
+        out[sel] = np.maximum(t[a[sel]], t[b[sel] - (1 << level) + 1])
+    return out
+
+
 def _running_max(wl: np.ndarray, y: np.ndarray, width: np.ndarray,
                  floor: np.ndarray | None = None) -> np.ndarray:
     """Upper envelope: the smaller of the maxima over one window to the left and one
@@ -93,8 +112,8 @@ def _running_max(wl: np.ndarray, y: np.ndarray, width: np.ndarray,
     lo = np.searchsorted(wl, wl - width)
     hi = np.searchsorted(wl, wl + width, side="right")
     idx = np.arange(wl.size)
-    left = np.array([y[a:i + 1].max() for a, i in zip(lo, idx)])
-    right = np.array([y[i:b].max() for i, b in zip(idx, np.maximum(hi, idx + 1))])
+    left = _range_max(y, lo, idx)
+    right = _range_max(y, idx, np.maximum(hi, idx + 1) - 1)
     # A window cut short by the end of the data may hold no maximum: there the
     # other side alone counts (both cut: the larger) - unless the cut window holds
     # opaque points, whose darkness is the film's, not the data's end.

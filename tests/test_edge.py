@@ -243,3 +243,18 @@ def test_target_slopes_are_the_derivative_by_log_alpha():
     ref = (target_residuals(alpha * math.exp(h), tg) - target_residuals(alpha, tg)) / h
     np.testing.assert_allclose(slope, ref, atol=1e-5)
     assert slope.tolist() == [1.0, 0.0, 1.0, 1.0, 0.0, 0.0]
+
+
+def test_window_maxima_equal_a_plain_scan():
+    # The upper envelope takes the maximum over a window left and right of every point;
+    # the sparse table must give exactly what slicing and max give (common practice:
+    # a range-maximum table answers each window with two overlapping spans).
+    from fitting.edge import _range_max
+    rng = np.random.default_rng(4)
+    for _ in range(300):
+        n = int(rng.integers(1, 200))
+        y = rng.standard_normal(n)
+        a = rng.integers(0, n, n)
+        b = np.minimum(a + rng.integers(0, n, n), n - 1)
+        plain = np.array([y[i:j + 1].max() for i, j in zip(a, b)])
+        assert np.array_equal(_range_max(y, a, b), plain)
