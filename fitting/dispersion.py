@@ -851,8 +851,9 @@ class Oscillators(Dispersion):
         eps0 = N0 * N0
         # Where the model gives Im ε <= 0 (below a gap), N is held at κ = 0 (see
         # _sqrt_eps): an ε2 that cannot go negative has no downward slope there.
-        clear = ~(eps0.imag > 0)
-        deps = np.where(clear[None, :] & (deps.imag < 0), deps.real + 0j, deps)
+        held = ~(eps0.imag > 0)[None, :] & (deps.imag < 0)
+        if held.any():
+            deps = np.where(held, deps.real + 0j, deps)
         return deps / (2 * N0)
 
     def components(self, wavelength_nm, values=None) -> list[np.ndarray]:

@@ -249,6 +249,8 @@ def _cl_scaling(x, g, lb, ub, finite_lb, finite_ub):
 
 def _strictly_feasible(x, lb, ub, rstep: float):
     """x moved inside the bounds: by rstep relative, or to the next float when rstep=0."""
+    if rstep == 0 and np.all((x > lb) & (x < ub)):
+        return x.copy()                       # already inside: nothing moves
     x_new = x.copy()
     lower_dist, upper_dist = x - lb, ub - x
     if rstep == 0:
