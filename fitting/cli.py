@@ -9,6 +9,7 @@ never imports Qt: ``pellucid gui`` loads the desktop app by name at run time.
 from __future__ import annotations
 
 import argparse
+import atexit
 import importlib
 import math
 import os
@@ -560,5 +561,28 @@ def main(argv=None, *, stdout=None, stderr=None) -> int:
     return EXIT_ERROR
 
 
+def run() -> None:
+    """The ``pellucid`` command: :func:`main`, then a quick exit.
+
+    With scipy and matplotlib loaded, the interpreter's teardown (freeing every
+    module's objects) takes 0.5-1 s after the work is done, and a command has
+    written and closed its files by then. So the output streams are flushed, the
+    atexit handlers run (worker pools, threads, temporary folders), and the
+    process ends without the teardown. The desktop app (no command, or ``gui``)
+    exits the usual way.
+    """
+    gui = not sys.argv[1:] or sys.argv[1] == "gui"
+    code = int(main() or 0)
+    if gui:
+        sys.exit(code)
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):       # a closed pipe: nothing more to say
+            pass
+    atexit._run_exitfuncs()
+    os._exit(code)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    run()

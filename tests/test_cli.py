@@ -262,6 +262,28 @@ def _cli(*args):
     return [sys.executable, "-m", "fitting.cli", *map(str, args)]
 
 
+def test_the_command_exits_quickly_with_everything_written(tmp_path):
+    # The command skips the interpreter's teardown (fitting.cli.run): its exit status
+    # and every byte it printed must still arrive, also through a pipe, and atexit
+    # handlers must still run.
+    recipe = ROOT / "demo_data" / "recipe.json"
+    ok = subprocess.run(_cli("simulate", recipe, "--range", "300:1100:0.5"), cwd=ROOT,
+                        capture_output=True, text=True, timeout=120)
+    assert ok.returncode == 0
+    lines = ok.stdout.splitlines()
+    assert lines[-1].startswith("1100") and sum(ln[:1].isdigit() for ln in lines) == 1601
+    bad = subprocess.run(_cli("simulate", tmp_path / "nope.json", "--range", "400:500:1"),
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and "file not found" in bad.stderr
+    probe = tmp_path / "atexit.txt"
+    code = ("import atexit, pathlib, sys; from fitting import cli; "
+            f"atexit.register(pathlib.Path({str(probe)!r}).write_text, 'ran'); "
+            "sys.argv = ['pellucid', 'simulate', 'nope.json', '--range', '1:2:1']; cli.run()")
+    r = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True,
+                       text=True, timeout=120)
+    assert r.returncode == 2 and probe.read_text() == "ran"
+
+
 def _rows(out_dir):
     rows = json.loads((out_dir / "summary.json").read_text())["rows"]
     drop = ("finished_utc", "elapsed_s")
