@@ -224,9 +224,8 @@ def _curves(part: Part, local: dict, sigma_used: np.ndarray, model_used=None) ->
     covered = part.in_range.copy()            # where the curve is given
     done = np.zeros_like(covered)
     # The used points' curve comes from statistics(); only the rest of the range
-    # (masked windows, dropped rows) is computed here. (A model on exactly as many
-    # points as the used ones would take their tilt abscissa: then all of it is.)
-    if model_used is not None and (covered & ~part.used).sum() != part.used.sum():
+    # (masked windows, dropped rows) is computed here.
+    if model_used is not None:
         fit[part.used] = model_used
         done = part.used
     todo = covered & ~done

@@ -118,7 +118,11 @@ class Part:
         m = T if self.quantity == "T" else R
         scale = local.get("scale", 1.0)
         if "tilt" in local:
-            u = self.u if sm.wavelength_nm.size == self.u.size else self.u_at(sm.wavelength_nm)
+            # The stored abscissa belongs to this part's own wavelengths; a model on
+            # others (the curve over masked windows) gets its own.
+            own = sm is self.model or (sm.wavelength_nm.size == self.wl.size
+                                       and np.array_equal(sm.wavelength_nm, self.wl))
+            u = self.u if own else self.u_at(sm.wavelength_nm)
             scale = scale + local["tilt"] * u
         return scale * m + local.get("offset", 0.0)
 
