@@ -577,8 +577,8 @@ class TaucLorentz(Term):
     def chi(self, E, v):
         # χ is A times a shape set by (E0, C, Eg) alone. Fits vary A, ε∞, thickness
         # and the 100 % line far more often than the edge (the fringe stages hold
-        # the edge; a Jacobian moves one parameter at a time), so the last few
-        # shapes are kept: the closed form is the costliest step of a model call.
+        # it), so the last few shapes are kept: the closed form is the costliest
+        # step of a model call.
         return v["A"] * self._shape(E, v)[0]
 
     def _shape(self, E, v):

@@ -496,11 +496,12 @@ class StackModel:
         (len(wrt), W). The derivatives follow the chain rule through each
         film's index: T depends on a material parameter θ only through N(λ),
         so dT/dθ = ∂T/∂n · Re dN/dθ + ∂T/∂κ · Im dN/dθ, wavelength by
-        wavelength. ∂T/∂n and ∂T/∂κ come from one model call each with the
-        whole N(λ) shifted (every wavelength is independent of the others), and
-        dN/dθ from the dispersion model alone, so a film with P material
-        parameters costs 3 model calls (n, κ, thickness) and P dispersion calls
-        instead of the P + 1 model calls of forward differences by parameter.
+        wavelength. ∂T/∂n, ∂T/∂κ and ∂T/∂d come from copies of the stack with one
+        film's whole N(λ) or thickness shifted (every wavelength is independent of
+        the others), all evaluated in one model call on the grid taken that many
+        times, and dN/dθ from the dispersion model alone: a film with P material
+        parameters costs one call of three shifts and P dispersion slopes instead
+        of the P + 1 model calls of forward differences by parameter.
         Steps are forward differences of relative size √ε (as scipy's
         ``approx_derivative``), taken inwards at a bound; the slit average
         (``bandwidth_nm``) is applied after the chain rule, node by node.
@@ -596,12 +597,10 @@ class StackModel:
 
     def _node_RT(self, Ns, ds, want_R: bool = True):
         """R, T on the node grid (before the slit average), thickness spread included."""
-        rule = self._spread_rule(Ns, ds)
-        if rule is None:
-            return self._rt(Ns, ds, want_R)
         # The interface terms do not depend on thickness: films_RT computes them once
-        # for all nodes.
-        return films_RT(self._outer, Ns, ds, thickness_scales=rule[0], weights=rule[1],
+        # for all nodes of the spread.
+        scales, weights = self._spread_rule(Ns, ds) or (None, None)
+        return films_RT(self._outer, Ns, ds, thickness_scales=scales, weights=weights,
                         want_R=want_R)
 
     def _spread_rule(self, Ns, ds):
@@ -638,12 +637,9 @@ class StackModel:
                 polarization=self.polarization)
         N_all = [np.concatenate([v[0][j] for v in shifted]) for j in range(len(Ns))]
         d_all = [np.repeat([v[1][j] for v in shifted], W) for j in range(len(ds))]
-        rule = self._spread_rule(Ns, ds)
-        if rule is None:
-            R, T = films_RT(outer, N_all, d_all, want_R=want_R)
-        else:
-            R, T = films_RT(outer, N_all, d_all, thickness_scales=rule[0], weights=rule[1],
-                            want_R=want_R)
+        scales, weights = self._spread_rule(Ns, ds) or (None, None)
+        R, T = films_RT(outer, N_all, d_all, thickness_scales=scales, weights=weights,
+                        want_R=want_R)
         return None if R is None else R.reshape(V, W), T.reshape(V, W)
 
     def _on_grid(self, a):
@@ -653,5 +649,3 @@ class StackModel:
         m = self.wavelength_nm.size
         return _SLIT_W @ a.reshape(a.shape[:-1] + (_SLIT_W.size, m))
 
-    def _rt(self, Ns, ds, want_R: bool = True):
-        return films_RT(self._outer, Ns, ds, want_R=want_R)

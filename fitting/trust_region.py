@@ -252,13 +252,13 @@ def _strictly_feasible(x, lb, ub, rstep: float):
     if rstep == 0 and np.all((x > lb) & (x < ub)):
         return x.copy()                       # already inside: nothing moves
     x_new = x.copy()
-    lower_dist, upper_dist = x - lb, ub - x
     if rstep == 0:
         lower = x <= lb
         upper = x >= ub
         x_new[lower] = np.nextafter(lb[lower], ub[lower])
         x_new[upper] = np.nextafter(ub[upper], lb[upper])
     else:
+        lower_dist, upper_dist = x - lb, ub - x
         lower = np.isfinite(lb) & (lower_dist <= np.minimum(
             upper_dist, rstep * np.maximum(1, np.abs(lb))))
         upper = np.isfinite(ub) & (upper_dist <= np.minimum(
