@@ -153,10 +153,7 @@ def _fringe_period(nu, Tu):
     # The cubic trend in the sample index mapped to [-1, 1] (as Polynomial.fit does).
     last = float(nu.size - 1)
     x = (-last - 0.0) / last + 2.0 / last * np.arange(nu.size)
-    c = _polyfit(x, Tu, 3)
-    trend = c[3] + x * 0
-    for i in range(2, -1, -1):
-        trend = c[i] + trend * x
+    trend = _horner(_polyfit(x, Tu, 3), x)
     y = (Tu - trend) * np.hanning(nu.size)
     power = np.abs(np.fft.rfft(y)) ** 2
     # Fewer than two fringes over the range cannot be told from the trend; more
@@ -234,6 +231,15 @@ def _polyfit(x, y, deg):
     return c / scl
 
 
+def _horner(c, x):
+    """Σ c[..., i]·xⁱ by Horner's rule: coefficients lowest order first along the last
+    axis (one polynomial, or one per row evaluated on the same x)."""
+    v = c[..., -1:] + x * 0
+    for i in range(c.shape[-1] - 2, -1, -1):
+        v = c[..., i:i + 1] + v * x
+    return v
+
+
 #: Where :func:`_refine` looks for the quartic's extremum, in half-widths of its window.
 _REFINE_AT = np.linspace(-0.6, 0.6, 241)
 
@@ -255,11 +261,9 @@ def _refine(nu_raw, T_raw, centres, halves, is_max, fallback_nu, fallback_T):
         if sel.sum() >= 9:
             C[j] = _polyfit((nu_raw[sel] - centre) / half, inv_T[sel], 4)
             fitted[j] = True
-    # All quartics on the search grid at once (Horner's rule).
+    # All quartics on the search grid at once.
     xs = _REFINE_AT
-    v = C[:, 4:] + xs * 0
-    for i in range(3, -1, -1):
-        v = C[:, i:i + 1] + v * xs
+    v = _horner(C, xs)
     j = np.where(is_max, np.argmin(v, axis=1), np.argmax(v, axis=1))
     vj = v[np.arange(centres.size), j]
     # No interior extremum (or no quartic): keep the smoothed one.
