@@ -715,10 +715,9 @@ class _Numbers:
         self.seen_thousands = False
         self._rows: dict = {}
 
-    def plain_row(self, stripped: str, delimiter: str) -> int:
-        """Number of fields if the stripped line is two or more plain numbers joined by
-        ``delimiter`` (spaces or tabs around it), else 0: the common data row, judged
-        with one regular expression instead of field by field."""
+    def row_pattern(self, delimiter: str):
+        """The regular expression of a plain row (see :meth:`plain_row`) under
+        ``delimiter``, or False where rows must be judged field by field."""
         row = self._rows.get(delimiter)
         if row is None:
             num = rf"[+-]?(?:\d+(?:{re.escape(self.decimal)}\d*)?|{re.escape(self.decimal)}\d+)" \
@@ -731,11 +730,34 @@ class _Numbers:
                 sep = re.escape(delimiter)
                 row = re.compile(rf"{num}(?:[ \t]*{sep}[ \t]*{num})+(?:[ \t]*{sep})*", re.ASCII)
             self._rows[delimiter] = row
+        return row
+
+    def plain_row(self, stripped: str, delimiter: str) -> int:
+        """Number of fields if the stripped line is two or more plain numbers joined by
+        ``delimiter`` (spaces or tabs around it), else 0: the common data row, judged
+        with one regular expression instead of field by field."""
+        row = self.row_pattern(delimiter)
         if not row or not row.fullmatch(stripped):
             return 0
-        if delimiter == " ":
-            return len(stripped.split())
-        return stripped.rstrip(" \t" + delimiter).count(delimiter) + 1
+        return _plain_fields(stripped, delimiter)
+
+    def plain_values(self, rows: list, delimiter: str, n_fields: int) -> list:
+        """The numbers of plain rows (each matched by :meth:`row_pattern` and holding
+        ``n_fields`` fields), row after row, in one split of their joined text.
+
+        The same floats :meth:`parse` gives field by field: a plain field holds no
+        delimiter, space or quote, so splitting the joined rows on whitespace after
+        turning each delimiter into a space yields exactly the fields in order.
+        """
+        text = "\n".join(rows)
+        if delimiter != " ":
+            text = text.replace(delimiter, " ")
+        if self.decimal == ",":
+            text = text.replace(",", ".")
+        values = list(map(float, text.split()))
+        if len(values) != len(rows) * n_fields:     # cannot happen for plain rows
+            raise ValueError("plain rows do not hold the fields counted")
+        return values
 
     def parse(self, token: str) -> float | None:
         """float; NaN for a missing-value marker; None for text."""
@@ -755,6 +777,13 @@ class _Numbers:
             tok = tok.replace(self.thousands, "")
             return float(tok.replace(",", ".") if self.decimal == "," else tok)
         return None
+
+
+def _plain_fields(stripped: str, delimiter: str) -> int:
+    """Number of fields of a plain row (one :meth:`_Numbers.row_pattern` matched)."""
+    if delimiter == " ":
+        return len(stripped.split())
+    return stripped.rstrip(" \t" + delimiter).count(delimiter) + 1
 
 
 def _split(line: str, delimiter: str) -> list[str]:
@@ -785,6 +814,7 @@ def _is_comment(stripped: str) -> bool:
 _BLANK, _COMMENT_ROW, _DATA, _GAP, _SINGLE, _TEXT, _BROKEN, _MIXED, _WIDE = range(9)
 _NUMERIC_ROWS = (_DATA, _MIXED)
 _HAS_DIGIT = re.compile(r"\d")
+_HAS_SPACE = re.compile(r"\s")
 #: Word cells a row of a table with text columns may hold; more is a line of text.
 _MAX_WORDS = 4
 
@@ -951,14 +981,17 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
     kinds judged, per (delimiter, decimal mark), for that search to reuse.
     """
     stripped = [line.strip() for line in lines]
+    digit, comment = _HAS_DIGIT.search, _COMMENT.match
     rowlike = [i for i, s in enumerate(stripped)
-               if s and len(s) <= _MAX_LINE and _HAS_DIGIT.search(s) and not _is_comment(s)]
+               if s and len(s) <= _MAX_LINE and digit(s) and not comment(s)]
     quoted = any('"' in line for line in lines)
     found: dict = {}
     cands = []
     for pri, j, delim, dec in _candidates(options, quoted):
         if delim not in found:
-            found[delim] = ([i for i in rowlike if len(stripped[i].split(None, 1)) > 1]
+            # A stripped line splits on whitespace iff it holds any (re's \s is
+            # str.isspace, the set str.split uses).
+            found[delim] = ([i for i in rowlike if _HAS_SPACE.search(stripped[i])]
                             if delim == " " else [i for i in rowlike if delim in stripped[i]])
         maybe = found[delim]
         if not maybe:
@@ -975,11 +1008,20 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
         n_data, left = 0, len(maybe)
         if best_key is not None and (left, True, -pri, -j) < best_key:
             continue
+        row = numbers.row_pattern(delim)
         for i in maybe:
             left -= 1
             kind = kinds.get(i)
             if kind is None:
-                kind = kinds[i] = _row_kind(lines[i], delim, numbers)
+                # _row_kind, inlined for the plain row (this loop judges every line
+                # of the head): the lines here are stripped, short and hold a digit.
+                s = stripped[i]
+                if row and row.fullmatch(s):
+                    n = _plain_fields(s, delim)
+                    kind = (_WIDE if n > _MAX_COLUMNS else _DATA), n
+                else:
+                    kind = _row_kind_exact(lines[i], delim, numbers)
+                kinds[i] = kind
             if kind[0] in _NUMERIC_ROWS or kind[0] == _WIDE:
                 n_data += 1
             elif best_key is not None and (n_data + left, True, -pri, -j) < best_key:
@@ -1150,12 +1192,22 @@ def _layout(text: str, options: ReaderOptions, path,
     # found above starts with one, so the list is never empty).
     counts = [nf for k, nf in kinds[start:] if k in _NUMERIC_ROWS][:200]
     n_columns = max(set(counts), key=counts.count)
-    rows = [line for line, (k, _) in zip(lines[start:], kinds[start:])
+    rows = [(line, k, nf) for line, (k, nf) in zip(lines[start:], kinds[start:])
             if k in (_DATA, _GAP, _MIXED)][:500]
     sample = np.full((len(rows), n_columns), np.nan)
     words = np.zeros((len(rows), n_columns), dtype=bool)
     examples: dict = {}
-    for r, line in enumerate(rows):
+    # Plain rows of the table's width (nearly all) are read in one go; the others
+    # field by field, which also finds the words of text columns.
+    pattern = numbers.row_pattern(delim)
+    plain, plain_rows = [], []
+    for r, (line, k, nf) in enumerate(rows):
+        if k == _DATA and nf == n_columns and pattern:
+            s = line.strip()
+            if pattern.fullmatch(s):
+                plain.append(r)
+                plain_rows.append(s)
+                continue
         for c, tok in enumerate(_split(line.strip(), delim)[:n_columns]):
             v = numbers.parse(tok)
             if v is None:
@@ -1165,6 +1217,9 @@ def _layout(text: str, options: ReaderOptions, path,
                     examples[c].append(tok.strip('"')[:20])
             else:
                 sample[r, c] = v
+    if plain:
+        sample[plain] = np.array(numbers.plain_values(plain_rows, delim, n_columns),
+                                 dtype=float).reshape(len(plain), n_columns)
     present = np.maximum((np.isfinite(sample) | words).sum(axis=0), 1)
     text_columns = tuple(int(c) for c in np.flatnonzero(words.sum(axis=0) > 0.5 * present))
     names, header_line, metadata, comments, style = _preamble(
