@@ -165,14 +165,22 @@ class _NumberText:
         key = a.tobytes()
         known = self._texts.get(key)
         if known is None:
-            ok = np.isfinite(a)
-            known = self._texts[key] = (list(map(repr, a.tolist())),
-                                        None if ok.all() else ok.tolist(), {})
-        texts, ok, filled = known
-        if ok is None:
+            bad = np.flatnonzero(~np.isfinite(a))
+            if bad.size == a.size:           # a column never estimated: no text to make
+                known = (None, None, {})
+            else:
+                known = (list(map(repr, a.tolist())), bad.tolist() if bad.size else None, {})
+            self._texts[key] = known
+        texts, bad, filled = known
+        if bad is None and texts is not None:
             return texts
         if missing not in filled:
-            filled[missing] = [t if f else missing for t, f in zip(texts, ok, strict=True)]
+            if texts is None:
+                filled[missing] = [missing] * a.size
+            else:
+                cells = filled[missing] = texts.copy()
+                for i in bad:
+                    cells[i] = missing
         return filled[missing]
 
     def csv_column(self, values) -> list:

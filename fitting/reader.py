@@ -41,6 +41,7 @@ import re
 import time
 import unicodedata
 import warnings as _warnings
+from itertools import repeat
 from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 
@@ -714,6 +715,9 @@ class _Numbers:
         self.grouped = re.compile(rf"[+-]?[1-9]\d{{0,2}}(?:{t}\d{{3}})+(?:{d}\d*)?\Z", re.ASCII)
         self.seen_thousands = False
         self._rows: dict = {}
+        #: Indices of the head lines found to be plain rows (:meth:`plain_row`) under
+        #: the one delimiter this instance judged them with (the dialect search).
+        self.plain_lines: set = set()
 
     def row_pattern(self, delimiter: str):
         """The regular expression of a plain row (see :meth:`plain_row`) under
@@ -919,6 +923,12 @@ class _Layout:
 def _head_lines(text: str, n: int, max_chars: int = _MAX_HEAD_CHARS) -> tuple[list[str], bool]:
     """The first ``n`` lines (at most about ``max_chars`` characters) and whether they
     are all the text holds."""
+    if len(text) < max_chars:
+        # The same lines in one split: no line can start past the character limit.
+        lines = text.split("\n", n)
+        if len(lines) <= n:
+            return lines, True
+        return lines[:n], not lines[n]
     lines, pos = [], 0
     while len(lines) < n and pos < max_chars:
         end = text.find("\n", pos)
@@ -959,6 +969,58 @@ def _candidates(options, quoted: bool) -> list:
 #: Last lines of the head each candidate reads first: the one reading most of them as rows
 #: (on a tie, the full search's first) is scored first.
 _PROBE_LINES = 4
+
+
+_ROW_OR_WIDE = frozenset((*_NUMERIC_ROWS, _WIDE))
+
+
+def _judge_rows(maybe, kinds, stripped, lines, delim, numbers) -> None:
+    """Fill ``kinds`` for the lines ``maybe`` not judged yet: :func:`_row_kind`, with
+    the plain-row test run over all lines in one pass (C-level ``map``); each plain
+    line's index goes into ``numbers.plain_lines``. ``stripped`` holds the stripped
+    lines, all short and holding a digit here."""
+    todo = [i for i in maybe if i not in kinds]
+    if not todo:
+        return
+    row = numbers.row_pattern(delim)
+    texts = [stripped[i] for i in todo]
+    matched = list(map(row.fullmatch, texts)) if row else [None] * len(todo)
+    plain = numbers.plain_lines
+    if row and None not in matched:
+        # The common head, all plain rows below a header: fields counted in bulk.
+        if delim == " ":
+            counts = list(map(len, map(str.split, texts)))
+        else:
+            ends = " \t" + delim
+            counts = [c + 1 for c in map(str.count, map(str.rstrip, texts,
+                                                         repeat(ends)), repeat(delim))]
+        kinds.update(zip(todo, [(_DATA, n) if n <= _MAX_COLUMNS else (_WIDE, n)
+                                for n in counts]))
+        plain.update(todo)
+        return
+    for i, s, m in zip(todo, texts, matched):
+        if m is None:
+            kinds[i] = _row_kind_exact(lines[i], delim, numbers)
+        else:
+            n = _plain_fields(s, delim)
+            kinds[i] = (_WIDE if n > _MAX_COLUMNS else _DATA), n
+            plain.add(i)
+
+
+def _beats(maybe, kinds, lines, delim, numbers, tie, best_key) -> bool:
+    """Whether a candidate can still reach ``best_key``: its lines judged one by one
+    (into ``kinds``) until the rows it may still find cannot, False then."""
+    n_data, left = 0, len(maybe)
+    for i in maybe:
+        left -= 1
+        kind = kinds.get(i)
+        if kind is None:
+            kind = kinds[i] = _row_kind(lines[i], delim, numbers)
+        if kind[0] in _ROW_OR_WIDE:
+            n_data += 1
+        elif (n_data + left, True, *tie) < best_key:
+            return False
+    return True
 
 
 def _choose_dialect_bounded(lines, options, seen: dict | None = None):
@@ -1005,35 +1067,26 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
     cands.sort(key=lambda c: c[:3])
     best, best_key = None, None
     for _, pri, j, delim, dec, numbers, maybe, kinds in cands:
-        n_data, left = 0, len(maybe)
-        if best_key is not None and (left, True, -pri, -j) < best_key:
+        if best_key is not None and (len(maybe), True, -pri, -j) < best_key:
             continue
-        row = numbers.row_pattern(delim)
-        for i in maybe:
-            left -= 1
-            kind = kinds.get(i)
-            if kind is None:
-                # _row_kind, inlined for the plain row (this loop judges every line
-                # of the head): the lines here are stripped, short and hold a digit.
-                s = stripped[i]
-                if row and row.fullmatch(s):
-                    n = _plain_fields(s, delim)
-                    kind = (_WIDE if n > _MAX_COLUMNS else _DATA), n
-                else:
-                    kind = _row_kind_exact(lines[i], delim, numbers)
-                kinds[i] = kind
-            if kind[0] in _NUMERIC_ROWS or kind[0] == _WIDE:
-                n_data += 1
-            elif best_key is not None and (n_data + left, True, -pri, -j) < best_key:
-                break
+        if best_key is None:
+            # Nothing to beat yet: every line is judged, all at once.
+            _judge_rows(maybe, kinds, stripped, lines, delim, numbers)
+            n_data = sum(1 for i in maybe if kinds[i][0] in _ROW_OR_WIDE)
+        elif not _beats(maybe, kinds, lines, delim, numbers, (-pri, -j), best_key):
+            continue
         else:
-            if n_data == 0:
-                continue
+            n_data = sum(1 for i in maybe if kinds[i][0] in _ROW_OR_WIDE)
+        if n_data == 0:
+            continue
+        if delim == "," and not quoted:
+            commas = False                   # _comma_in_number needs quotes for ","
+        else:
             commas = any(_comma_in_number(lines[i], delim)
                          for i in maybe if kinds[i][0] in _NUMERIC_ROWS)
-            key = (n_data, (dec == ",") == commas, -pri, -j)
-            if best_key is None or key > best_key:
-                best, best_key = (delim, dec, kinds, numbers), key
+        key = (n_data, (dec == ",") == commas, -pri, -j)
+        if best_key is None or key > best_key:
+            best, best_key = (delim, dec, kinds, numbers), key
     if best is None:
         return None
     delim, dec, kinds, numbers = best
@@ -1192,19 +1245,20 @@ def _layout(text: str, options: ReaderOptions, path,
     # found above starts with one, so the list is never empty).
     counts = [nf for k, nf in kinds[start:] if k in _NUMERIC_ROWS][:200]
     n_columns = max(set(counts), key=counts.count)
-    rows = [(line, k, nf) for line, (k, nf) in zip(lines[start:], kinds[start:])
+    rows = [(i, k, nf) for i, (k, nf) in enumerate(kinds[start:], start)
             if k in (_DATA, _GAP, _MIXED)][:500]
     sample = np.full((len(rows), n_columns), np.nan)
     words = np.zeros((len(rows), n_columns), dtype=bool)
     examples: dict = {}
     # Plain rows of the table's width (nearly all) are read in one go; the others
     # field by field, which also finds the words of text columns.
-    pattern = numbers.row_pattern(delim)
+    pattern, known = numbers.row_pattern(delim), numbers.plain_lines
     plain, plain_rows = [], []
-    for r, (line, k, nf) in enumerate(rows):
+    for r, (i, k, nf) in enumerate(rows):
+        line = lines[i]
         if k == _DATA and nf == n_columns and pattern:
             s = line.strip()
-            if pattern.fullmatch(s):
+            if i in known or pattern.fullmatch(s):
                 plain.append(r)
                 plain_rows.append(s)
                 continue
