@@ -745,13 +745,16 @@ class _Numbers:
             return 0
         return _plain_fields(stripped, delimiter)
 
-    def plain_values(self, rows: list, delimiter: str, n_fields: int) -> list:
+    def plain_values(self, rows: list, delimiter: str, n_fields: int) -> list | None:
         """The numbers of plain rows (each matched by :meth:`row_pattern` and holding
-        ``n_fields`` fields), row after row, in one split of their joined text.
+        ``n_fields`` fields), row after row, in one split of their joined text; None
+        if some field is empty (then read them field by field).
 
         The same floats :meth:`parse` gives field by field: a plain field holds no
         delimiter, space or quote, so splitting the joined rows on whitespace after
-        turning each delimiter into a space yields exactly the fields in order.
+        turning each delimiter into a space yields exactly the fields in order. An
+        empty field (two tabs, which the pattern allows around a tab) makes fewer
+        numbers than fields, never more, so the count tells.
         """
         text = "\n".join(rows)
         if delimiter != " ":
@@ -759,8 +762,10 @@ class _Numbers:
         if self.decimal == ",":
             text = text.replace(",", ".")
         values = list(map(float, text.split()))
-        if len(values) != len(rows) * n_fields:     # cannot happen for plain rows
-            raise ValueError("plain rows do not hold the fields counted")
+        if len(values) != len(rows) * n_fields:
+            # Tab tables only: the pattern lets tabs surround a tab, so "450\t\t87"
+            # is plain but has an empty field, which the split above cannot see.
+            return None
         return values
 
     def parse(self, token: str) -> float | None:
@@ -1254,14 +1259,8 @@ def _layout(text: str, options: ReaderOptions, path,
     # field by field, which also finds the words of text columns.
     pattern, known = numbers.row_pattern(delim), numbers.plain_lines
     plain, plain_rows = [], []
-    for r, (i, k, nf) in enumerate(rows):
-        line = lines[i]
-        if k == _DATA and nf == n_columns and pattern:
-            s = line.strip()
-            if i in known or pattern.fullmatch(s):
-                plain.append(r)
-                plain_rows.append(s)
-                continue
+
+    def read_row(r, line):
         for c, tok in enumerate(_split(line.strip(), delim)[:n_columns]):
             v = numbers.parse(tok)
             if v is None:
@@ -1271,9 +1270,22 @@ def _layout(text: str, options: ReaderOptions, path,
                     examples[c].append(tok.strip('"')[:20])
             else:
                 sample[r, c] = v
+
+    for r, (i, k, nf) in enumerate(rows):
+        if k == _DATA and nf == n_columns and pattern:
+            s = lines[i].strip()
+            if i in known or pattern.fullmatch(s):
+                plain.append(r)
+                plain_rows.append(s)
+                continue
+        read_row(r, lines[i])
     if plain:
-        sample[plain] = np.array(numbers.plain_values(plain_rows, delim, n_columns),
-                                 dtype=float).reshape(len(plain), n_columns)
+        values = numbers.plain_values(plain_rows, delim, n_columns)
+        if values is not None:
+            sample[plain] = np.array(values, dtype=float).reshape(len(plain), n_columns)
+        else:                   # a tab table with an empty field ("450\t\t87"): careful
+            for r, s in zip(plain, plain_rows):
+                read_row(r, s)  # plain rows hold no words: examples are not touched
     present = np.maximum((np.isfinite(sample) | words).sum(axis=0), 1)
     text_columns = tuple(int(c) for c in np.flatnonzero(words.sum(axis=0) > 0.5 * present))
     names, header_line, metadata, comments, style = _preamble(

@@ -12,7 +12,7 @@ from collections import OrderedDict
 from pathlib import Path
 
 import numpy as np
-from hypothesis import given
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from fitting.jsonsafe import finite_or_none, is_plain_json, json_safe
@@ -77,6 +77,8 @@ def test_other_objects_as_number_or_text():
     assert json_safe(Level()) is None
 
 
+# A loaded machine (CI shares its cores) can make drawing nested data look slow.
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.recursive(st.floats() | st.integers() | st.text() | st.none() | st.booleans(),
                     lambda inner: st.lists(inner, max_size=12)
                     | st.dictionaries(st.text(max_size=4), inner, max_size=4), max_leaves=30))
