@@ -47,8 +47,8 @@ def _sample_field_by_field(lines, layout, kinds):
     return sample
 
 
-def _check_layout(text, options=ReaderOptions()):
-    layout = reader._layout(text, options, "<t>")
+def _check_layout(text, options=None):
+    layout = reader._layout(text, options or ReaderOptions(), "<t>")
     lines, _ = reader._head_lines(text, reader._SNIFF_LINES)
     numbers = reader._Numbers(layout.decimal)
     kinds = [reader._row_kind(line, layout.delimiter, numbers) for line in lines]
