@@ -1048,9 +1048,10 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
     kinds judged, per (delimiter, decimal mark), for that search to reuse.
     """
     stripped = [line.strip() for line in lines]
-    digit, comment = _HAS_DIGIT.search, _COMMENT.match
-    rowlike = [i for i, s in enumerate(stripped)
-               if s and len(s) <= _MAX_LINE and digit(s) and not comment(s)]
+    # The pattern tests run by C-level map: this judges every line of the head.
+    rowlike = [i for i, (s, d, c) in enumerate(zip(stripped, map(_HAS_DIGIT.search, stripped),
+                                                   map(_COMMENT.match, stripped)))
+               if d and not c and len(s) <= _MAX_LINE]
     quoted = any('"' in line for line in lines)
     found: dict = {}
     cands = []
@@ -1058,8 +1059,10 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
         if delim not in found:
             # A stripped line splits on whitespace iff it holds any (re's \s is
             # str.isspace, the set str.split uses).
-            found[delim] = ([i for i in rowlike if _HAS_SPACE.search(stripped[i])]
-                            if delim == " " else [i for i in rowlike if delim in stripped[i]])
+            texts = [stripped[i] for i in rowlike]
+            found[delim] = ([i for i, m in zip(rowlike, map(_HAS_SPACE.search, texts)) if m]
+                            if delim == " " else [i for i, t in zip(rowlike, texts)
+                                                  if delim in t])
         maybe = found[delim]
         if not maybe:
             continue
