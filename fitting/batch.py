@@ -94,7 +94,7 @@ from pathlib import Path
 from collections.abc import Iterable, Iterator, Mapping
 
 from . import __version__
-from .atomic import atomic_write_json, atomic_write_text
+from .atomic import atomic_write_json, atomic_write_text, deferred_sync, flush_to_disk
 from .batch_files import (MARKER_NAME, LOCK_NAME, FolderLock, OutputFolderError,  # noqa: F401
                           assign_folders, check_out_dir, export_stem, is_disk_full,
                           read_marker_record, safe_stem, write_stamp, write_summary_files)
@@ -639,6 +639,10 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
         return row(None, "error", "the file changed while the batch was running; rerun the "
                                   "batch with --resume to fit the new content", "")
     result, files, tb = None, [], ""
+    # Local runs write without fsync (fitting.atomic.deferred_sync): the marker records
+    # each file's SHA-256, a resume trusts only files that still match it, and the
+    # parent writes everything back to disk now and then and before the summary.
+    defer = bool(context.get("defer_sync"))
     try:
         spectrum = prep.spectrum(path, content)
         result, suggestion = prep.fit(spectrum, stop=stop)
@@ -648,8 +652,9 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
         status, reason = ("ok", "") if result.success else ("failed", result.message or
                                                             "the fit did not converge")
         folder.mkdir(parents=True, exist_ok=True)
-        files = _export(result, folder, export_stem(path), prep.provenance(path, sha),
-                        prep.recipe)
+        with deferred_sync(defer):
+            files = _export(result, folder, export_stem(path), prep.provenance(path, sha),
+                            prep.recipe)
     except PellucidError as e:
         status, reason = "error", str(e)
     except MemoryError:
@@ -665,7 +670,7 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
     r = row(result, status, reason)
     if halt:
         return r                    # no marker: the spectrum is not done
-    record = {"format": "pellucid-batch-record", "version": 2,
+    record = {"format": "pellucid-batch-record", "version": 3,
               "software": {"name": "pellucid", "version": __version__},
               "recipe_hash": prep.rhash, "recipe_identity": prep.identity,
               "run_id": context["run_id"],
@@ -678,8 +683,10 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
     try:
         folder.mkdir(parents=True, exist_ok=True)
         _remove_old_exports(folder, keep=set(files))
+        record["files_sha256"] = {name: _sha(folder / name) for name in files}
         # Last: marks the spectrum done. Laid out by the C encoder, one line per key.
-        atomic_write_text(folder / MARKER_NAME, json_text(record))
+        with deferred_sync(defer):
+            atomic_write_text(folder / MARKER_NAME, json_text(record))
         r["_marker"] = True
     except OSError as e:
         halt = _write_error(e, folder / MARKER_NAME) if is_disk_full(e) else ""
@@ -688,6 +695,25 @@ def process_spectrum(task: Mapping, context: Mapping | None = None, *, stop=None
         r = row(result, "error", f"internal error (the result record cannot be written: "
                                  f"{e}); please report it")
     return r
+
+
+def _files_intact(folder: Path, rec: dict) -> bool:
+    """Whether every file a marker lists has the SHA-256 the marker records.
+
+    Markers of version 2 and older were written after an fsync of each file and
+    record no hashes: they are trusted as they are.
+    """
+    if not isinstance(rec.get("version"), int) or rec["version"] < 3:
+        return True
+    hashes = rec.get("files_sha256")
+    files = rec.get("files")
+    if not isinstance(hashes, dict) or not isinstance(files, list):
+        return False
+    try:
+        return all(isinstance(name, str) and hashes.get(name) == _sha(folder / name)
+                   for name in files)
+    except OSError:
+        return False
 
 
 def _remove_old_exports(folder: Path, keep: set) -> None:
@@ -704,15 +730,17 @@ def _remove_old_exports(folder: Path, keep: set) -> None:
 
 
 def _marker_row(out_dir: Path, folder: str, sha256: str, identity: str | None,
-                run_id: str | None = None) -> dict | None:
+                run_id: str | None = None, *, verify: bool = False) -> dict | None:
     """The summary row an earlier (or this) run left for a spectrum, else None.
 
     Reused only if the marker names the same recipe identity (or, with ``run_id``,
     this run), input SHA-256 and Pellucid version, and the spectrum did not end in
-    an internal error.
+    an internal error; with ``verify`` also only if every exported file it lists
+    still has the SHA-256 it records (files written without fsync may be empty or
+    old after a power cut: such a spectrum is fitted again).
     """
     rec = read_marker_record(out_dir / folder)
-    if rec is None:
+    if rec is None or (verify and not _files_intact(out_dir / folder, rec)):
         return None
     if run_id is not None:
         if rec.get("run_id") != run_id:
@@ -905,7 +933,11 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
     recipes = plan.recipes
     single = len(recipes) == 1
     columns = summary_columns(*recipes.values())
-    context = {"out_dir": str(out_dir), "run_id": run_id, "recipes": {}}
+    # Spectra's files are written without fsync where this process can write them back
+    # itself (fitting.atomic.deferred_sync); a Dask cluster's workers may write on other
+    # machines, so they keep the fsyncs.
+    context = {"out_dir": str(out_dir), "run_id": run_id, "recipes": {},
+               "defer_sync": not scheduler}
     for key, rec in recipes.items():
         prep = plan.prepared[key]
         d = rec.to_dict()
@@ -977,7 +1009,8 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
                             reason=_spreadsheet_reason(p))
             yield record(i, r, _IN_MEMORY)
         elif resume:
-            old = _marker_row(out_dir, folders[i], shas[i], context["recipes"][key]["identity"])
+            old = _marker_row(out_dir, folders[i], shas[i], context["recipes"][key]["identity"],
+                              verify=True)
             if old is not None:
                 yield record(i, dict(old, index=i, file=str(p)), _SKIPPED)
 
@@ -992,6 +1025,7 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
     active: set[int] = set()        # tasks started and not yet recorded
     halt = {"why": ""}
     local_stop = _AnyStop(stop, halt)
+    writeback = _WriteBack(context["defer_sync"] and todo > 0)
     try:
         if todo:
             if scheduler:
@@ -1016,6 +1050,8 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
         halted = halt["why"]
         stopped = stopped or bool(tally["done"] < total and (local_stop.is_set()))
     finally:
+        # The spectra's files are on disk before the summary that lists them.
+        writeback.stop()
         # An interrupt can land after a spectrum's marker was written but before its
         # row reached us: such spectra are done, their rows come from the markers.
         for i in list(active):
@@ -1040,6 +1076,42 @@ def _batch(plan: _Plan, out_dir: Path, jobs, resume, stop, scheduler, report, t0
                         pdfs[0] if len(pdfs) == 1 else None, report_error, tally["skipped"],
                         dict(verdicts), halted, tuple(warnings), tuple(pdfs),
                         tuple(plan.ignored))
+
+
+#: Seconds between two write-backs of the spectra's files during a batch: what a power
+#: cut can cost at most (the spectra of the last interval are fitted again on resume).
+WRITE_BACK_INTERVAL_S = 30.0
+
+
+class _WriteBack:
+    """Writes the batch's files back to disk every :data:`WRITE_BACK_INTERVAL_S`.
+
+    Each spectrum's files are written without fsync (see
+    :func:`fitting.atomic.deferred_sync`): atomic against a killed run, but only
+    durable once the OS writes them back. A thread of the parent calls
+    :func:`~fitting.atomic.flush_to_disk` now and then, and :meth:`stop` once
+    more at the end, so a power cut costs at most the last interval's spectra,
+    which a resume finds by their markers' hashes and fits again.
+    """
+
+    def __init__(self, enabled: bool):
+        self.done = threading.Event()
+        self.thread = None
+        if enabled:
+            self.thread = threading.Thread(target=self._loop, name="write-back", daemon=True)
+            self.thread.start()
+
+    def _loop(self):
+        while not self.done.wait(WRITE_BACK_INTERVAL_S):
+            flush_to_disk()
+
+    def stop(self) -> None:
+        if self.thread is None:
+            return
+        self.done.set()
+        self.thread.join()
+        self.thread = None
+        flush_to_disk()
 
 
 class _AnyStop:

@@ -5,7 +5,8 @@ import os
 
 import pytest
 
-from fitting.atomic import atomic_write_bytes, atomic_write_json, atomic_write_text
+from fitting.atomic import (atomic_write_bytes, atomic_write_json, atomic_write_text,
+                            atomic_writer, can_defer_sync, deferred_sync, flush_to_disk)
 
 
 def test_text_bytes_and_json_round_trip(tmp_path):
@@ -38,3 +39,49 @@ def test_existing_mode_is_kept(tmp_path):
     atomic_write_text(target, "new")
     assert target.read_text() == "new"
     assert target.stat().st_mode & 0o777 == 0o640
+
+
+def _count_fsyncs(monkeypatch):
+    calls = []
+    real = os.fsync
+    monkeypatch.setattr(os, "fsync", lambda fd: (calls.append(fd), real(fd))[1])
+    return calls
+
+
+@pytest.mark.skipif(not can_defer_sync(), reason="no sync(2) here: writes are never deferred")
+def test_deferred_writes_skip_fsync_but_stay_whole_and_atomic(tmp_path, monkeypatch):
+    calls = _count_fsyncs(monkeypatch)
+    atomic_write_text(tmp_path / "a.txt", "one\n")
+    assert len(calls) == 2                      # the file and its directory
+    calls.clear()
+    with deferred_sync():
+        atomic_write_text(tmp_path / "a.txt", "two\n")
+        with atomic_writer(tmp_path / "b.csv") as fh:
+            fh.write("x,y\n")
+        with deferred_sync(False):              # a block can ask for fsync again
+            atomic_write_text(tmp_path / "c.txt", "three\n")
+    assert len(calls) == 2                      # only c.txt and its directory
+    assert (tmp_path / "a.txt").read_text() == "two\n"
+    assert (tmp_path / "b.csv").read_text() == "x,y\n"
+    calls.clear()
+    atomic_write_text(tmp_path / "a.txt", "four\n")     # after the block: fsync again
+    assert len(calls) == 2
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt", "b.csv", "c.txt"]
+
+
+def test_deferral_is_per_thread(tmp_path, monkeypatch):
+    import threading
+    calls = _count_fsyncs(monkeypatch)
+    with deferred_sync():
+        t = threading.Thread(target=atomic_write_text, args=(tmp_path / "t.txt", "x"))
+        t.start()
+        t.join()
+    assert len(calls) == 2                      # the other thread was not deferred
+
+
+@pytest.mark.skipif(not can_defer_sync(), reason="no sync(2) here")
+def test_flush_to_disk_calls_sync(monkeypatch):
+    calls = []
+    monkeypatch.setattr(os, "sync", lambda: calls.append(1))
+    flush_to_disk()
+    assert calls == [1]

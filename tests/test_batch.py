@@ -139,6 +139,49 @@ def test_resume_skips_done_spectra_and_refits_changed_ones(batch27, tmp_path):
     assert [s.skipped for s in steps2] == [False]
 
 
+def test_resume_refits_a_spectrum_whose_files_a_power_cut_emptied(batch27, tmp_path):
+    # Spectra are written without fsync (fitting.atomic.deferred_sync); after a power
+    # cut a file may come back empty although its marker is there. The marker's
+    # SHA-256 of each file tells; only that spectrum is fitted again.
+    root, truth, recipe, steps, summary = batch27
+    import shutil
+    out = tmp_path / "out"
+    shutil.copytree(root / "out", out)
+    marker = next(p for p in (out / "spectra").glob(f"*/{MARKER_NAME}")
+                  if json.loads(p.read_text())["input"]["path"].endswith("s003.txt"))
+    rec = json.loads(marker.read_text())
+    assert rec["version"] == 3 and set(rec["files_sha256"]) == set(rec["files"]) != set()
+    victim = marker.parent / rec["files"][0]
+    victim.write_bytes(b"")
+    again = list(iter_batch([root / "in"], recipe, out, jobs=1, resume=True, report=False))
+    assert [s.path.name for s in again if not s.skipped] == ["s003.txt"]
+    rec = json.loads(marker.read_text())        # written again, and recorded again
+    assert victim.stat().st_size > 0
+    assert rec["files_sha256"][victim.name] == sha256_of_file(victim)
+
+
+def test_spectra_files_are_not_fsynced_one_by_one_but_written_back(tmp_path, monkeypatch):
+    import os
+
+    from fitting.atomic import can_defer_sync
+    if not can_defer_sync():
+        pytest.skip("no sync(2) here: every write is fsynced")
+    write_spectra(tmp_path / "in", [480.0, 520.0, 560.0], seed=8)
+    fsyncs, syncs = [], []
+    real = os.fsync
+    monkeypatch.setattr(os, "fsync", lambda fd: (fsyncs.append(fd), real(fd))[1])
+    monkeypatch.setattr(os, "sync", lambda: syncs.append(1))
+    counts = []
+    for n in (1, 3):
+        fsyncs.clear()
+        run_batch(sorted((tmp_path / "in").iterdir())[:n], make_recipe(),
+                  tmp_path / f"out{n}", jobs=1, report=False)
+        counts.append(len(fsyncs))
+    # The summary, recipe and stamp are fsynced; the spectra's 4 files each are not.
+    assert counts[0] == counts[1]
+    assert len(syncs) >= 2                      # written back before each summary
+
+
 def test_stop_ends_the_batch_between_spectra(tmp_path):
     write_spectra(tmp_path / "in", [400, 450, 500, 550, 600, 650], seed=3)
     stop = threading.Event()
