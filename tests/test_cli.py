@@ -290,8 +290,13 @@ def _rows(out_dir):
     return {r["file"]: {k: v for k, v in r.items() if k not in drop} for r in rows}
 
 
+#: Spectra in the batches these tests stop: enough that a batch cannot finish before
+#: the signal lands (a small test spectrum takes about 0.05 s per worker).
+STOPPED_BATCH = 40
+
+
 def test_killed_batch_resumes_to_the_same_summary(tmp_path):
-    n = 16
+    n = STOPPED_BATCH
     write_spectra(tmp_path / "in", np.linspace(380, 720, n - 1), seed=16, broken=False)
     (tmp_path / "in" / "empty.csv").write_bytes(b"")
     recipe = save_recipe(make_recipe(limits={"film_thickness": {"min": 400, "max": 700}}),
@@ -338,7 +343,8 @@ def test_killed_batch_resumes_to_the_same_summary(tmp_path):
 
 
 def test_ctrl_c_keeps_finished_spectra(tmp_path):
-    write_spectra(tmp_path / "in", np.linspace(400, 700, 12), seed=12)
+    n = 2 * STOPPED_BATCH        # one job: twice as many to stay ahead of the signal
+    write_spectra(tmp_path / "in", np.linspace(400, 700, n), seed=12)
     recipe = save_recipe(make_recipe(), tmp_path / "recipe.json")
     out = tmp_path / "out"
     proc = subprocess.Popen(_cli("batch", tmp_path / "in", "--out", out, "--recipe", recipe,
@@ -354,7 +360,7 @@ def test_ctrl_c_keeps_finished_spectra(tmp_path):
     assert proc.returncode == 130, err
     assert "interrupted" in err and "--resume" in err and "Traceback" not in err
     markers = list(out.glob(f"spectra/*/{MARKER_NAME}"))
-    assert 2 <= len(markers) < 12
+    assert 2 <= len(markers) < n
     assert len(_rows(out)) == len(markers)          # the summary lists every finished one
 
 
@@ -412,7 +418,7 @@ def test_workers_end_when_the_batch_process_is_killed(tmp_path):
     # SIGKILL of the main process alone (an out-of-memory kill, kill -9 of the pid):
     # the workers used to run on for ever, writing into --out and holding stdout open.
     out = tmp_path / "out"
-    proc = _start_batch(tmp_path, 12, out)
+    proc = _start_batch(tmp_path, STOPPED_BATCH, out)
     try:
         _wait_for_markers(proc, out, 1)
         family = _descendants(proc.pid)
@@ -436,7 +442,8 @@ def test_workers_end_when_the_batch_process_is_killed(tmp_path):
 def test_sigterm_stops_like_ctrl_c_and_resume_finishes(tmp_path):
     from fitting.batch import LOCK_NAME
     out = tmp_path / "out"
-    proc = _start_batch(tmp_path, 10, out)
+    n = STOPPED_BATCH
+    proc = _start_batch(tmp_path, n, out)
     try:
         _wait_for_markers(proc, out, 2)
         family = _descendants(proc.pid)
@@ -454,14 +461,14 @@ def test_sigterm_stops_like_ctrl_c_and_resume_finishes(tmp_path):
         assert time.monotonic() < deadline, f"still running: {_alive(family)}"
         time.sleep(0.05)
     markers = list(out.glob(f"spectra/*/{MARKER_NAME}"))
-    assert 2 <= len(markers) < 10
+    assert 2 <= len(markers) < n
     assert len(_rows(out)) == len(markers)           # the summary lists what finished
     r = subprocess.run(_cli("batch", tmp_path / "in", "--out", out, "--recipe",
                             tmp_path / "recipe.json", "--jobs", 2, "--no-report", "--resume"),
                        env=dict(os.environ, PYTHONPATH=str(ROOT)), cwd=ROOT,
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
-    assert len(_rows(out)) == 10
+    assert len(_rows(out)) == n
     assert r.stderr.count("skipped (done earlier") == len(markers)
 
 
