@@ -347,10 +347,13 @@ def test_ctrl_c_keeps_finished_spectra(tmp_path):
     write_spectra(tmp_path / "in", np.linspace(400, 700, n), seed=12)
     recipe = save_recipe(make_recipe(), tmp_path / "recipe.json")
     out = tmp_path / "out"
+    # A shell starts background jobs with SIGINT ignored, and Python then leaves it
+    # ignored: the test's own launcher must not decide whether Ctrl-C works.
     proc = subprocess.Popen(_cli("batch", tmp_path / "in", "--out", out, "--recipe", recipe,
                                  "--jobs", 1, "--no-report"),
                             env=dict(os.environ, PYTHONPATH=str(ROOT)), cwd=ROOT,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.monotonic() + 120
     while len(list(out.glob(f"spectra/*/{MARKER_NAME}"))) < 2:
         assert proc.poll() is None and time.monotonic() < deadline
