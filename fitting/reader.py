@@ -41,7 +41,6 @@ import re
 import time
 import unicodedata
 import warnings as _warnings
-from itertools import repeat
 from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 
@@ -934,6 +933,11 @@ def _head_lines(text: str, n: int, max_chars: int = _MAX_HEAD_CHARS) -> tuple[li
         if len(lines) <= n:
             return lines, True
         return lines[:n], not lines[n]
+    return _head_lines_by_line(text, n, max_chars)
+
+
+def _head_lines_by_line(text: str, n: int, max_chars) -> tuple[list[str], bool]:
+    """:func:`_head_lines` one line at a time, stopping at ``max_chars`` (the general case)."""
     lines, pos = [], 0
     while len(lines) < n and pos < max_chars:
         end = text.find("\n", pos)
@@ -992,13 +996,8 @@ def _judge_rows(maybe, kinds, stripped, lines, delim, numbers) -> None:
     matched = list(map(row.fullmatch, texts)) if row else [None] * len(todo)
     plain = numbers.plain_lines
     if row and None not in matched:
-        # The common head, all plain rows below a header: fields counted in bulk.
-        if delim == " ":
-            counts = list(map(len, map(str.split, texts)))
-        else:
-            ends = " \t" + delim
-            counts = [c + 1 for c in map(str.count, map(str.rstrip, texts,
-                                                         repeat(ends)), repeat(delim))]
+        # The common head, all plain rows below a header.
+        counts = [_plain_fields(s, delim) for s in texts]
         kinds.update(zip(todo, [(_DATA, n) if n <= _MAX_COLUMNS else (_WIDE, n)
                                 for n in counts]))
         plain.update(todo)
@@ -1080,11 +1079,9 @@ def _choose_dialect_bounded(lines, options, seen: dict | None = None):
         if best_key is None:
             # Nothing to beat yet: every line is judged, all at once.
             _judge_rows(maybe, kinds, stripped, lines, delim, numbers)
-            n_data = sum(1 for i in maybe if kinds[i][0] in _ROW_OR_WIDE)
         elif not _beats(maybe, kinds, lines, delim, numbers, (-pri, -j), best_key):
             continue
-        else:
-            n_data = sum(1 for i in maybe if kinds[i][0] in _ROW_OR_WIDE)
+        n_data = sum(1 for i in maybe if kinds[i][0] in _ROW_OR_WIDE)
         if n_data == 0:
             continue
         if delim == "," and not quoted:

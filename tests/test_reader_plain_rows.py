@@ -9,6 +9,7 @@ the same head lines. The references here are the careful paths themselves
 demo files and on heads built to be awkward. No physics values are involved.
 """
 
+import math
 import os
 
 import numpy as np
@@ -157,24 +158,12 @@ def test_bulk_row_judgement_equals_row_by_row(lines, sep, dec):
         stripped[i])}
 
 
-def _loop(text, n):
-    """The head cut line by line, as before the one-split cut (no character limit hit)."""
-    lines, pos = [], 0
-    while len(lines) < n:
-        end = text.find("\n", pos)
-        if end < 0:
-            lines.append(text[pos:])
-            return lines, True
-        lines.append(text[pos:end])
-        pos = end + 1
-    return lines, pos >= len(text)
-
-
 @pytest.mark.parametrize("text", ["", "a", "a\n", "a\nb", "a\nb\n", "\n\n\n", "1\n2\n3\n",
                                   "1\n2\n3", "1\n2\n3\n4", "x\r\ny\r\n"])
 @pytest.mark.parametrize("n", [1, 2, 3, 400])
 def test_head_cut_in_one_split_equals_the_line_by_line_cut(text, n):
-    assert reader._head_lines(text, n) == _loop(text, n)
+    # The line-by-line cut without a character limit: the reader's general path.
+    assert reader._head_lines(text, n) == reader._head_lines_by_line(text, n, math.inf)
 
 
 def test_tab_table_with_an_empty_field_is_sampled_field_by_field():
